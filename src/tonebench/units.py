@@ -1,0 +1,36 @@
+"""Unit conversions used by every layer (50 ohm system, powers in dBm)."""
+
+from __future__ import annotations
+
+import numpy as np
+
+SYSTEM_IMPEDANCE_OHM = 50.0
+BOLTZMANN_J_PER_K = 1.380649e-23  # exact, SI definition (2019)
+REFERENCE_TEMPERATURE_K = 290.0  # IEEE standard noise temperature
+
+
+def dbm_to_watt(power_dbm):
+    return 1e-3 * 10.0 ** (np.asarray(power_dbm, dtype=float) / 10.0)
+
+
+def watt_to_dbm(power_w):
+    return 10.0 * np.log10(np.asarray(power_w, dtype=float) / 1e-3)
+
+
+def dbm_to_vpeak(power_dbm):
+    """Peak voltage of a sine carrying power_dbm into 50 ohm: P = Vpeak^2 / (2 R)."""
+    return np.sqrt(2.0 * SYSTEM_IMPEDANCE_OHM * dbm_to_watt(power_dbm))
+
+
+def vpeak_to_dbm(vpeak_v):
+    return watt_to_dbm(np.abs(np.asarray(vpeak_v)) ** 2 / (2.0 * SYSTEM_IMPEDANCE_OHM))
+
+
+def thermal_noise_dbm_per_hz(temperature_k: float = REFERENCE_TEMPERATURE_K) -> float:
+    """Available thermal noise density kT, in dBm/Hz (about -174 at 290 K)."""
+    return float(watt_to_dbm(BOLTZMANN_J_PER_K * temperature_k))
+
+
+def db_sum(*levels_dbm):
+    """Power sum of incoherent contributions given in dBm (or any dB unit)."""
+    return watt_to_dbm(sum(dbm_to_watt(x) for x in levels_dbm))
