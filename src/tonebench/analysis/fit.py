@@ -1,0 +1,187 @@
+"""Fit one two-tone sweep: valid small-signal region, fixed- and free-slope fits (design.md sec 3).
+
+A sweep is one (center, spacing, bias) group; every input is a 1-D array with one value per
+point, DUT-referred, in dBm. Nothing here loops over points.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from tonebench.analysis.compression import p1db
+from tonebench.analysis.intercepts import point_intercepts
+from tonebench.errors import InputError
+
+MIN_VALID_POINTS = 3
+IM3_OVER_NOISE_MIN_DB = 10.0  # IM3 must clear its noise floor by this much to count
+GAIN_TOLERANCE_DB = 0.3  # a point is small-signal while its gain stays this close
+SMALL_SIGNAL_POINTS = 3  # lowest-power points whose median gain is the small-signal gain
+NOISE_CORRECT_MIN_DB = 3.0  # at or below this the reading is only an upper bound
+NOISE_CORRECT_MAX_DB = 20.0  # at or above this the noise adds < 0.05 dB: leave the reading
+
+
+@dataclass(frozen=True)
+class SweepResult:
+    """Fitted results of one sweep. Powers in dBm, gain in dB, slopes in dB/dB.
+
+    Intercepts and slopes are None when fewer than 3 points are valid; `reason` then says why.
+    p1db_in_dbm is the per-tone input power (both tones on) at 1 dB gain compression, i.e. the
+    two-tone P1dB, not the single-tone one.
+    """
+
+    n_points: int
+    n_valid: int
+    valid_mask: np.ndarray
+    gain_db: float | None
+    iip3_lower_dbm: float | None
+    iip3_upper_dbm: float | None
+    iip3_dbm: float | None
+    oip3_lower_dbm: float | None
+    oip3_upper_dbm: float | None
+    oip3_dbm: float | None
+    slope_fundamental: float | None
+    slope_im3_lower: float | None
+    slope_im3_upper: float | None
+    p1db_in_dbm: float | None
+    p1db_out_dbm: float | None
+    valid_tone_min_dbm: float | None
+    valid_tone_max_dbm: float | None
+    reason: str | None
+
+
+def noise_corrected_dbm(reading_dbm, noise_dbm) -> tuple[np.ndarray, np.ndarray]:
+    """Remove the noise power N (dBm, same analyzer settings) from a reading R (dBm).
+
+    Returns (corrected_dbm, upper_bound_mask). Where 3 dB < R - N < 20 dB the result is
+    10*log10(10^(R/10) - 10^(N/10)); at R - N >= 20 dB the reading is kept as is; at
+    R - N <= 3 dB the reading is kept but is only an upper bound (mask True). A NaN on either
+    side leaves the reading unchanged and unflagged.
+    """
+    reading = np.asarray(reading_dbm, dtype=float)
+    excess_db = reading - np.asarray(noise_dbm, dtype=float)
+    correct = (excess_db > NOISE_CORRECT_MIN_DB) & (excess_db < NOISE_CORRECT_MAX_DB)
+    # R + 10log10(1 - 10^(-(R-N)/10)) is the same subtraction without forming large powers.
+    with np.errstate(invalid="ignore", divide="ignore"):
+        shift_db = 10.0 * np.log10(1.0 - 10.0 ** (-excess_db / 10.0))
+    corrected = np.where(correct, reading + shift_db, reading)
+    return corrected, excess_db <= NOISE_CORRECT_MIN_DB
+
+
+def small_signal_gain_db(tone_dbm, gain_db, usable) -> float | None:
+    """Median gain of the lowest-power usable points (up to SMALL_SIGNAL_POINTS of them).
+
+    Three points keep the estimate in the small-signal region while the median shrugs off
+    one bad reading; a shorter sweep uses what it has. None when no point is usable.
+    """
+    idx = np.flatnonzero(usable)
+    if idx.size == 0:
+        return None
+    lowest = idx[np.argsort(np.asarray(tone_dbm, dtype=float)[idx], kind="stable")]
+    return float(np.median(np.asarray(gain_db)[lowest[:SMALL_SIGNAL_POINTS]]))
+
+
+def fit_sweep(
+    tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm, im3_upper_dbm,
+    noise_lower_dbm, noise_upper_dbm, overload,
+) -> SweepResult:
+    """Fit one sweep (1-D arrays, one value per point; overload is a bool array).
+
+    Fixed-slope fit: with the fundamental y1 = x + b1 (slope 1) and the IM3 product
+    y3 = 3x + b3 (slope 3, x the input power of the product's 2P1+P2 or P1+2P2 over 3), least
+    squares over the valid points minimises sum (y_i - s x_i - b)^2, whose derivative in b
+    vanishes at b = mean(y_i - s x_i). The lines meet at IIP3 = (b1 - b3)/2, and as both b are
+    means of per-point terms, IIP3 = mean((2P1+P2 - Pim3_i + G_i)/2) = the mean of the per-point
+    intercepts; OIP3 = IIP3 + b1 = the mean of the per-point OIP3. Lower and upper are fitted
+    separately; the reported mean intercept is (lower + upper)/2 in dB.
+    """
+    names = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
+             "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm")
+    values = (tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm,
+              im3_upper_dbm, noise_lower_dbm, noise_upper_dbm)
+    arrays = {name: np.asarray(v, dtype=float) for name, v in zip(names, values)}
+    arrays["overload"] = np.asarray(overload, dtype=bool)
+    n_points = arrays["tone_dbm"].size
+    for name, arr in arrays.items():
+        if arr.ndim != 1 or arr.size != n_points:
+            raise InputError(f"fit_sweep: {name} has shape {arr.shape}; every array must be 1-D "
+                             f"with one value per point ({n_points}, like tone_dbm)")
+    a = arrays
+    over = a["overload"]
+
+    im3_lower, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
+    im3_upper, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
+    pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
+                           im3_lower, im3_upper)
+    pin_mean = (a["pin1_dbm"] + a["pin2_dbm"]) / 2.0
+    pout_mean = (a["pout_f1_dbm"] + a["pout_f2_dbm"]) / 2.0
+
+    finite = np.all([np.isfinite(a[n]) for n in names[:7]], axis=0)
+    gss = small_signal_gain_db(a["tone_dbm"], pts.gain_db, finite & ~over)
+
+    # Each cause is counted on its own; one point may have several.
+    noisy = ~((a["im3_lower_dbm"] - a["noise_lower_dbm"] >= IM3_OVER_NOISE_MIN_DB)
+              & (a["im3_upper_dbm"] - a["noise_upper_dbm"] >= IM3_OVER_NOISE_MIN_DB))
+    if gss is None:
+        compressed = expanded = gain_ok = np.zeros(n_points, bool)
+    else:
+        compressed = pts.gain_db < gss - GAIN_TOLERANCE_DB
+        expanded = pts.gain_db > gss + GAIN_TOLERANCE_DB
+        gain_ok = np.abs(pts.gain_db - gss) <= GAIN_TOLERANCE_DB
+    valid = finite & ~noisy & gain_ok & ~over
+    n_valid = int(valid.sum())
+
+    p1db_in = p1db_out = None
+    if gss is not None:
+        p1db_in, p1db_out = p1db(np.where(over, np.nan, pin_mean), pts.gain_db, gss)
+
+    valid_tone = a["tone_dbm"][valid]
+    common = dict(n_points=n_points, n_valid=n_valid, valid_mask=valid, gain_db=gss,
+                  p1db_in_dbm=p1db_in, p1db_out_dbm=p1db_out,
+                  valid_tone_min_dbm=float(valid_tone.min()) if n_valid else None,
+                  valid_tone_max_dbm=float(valid_tone.max()) if n_valid else None)
+
+    if n_valid < MIN_VALID_POINTS:
+        causes = {
+            "with missing readings": ~finite,
+            f"IM3 within {IM3_OVER_NOISE_MIN_DB:g} dB of the noise floor": noisy & finite,
+            "compressed": compressed,
+            "expanded": expanded,
+            "overloaded": over,
+        }
+        parts = [f"{int(m.sum())} {label}" for label, m in causes.items() if m.any()]
+        reason = (f"only {n_valid} of {n_points} points meet the valid-region rules "
+                  f"(need {MIN_VALID_POINTS})")
+        if parts:
+            reason += ": " + ", ".join(parts)
+        if gss is None and n_points:
+            reason += "; no point free of overload and missing readings sets the small-signal gain"
+        return SweepResult(iip3_lower_dbm=None, iip3_upper_dbm=None, iip3_dbm=None,
+                           oip3_lower_dbm=None, oip3_upper_dbm=None, oip3_dbm=None,
+                           slope_fundamental=None, slope_im3_lower=None, slope_im3_upper=None,
+                           reason=reason, **common)
+
+    iip3_lower = float(pts.iip3_lower_dbm[valid].mean())
+    iip3_upper = float(pts.iip3_upper_dbm[valid].mean())
+    oip3_lower = float(pts.oip3_lower_dbm[valid].mean())
+    oip3_upper = float(pts.oip3_upper_dbm[valid].mean())
+    x = pin_mean[valid]
+    spread = np.ptp(x) > 0  # a slope needs at least two distinct input powers
+
+    def slope(y) -> float | None:
+        return float(np.polyfit(x, y[valid], 1)[0]) if spread else None
+
+    return SweepResult(
+        iip3_lower_dbm=iip3_lower,
+        iip3_upper_dbm=iip3_upper,
+        iip3_dbm=(iip3_lower + iip3_upper) / 2.0,
+        oip3_lower_dbm=oip3_lower,
+        oip3_upper_dbm=oip3_upper,
+        oip3_dbm=(oip3_lower + oip3_upper) / 2.0,
+        slope_fundamental=slope(pout_mean),
+        slope_im3_lower=slope(im3_lower),
+        slope_im3_upper=slope(im3_upper),
+        reason=None,
+        **common,
+    )

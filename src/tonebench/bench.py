@@ -1,0 +1,76 @@
+"""Open the instruments a bench file names and hold them for one run."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from tonebench.config.bench_file import BenchFile
+from tonebench.errors import InstrumentError
+from tonebench.instruments.analyzer import SpectrumAnalyzer
+from tonebench.instruments.dialect import load_dialect
+from tonebench.instruments.scpi import ScpiInstrument
+from tonebench.instruments.source import SignalSource
+from tonebench.instruments.transport import open_resource
+from tonebench.safety import SourceRange
+
+
+@dataclass(frozen=True)
+class InstrumentInfo:
+    role: str
+    resource: str
+    dialect: str
+    idn: str
+
+
+@dataclass
+class OpenBench:
+    source1: SignalSource
+    source2: SignalSource
+    analyzer: SpectrumAnalyzer
+    source_ranges: tuple[SourceRange, SourceRange]
+    instruments: list[InstrumentInfo] = field(default_factory=list)
+    _scpi: list[ScpiInstrument] = field(default_factory=list)
+
+    def rf_on(self) -> None:
+        self.source1.rf_on()
+        self.source2.rf_on()
+
+    def rf_off_all(self) -> None:
+        """Switch RF off at both sources; try both even if one fails, then report the failure."""
+        failures = []
+        for source in (self.source1, self.source2):
+            try:
+                source.rf_off()
+            except Exception as exc:  # noqa: BLE001 - the other source must still be switched off
+                failures.append(f"{source.label}: {exc}")
+        if failures:
+            raise InstrumentError("RF off failed: " + "; ".join(failures))
+
+    def close(self) -> None:
+        for instrument in self._scpi:
+            try:
+                instrument.close()
+            except Exception:  # noqa: BLE001 - closing is best effort, nothing is measured here
+                pass
+
+
+def open_bench(settings: BenchFile, resources: dict[str, str]) -> OpenBench:
+    """Connect to source1, source2 and analyzer; `resources` maps each role to a VISA resource."""
+    opened: list[ScpiInstrument] = []
+    try:
+        for role in ("source1", "source2", "analyzer"):
+            dialect = load_dialect(settings.instruments[role].dialect)
+            opened.append(ScpiInstrument(open_resource(resources[role], dialect), dialect, role))
+        scpi1, scpi2, scpi_analyzer = opened
+        source1, source2 = SignalSource(scpi1), SignalSource(scpi2)
+        ranges = tuple(
+            SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)
+        )
+        infos = [
+            InstrumentInfo(inst.label, resources[inst.label], inst.dialect.name, inst.idn) for inst in opened
+        ]
+        return OpenBench(source1, source2, SpectrumAnalyzer(scpi_analyzer), ranges, infos, opened)
+    except BaseException:
+        for instrument in opened:
+            instrument.close()
+        raise

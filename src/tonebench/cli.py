@@ -1,0 +1,214 @@
+"""The tonebench command line."""
+
+from __future__ import annotations
+
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Annotated, Iterator
+
+import typer
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
+from rich.table import Table
+
+from tonebench.errors import DatabaseError, InputError, TonebenchError
+
+app = typer.Typer(
+    help="Two-tone intercept (IIP3/OIP3) measurements on real or simulated benches, with every point logged.",
+    no_args_is_help=True,
+    add_completion=False,
+)
+sim_app = typer.Typer(help="The simulated bench.", no_args_is_help=True)
+db_app = typer.Typer(help="Database housekeeping.", no_args_is_help=True)
+app.add_typer(sim_app, name="sim")
+app.add_typer(db_app, name="db")
+
+out = Console()
+err = Console(stderr=True)
+
+
+def _default_db() -> str:
+    from tonebench.store.database import default_db_url
+
+    return default_db_url()
+
+
+DbOption = Annotated[
+    str | None,
+    typer.Option("--db", help="SQLAlchemy database URL (default: sqlite file tonebench.db in the current folder)."),
+]
+
+
+@contextmanager
+def one_line_errors() -> Iterator[None]:
+    """Bad input: one line and exit 2. Instrument or other tonebench failures: one line and exit 1."""
+    try:
+        yield
+    except (InputError, DatabaseError) as exc:
+        err.print(f"error: {exc}", markup=False, highlight=False)
+        raise typer.Exit(2) from None
+    except TonebenchError as exc:
+        err.print(f"error: {exc}", markup=False, highlight=False)
+        raise typer.Exit(1) from None
+    except KeyboardInterrupt:
+        err.print("interrupted: RF was switched off; the run is stored as aborted", markup=False)
+        raise typer.Exit(130) from None
+
+
+def _progress() -> Progress:
+    return Progress(
+        TextColumn("[bold]measuring"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        TextColumn("points"),
+        TimeElapsedColumn(),
+        TextColumn("ETA"),
+        TimeRemainingColumn(),
+        console=err,
+    )
+
+
+def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None):
+    from tonebench.runner import execute_run
+
+    with _progress() as progress:
+        task = progress.add_task("run", total=None)
+
+        def advance(done: int, total: int) -> None:
+            progress.update(task, completed=done, total=total)
+
+        return execute_run(plan, bench, db_url, report, advance, on_sim_started)
+
+
+def _print_results(results) -> None:
+    from tonebench.review import result_row
+
+    rows = [result_row(r) for r in results]
+    if not rows:
+        return
+    table = Table(title="Results")
+    for column in rows[0]:
+        table.add_column(column)
+    for row in rows:
+        table.add_row(*row.values())
+    out.print(table)
+
+
+@app.command()
+def run(
+    plan: Annotated[Path, typer.Argument(help="Plan file (TOML): device, tone frequencies, spacings, powers, analyzer settings.")],
+    bench: Annotated[Path, typer.Option("--bench", "-b", help="Bench file (TOML): instruments, dialects, path losses, limits.")],
+    db: DbOption = None,
+    report: Annotated[Path | None, typer.Option(help="Write the HTML report here (default: report-<run>.html beside the database).")] = None,
+) -> None:
+    """Measure a plan on a bench, store every point, fit intercepts and write a report."""
+    with one_line_errors():
+        db_url = db or _default_db()
+        outcome = _run_with_progress(plan, bench, db_url, report)
+        out.print(f"run {outcome.guid}: {outcome.status}")
+        out.print(f"database: {outcome.db_url}")
+        out.print(f"report:   {outcome.report_path}")
+        _print_results(outcome.results)
+
+
+@app.command()
+def demo(
+    out_dir: Annotated[Path, typer.Option("--out", help="Folder for the demo database and report.")] = Path("tonebench-demo"),
+) -> None:
+    """Run the sample plan on the simulated bench (no hardware) and compare IIP3 with the simulated truth."""
+    from tonebench.demo import run_demo
+
+    with one_line_errors():
+        run_demo(out_dir, _run_with_progress, out)
+
+
+@app.command()
+def runs(
+    db: DbOption = None,
+    limit: Annotated[int, typer.Option(min=1, help="Show at most this many runs, newest first.")] = 20,
+) -> None:
+    """List runs, newest first."""
+    from tonebench.queries import list_runs
+
+    with one_line_errors():
+        table = Table(title="Runs")
+        for column in ("GUID", "Started (UTC)", "Status", "Device", "Bench", "Points"):
+            table.add_column(column)
+        for row in list_runs(db or _default_db(), limit):
+            table.add_row(*row)
+        out.print(table)
+
+
+@app.command()
+def show(
+    run_id: Annotated[str, typer.Argument(metavar="RUN", help="Run GUID or a unique prefix of it.")],
+    db: DbOption = None,
+) -> None:
+    """Show one run: device, bench, instruments, results and events."""
+    from tonebench.queries import describe_run
+
+    with one_line_errors():
+        describe_run(db or _default_db(), run_id, out)
+
+
+@app.command()
+def analyze(
+    run_id: Annotated[str, typer.Argument(metavar="RUN", help="Run GUID or a unique prefix of it.")],
+    db: DbOption = None,
+) -> None:
+    """Fit intercepts again from the stored points of a run and store the results."""
+    from tonebench.review import analyze_run
+    from tonebench.store.database import open_database, session_factory
+
+    with one_line_errors():
+        results = analyze_run(session_factory(open_database(db or _default_db())), run_id)
+        _print_results(results)
+
+
+@app.command()
+def report(
+    run_id: Annotated[str, typer.Argument(metavar="RUN", help="Run GUID or a unique prefix of it.")],
+    db: DbOption = None,
+    out_path: Annotated[Path, typer.Option("--out", help="HTML file to write.")] = Path("tonebench-report.html"),
+) -> None:
+    """Write a self-contained HTML report (plots and results) for one run; it works offline."""
+    from tonebench.review import write_run_report
+    from tonebench.store.database import open_database, session_factory
+
+    with one_line_errors():
+        written = write_run_report(session_factory(open_database(db or _default_db())), run_id, out_path)
+        out.print(f"report: {written}")
+
+
+@sim_app.command("serve")
+def sim_serve(
+    bench: Annotated[Path, typer.Option("--bench", "-b", help="Simulated bench file (TOML with a [simulation] table).")],
+) -> None:
+    """Serve the simulated instruments as raw-SCPI sockets on loopback until Ctrl-C."""
+    import threading
+
+    from tonebench.config.bench_file import load_bench
+    from tonebench.sim.launch import start_sim_bench
+
+    with one_line_errors():
+        loaded = load_bench(bench)
+        if loaded.scenario is None:
+            raise InputError(f"bench file {bench}: no [simulation] table; only a simulated bench can be served")
+        with start_sim_bench(loaded.scenario) as sim:
+            for role, resource in sim.resources.items():
+                out.print(f"{role}: {resource}", highlight=False)
+            out.print("serving; Ctrl-C stops", highlight=False)
+            out.file.flush()
+            try:
+                threading.Event().wait()
+            except KeyboardInterrupt:
+                pass
+
+
+@db_app.command("upgrade")
+def db_upgrade(db: DbOption = None) -> None:
+    """Bring a database to this version's schema (also done automatically when it is opened)."""
+    from tonebench.store.database import upgrade_database
+
+    with one_line_errors():
+        out.print(f"database at schema revision {upgrade_database(db or _default_db())}")

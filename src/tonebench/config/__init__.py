@@ -1,0 +1,1 @@
+"""Plan and bench files (TOML), validated by pydantic into typed settings."""

@@ -1,0 +1,106 @@
+"""The bench file: instruments, their dialects, path losses, safety limits, and (for a simulated
+bench) the simulation scenario."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator
+
+from tonebench.config.loading import read_toml, validate
+from tonebench.errors import InputError
+
+REQUIRED_ROLES = ("source1", "source2", "analyzer")
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class BenchInfo(_Strict):
+    name: str = Field(min_length=1)
+    description: str = ""
+
+
+class InstrumentEntry(_Strict):
+    dialect: str = Field(min_length=1)
+    # A VISA resource string; left out on a simulated bench, where the simulator assigns one.
+    resource: str | None = None
+
+
+class OffsetTables(_Strict):
+    """Path losses in positive dB as [freq_hz, loss_db] pairs, in increasing frequency."""
+
+    in1: list[tuple[float, float]] = Field(min_length=1)
+    in2: list[tuple[float, float]] = Field(min_length=1)
+    out: list[tuple[float, float]] = Field(min_length=1)
+
+    @field_validator("in1", "in2", "out")
+    @classmethod
+    def _increasing(cls, rows: list[tuple[float, float]]) -> list[tuple[float, float]]:
+        freqs_hz = [freq_hz for freq_hz, _ in rows]
+        if any(freq_hz <= 0 for freq_hz in freqs_hz):
+            raise ValueError("frequencies must be > 0 Hz")
+        if any(b <= a for a, b in zip(freqs_hz, freqs_hz[1:])):
+            raise ValueError("frequencies must increase strictly from row to row")
+        if any(not -1.0 <= loss_db <= 80.0 for _, loss_db in rows):
+            raise ValueError("losses must lie between -1 and 80 dB (positive dB means loss)")
+        return rows
+
+
+class BenchLimits(_Strict):
+    """Checked before RF goes on, for every point of a plan."""
+
+    max_tone_dbm: float = Field(ge=-150.0, le=30.0, description="per tone at the DUT input plane")
+    max_analyzer_input_dbm: float = Field(ge=-100.0, le=40.0, description="total at the analyzer input")
+    expected_gain_db: float = Field(ge=-60.0, le=60.0, description="DUT gain used to predict output power")
+
+
+class BenchFile(_Strict):
+    bench: BenchInfo
+    instruments: dict[str, InstrumentEntry]
+    offsets: OffsetTables
+    limits: BenchLimits
+    simulation: dict[str, Any] | None = None
+
+    @field_validator("instruments")
+    @classmethod
+    def _roles(cls, instruments: dict[str, InstrumentEntry]) -> dict[str, InstrumentEntry]:
+        missing = [role for role in REQUIRED_ROLES if role not in instruments]
+        if missing:
+            raise ValueError(f"missing instrument role(s) {', '.join(missing)}; needed: {', '.join(REQUIRED_ROLES)}")
+        unknown = [role for role in instruments if role not in REQUIRED_ROLES]
+        if unknown:
+            raise ValueError(f"unknown instrument role(s) {', '.join(unknown)}; allowed: {', '.join(REQUIRED_ROLES)}")
+        return instruments
+
+    @property
+    def simulated(self) -> bool:
+        return self.simulation is not None
+
+
+class LoadedBench(BaseModel):
+    model_config = ConfigDict(arbitrary_types_allowed=True)
+
+    path: Path
+    settings: BenchFile
+    scenario: Any = None  # tonebench.sim.scenario.Scenario on a simulated bench
+
+
+def load_bench(path: Path) -> LoadedBench:
+    _, data = read_toml(path, "bench file")
+    settings = validate(BenchFile, data, f"bench file {path}")
+    scenario = None
+    if settings.simulated:
+        from tonebench.sim.scenario import Scenario
+
+        scenario = validate(Scenario, settings.simulation, f"bench file {path} [simulation]")
+    else:
+        for role, entry in settings.instruments.items():
+            if not entry.resource:
+                raise InputError(
+                    f"bench file {path}: field 'instruments.{role}.resource' is missing "
+                    "(needed on a hardware bench; e.g. TCPIP0::192.0.2.10::5025::SOCKET)"
+                )
+    return LoadedBench(path=path, settings=settings, scenario=scenario)

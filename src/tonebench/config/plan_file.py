@@ -1,0 +1,117 @@
+"""The plan file: which device, which tones, which analyzer settings.
+
+A plan says what to measure; the bench file says with what. Both are TOML.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from pathlib import Path
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from tonebench.config.loading import read_toml, validate
+
+# Tone power at the DUT input plane that any plan may ask for; the bench file narrows it further.
+TONE_MIN_DBM = -150.0
+TONE_MAX_DBM = 30.0
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class PlanInfo(_Strict):
+    name: str = Field(min_length=1)
+    description: str = ""
+
+
+class DeviceInfo(_Strict):
+    part_number: str = Field(min_length=1)
+    serial: str = Field(min_length=1)
+    lot: str | None = None
+    wafer: str | None = None
+    position: str | None = None
+    tags: list[str] = []
+    notes: str = ""
+
+
+class SweepSettings(_Strict):
+    center_freqs_hz: list[float] = Field(min_length=1)
+    spacings_hz: list[float] = Field(min_length=1)
+    tone_start_dbm: float = Field(ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
+    tone_stop_dbm: float = Field(ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
+    tone_step_dbm: float = Field(gt=0.0, le=20.0)
+
+    @model_validator(mode="after")
+    def _check(self) -> "SweepSettings":
+        if self.tone_stop_dbm < self.tone_start_dbm:
+            raise ValueError("tone_stop_dbm must not be below tone_start_dbm")
+        for spacing_hz in self.spacings_hz:
+            if spacing_hz <= 0:
+                raise ValueError(f"spacings_hz must be > 0, got {spacing_hz}")
+            for center_hz in self.center_freqs_hz:
+                # The lower IM3 product sits 1.5 spacings below the centre: it must stay above 0 Hz.
+                if center_hz - 1.5 * spacing_hz <= 0:
+                    raise ValueError(
+                        f"center {center_hz} Hz with spacing {spacing_hz} Hz puts 2f1-f2 at or below 0 Hz"
+                    )
+        return self
+
+    def tone_levels_dbm(self) -> list[float]:
+        count = int(round((self.tone_stop_dbm - self.tone_start_dbm) / self.tone_step_dbm)) + 1
+        levels = [round(self.tone_start_dbm + i * self.tone_step_dbm, 6) for i in range(count)]
+        return [level for level in levels if level <= self.tone_stop_dbm + 1e-9]
+
+
+class AnalyzerSettings(_Strict):
+    rbw_hz: float = Field(default=1000.0, gt=0.0, le=10e6)
+    vbw_hz: float | None = Field(default=None, gt=0.0, le=50e6)
+    span_hz: float | None = Field(default=None, gt=0.0, le=1e9)
+    atten_db: float = Field(default=10.0, ge=0.0, le=70.0)
+    ref_level_dbm: float = Field(default=0.0, ge=-120.0, le=30.0)
+
+    @property
+    def effective_vbw_hz(self) -> float:
+        return self.vbw_hz if self.vbw_hz is not None else self.rbw_hz
+
+    @property
+    def effective_span_hz(self) -> float:
+        # Ten RBWs: the Gaussian RBW skirt is > 100 dB down 3 RBW away, so the noise marker
+        # (4 RBW from the line) reads noise, not the line.
+        return self.span_hz if self.span_hz is not None else 10.0 * self.rbw_hz
+
+    @property
+    def noise_offset_hz(self) -> float:
+        return 0.4 * self.effective_span_hz
+
+
+class PlanFile(_Strict):
+    plan: PlanInfo
+    device: DeviceInfo
+    sweep: SweepSettings
+    analyzer: AnalyzerSettings = AnalyzerSettings()
+
+    @model_validator(mode="after")
+    def _check_span(self) -> "PlanFile":
+        narrowest_hz = min(self.sweep.spacings_hz)
+        if self.analyzer.effective_span_hz >= narrowest_hz:
+            raise ValueError(
+                f"analyzer span {self.analyzer.effective_span_hz} Hz must be narrower than the tone "
+                f"spacing {narrowest_hz} Hz, so each read sees one product only"
+            )
+        return self
+
+
+class LoadedPlan(BaseModel):
+    path: Path
+    text: str
+    sha256: str
+    settings: PlanFile
+
+
+def load_plan(path: Path) -> LoadedPlan:
+    text, data = read_toml(path, "plan")
+    settings = validate(PlanFile, data, f"plan {path}")
+    digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
+    return LoadedPlan(path=path, text=text, sha256=digest, settings=settings)

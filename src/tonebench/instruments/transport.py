@@ -1,0 +1,75 @@
+"""Opening VISA resources (hardware or the simulated bench) with a dialect's I/O settings."""
+
+from __future__ import annotations
+
+import functools
+
+import pyvisa
+from pyvisa import rname
+
+from tonebench.errors import InputError
+from tonebench.instruments.dialect import Dialect
+
+ALLOWED_FORMS = (
+    "TCPIP0::host::port::SOCKET, TCPIP0::host::INSTR, GPIB0::n::INSTR, "
+    "USB0::vendor::product::serial::INSTR, ASRL1::INSTR"
+)
+
+
+@functools.cache
+def resource_manager() -> pyvisa.ResourceManager:
+    """The one pyvisa-py resource manager of this process, created on first use."""
+    return pyvisa.ResourceManager("@py")
+
+
+def check_resource_name(resource: str) -> None:
+    """Raise InputError unless `resource` has the shape of a VISA resource string."""
+    try:
+        rname.parse_resource_name(resource)
+    except ValueError as exc:  # rname.InvalidResourceName is a ValueError
+        raise InputError(
+            f"resource {resource!r} is not a VISA resource string ({exc}); "
+            f"allowed forms: {ALLOWED_FORMS}"
+        ) from None
+
+
+def open_resource(resource: str, dialect: Dialect, rm: pyvisa.ResourceManager | None = None):
+    """Open `resource` with the dialect's terminations and timeout, and check that it answers.
+
+    pyvisa-py opens a SOCKET resource without noticing a refused connection, so the dialect's
+    identify query is sent once here: an instrument that cannot be reached fails now, as bad
+    input, not halfway through a run.
+    """
+    check_resource_name(resource)
+    rm = rm if rm is not None else resource_manager()
+    timeout_ms = round(dialect.io.query_timeout_s * 1000)
+    where = f"{resource} ({dialect.role})"
+    try:
+        handle = rm.open_resource(
+            resource,
+            read_termination=dialect.io.read_termination,
+            write_termination=dialect.io.write_termination,
+            timeout=timeout_ms,
+            open_timeout=timeout_ms,
+        )
+    except (pyvisa.errors.VisaIOError, OSError) as exc:
+        raise InputError(f"cannot reach {where}: {_reason(exc)}") from None
+    try:
+        handle.query(dialect.operations["identify"].template)
+    except pyvisa.errors.VisaIOError as exc:
+        handle.close()
+        if exc.error_code == pyvisa.constants.StatusCode.error_timeout:
+            reason = f"no reply to identify within {dialect.io.query_timeout_s:g} s"
+        else:
+            reason = _reason(exc)
+        raise InputError(f"cannot reach {where}: {reason}") from None
+    except OSError as exc:
+        handle.close()
+        raise InputError(f"cannot reach {where}: {_reason(exc)}") from None
+    return handle
+
+
+def _reason(exc: Exception) -> str:
+    if isinstance(exc, OSError) and exc.strerror:
+        return exc.strerror.lower()
+    return str(exc).splitlines()[0] if str(exc) else type(exc).__name__

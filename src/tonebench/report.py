@@ -1,0 +1,226 @@
+"""Self-contained HTML report of fitted sweeps: one plotly figure per sweep and a results table.
+
+plotly.js is embedded once in the page head, so the report opens on an offline lab PC.
+"""
+
+from __future__ import annotations
+
+import html
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import plotly.graph_objects as go
+import plotly.io as pio
+from plotly.offline import get_plotlyjs
+
+from tonebench.analysis.fit import SweepResult
+from tonebench.errors import InputError
+
+_COLORS = {"fundamental": "#1f5fa8", "im3_lower": "#c0561b", "im3_upper": "#2a8a4a",
+           "noise": "#888888", "invalid": "#9a9a9a"}
+_INVALID_NOTE = "outside the valid region (see the reason column)"
+
+_STYLE = """
+body { font-family: system-ui, sans-serif; margin: 1.5rem auto; max-width: 72rem; color: #222; }
+h1 { font-size: 1.4rem; margin-bottom: 0.5rem; }
+h2 { font-size: 1.1rem; margin-top: 2rem; border-bottom: 1px solid #ccc; }
+dl.summary { display: grid; grid-template-columns: max-content auto; gap: 0.2rem 1rem; }
+dl.summary dt { font-weight: 600; }
+dl.summary dd { margin: 0; font-family: ui-monospace, monospace; }
+.sweep { margin: 1rem 0; border: 1px solid #e2e2e2; }
+table.results { border-collapse: collapse; font-size: 0.85rem; width: 100%; }
+table.results th, table.results td { border: 1px solid #d0d0d0; padding: 0.25rem 0.45rem; }
+table.results th { background: #f2f2f2; text-align: left; }
+table.results td.num { text-align: right; font-variant-numeric: tabular-nums; }
+"""
+
+
+@dataclass
+class SweepPlotData:
+    """What one sweep figure shows. Arrays are 1-D, one value per point, DUT-referred dBm.
+
+    pin_dbm is the mean of the two tone input powers, pout_dbm the mean of the two tone output
+    powers; noise_dbm the analyzer noise floor at the IM3 frequencies.
+    """
+
+    title: str
+    pin_dbm: np.ndarray
+    pout_dbm: np.ndarray
+    im3_lower_dbm: np.ndarray
+    im3_upper_dbm: np.ndarray
+    noise_dbm: np.ndarray
+    valid_mask: np.ndarray
+    result: SweepResult
+
+
+def format_freq(freq_hz: float, decimals: int | None = None) -> str:
+    """Frequency in the largest unit that keeps the number >= 1, e.g. '2.450 GHz', '1 MHz'."""
+    for scale, unit in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):
+        if abs(freq_hz) >= scale:
+            value = freq_hz / scale
+            break
+    else:
+        value, unit = freq_hz, "Hz"
+    return f"{value:.{decimals}f} {unit}" if decimals is not None else f"{value:g} {unit}"
+
+
+def sweep_title(center_freq_hz: float, spacing_hz: float) -> str:
+    """Figure title for one sweep, e.g. '2.450 GHz, spacing 1 MHz'."""
+    return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}"
+
+
+def result_row(center_freq_hz: float, spacing_hz: float, result: SweepResult) -> dict[str, object]:
+    """The standard results-table row for one sweep; callers may add columns (bias, device)."""
+    return {
+        "center": format_freq(center_freq_hz, 3),
+        "spacing": format_freq(spacing_hz),
+        "gain (dB)": result.gain_db,
+        "IIP3 lower (dBm)": result.iip3_lower_dbm,
+        "IIP3 upper (dBm)": result.iip3_upper_dbm,
+        "IIP3 (dBm)": result.iip3_dbm,
+        "OIP3 (dBm)": result.oip3_dbm,
+        "slope fundamental": result.slope_fundamental,
+        "slope IM3 lower": result.slope_im3_lower,
+        "slope IM3 upper": result.slope_im3_upper,
+        "P1dB in (dBm)": result.p1db_in_dbm,
+        "P1dB out (dBm)": result.p1db_out_dbm,
+        "valid points": f"{result.n_valid} of {result.n_points}",
+        "reason": result.reason,
+    }
+
+
+def _measured_trace(name: str, color: str, x, y, valid) -> go.Scatter:
+    valid = np.asarray(valid, dtype=bool)
+    return go.Scatter(
+        x=np.asarray(x, dtype=float), y=np.asarray(y, dtype=float), name=name, mode="markers",
+        marker=dict(size=8, color=np.where(valid, color, _COLORS["invalid"]).tolist(),
+                    symbol=np.where(valid, "circle", "circle-open").tolist(),
+                    line=dict(width=1.5, color=np.where(valid, color, _COLORS["invalid"]).tolist())),
+        hovertext=np.where(valid, "valid", _INVALID_NOTE).tolist(),
+        hovertemplate="%{x:.2f} dBm in, %{y:.2f} dBm out<br>%{hovertext}<extra>" + name + "</extra>",
+    )
+
+
+def _line(name: str, color: str, x0: float, x1: float, slope: float, x_ref: float, y_ref: float):
+    x = np.array([x0, x1])
+    return go.Scatter(x=x, y=y_ref + slope * (x - x_ref), name=name, mode="lines",
+                      line=dict(color=color, dash="dash", width=1.5), hoverinfo="skip")
+
+
+def sweep_figure(sweep: SweepPlotData) -> go.Figure:
+    """Output versus input power: measured points, fitted slope-1 and slope-3 lines, intercepts."""
+    r = sweep.result
+    fig = go.Figure()
+    fig.add_trace(_measured_trace("fundamental", _COLORS["fundamental"], sweep.pin_dbm,
+                                  sweep.pout_dbm, sweep.valid_mask))
+    fig.add_trace(_measured_trace("IM3 lower", _COLORS["im3_lower"], sweep.pin_dbm,
+                                  sweep.im3_lower_dbm, sweep.valid_mask))
+    fig.add_trace(_measured_trace("IM3 upper", _COLORS["im3_upper"], sweep.pin_dbm,
+                                  sweep.im3_upper_dbm, sweep.valid_mask))
+    fig.add_trace(go.Scatter(x=np.asarray(sweep.pin_dbm, dtype=float),
+                             y=np.asarray(sweep.noise_dbm, dtype=float), name="noise floor",
+                             mode="markers", marker=dict(symbol="x-thin-open", size=8,
+                                                         color=_COLORS["noise"])))
+
+    pin = np.asarray(sweep.pin_dbm, dtype=float)
+    x0 = float(np.nanmin(pin)) if np.isfinite(pin).any() else None
+    intercepts = [(label, color, iip3, oip3) for label, color, iip3, oip3 in (
+        ("lower", _COLORS["im3_lower"], r.iip3_lower_dbm, r.oip3_lower_dbm),
+        ("upper", _COLORS["im3_upper"], r.iip3_upper_dbm, r.oip3_upper_dbm)) if iip3 is not None]
+    if x0 is not None and r.gain_db is not None:
+        # Lines run from the lowest point out to the farthest intercept (or the last point).
+        x1 = max([float(np.nanmax(pin))] + [iip3 for _, _, iip3, _ in intercepts])
+        fig.add_trace(_line(f"slope 1, gain {r.gain_db:.2f} dB", _COLORS["fundamental"],
+                            x0, x1, 1.0, 0.0, r.gain_db))
+        for label, color, iip3, oip3 in intercepts:
+            fig.add_trace(_line(f"slope 3, {label}", color, x0, iip3, 3.0, iip3, oip3))
+            fig.add_trace(go.Scatter(
+                x=[iip3], y=[oip3], mode="markers+text", name=f"intercept {label}",
+                marker=dict(symbol="diamond", size=11, color=color),
+                text=[f"IIP3 {iip3:.2f} dBm / OIP3 {oip3:.2f} dBm ({label})"],
+                textposition="top left" if label == "lower" else "bottom right",
+                hoverinfo="text"))
+    fig.update_layout(
+        title=sweep.title, template="plotly_white", height=480,
+        xaxis_title="input power per tone at the DUT (dBm)",
+        yaxis_title="output power at the DUT (dBm)",
+        legend=dict(orientation="h", y=-0.2),
+    )
+    return fig
+
+
+def _cell(value: object) -> str:
+    if value is None:
+        return '<td class="num">&ndash;</td>'
+    if isinstance(value, (float, np.floating)):
+        return f'<td class="num">{value:.2f}</td>'
+    return f"<td>{html.escape(str(value))}</td>"
+
+
+def _results_table(rows: list[dict[str, object]]) -> str:
+    columns: list[str] = []
+    for row in rows:
+        columns += [key for key in row if key not in columns]
+    head = "".join(f"<th>{html.escape(str(c))}</th>" for c in columns)
+    body = "\n".join("<tr>" + "".join(_cell(row.get(c)) for c in columns) + "</tr>" for row in rows)
+    return f'<table class="results">\n<thead><tr>{head}</tr></thead>\n<tbody>\n{body}\n</tbody>\n</table>'
+
+
+def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list[SweepPlotData],
+                  result_rows: list[dict[str, object]]) -> str:
+    """The whole page as one string. Each summary row is a mapping of labels to values."""
+    summary = "\n".join(f"<dt>{html.escape(str(label))}</dt><dd>{html.escape(str(value))}</dd>"
+                        for row in summary_rows for label, value in row.items())
+    figures = "\n".join(
+        '<div class="sweep">'
+        + pio.to_html(sweep_figure(s), full_html=False, include_plotlyjs=False,
+                      div_id=f"sweep-{i}", config={"displaylogo": False})
+        + "</div>"
+        for i, s in enumerate(sweeps, start=1))
+    return f"""<!DOCTYPE html>
+<html lang="en">
+<head>
+<meta charset="utf-8">
+<title>{html.escape(heading)}</title>
+<style>{_STYLE}</style>
+<script type="text/javascript">{get_plotlyjs()}</script>
+</head>
+<body>
+<header>
+<h1>{html.escape(heading)}</h1>
+<dl class="summary">
+{summary}
+</dl>
+</header>
+<h2>Sweeps</h2>
+{figures}
+<h2>Results</h2>
+{_results_table(result_rows)}
+</body>
+</html>
+"""
+
+
+def write_report(path: Path, heading: str, summary_rows: list[dict[str, str]],
+                 sweeps: list[SweepPlotData], result_rows: list[dict[str, object]]) -> Path:
+    """Write the report to path atomically (temp file, then os.replace); returns the path."""
+    path = Path(path)
+    if not path.parent.is_dir():
+        raise InputError(f"report path {path}: directory {path.parent} does not exist; "
+                         "give a file in an existing directory")
+    page = render_report(heading, summary_rows, sweeps, result_rows)  # fails before touching disk
+    fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        os.fchmod(fd, 0o644)  # mkstemp makes it private; a report is meant to be shared
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            f.write(page)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp_name, path)
+    except BaseException:
+        Path(tmp_name).unlink(missing_ok=True)
+        raise
+    return path

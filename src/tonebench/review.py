@@ -1,0 +1,156 @@
+"""From stored points to stored results and a report: the glue between store and analysis."""
+
+from __future__ import annotations
+
+import math
+from itertools import groupby
+from pathlib import Path
+
+import numpy as np
+from sqlalchemy import delete, select
+from sqlalchemy.orm import Session, sessionmaker
+
+from tonebench.analysis.fit import fit_sweep
+from tonebench.errors import InputError
+from tonebench.report import SweepPlotData, write_report
+from tonebench.store.models import Point, Result, Run
+from tonebench.store.records import utc_now
+
+POINT_ARRAYS = (
+    "tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
+    "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm", "overload",
+)
+
+
+def find_run(session: Session, ident: str) -> Run:
+    """A run by its GUID or a unique GUID prefix (at least 4 characters)."""
+    ident = ident.strip().lower()
+    if len(ident) < 4:
+        raise InputError(f"run '{ident}': give the run GUID or at least its first 4 characters")
+    runs = session.scalars(select(Run).where(Run.guid.like(ident.replace("%", "").replace("_", "") + "%"))).all()
+    if not runs:
+        raise InputError(f"run '{ident}': no run with that GUID in this database (see `tonebench runs`)")
+    if len(runs) > 1:
+        raise InputError(f"run '{ident}': {len(runs)} runs start with that; give more of the GUID")
+    return runs[0]
+
+
+def _sweeps(session: Session, run_id: int):
+    points = session.scalars(
+        select(Point)
+        .where(Point.run_id == run_id, Point.status == "measured")
+        .order_by(Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
+    ).all()
+    for (center_hz, spacing_hz, bias_v), group in groupby(points, key=lambda p: (p.center_hz, p.spacing_hz, p.bias_v)):
+        rows = list(group)
+        arrays = {name: np.array([getattr(row, name) for row in rows], dtype=float) for name in POINT_ARRAYS}
+        arrays["overload"] = arrays["overload"].astype(bool)
+        yield center_hz, spacing_hz, bias_v, arrays
+
+
+def _group_key(center_hz: float, spacing_hz: float, bias_v: float | None) -> str:
+    bias = "none" if bias_v is None else f"{bias_v:+.4f}"
+    return f"c{center_hz:.0f}/d{spacing_hz:.0f}/b{bias}"
+
+
+def _finite_or_none(value):
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def analyze_run(sessions: sessionmaker, run_guid: str) -> list[Result]:
+    """Fit every sweep of a run and replace its stored results."""
+    with sessions.begin() as session:
+        run = find_run(session, run_guid)
+        session.execute(delete(Result).where(Result.run_id == run.id))
+        results = []
+        for center_hz, spacing_hz, bias_v, arrays in _sweeps(session, run.id):
+            fit = fit_sweep(**arrays)
+            results.append(
+                Result(
+                    run_id=run.id,
+                    group_key=_group_key(center_hz, spacing_hz, bias_v),
+                    center_hz=center_hz,
+                    spacing_hz=spacing_hz,
+                    bias_v=bias_v,
+                    n_points=fit.n_points,
+                    n_valid=fit.n_valid,
+                    gain_db=_finite_or_none(fit.gain_db),
+                    iip3_lower_dbm=_finite_or_none(fit.iip3_lower_dbm),
+                    iip3_upper_dbm=_finite_or_none(fit.iip3_upper_dbm),
+                    iip3_dbm=_finite_or_none(fit.iip3_dbm),
+                    oip3_lower_dbm=_finite_or_none(fit.oip3_lower_dbm),
+                    oip3_upper_dbm=_finite_or_none(fit.oip3_upper_dbm),
+                    oip3_dbm=_finite_or_none(fit.oip3_dbm),
+                    slope_fundamental=_finite_or_none(fit.slope_fundamental),
+                    slope_im3_lower=_finite_or_none(fit.slope_im3_lower),
+                    slope_im3_upper=_finite_or_none(fit.slope_im3_upper),
+                    p1db_in_dbm=_finite_or_none(fit.p1db_in_dbm),
+                    p1db_out_dbm=_finite_or_none(fit.p1db_out_dbm),
+                    valid_tone_min_dbm=_finite_or_none(fit.valid_tone_min_dbm),
+                    valid_tone_max_dbm=_finite_or_none(fit.valid_tone_max_dbm),
+                    reason=fit.reason,
+                    details_json={"valid_mask": [bool(v) for v in fit.valid_mask]},
+                    created_at=utc_now(),
+                )
+            )
+        session.add_all(results)
+    return results
+
+
+def _fmt(value, spec: str = ".2f", unit: str = "") -> str:
+    return "—" if value is None else f"{value:{spec}}{unit}"
+
+
+def result_row(result: Result) -> dict[str, str]:
+    return {
+        "Centre (GHz)": f"{result.center_hz / 1e9:.4f}",
+        "Spacing (MHz)": f"{result.spacing_hz / 1e6:.3f}",
+        "Gain (dB)": _fmt(result.gain_db),
+        "IIP3 lower (dBm)": _fmt(result.iip3_lower_dbm),
+        "IIP3 upper (dBm)": _fmt(result.iip3_upper_dbm),
+        "IIP3 (dBm)": _fmt(result.iip3_dbm),
+        "OIP3 (dBm)": _fmt(result.oip3_dbm),
+        "Slopes fund/lower/upper": "/".join(
+            _fmt(s) for s in (result.slope_fundamental, result.slope_im3_lower, result.slope_im3_upper)
+        ),
+        "P1dB in, per tone (dBm)": _fmt(result.p1db_in_dbm),
+        "Valid points": f"{result.n_valid} of {result.n_points}",
+        "Note": result.reason or "",
+    }
+
+
+def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
+    """Analyse the run (fresh results) and write its self-contained HTML report."""
+    analyze_run(sessions, run_guid)
+    with sessions() as session:
+        run = find_run(session, run_guid)
+        results = {r.group_key: r for r in run.results}
+        sweeps = []
+        for center_hz, spacing_hz, bias_v, arrays in _sweeps(session, run.id):
+            fit = fit_sweep(**arrays)
+            sweeps.append(
+                SweepPlotData(
+                    title=f"{center_hz / 1e9:.4f} GHz, spacing {spacing_hz / 1e6:.3g} MHz",
+                    pin_dbm=(arrays["pin1_dbm"] + arrays["pin2_dbm"]) / 2.0,
+                    pout_dbm=(arrays["pout_f1_dbm"] + arrays["pout_f2_dbm"]) / 2.0,
+                    im3_lower_dbm=arrays["im3_lower_dbm"],
+                    im3_upper_dbm=arrays["im3_upper_dbm"],
+                    noise_dbm=(arrays["noise_lower_dbm"] + arrays["noise_upper_dbm"]) / 2.0,
+                    valid_mask=fit.valid_mask,
+                    result=fit,
+                )
+            )
+        device = run.device
+        summary = [
+            {"label": "Run", "value": run.guid},
+            {"label": "Device", "value": f"{device.part_number} serial {device.serial}" + (f", lot {device.lot}" if device.lot else "")},
+            {"label": "Bench", "value": run.bench.name + (" (simulated)" if run.simulated else "")},
+            {"label": "Started (UTC)", "value": run.started_at.strftime("%Y-%m-%d %H:%M:%S")},
+            {"label": "Status", "value": run.status + (f": {run.end_reason}" if run.end_reason else "")},
+        ]
+        rows = [result_row(results[key]) for key in sorted(results)]
+        return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows)
+

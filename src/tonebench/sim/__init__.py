@@ -1,0 +1,1 @@
+"""Simulated bench: physics-based instruments served as raw-SCPI sockets on loopback."""

@@ -1,0 +1,98 @@
+"""The `[simulation]` table of a bench file: what the simulated bench's parts are like.
+
+Defaults describe a 2.4 GHz low-noise amplifier bench. Values that vary with frequency are given
+at `ref_freq_hz` with a slope in dB per GHz (linear in dB versus frequency).
+"""
+
+from __future__ import annotations
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+# A memoryless cubic compresses 1 dB at 10*log10((4/3) / (4/3 * (1 - 10^(-1/20)))) = 9.64 dB below
+# its IIP3; a saturating stage can only make it compress earlier. Kept a little above that.
+MIN_IIP3_ABOVE_P1DB_DB = 9.7
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class DutScenario(_Strict):
+    """The device under test: a memoryless nonlinearity with gain, IIP3, compression and noise figure."""
+
+    ref_freq_hz: float = Field(2.45e9, gt=0.0, le=1e12)
+    gain_db: float = Field(15.0, ge=-60.0, le=60.0)
+    gain_slope_db_per_ghz: float = Field(-2.0, ge=-20.0, le=20.0)
+    iip3_dbm: float = Field(-2.0, ge=-60.0, le=100.0)
+    iip3_slope_db_per_ghz: float = Field(1.0, ge=-20.0, le=20.0)
+    # Input-referred at ref_freq_hz; elsewhere it keeps its distance below the IIP3.
+    # None: the pure cubic, which compresses 1 dB about 9.6 dB below its IIP3.
+    p1db_dbm: float | None = Field(None, ge=-80.0, le=90.0)
+    nf_db: float = Field(1.2, ge=0.0, le=40.0)
+
+    @model_validator(mode="after")
+    def _p1db_below_iip3(self) -> DutScenario:
+        if self.p1db_dbm is not None and self.iip3_dbm - self.p1db_dbm < MIN_IIP3_ABOVE_P1DB_DB:
+            raise ValueError(
+                f"p1db_dbm must be at least {MIN_IIP3_ABOVE_P1DB_DB} dB below iip3_dbm "
+                f"(a memoryless stage cannot compress later than its pure cubic); leave it out for the pure cubic"
+            )
+        return self
+
+
+class PathScenario(_Strict):
+    """Losses (positive dB) of the two source arms up to the DUT input, and of the DUT output to the analyzer."""
+
+    ref_freq_hz: float = Field(2.45e9, gt=0.0, le=1e12)
+    in1_loss_db: float = Field(6.5, ge=0.0, le=100.0)
+    in1_slope_db_per_ghz: float = Field(0.8, ge=-10.0, le=10.0)
+    in2_loss_db: float = Field(6.9, ge=0.0, le=100.0)
+    in2_slope_db_per_ghz: float = Field(0.9, ge=-10.0, le=10.0)
+    out_loss_db: float = Field(1.5, ge=0.0, le=100.0)
+    out_slope_db_per_ghz: float = Field(0.4, ge=-10.0, le=10.0)
+
+
+class SourcesScenario(_Strict):
+    """The two signal sources and their combiner."""
+
+    # Residual IM3 from limited combiner isolation, as an intercept referred to the DUT input plane.
+    system_ip3_dbm: float = Field(45.0, ge=-20.0, le=300.0)
+    settle_time_s: float = Field(0.005, ge=0.0, le=10.0)
+    min_power_dbm: float = Field(-130.0, ge=-200.0, le=40.0)
+    max_power_dbm: float = Field(20.0, ge=-200.0, le=40.0)
+
+    @model_validator(mode="after")
+    def _power_range(self) -> SourcesScenario:
+        if self.min_power_dbm >= self.max_power_dbm:
+            raise ValueError("min_power_dbm must be below max_power_dbm")
+        return self
+
+
+class AnalyzerScenario(_Strict):
+    """The swept spectrum analyzer."""
+
+    mixer_toi_dbm: float = Field(15.0, ge=-30.0, le=300.0)
+    # Noise density at 0 dB attenuation; rises dB for dB with attenuation.
+    danl_dbm_per_hz: float = Field(-150.0, ge=-200.0, le=-100.0)
+    level_error_db: float = Field(0.0, ge=-20.0, le=20.0)
+    # Amplitude error growing linearly from 0 Hz, on top of level_error_db.
+    flatness_db_per_ghz: float = Field(0.0, ge=-10.0, le=10.0)
+    # Trace/video averages: the noise reading fluctuates as a Gamma(k, 1/k) multiple of its mean.
+    noise_averages: int = Field(16, ge=1, le=100_000)
+    overload_mixer_dbm: float = Field(-10.0, ge=-60.0, le=40.0)
+    damage_dbm: float = Field(30.0, ge=-20.0, le=60.0)
+    sweep_time_factor: float = Field(2.5, gt=0.0, le=100.0)
+    trace_points: int = Field(1001, ge=3, le=100_001)
+
+
+class Scenario(_Strict):
+    """The whole `[simulation]` table."""
+
+    seed: int = Field(1, ge=0)
+    # Phase of the system's coherent contributions (sources' residual IM3, analyzer mixer IM3)
+    # relative to the DUT's own product at the same frequency: 0 adds in phase, 180 cancels.
+    coherent_phase_deg: float = Field(0.0, ge=-360.0, le=360.0)
+    dut: DutScenario = Field(default_factory=DutScenario)
+    paths: PathScenario = Field(default_factory=PathScenario)
+    sources: SourcesScenario = Field(default_factory=SourcesScenario)
+    analyzer: AnalyzerScenario = Field(default_factory=AnalyzerScenario)

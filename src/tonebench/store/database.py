@@ -1,0 +1,235 @@
+"""Open a tonebench database: check its URL, bring its schema to this code's revision.
+
+Alembic is configured in code (there is no alembic.ini); the migration scripts live in the
+project's migrations/ folder, or in tonebench/_data/migrations inside an installed wheel.
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import sqlalchemy as sa
+from alembic import command
+from alembic.config import Config
+from alembic.runtime.migration import MigrationContext
+from alembic.script import ScriptDirectory
+from alembic.util.exc import CommandError
+from sqlalchemy import event
+from sqlalchemy.engine import make_url
+from sqlalchemy.exc import ArgumentError, NoSuchModuleError
+from sqlalchemy.orm import sessionmaker
+
+import tonebench
+from tonebench.errors import DatabaseError, InputError
+
+URL_EXAMPLES = "use e.g. sqlite:///path/to/file.db or postgresql+psycopg://user@host/dbname"
+SQLITE_BUSY_TIMEOUT_MS = 10_000  # a second writer waits this long before "database is locked"
+
+
+def default_db_url() -> str:
+    """tonebench.db in the current directory."""
+    return f"sqlite:///{Path.cwd() / 'tonebench.db'}"
+
+
+DEFAULT_DB_URL = default_db_url()
+
+
+def migrations_dir() -> Path:
+    """Installed copy inside the package if present, else the source tree's migrations/."""
+    package_dir = Path(tonebench.__file__).resolve().parent
+    installed = package_dir / "_data" / "migrations"
+    if installed.is_dir():
+        return installed
+    return package_dir.parent.parent / "migrations"
+
+
+def alembic_config(connection: sa.Connection | None = None) -> Config:
+    """Alembic configuration for tonebench's migrations; env.py uses `connection` when given."""
+    config = Config()
+    # ConfigParser interpolates '%', so a path holding one must be escaped.
+    config.set_main_option("script_location", str(migrations_dir()).replace("%", "%%"))
+    config.set_main_option("path_separator", "os")
+    if connection is not None:
+        config.attributes["connection"] = connection
+    return config
+
+
+def schema_head() -> str:
+    """The newest schema revision this code knows."""
+    head = ScriptDirectory.from_config(alembic_config()).get_current_head()
+    if head is None:
+        raise DatabaseError(f"no migration scripts found in {migrations_dir()}")
+    return head
+
+
+def database_revision(engine: sa.Engine) -> str | None:
+    """Schema revision stamped in the database, None for a database tonebench never touched."""
+    with engine.connect() as connection:
+        heads = MigrationContext.configure(connection).get_current_heads()
+    return heads[0] if heads else None
+
+
+def open_database(url: str, *, upgrade: bool = True) -> sa.Engine:
+    """Engine for `url`, its schema at this code's head.
+
+    Raises InputError for a URL that cannot be used (unparseable, unknown dialect or driver,
+    driver not installed, missing directory, unreachable server) and DatabaseError for a
+    schema newer than this code, or older when upgrade is False.
+    """
+    parsed = _parse_url(url)
+    shown = parsed.render_as_string(hide_password=True)
+    engine = _create_engine(parsed, shown, foreign_keys=True)
+    try:
+        _check_reachable(engine, shown)
+        current = database_revision(engine)
+        head = schema_head()
+        if current == head:
+            return engine
+        if current is not None and not _is_known(current):
+            raise DatabaseError(
+                f"database {shown} is at schema revision {current}, newer than this tonebench "
+                f"(knows up to {head}); upgrade tonebench"
+            )
+        if not upgrade:
+            raise DatabaseError(
+                f"database {shown} is at schema revision {current or 'none'}, older than this "
+                f"tonebench ({head}); run `tonebench db upgrade`"
+            )
+        _upgrade(parsed, shown)
+        return engine
+    except BaseException:
+        engine.dispose()
+        raise
+
+
+def upgrade_database(url: str) -> str:
+    """Bring the database at `url` to the newest schema; returns the revision it is now at."""
+    engine = open_database(url, upgrade=True)
+    try:
+        revision = database_revision(engine)
+    finally:
+        engine.dispose()
+    assert revision is not None
+    return revision
+
+
+def session_factory(engine: sa.Engine) -> sessionmaker:
+    """Sessions whose objects stay readable after commit (the sequencer keeps using them)."""
+    return sessionmaker(bind=engine, expire_on_commit=False)
+
+
+def _bad_url(shown: str, reason: str) -> InputError:
+    reason = " ".join(str(reason).split()) or "unknown error"
+    return InputError(f"bad database URL '{shown}': {reason}; {URL_EXAMPLES}")
+
+
+def _mask_password(text: str) -> str:
+    """Best effort for strings that would not parse: hide what sits between user: and @."""
+    return re.sub(r"(://[^/:@\s]*:)[^@\s]*@", r"\1***@", text)
+
+
+def _parse_url(url: str) -> sa.URL:
+    try:
+        parsed = make_url(url)
+    except (ArgumentError, ValueError, TypeError) as exc:
+        raise _bad_url(_mask_password(str(url)), f"not a URL ({exc})") from None
+    shown = parsed.render_as_string(hide_password=True)
+    try:
+        parsed.get_dialect()
+    except NoSuchModuleError:
+        raise _bad_url(shown, f"unknown database kind or driver '{parsed.drivername}'") from None
+    if parsed.get_backend_name() == "sqlite":
+        _check_sqlite_path(parsed, shown)
+    return parsed
+
+
+def _check_sqlite_path(parsed: sa.URL, shown: str) -> None:
+    # SQLite creates the file on connect but never its folder; check first so a typo leaves
+    # nothing behind.
+    database = parsed.database
+    if not database or database == ":memory:" or database.startswith("file:"):
+        return
+    path = Path(database).expanduser()
+    if path.is_dir():
+        raise _bad_url(shown, f"{path} is a directory, not a database file")
+    if not path.parent.is_dir():
+        raise _bad_url(shown, f"directory {path.parent} does not exist")
+
+
+def _create_engine(parsed: sa.URL, shown: str, *, foreign_keys: bool) -> sa.Engine:
+    try:
+        engine = sa.create_engine(parsed)
+    except ImportError as exc:
+        raise _bad_url(shown, f"driver for '{parsed.drivername}' is not installed ({exc})") from None
+    except (ArgumentError, NoSuchModuleError, TypeError, ValueError) as exc:
+        raise _bad_url(shown, str(exc)) from None
+    if engine.dialect.name == "sqlite":
+        _add_sqlite_pragmas(engine, foreign_keys=foreign_keys)
+    return engine
+
+
+def _add_sqlite_pragmas(engine: sa.Engine, *, foreign_keys: bool) -> None:
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_connection, connection_record):
+        # WAL lets reports read while a run writes; busy_timeout makes a second writer wait
+        # instead of failing at once. Both need to be outside a transaction: on connect is.
+        cursor = dbapi_connection.cursor()
+        cursor.execute("PRAGMA journal_mode=WAL")
+        cursor.execute(f"PRAGMA foreign_keys={'ON' if foreign_keys else 'OFF'}")
+        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
+        cursor.close()
+
+
+def _check_reachable(engine: sa.Engine, shown: str) -> None:
+    try:
+        with engine.connect() as connection:
+            connection.exec_driver_sql("SELECT 1")
+    except sa.exc.DBAPIError as exc:
+        raise _bad_url(shown, str(exc.orig).strip().splitlines()[0] if str(exc.orig).strip()
+                       else type(exc.orig).__name__) from None
+
+
+def _is_known(revision: str) -> bool:
+    script = ScriptDirectory.from_config(alembic_config())
+    try:
+        return script.get_revision(revision) is not None
+    except CommandError:
+        return False
+
+
+def _upgrade(parsed: sa.URL, shown: str) -> None:
+    # Migrations get their own engine: on SQLite foreign keys must be off while batch mode
+    # copies and drops tables (a DROP would otherwise cascade into child rows), and the whole
+    # upgrade runs in one explicit transaction so a crash leaves the old schema, not half of one.
+    engine = _create_engine(parsed, shown, foreign_keys=False)
+    if engine.dialect.name == "sqlite":
+        _use_explicit_sqlite_transactions(engine)
+    try:
+        with engine.begin() as connection:
+            command.upgrade(alembic_config(connection), "head")
+            if connection.dialect.name == "sqlite":
+                broken = connection.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                if broken:
+                    raise DatabaseError(
+                        f"upgrading {shown} left {len(broken)} rows with broken foreign keys "
+                        f"(first: {tuple(broken[0])}); the upgrade was rolled back"
+                    )
+    except (CommandError, sa.exc.SQLAlchemyError) as exc:
+        message = " ".join(str(exc).split())
+        raise DatabaseError(f"cannot upgrade database {shown}: {message}") from None
+    finally:
+        engine.dispose()
+
+
+def _use_explicit_sqlite_transactions(engine: sa.Engine) -> None:
+    # Python's sqlite3 module does not put DDL in a transaction by itself; take over BEGIN
+    # (recipe from the SQLAlchemy SQLite dialect docs, "Serializable isolation / Savepoints /
+    # Transactional DDL").
+    @event.listens_for(engine, "connect")
+    def _no_implicit_begin(dbapi_connection, connection_record):
+        dbapi_connection.isolation_level = None
+
+    @event.listens_for(engine, "begin")
+    def _explicit_begin(connection):
+        connection.exec_driver_sql("BEGIN")

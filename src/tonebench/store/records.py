@@ -1,0 +1,98 @@
+"""Write one run's lifecycle to the store: its identity, its points as measured, its end."""
+
+from __future__ import annotations
+
+import platform
+import uuid
+from datetime import datetime, timezone
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session, sessionmaker
+
+from tonebench import __version__
+from tonebench.store.models import Bench, Device, Event, Instrument, Offset, Plan, Point, Run
+
+
+def utc_now() -> datetime:
+    return datetime.now(timezone.utc)
+
+
+def _get_or_create(session: Session, model, lookup: dict, **defaults):
+    row = session.scalars(select(model).filter_by(**lookup)).first()
+    if row is None:
+        row = model(**lookup, **defaults)
+        session.add(row)
+        session.flush()
+    return row
+
+
+class RunRecorder:
+    """Each write is its own committed transaction, so a crash loses nothing already measured."""
+
+    def __init__(self, sessions: sessionmaker, run_id: int, guid: str):
+        self.sessions = sessions
+        self.run_id = run_id
+        self.guid = guid
+
+    @classmethod
+    def start(
+        cls,
+        sessions: sessionmaker,
+        *,
+        bench_name: str,
+        bench_description: str,
+        device: dict,
+        plan_name: str,
+        plan_text: str,
+        plan_sha256: str,
+        simulated: bool,
+        instruments: list[dict],
+        offsets: list[dict],
+        metadata: dict,
+    ) -> "RunRecorder":
+        guid = str(uuid.uuid4())
+        with sessions.begin() as session:
+            bench = _get_or_create(session, Bench, {"name": bench_name}, description=bench_description, created_at=utc_now())
+            device_row = _get_or_create(
+                session,
+                Device,
+                {"part_number": device["part_number"], "serial": device["serial"]},
+                **{k: v for k, v in device.items() if k not in ("part_number", "serial")},
+            )
+            plan = _get_or_create(session, Plan, {"sha256": plan_sha256}, name=plan_name, text=plan_text, created_at=utc_now())
+            run = Run(
+                guid=guid,
+                bench_id=bench.id,
+                device_id=device_row.id,
+                plan_id=plan.id,
+                status="running",
+                started_at=utc_now(),
+                simulated=simulated,
+                host=platform.node(),
+                software_version=__version__,
+                metadata_json=metadata,
+            )
+            session.add(run)
+            session.flush()
+            session.add_all(Instrument(run_id=run.id, **info) for info in instruments)
+            session.add_all(Offset(run_id=run.id, **row) for row in offsets)
+            session.add(Event(run_id=run.id, at=utc_now(), level="info", kind="run-start", message=f"run {guid} started"))
+            run_id = run.id
+        return cls(sessions, run_id, guid)
+
+    def add_point(self, row: dict) -> None:
+        with self.sessions.begin() as session:
+            session.add(Point(run_id=self.run_id, measured_at=utc_now(), **row))
+
+    def event(self, level: str, kind: str, message: str, details: dict | None = None) -> None:
+        with self.sessions.begin() as session:
+            session.add(Event(run_id=self.run_id, at=utc_now(), level=level, kind=kind, message=message, details_json=details))
+
+    def finish(self, status: str, end_reason: str) -> None:
+        with self.sessions.begin() as session:
+            run = session.get(Run, self.run_id)
+            run.status = status
+            run.end_reason = end_reason
+            run.ended_at = utc_now()
+            session.add(Event(run_id=self.run_id, at=utc_now(), level="info" if status == "complete" else "error",
+                              kind="run-end", message=f"run {status}: {end_reason}"))
