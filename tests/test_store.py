@@ -252,12 +252,13 @@ def test_committed_point_survives_a_crash(db_url):
                           bench_clock_s=0.5, center_hz=1e9, spacing_hz=1e6, f1_hz=0.9995e9,
                           f2_hz=1.0005e9, tone_dbm=-29.0))
         session.flush()  # written but never committed: must not survive
-        os._exit(1)
+        os._exit(17)
     """)
-    env = dict(os.environ, PYTHONPATH=str(SRC_DIR))
+    pythonpath = os.pathsep.join(filter(None, [str(SRC_DIR), os.environ.get("PYTHONPATH")]))
+    env = dict(os.environ, PYTHONPATH=pythonpath)
     finished = subprocess.run([sys.executable, "-c", script], env=env, capture_output=True,
                               text=True, timeout=120)
-    assert finished.returncode == 1, finished.stderr
+    assert finished.returncode == 17, finished.stderr  # 17: died where we meant it to
     engine = open_database(db_url)
     session = session_factory(engine)()
     points = session.scalars(sa.select(Point)).all()
