@@ -118,7 +118,7 @@ def test_noise_correction_boundaries():
     # Exactly 3 dB over: only an upper bound, left as read (design.md sec 3).
     assert corrected[0] == -97.0 and upper[0]
     # Just above 3 dB: corrected by about -3 dB (10log10(1 - 10^-0.3) = -3.02 dB).
-    assert corrected[1] == pytest.approx(-96.999 + 10 * np.log10(1 - 10 ** -0.2999), abs=1e-9)
+    assert corrected[1] == pytest.approx(-96.999 + 10 * np.log10(1 - 10 ** -0.3001), abs=1e-9)
     assert not upper[1]
     # Just below 20 dB corrected (by -0.043 dB), at and above 20 dB left alone.
     assert corrected[2] == pytest.approx(-80.001 + 10 * np.log10(1 - 10 ** -1.9999), abs=1e-9)

@@ -147,7 +147,7 @@ def test_source_garbled_reply_names_operation(open_sim):
 def test_wait_complete_timeout_restores_visa_timeout(open_sim):
     inst = open_sim("generic-source", 5027, "source1")
     before_ms = inst.resource.timeout
-    with pytest.raises(InstrumentError, match="source1: no reply to wait_complete .* within 0.05 s"):
+    with pytest.raises(InstrumentError, match="source1: no reply to wait_complete .* 0.05 s"):
         inst.wait_complete(0.05)
     assert inst.resource.timeout == before_ms == 5000
 
@@ -214,7 +214,8 @@ def test_analyzer_overload_bit(open_sim, dialect_name):
 @pytest.mark.parametrize("dialect_name", [a[0] for a in ANALYZERS])
 def test_analyzer_garbled_marker(open_sim, dialect_name):
     analyzer = SpectrumAnalyzer(open_sim(dialect_name, 5027, "analyzer1"))
-    with pytest.raises(InstrumentError, match="analyzer1: read_marker_power .* replied .*expected a number"):
+    expected = "analyzer1: read_marker_power .* replied .*expected a number"
+    with pytest.raises(InstrumentError, match=expected):
         analyzer.read_markers(CENTER_HZ, [1.000e9])
 
 
@@ -248,7 +249,8 @@ def test_predicted_sweep_time():
 
 def test_malformed_resource_string():
     dialect = load_dialect("generic-source")
-    with pytest.raises(InputError, match="'localhost:5025' is not a VISA resource.*TCPIP0::host::port::SOCKET"):
+    expected = "'localhost:5025' is not a VISA resource.*TCPIP0::host::port::SOCKET"
+    with pytest.raises(InputError, match=expected):
         open_resource("localhost:5025", dialect)
 
 
@@ -261,11 +263,3 @@ def test_nothing_listening_is_cannot_reach():
     with pytest.raises(InputError, match=f"cannot reach {resource} \\(source\\): "):
         open_resource(resource, load_dialect("generic-source"))
 
-
-def test_undeclared_sim_resource_is_cannot_reach(tmp_path):
-    yaml_path = tmp_path / "generic-source.yaml"
-    shutil.copy(DIALOGUES / "generic-source.yaml", yaml_path)
-    rm = pyvisa.ResourceManager(f"{yaml_path}@sim")
-    with pytest.raises(InputError, match="cannot reach TCPIP0::localhost::6000::SOCKET"):
-        open_resource("TCPIP0::localhost::6000::SOCKET", load_dialect("generic-source"), rm)
-    rm.close()

@@ -151,8 +151,8 @@ def fit_sweep(
             "overloaded": over,
         }
         parts = [f"{int(m.sum())} {label}" for label, m in causes.items() if m.any()]
-        reason = (f"only {n_valid} of {n_points} points meet the valid-region rules "
-                  f"(need {MIN_VALID_POINTS})")
+        reason = (f"only {n_valid} of {n_points} points {'meets' if n_valid == 1 else 'meet'} "
+                  f"the valid-region rules (need {MIN_VALID_POINTS})")
         if parts:
             reason += ": " + ", ".join(parts)
         if gss is None and n_points:

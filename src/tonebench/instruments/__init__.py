@@ -1,4 +1,4 @@
-"""Instrument layer: role drivers (source, analyzer) over SCPI dialect files, opened through pyvisa."""
+"""Instrument layer: role drivers (source, analyzer) over SCPI dialect files, through pyvisa."""
 
 from tonebench.instruments.analyzer import AnalyzerSetup, MarkerReading, SpectrumAnalyzer
 from tonebench.instruments.dialect import Dialect, drivers_dirs, load_dialect

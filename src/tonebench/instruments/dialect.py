@@ -109,7 +109,7 @@ class Operation(BaseModel):
 
     @property
     def template(self) -> str:
-        return self.command if self.command is not None else self.query  # type: ignore[return-value]
+        return self.command if self.command is not None else str(self.query)
 
     @property
     def is_query(self) -> bool:

@@ -72,7 +72,7 @@ def parse_reply(kind: str, text: str):
 
 
 class ScpiInstrument:
-    """One open VISA resource driven through a dialect; `label` (e.g. "source1") names it in errors."""
+    """An open VISA resource driven through a dialect; `label` ("source1") names it in errors."""
 
     def __init__(self, resource, dialect: Dialect, label: str):
         self.resource = resource
@@ -91,6 +91,7 @@ class ScpiInstrument:
                 f"{self.label}: dialect {self.dialect.name} has no operation '{operation}'"
             )
         message = op.template.format(**fields)
+        where = f"{self.label}: {operation} ({message!r})"
         try:
             if not op.is_query:
                 self.resource.write(message)
@@ -102,15 +103,14 @@ class ScpiInstrument:
                 raise InstrumentError(
                     f"{self.label}: no reply to {operation} ({message!r}) within {timeout_s:g} s"
                 ) from None
-            raise InstrumentError(f"{self.label}: {operation} ({message!r}) failed: {exc}") from None
+            raise InstrumentError(f"{where} failed: {exc}") from None
         except OSError as exc:  # connection dropped or refused (pyvisa-py sockets)
-            raise InstrumentError(f"{self.label}: {operation} ({message!r}) failed: {exc}") from None
+            raise InstrumentError(f"{where} failed: {exc}") from None
         try:
             return parse_reply(op.reply, reply)
         except ValueError:
             raise InstrumentError(
-                f"{self.label}: {operation} ({message!r}) replied {reply!r}; "
-                f"expected {_EXPECTED[op.reply]}"
+                f"{where} replied {reply!r}; expected {_EXPECTED[op.reply]}"
             ) from None
 
     def check_errors(self) -> None:

@@ -1,0 +1,3 @@
+from tonebench.cli import app
+
+app(prog_name="tonebench")

@@ -1,0 +1,290 @@
+"""State and virtual clock of the simulated bench, and the signal chain through its parts.
+
+Two sources -> their input paths -> DUT -> output path -> analyzer. The clock only moves forward
+by analyzer sweeps and by waiting for a source to settle (its *OPC?), never by sleeping. A
+source's new setting is in force from its settle deadline on (design section 5): a sweep that
+starts earlier still sees the old one.
+"""
+
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from tonebench.sim import physics
+from tonebench.sim.scenario import Scenario
+from tonebench.units import dbm_to_vpeak, vpeak_to_dbm, watt_to_dbm
+
+PATHS = ("in1", "in2", "out")
+
+
+@dataclass(frozen=True)
+class SourceSetting:
+    """One source's output: frequency (Hz), power (dBm at its connector), RF on or off."""
+
+    freq_hz: float = 1e9
+    power_dbm: float = -30.0
+    rf_on: bool = False
+
+
+@dataclass
+class SourceChannel:
+    """What a source was told (`commanded`) and what is in force at the DUT (`effective`)."""
+
+    commanded: SourceSetting
+    effective: SourceSetting
+    # (deadline_s, setting): each change comes into force at its deadline.
+    pending: list[tuple[float, SourceSetting]] = field(default_factory=list)
+
+
+@dataclass
+class AnalyzerState:
+    """Analyzer settings (power-on defaults) and the last trace."""
+
+    center_hz: float = 3.75e9
+    span_hz: float = 7.5e9
+    rbw_hz: float = 1e6
+    vbw_hz: float = 1e6
+    atten_db: float = 10.0
+    ref_level_dbm: float = 0.0
+    continuous: bool = True
+    marker_freq_hz: float = 3.75e9
+    trace_freq_hz: np.ndarray | None = None
+    trace_dbm: np.ndarray | None = None
+    overloaded: bool = False  # during the last sweep
+    damaged: bool = False  # survives *RST: it is the hardware
+
+
+class BenchTruth:
+    """True values of the simulated parts, for tests (never reachable through SCPI)."""
+
+    def __init__(self, scenario: Scenario):
+        self._scenario = scenario
+
+    def true_gain_db(self, freq_hz):
+        dut = self._scenario.dut
+        return _float_or_array(physics.linear_in_db(dut.gain_db, dut.gain_slope_db_per_ghz, dut.ref_freq_hz, freq_hz))
+
+    def true_iip3_dbm(self, freq_hz):
+        dut = self._scenario.dut
+        return _float_or_array(physics.linear_in_db(dut.iip3_dbm, dut.iip3_slope_db_per_ghz, dut.ref_freq_hz, freq_hz))
+
+    def true_oip3_dbm(self, freq_hz):
+        return _float_or_array(np.asarray(self.true_iip3_dbm(freq_hz)) + np.asarray(self.true_gain_db(freq_hz)))
+
+    def true_p1db_dbm(self, freq_hz: float) -> float:
+        """Input-referred single-tone 1 dB compression point, found numerically from the model."""
+        return physics.p1db_input_dbm(self.dut_model(freq_hz))
+
+    def true_loss_db(self, path: str, freq_hz):
+        """Loss (positive dB) of path "in1", "in2" or "out"; a passive path never turns into gain."""
+        if path not in PATHS:
+            raise ValueError(f"true_loss_db: path {path!r} is not one of {', '.join(PATHS)}")
+        paths = self._scenario.paths
+        loss_db = getattr(paths, f"{path}_loss_db")
+        slope_db_per_ghz = getattr(paths, f"{path}_slope_db_per_ghz")
+        return _float_or_array(np.maximum(0.0, physics.linear_in_db(loss_db, slope_db_per_ghz, paths.ref_freq_hz, freq_hz)))
+
+    def dut_model(self, freq_hz: float) -> physics.Nonlinearity:
+        """The DUT nonlinearity at freq_hz (a two-tone point uses its centre frequency)."""
+        dut = self._scenario.dut
+        backoff_db = None if dut.p1db_dbm is None else dut.iip3_dbm - dut.p1db_dbm
+        return physics.dut_nonlinearity(self.true_gain_db(freq_hz), self.true_iip3_dbm(freq_hz), backoff_db)
+
+
+def _float_or_array(value):
+    value = np.asarray(value, dtype=float)
+    return float(value) if value.ndim == 0 else value
+
+
+@dataclass(frozen=True)
+class AnalyzerInput:
+    """Spectral lines at the analyzer input: one per bin of the DUT simulation (zero where none)."""
+
+    freq_hz: np.ndarray
+    amp_v: np.ndarray  # complex peak phasors, V
+
+
+def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[SourceSetting, SourceSetting],
+                   atten_db: float) -> AnalyzerInput:
+    """Lines reaching the analyzer for these source settings, its mixer's own IM3 referred to its input included."""
+    tones = []  # (freq_hz, amplitude at the DUT input, V)
+    for path, setting in zip(("in1", "in2"), settings):
+        if setting.rf_on:
+            dut_in_dbm = setting.power_dbm - truth.true_loss_db(path, setting.freq_hz)
+            tones.append((setting.freq_hz, float(dbm_to_vpeak(dut_in_dbm))))
+    bins = physics.SIM_POINTS // 2 + 1
+    if not tones:
+        return AnalyzerInput(np.zeros(bins), np.zeros(bins, dtype=complex))
+    tones.sort()
+    two_tone = len(tones) == 2 and tones[1][0] > tones[0][0]
+    if len(tones) == 2 and not two_tone:
+        tones = [(tones[0][0], tones[0][1] + tones[1][1])]  # same frequency: one tone
+    f_low_hz, low_v = tones[0]
+    f_high_hz, high_v = tones[-1] if two_tone else (f_low_hz, 0.0)
+    phase_deg = scenario.coherent_phase_deg
+    residual_low_v = residual_high_v = 0j
+    if two_tone:
+        low_dbm, high_dbm = physics.source_residual_im3_dbm(
+            float(vpeak_to_dbm(low_v)), float(vpeak_to_dbm(high_v)), scenario.sources.system_ip3_dbm)
+        residual_low_v = physics.im3_phasor_v(low_dbm, low_v, high_v, True, phase_deg)
+        residual_high_v = physics.im3_phasor_v(high_dbm, low_v, high_v, False, phase_deg)
+    model = truth.dut_model(0.5 * (f_low_hz + f_high_hz))
+    amp_v = physics.dut_output_spectrum_v(model, low_v, high_v, residual_low_v, residual_high_v)
+    freq_hz = physics.bin_frequencies_hz(f_low_hz, f_high_hz - f_low_hz)
+    keep = freq_hz > 0.0  # products folding through 0 Hz (spacing above f1) are not modelled
+    if not two_tone:
+        keep &= np.arange(bins) % physics.TONE_BIN == 0  # harmonics only
+    amp_v = np.where(keep, amp_v, 0j)
+    amp_v = amp_v * 10.0 ** (-truth.true_loss_db("out", np.where(keep, freq_hz, f_low_hz)) / 20.0)
+    if two_tone:
+        lo, hi = physics.product_bin(1, 0), physics.product_bin(0, 1)
+        analyzer = scenario.analyzer
+        mixer_low_dbm, mixer_high_dbm = physics.mixer_im3_dbm(
+            float(vpeak_to_dbm(amp_v[lo])), float(vpeak_to_dbm(amp_v[hi])), atten_db, analyzer.mixer_toi_dbm)
+        amp_v[physics.product_bin(2, -1)] += physics.im3_phasor_v(mixer_low_dbm, amp_v[lo], amp_v[hi], True, phase_deg)
+        amp_v[physics.product_bin(-1, 2)] += physics.im3_phasor_v(mixer_high_dbm, amp_v[lo], amp_v[hi], False, phase_deg)
+    return AnalyzerInput(freq_hz, amp_v)
+
+
+def _total_dbm(amp_v: np.ndarray) -> float:
+    total_w = float(np.sum(physics.vpeak_to_watt(amp_v)))
+    return float(watt_to_dbm(total_w)) if total_w > 0.0 else -np.inf
+
+
+class SimBench:
+    """The whole simulated bench: two sources, paths, DUT, analyzer, one lock and one virtual clock.
+
+    Sources are numbered 1 and 2. Every method expects the caller to hold `lock` when other
+    threads (the instrument servers) may be running.
+    """
+
+    def __init__(self, scenario: Scenario):
+        self.scenario = scenario
+        self.lock = threading.RLock()
+        self.clock_s = 0.0
+        self.truth = BenchTruth(scenario)
+        self.analyzer = AnalyzerState()
+        self._sources = {index: self._source_at_power_on() for index in (1, 2)}
+        self.command_log: list[tuple[float, str, str]] = []  # (clock_s, instrument, line)
+        self.damage_log: list[tuple[float, float]] = []  # (clock_s, analyzer input dBm)
+        self._rng = np.random.default_rng(scenario.seed)
+
+    # --- sources --------------------------------------------------------------------------------
+
+    def _source_at_power_on(self) -> SourceChannel:
+        setting = SourceSetting(power_dbm=max(-30.0, self.scenario.sources.min_power_dbm))
+        return SourceChannel(commanded=setting, effective=setting)
+
+    def source(self, index: int) -> SourceChannel:
+        self._catch_up()
+        return self._sources[index]
+
+    def set_source(self, index: int, *, freq_hz: float | None = None, power_dbm: float | None = None,
+                   rf_on: bool | None = None) -> None:
+        """Command a change; it comes into force settle_time_s later on the virtual clock."""
+        channel = self._sources[index]
+        changes = {name: value for name, value in
+                   (("freq_hz", freq_hz), ("power_dbm", power_dbm), ("rf_on", rf_on)) if value is not None}
+        channel.commanded = replace(channel.commanded, **changes)
+        channel.pending.append((self.clock_s + self.scenario.sources.settle_time_s, channel.commanded))
+
+    def reset_source(self, index: int) -> None:
+        """*RST: power-on setting, RF off (settling like any other change)."""
+        default = self._source_at_power_on().commanded
+        self.set_source(index, freq_hz=default.freq_hz, power_dbm=default.power_dbm, rf_on=default.rf_on)
+
+    def settle_source(self, index: int) -> None:
+        """*OPC? on a source: wait on the virtual clock until its last change is in force."""
+        channel = self._sources[index]
+        if channel.pending:
+            self.clock_s = max(self.clock_s, channel.pending[-1][0])
+        self._catch_up()
+
+    def _catch_up(self) -> None:
+        """Bring into force every change whose deadline the clock has passed."""
+        changed = False
+        for channel in self._sources.values():
+            while channel.pending and channel.pending[0][0] <= self.clock_s:
+                channel.effective = channel.pending.pop(0)[1]
+                changed = True
+        if changed:
+            self._check_damage()
+
+    def _effective_settings(self) -> tuple[SourceSetting, SourceSetting]:
+        self._catch_up()
+        return self._sources[1].effective, self._sources[2].effective
+
+    # --- analyzer -------------------------------------------------------------------------------
+
+    def reset_analyzer(self) -> None:
+        """*RST: power-on settings, no trace; damage stays."""
+        self.analyzer = AnalyzerState(damaged=self.analyzer.damaged)
+
+    def _input(self) -> AnalyzerInput:
+        return analyzer_input(self.scenario, self.truth, self._effective_settings(), self.analyzer.atten_db)
+
+    def input_power_dbm(self) -> float:
+        """Total power now at the analyzer input connector (dBm)."""
+        return _total_dbm(self._input().amp_v)
+
+    def mixer_power_dbm(self) -> float:
+        """Total power now at the analyzer's first mixer (dBm)."""
+        return self.input_power_dbm() - self.analyzer.atten_db
+
+    def overloaded(self) -> bool:
+        """Live overload condition: mixer level above the scenario's limit."""
+        return self.mixer_power_dbm() > self.scenario.analyzer.overload_mixer_dbm
+
+    def _check_damage(self) -> None:
+        input_dbm = _total_dbm(analyzer_input(self.scenario, self.truth, (self._sources[1].effective,
+                                                                          self._sources[2].effective),
+                                              self.analyzer.atten_db).amp_v)
+        if input_dbm > self.scenario.analyzer.damage_dbm:
+            self.analyzer.damaged = True
+            self.damage_log.append((self.clock_s, input_dbm))
+
+    def sweep_time_s(self) -> float:
+        return physics.sweep_time_s(self.analyzer.span_hz, self.analyzer.rbw_hz, self.scenario.analyzer.sweep_time_factor)
+
+    def trace_freq_hz(self) -> np.ndarray:
+        state = self.analyzer
+        return np.linspace(state.center_hz - state.span_hz / 2, state.center_hz + state.span_hz / 2,
+                           self.scenario.analyzer.trace_points)
+
+    def sweep(self) -> np.ndarray:
+        """One sweep with the settings in force when it starts; returns the trace (dBm) and advances the clock."""
+        state, settings = self.analyzer, self.scenario.analyzer
+        lines = self._input()
+        freq_hz = self.trace_freq_hz()
+        dut = self.scenario.dut
+        arriving_dbm_per_hz = (physics.dut_output_noise_dbm_per_hz(dut.nf_db, self.truth.true_gain_db(freq_hz))
+                               - self.truth.true_loss_db("out", freq_hz))
+        noise_dbm_per_hz = physics.analyzer_noise_dbm_per_hz(settings.danl_dbm_per_hz, state.atten_db,
+                                                             arriving_dbm_per_hz)
+        power_w = physics.trace_power_w(freq_hz, lines.freq_hz, physics.vpeak_to_watt(lines.amp_v), state.rbw_hz,
+                                        noise_dbm_per_hz, settings.noise_averages, self._rng)
+        compression_db = physics.overload_compression_db(_total_dbm(lines.amp_v) - state.atten_db,
+                                                         settings.overload_mixer_dbm)
+        state.trace_freq_hz = freq_hz
+        state.trace_dbm = (watt_to_dbm(power_w) - compression_db
+                           + physics.amplitude_error_db(freq_hz, settings.level_error_db, settings.flatness_db_per_ghz))
+        state.overloaded = compression_db > 0.0
+        self.clock_s += self.sweep_time_s()
+        return state.trace_dbm
+
+    def marker_power_dbm(self) -> float:
+        """Trace value (dBm) at the trace point nearest the marker; a continuous analyzer sweeps first."""
+        state = self.analyzer
+        if state.continuous:
+            self.sweep()
+        if state.trace_dbm is None:
+            raise LookupError("no trace yet: start a sweep")
+        return float(state.trace_dbm[np.argmin(np.abs(state.trace_freq_hz - state.marker_freq_hz))])
+
+    # --- bookkeeping ----------------------------------------------------------------------------
+
+    def log(self, instrument: str, line: str) -> None:
+        self.command_log.append((self.clock_s, instrument, line))

@@ -1,0 +1,146 @@
+"""SCPI front panels of the simulated source and analyzer, over one shared SimBench.
+
+The command trees accept what drivers/generic-source.toml, generic-analyzer.toml and
+verbose-analyzer.toml send (short and long forms, optional nodes, unit suffixes), and the query
+of every setting.
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+from tonebench.sim.bench import SimBench
+from tonebench.sim.scpi import DATA_OUT_OF_RANGE, EXECUTION_ERROR, ScpiDevice, ScpiError, parse_bool, parse_number
+
+SOURCE_MIN_FREQ_HZ = 9e3
+SOURCE_MAX_FREQ_HZ = 6e9
+ANALYZER_MIN_FREQ_HZ = 9e3
+ANALYZER_MAX_FREQ_HZ = 7.5e9
+ANALYZER_MIN_BW_HZ = 1.0
+ANALYZER_MAX_BW_HZ = 10e6
+ANALYZER_MAX_ATTEN_DB = 70.0
+ANALYZER_ATTEN_STEP_DB = 2.0
+ANALYZER_MIN_REF_DBM = -150.0
+ANALYZER_MAX_REF_DBM = 30.0
+OVERLOAD_BIT = 3  # of STATus:QUEStionable:CONDition
+
+
+def _in_range(value: float, low: float, high: float, what: str) -> float:
+    if not low <= value <= high:
+        raise ScpiError(DATA_OUT_OF_RANGE, f"Data out of range;{what} {value:g} outside {low:g} to {high:g}")
+    return value
+
+
+def _number(params: list[str], unit: str, low: float, high: float, what: str) -> float:
+    return _in_range(parse_number(params[0], unit), low, high, what)
+
+
+def _fmt(value: float) -> str:
+    return repr(float(value))
+
+
+class _BenchDevice(ScpiDevice):
+    """An instrument of the bench: logs every received line with the virtual time."""
+
+    def __init__(self, bench: SimBench, name: str, idn: str):
+        super().__init__(idn)
+        self.bench = bench
+        self.name = name
+
+    def handle_line(self, line: str) -> str | None:
+        with self.bench.lock:
+            self.bench.log(self.name, line)
+            return super().handle_line(line)
+
+    def _setting(self, patterns: tuple[str, ...], setter: Callable[[list[str]], None],
+                 getter: Callable[[], str]) -> None:
+        for pattern in patterns:
+            self.command(pattern, setter, nparams=1)
+            self.query(pattern, lambda params: getter(), nparams=0)
+
+
+class SimSource(_BenchDevice):
+    """Signal source number `index` (1 or 2) of the bench."""
+
+    def __init__(self, bench: SimBench, index: int):
+        if index not in (1, 2):
+            raise ValueError(f"SimSource index {index}: must be 1 or 2")
+        super().__init__(bench, f"source{index}", f"tonebench,simulated two-tone source,SIM-SRC-000{index},0.1")
+        self.index = index
+        limits = bench.scenario.sources
+        self._setting(
+            ("[SOURce]:FREQuency[:CW]", "[SOURce]:FREQuency:FIXed"),
+            lambda p: bench.set_source(index, freq_hz=_number(p, "HZ", SOURCE_MIN_FREQ_HZ, SOURCE_MAX_FREQ_HZ, "frequency")),
+            lambda: _fmt(self._commanded().freq_hz),
+        )
+        self._setting(
+            ("[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]",),
+            lambda p: bench.set_source(index, power_dbm=_number(p, "DBM", limits.min_power_dbm, limits.max_power_dbm, "power")),
+            lambda: _fmt(self._commanded().power_dbm),
+        )
+        self._setting(
+            ("OUTPut[:STATe]",),
+            lambda p: bench.set_source(index, rf_on=parse_bool(p[0])),
+            lambda: "1" if self._commanded().rf_on else "0",
+        )
+
+    def _commanded(self):
+        return self.bench.source(self.index).commanded
+
+    def reset(self) -> None:
+        self.bench.reset_source(self.index)
+
+    def operation_complete(self) -> None:
+        self.bench.settle_source(self.index)
+
+
+class SimAnalyzer(_BenchDevice):
+    """Swept spectrum analyzer of the bench."""
+
+    def __init__(self, bench: SimBench):
+        super().__init__(bench, "analyzer", "tonebench,simulated spectrum analyzer,SIM-SA-0001,0.1")
+        state = lambda: bench.analyzer  # noqa: E731 - *RST replaces the state object
+        freq = (ANALYZER_MIN_FREQ_HZ, ANALYZER_MAX_FREQ_HZ)
+        bw = (ANALYZER_MIN_BW_HZ, ANALYZER_MAX_BW_HZ)
+        self._setting(("[SENSe]:FREQuency:CENTer",),
+                      lambda p: setattr(state(), "center_hz", _number(p, "HZ", *freq, "center")),
+                      lambda: _fmt(state().center_hz))
+        self._setting(("[SENSe]:FREQuency:SPAN",),
+                      lambda p: setattr(state(), "span_hz", _number(p, "HZ", 0.0, ANALYZER_MAX_FREQ_HZ, "span")),
+                      lambda: _fmt(state().span_hz))
+        self._setting(("[SENSe]:BANDwidth[:RESolution]",),
+                      lambda p: setattr(state(), "rbw_hz", _number(p, "HZ", *bw, "RBW")),
+                      lambda: _fmt(state().rbw_hz))
+        self._setting(("[SENSe]:BANDwidth:VIDeo",),
+                      lambda p: setattr(state(), "vbw_hz", _number(p, "HZ", *bw, "VBW")),
+                      lambda: _fmt(state().vbw_hz))
+        self._setting(("INPut:ATTenuation",), self._set_atten, lambda: _fmt(state().atten_db))
+        self._setting(("DISPlay:WINDow#:TRACe:Y[:SCALe]:RLEVel",),
+                      lambda p: setattr(state(), "ref_level_dbm",
+                                        _number(p, "DBM", ANALYZER_MIN_REF_DBM, ANALYZER_MAX_REF_DBM, "reference level")),
+                      lambda: _fmt(state().ref_level_dbm))
+        self._setting(("INITiate:CONTinuous",),
+                      lambda p: setattr(state(), "continuous", parse_bool(p[0])),
+                      lambda: "1" if state().continuous else "0")
+        self._setting(("CALCulate#:MARKer#:X",),
+                      lambda p: setattr(state(), "marker_freq_hz", _number(p, "HZ", *freq, "marker")),
+                      lambda: _fmt(state().marker_freq_hz))
+        self.command("INITiate[:IMMediate]", lambda p: bench.sweep(), nparams=0)
+        self.query("[SENSe]:SWEep:TIME", lambda p: _fmt(bench.sweep_time_s()), nparams=0)
+        self.query("CALCulate#:MARKer#:Y", lambda p: self._marker_power(), nparams=0)
+        self.query("STATus:QUEStionable:CONDition",
+                   lambda p: str((1 << OVERLOAD_BIT) if bench.overloaded() else 0), nparams=0)
+
+    def _set_atten(self, params: list[str]) -> None:
+        atten_db = _number(params, "DB", 0.0, ANALYZER_MAX_ATTEN_DB, "attenuation")
+        # Like a step attenuator: the nearest step is set (and read back).
+        self.bench.analyzer.atten_db = ANALYZER_ATTEN_STEP_DB * round(atten_db / ANALYZER_ATTEN_STEP_DB)
+
+    def _marker_power(self) -> str:
+        try:
+            return _fmt(self.bench.marker_power_dbm())
+        except LookupError:
+            raise ScpiError(EXECUTION_ERROR, "Execution error;no trace yet, start a sweep") from None
+
+    def reset(self) -> None:
+        self.bench.reset_analyzer()
