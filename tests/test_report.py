@@ -32,7 +32,8 @@ def report(tmp_path):
     sweeps, rows = zip(*[_sweep(2.45e9, 1e6, 4.0), _sweep(5.8e9, 100e3, 7.5),
                          _sweep(0.9e9, 10e6, 2.0, n_points=4)])
     path = write_report(tmp_path / "run.html", "Run <7> & friends",
-                        [{"run": "0b6f2a1c-0000-4000-8000-000000000001", "device": "LNA-7 <a>"}],
+                        [{"label": "Run", "value": "0b6f2a1c-0000-4000-8000-000000000001"},
+                         {"label": "Device", "value": "LNA-7 <a>"}],
                         list(sweeps), list(rows))
     return path, path.read_text(encoding="utf-8"), rows, [s.result for s in sweeps]
 
@@ -75,7 +76,7 @@ def test_report_has_one_plot_per_sweep_and_table_values(report):
 def test_report_escapes_text(report):
     _, page, _, _ = report
     assert "Run &lt;7&gt; &amp; friends" in page and "Run <7>" not in page
-    assert "LNA-7 &lt;a&gt;" in page
+    assert "<dt>Device</dt><dd>LNA-7 &lt;a&gt;</dd>" in page
 
 
 def test_failed_write_keeps_old_report(tmp_path):

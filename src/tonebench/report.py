@@ -135,8 +135,11 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
         x1 = max([float(np.nanmax(pin))] + [iip3 for _, _, iip3, _ in intercepts])
         fig.add_trace(_line(f"slope 1, gain {r.gain_db:.2f} dB", _COLORS["fundamental"],
                             x0, x1, 1.0, 0.0, r.gain_db))
+        # Slope-3 lines start at the fitted region, not at products buried in the noise.
+        valid = np.asarray(sweep.valid_mask, dtype=bool) & np.isfinite(pin)
+        x0_fit = float(pin[valid].min()) if valid.any() else x0
         for label, color, iip3, oip3 in intercepts:
-            fig.add_trace(_line(f"slope 3, {label}", color, x0, iip3, 3.0, iip3, oip3))
+            fig.add_trace(_line(f"slope 3, {label}", color, x0_fit, iip3, 3.0, iip3, oip3))
             fig.add_trace(go.Scatter(
                 x=[iip3], y=[oip3], mode="markers+text", name=f"intercept {label}",
                 marker=dict(symbol="diamond", size=11, color=color),
@@ -171,9 +174,9 @@ def _results_table(rows: list[dict[str, object]]) -> str:
 
 def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list[SweepPlotData],
                   result_rows: list[dict[str, object]]) -> str:
-    """The whole page as one string. Each summary row is a mapping of labels to values."""
-    summary = "\n".join(f"<dt>{html.escape(str(label))}</dt><dd>{html.escape(str(value))}</dd>"
-                        for row in summary_rows for label, value in row.items())
+    """The whole page as one string. Each summary row is {"label": ..., "value": ...}."""
+    summary = "\n".join(f"<dt>{html.escape(str(row['label']))}</dt>"
+                        f"<dd>{html.escape(str(row['value']))}</dd>" for row in summary_rows)
     figures = "\n".join(
         '<div class="sweep">'
         + pio.to_html(sweep_figure(s), full_html=False, include_plotlyjs=False,

@@ -85,7 +85,8 @@ class BenchTruth:
         paths = self._scenario.paths
         loss_db = getattr(paths, f"{path}_loss_db")
         slope_db_per_ghz = getattr(paths, f"{path}_slope_db_per_ghz")
-        return _float_or_array(np.maximum(0.0, physics.linear_in_db(loss_db, slope_db_per_ghz, paths.ref_freq_hz, freq_hz)))
+        loss_db = physics.linear_in_db(loss_db, slope_db_per_ghz, paths.ref_freq_hz, freq_hz)
+        return _float_or_array(np.maximum(0.0, loss_db))
 
     def dut_model(self, freq_hz: float) -> physics.Nonlinearity:
         """The DUT nonlinearity at freq_hz (a two-tone point uses its centre frequency)."""
@@ -140,12 +141,11 @@ def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[Source
     amp_v = np.where(keep, amp_v, 0j)
     amp_v = amp_v * 10.0 ** (-truth.true_loss_db("out", np.where(keep, freq_hz, f_low_hz)) / 20.0)
     if two_tone:
-        lo, hi = physics.product_bin(1, 0), physics.product_bin(0, 1)
-        analyzer = scenario.analyzer
+        low_v, high_v = amp_v[physics.product_bin(1, 0)], amp_v[physics.product_bin(0, 1)]
         mixer_low_dbm, mixer_high_dbm = physics.mixer_im3_dbm(
-            float(vpeak_to_dbm(amp_v[lo])), float(vpeak_to_dbm(amp_v[hi])), atten_db, analyzer.mixer_toi_dbm)
-        amp_v[physics.product_bin(2, -1)] += physics.im3_phasor_v(mixer_low_dbm, amp_v[lo], amp_v[hi], True, phase_deg)
-        amp_v[physics.product_bin(-1, 2)] += physics.im3_phasor_v(mixer_high_dbm, amp_v[lo], amp_v[hi], False, phase_deg)
+            float(vpeak_to_dbm(low_v)), float(vpeak_to_dbm(high_v)), atten_db, scenario.analyzer.mixer_toi_dbm)
+        amp_v[physics.product_bin(2, -1)] += physics.im3_phasor_v(mixer_low_dbm, low_v, high_v, True, phase_deg)
+        amp_v[physics.product_bin(-1, 2)] += physics.im3_phasor_v(mixer_high_dbm, low_v, high_v, False, phase_deg)
     return AnalyzerInput(freq_hz, amp_v)
 
 
@@ -247,7 +247,8 @@ class SimBench:
             self.damage_log.append((self.clock_s, input_dbm))
 
     def sweep_time_s(self) -> float:
-        return physics.sweep_time_s(self.analyzer.span_hz, self.analyzer.rbw_hz, self.scenario.analyzer.sweep_time_factor)
+        state = self.analyzer
+        return physics.sweep_time_s(state.span_hz, state.rbw_hz, self.scenario.analyzer.sweep_time_factor)
 
     def trace_freq_hz(self) -> np.ndarray:
         state = self.analyzer

@@ -70,12 +70,14 @@ class SimSource(_BenchDevice):
         limits = bench.scenario.sources
         self._setting(
             ("[SOURce]:FREQuency[:CW]", "[SOURce]:FREQuency:FIXed"),
-            lambda p: bench.set_source(index, freq_hz=_number(p, "HZ", SOURCE_MIN_FREQ_HZ, SOURCE_MAX_FREQ_HZ, "frequency")),
+            lambda p: bench.set_source(
+                index, freq_hz=_number(p, "HZ", SOURCE_MIN_FREQ_HZ, SOURCE_MAX_FREQ_HZ, "frequency")),
             lambda: _fmt(self._commanded().freq_hz),
         )
         self._setting(
             ("[SOURce]:POWer[:LEVel][:IMMediate][:AMPLitude]",),
-            lambda p: bench.set_source(index, power_dbm=_number(p, "DBM", limits.min_power_dbm, limits.max_power_dbm, "power")),
+            lambda p: bench.set_source(
+                index, power_dbm=_number(p, "DBM", limits.min_power_dbm, limits.max_power_dbm, "power")),
             lambda: _fmt(self._commanded().power_dbm),
         )
         self._setting(
@@ -99,37 +101,30 @@ class SimAnalyzer(_BenchDevice):
 
     def __init__(self, bench: SimBench):
         super().__init__(bench, "analyzer", "tonebench,simulated spectrum analyzer,SIM-SA-0001,0.1")
-        state = lambda: bench.analyzer  # noqa: E731 - *RST replaces the state object
         freq = (ANALYZER_MIN_FREQ_HZ, ANALYZER_MAX_FREQ_HZ)
         bw = (ANALYZER_MIN_BW_HZ, ANALYZER_MAX_BW_HZ)
-        self._setting(("[SENSe]:FREQuency:CENTer",),
-                      lambda p: setattr(state(), "center_hz", _number(p, "HZ", *freq, "center")),
-                      lambda: _fmt(state().center_hz))
-        self._setting(("[SENSe]:FREQuency:SPAN",),
-                      lambda p: setattr(state(), "span_hz", _number(p, "HZ", 0.0, ANALYZER_MAX_FREQ_HZ, "span")),
-                      lambda: _fmt(state().span_hz))
-        self._setting(("[SENSe]:BANDwidth[:RESolution]",),
-                      lambda p: setattr(state(), "rbw_hz", _number(p, "HZ", *bw, "RBW")),
-                      lambda: _fmt(state().rbw_hz))
-        self._setting(("[SENSe]:BANDwidth:VIDeo",),
-                      lambda p: setattr(state(), "vbw_hz", _number(p, "HZ", *bw, "VBW")),
-                      lambda: _fmt(state().vbw_hz))
-        self._setting(("INPut:ATTenuation",), self._set_atten, lambda: _fmt(state().atten_db))
-        self._setting(("DISPlay:WINDow#:TRACe:Y[:SCALe]:RLEVel",),
-                      lambda p: setattr(state(), "ref_level_dbm",
-                                        _number(p, "DBM", ANALYZER_MIN_REF_DBM, ANALYZER_MAX_REF_DBM, "reference level")),
-                      lambda: _fmt(state().ref_level_dbm))
+        self._number_field("[SENSe]:FREQuency:CENTer", "center_hz", "HZ", *freq, "center")
+        self._number_field("[SENSe]:FREQuency:SPAN", "span_hz", "HZ", 0.0, ANALYZER_MAX_FREQ_HZ, "span")
+        self._number_field("[SENSe]:BANDwidth[:RESolution]", "rbw_hz", "HZ", *bw, "RBW")
+        self._number_field("[SENSe]:BANDwidth:VIDeo", "vbw_hz", "HZ", *bw, "VBW")
+        self._number_field("DISPlay:WINDow#:TRACe:Y[:SCALe]:RLEVel", "ref_level_dbm", "DBM",
+                           ANALYZER_MIN_REF_DBM, ANALYZER_MAX_REF_DBM, "reference level")
+        self._number_field("CALCulate#:MARKer#:X", "marker_freq_hz", "HZ", *freq, "marker")
+        self._setting(("INPut:ATTenuation",), self._set_atten, lambda: _fmt(bench.analyzer.atten_db))
         self._setting(("INITiate:CONTinuous",),
-                      lambda p: setattr(state(), "continuous", parse_bool(p[0])),
-                      lambda: "1" if state().continuous else "0")
-        self._setting(("CALCulate#:MARKer#:X",),
-                      lambda p: setattr(state(), "marker_freq_hz", _number(p, "HZ", *freq, "marker")),
-                      lambda: _fmt(state().marker_freq_hz))
+                      lambda p: setattr(bench.analyzer, "continuous", parse_bool(p[0])),
+                      lambda: "1" if bench.analyzer.continuous else "0")
         self.command("INITiate[:IMMediate]", lambda p: bench.sweep(), nparams=0)
         self.query("[SENSe]:SWEep:TIME", lambda p: _fmt(bench.sweep_time_s()), nparams=0)
         self.query("CALCulate#:MARKer#:Y", lambda p: self._marker_power(), nparams=0)
         self.query("STATus:QUEStionable:CONDition",
                    lambda p: str((1 << OVERLOAD_BIT) if bench.overloaded() else 0), nparams=0)
+
+    def _number_field(self, pattern: str, attr: str, unit: str, low: float, high: float, what: str) -> None:
+        # Looked up on each call: *RST replaces the analyzer state object.
+        self._setting((pattern,),
+                      lambda p: setattr(self.bench.analyzer, attr, _number(p, unit, low, high, what)),
+                      lambda: _fmt(getattr(self.bench.analyzer, attr)))
 
     def _set_atten(self, params: list[str]) -> None:
         atten_db = _number(params, "DB", 0.0, ANALYZER_MAX_ATTEN_DB, "attenuation")

@@ -161,7 +161,8 @@ def _create_engine(parsed: sa.URL, shown: str, *, foreign_keys: bool) -> sa.Engi
     try:
         engine = sa.create_engine(parsed)
     except ImportError as exc:
-        raise _bad_url(shown, f"driver for '{parsed.drivername}' is not installed ({exc})") from None
+        reason = f"driver for '{parsed.drivername}' is not installed ({exc})"
+        raise _bad_url(shown, reason) from None
     except (ArgumentError, NoSuchModuleError, TypeError, ValueError) as exc:
         raise _bad_url(shown, str(exc)) from None
     if engine.dialect.name == "sqlite":
@@ -186,8 +187,8 @@ def _check_reachable(engine: sa.Engine, shown: str) -> None:
         with engine.connect() as connection:
             connection.exec_driver_sql("SELECT 1")
     except sa.exc.DBAPIError as exc:
-        raise _bad_url(shown, str(exc.orig).strip().splitlines()[0] if str(exc.orig).strip()
-                       else type(exc.orig).__name__) from None
+        reason = str(exc.orig).strip() or type(exc.orig).__name__
+        raise _bad_url(shown, reason.splitlines()[0]) from None
 
 
 def _is_known(revision: str) -> bool:
