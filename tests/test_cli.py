@@ -13,7 +13,7 @@ from tonebench.cli import app
 
 from conftest import SAMPLE_RUNS
 
-runner = CliRunner()
+runner = CliRunner(env={"COLUMNS": "220"})  # wide enough for the results table
 
 SHORT_PLAN = textwrap.dedent(
     """

@@ -9,7 +9,7 @@ from tonebench.cli import app
 
 
 def test_demo_recovers_the_true_iip3(tmp_path):
-    result = CliRunner().invoke(app, ["demo", "--out", str(tmp_path / "demo")])
+    result = CliRunner(env={"COLUMNS": "220"}).invoke(app, ["demo", "--out", str(tmp_path / "demo")])
     assert result.exit_code == 0, result.output
     db_path = Path(re.search(r"database:\s+(\S+)", result.output).group(1))
     report_path = Path(re.search(r"report:\s+(\S+)", result.output).group(1))

@@ -23,8 +23,9 @@ db_app = typer.Typer(help="Database housekeeping.", no_args_is_help=True)
 app.add_typer(sim_app, name="sim")
 app.add_typer(db_app, name="db")
 
-out = Console()
-err = Console(stderr=True)
+# soft_wrap: paths and one-line errors stay on one line whatever the terminal width.
+out = Console(soft_wrap=True)
+err = Console(stderr=True, soft_wrap=True)
 
 
 def _default_db() -> str:
@@ -71,13 +72,20 @@ def _progress() -> Progress:
 def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None):
     from tonebench.runner import execute_run
 
-    with _progress() as progress:
-        task = progress.add_task("run", total=None)
+    # Started at the first measured point, so a refused plan prints its error line and nothing else.
+    progress = _progress()
+    task = progress.add_task("run", total=None, start=False)
 
-        def advance(done: int, total: int) -> None:
-            progress.update(task, completed=done, total=total)
+    def advance(done: int, total: int) -> None:
+        if not progress.live.is_started:
+            progress.start()
+            progress.start_task(task)
+        progress.update(task, completed=done, total=total)
 
+    try:
         return execute_run(plan, bench, db_url, report, advance, on_sim_started)
+    finally:
+        progress.stop()
 
 
 def _print_results(results) -> None:
