@@ -89,17 +89,10 @@ def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None
 
 
 def _print_results(results) -> None:
-    from tonebench.review import result_row
+    from tonebench.queries import results_table
 
-    rows = [result_row(r) for r in results]
-    if not rows:
-        return
-    table = Table(title="Results")
-    for column in rows[0]:
-        table.add_column(column)
-    for row in rows:
-        table.add_row(*row.values())
-    out.print(table)
+    if results:
+        out.print(results_table(results))
 
 
 @app.command()

@@ -12,9 +12,9 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from tonebench.analysis.fit import fit_sweep
 from tonebench.errors import InputError
-from tonebench.report import SweepPlotData, write_report
-from tonebench.store.models import Point, Result, Run
-from tonebench.store.records import utc_now
+from tonebench.report import SweepPlotData, sweep_title, write_report
+from tonebench.report import result_row as report_result_row
+from tonebench.store.models import Point, Result, Run, utc_now
 
 POINT_ARRAYS = (
     "tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
@@ -48,11 +48,6 @@ def _sweeps(session: Session, run_id: int):
         yield center_hz, spacing_hz, bias_v, arrays
 
 
-def _group_key(center_hz: float, spacing_hz: float, bias_v: float | None) -> str:
-    bias = "none" if bias_v is None else f"{bias_v:+.4f}"
-    return f"c{center_hz:.0f}/d{spacing_hz:.0f}/b{bias}"
-
-
 def _finite_or_none(value):
     if value is None:
         return None
@@ -71,7 +66,6 @@ def analyze_run(sessions: sessionmaker, run_guid: str) -> list[Result]:
             results.append(
                 Result(
                     run_id=run.id,
-                    group_key=_group_key(center_hz, spacing_hz, bias_v),
                     center_hz=center_hz,
                     spacing_hz=spacing_hz,
                     bias_v=bias_v,
@@ -100,40 +94,36 @@ def analyze_run(sessions: sessionmaker, run_guid: str) -> list[Result]:
     return results
 
 
-def _fmt(value, spec: str = ".2f", unit: str = "") -> str:
-    return "—" if value is None else f"{value:{spec}}{unit}"
+def _fmt(value, spec: str = "+.2f") -> str:
+    return "-" if value is None else format(value, spec)
 
 
-def result_row(result: Result) -> dict[str, str]:
+def terminal_row(result: Result) -> dict[str, str]:
+    """A compact row for a terminal table (the HTML report has the full one); dB and dBm."""
     return {
-        "Centre (GHz)": f"{result.center_hz / 1e9:.4f}",
-        "Spacing (MHz)": f"{result.spacing_hz / 1e6:.3f}",
-        "Gain (dB)": _fmt(result.gain_db),
-        "IIP3 lower (dBm)": _fmt(result.iip3_lower_dbm),
-        "IIP3 upper (dBm)": _fmt(result.iip3_upper_dbm),
-        "IIP3 (dBm)": _fmt(result.iip3_dbm),
-        "OIP3 (dBm)": _fmt(result.oip3_dbm),
-        "Slopes fund/lower/upper": "/".join(
-            _fmt(s) for s in (result.slope_fundamental, result.slope_im3_lower, result.slope_im3_upper)
-        ),
-        "P1dB in, per tone (dBm)": _fmt(result.p1db_in_dbm),
-        "Valid points": f"{result.n_valid} of {result.n_points}",
+        "GHz": f"{result.center_hz / 1e9:.4f}",
+        "Spacing": f"{result.spacing_hz / 1e6:.3g} MHz",
+        "Gain": _fmt(result.gain_db, ".2f"),
+        "IIP3": _fmt(result.iip3_dbm),
+        "IIP3 lo/up": f"{_fmt(result.iip3_lower_dbm)}/{_fmt(result.iip3_upper_dbm)}",
+        "OIP3": _fmt(result.oip3_dbm),
+        "IM3 slope": _fmt(None if result.slope_im3_lower is None else (result.slope_im3_lower + result.slope_im3_upper) / 2, ".2f"),
+        "P1dB/tone": _fmt(result.p1db_in_dbm),
+        "Valid": f"{result.n_valid}/{result.n_points}",
         "Note": result.reason or "",
     }
 
 
 def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
-    """Analyse the run (fresh results) and write its self-contained HTML report."""
-    analyze_run(sessions, run_guid)
+    """Write the run's self-contained HTML report, fitted from its stored points."""
     with sessions() as session:
         run = find_run(session, run_guid)
-        results = {r.group_key: r for r in run.results}
-        sweeps = []
-        for center_hz, spacing_hz, bias_v, arrays in _sweeps(session, run.id):
+        sweeps, rows = [], []
+        for center_hz, spacing_hz, _bias_v, arrays in _sweeps(session, run.id):
             fit = fit_sweep(**arrays)
             sweeps.append(
                 SweepPlotData(
-                    title=f"{center_hz / 1e9:.4f} GHz, spacing {spacing_hz / 1e6:.3g} MHz",
+                    title=sweep_title(center_hz, spacing_hz),
                     pin_dbm=(arrays["pin1_dbm"] + arrays["pin2_dbm"]) / 2.0,
                     pout_dbm=(arrays["pout_f1_dbm"] + arrays["pout_f2_dbm"]) / 2.0,
                     im3_lower_dbm=arrays["im3_lower_dbm"],
@@ -143,6 +133,7 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
                     result=fit,
                 )
             )
+            rows.append(report_result_row(center_hz, spacing_hz, fit))
         device = run.device
         summary = [
             {"label": "Run", "value": run.guid},
@@ -151,6 +142,4 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             {"label": "Started (UTC)", "value": run.started_at.strftime("%Y-%m-%d %H:%M:%S")},
             {"label": "Status", "value": run.status + (f": {run.end_reason}" if run.end_reason else "")},
         ]
-        rows = [result_row(results[key]) for key in sorted(results)]
         return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows)
-

@@ -4,17 +4,11 @@ from __future__ import annotations
 
 import platform
 import uuid
-from datetime import datetime, timezone
-
 from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
 from tonebench import __version__
-from tonebench.store.models import Bench, Device, Event, Instrument, Offset, Plan, Point, Run
-
-
-def utc_now() -> datetime:
-    return datetime.now(timezone.utc)
+from tonebench.store.models import Bench, Device, Event, Instrument, Offset, Plan, Point, Run, utc_now
 
 
 def _get_or_create(session: Session, model, lookup: dict, **defaults):
@@ -86,7 +80,7 @@ class RunRecorder:
 
     def event(self, level: str, kind: str, message: str, details: dict | None = None) -> None:
         with self.sessions.begin() as session:
-            session.add(Event(run_id=self.run_id, at=utc_now(), level=level, kind=kind, message=message, details_json=details))
+            session.add(Event(run_id=self.run_id, at=utc_now(), level=level, kind=kind, message=message, details_json=details or {}))
 
     def finish(self, status: str, end_reason: str) -> None:
         with self.sessions.begin() as session:
