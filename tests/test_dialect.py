@@ -57,7 +57,9 @@ def load_error(path: Path) -> str:
 
 def test_repo_has_the_three_dialects():
     assert {p.stem for p in SHIPPED} == {"generic-source", "generic-analyzer", "verbose-analyzer"}
-    assert REPO_DRIVERS in drivers_dirs()
+    # Installed (wheel copy) or run from the checkout, the named dialects are the repo's files.
+    (folder,) = drivers_dirs()
+    assert {p.name: p.read_text() for p in folder.glob("*.toml")} == {p.name: p.read_text() for p in SHIPPED}
 
 
 @pytest.mark.parametrize("path", SHIPPED, ids=lambda p: p.stem)

@@ -85,8 +85,8 @@ def result_row(center_freq_hz: float, spacing_hz: float, result: SweepResult) ->
         "slope fundamental": result.slope_fundamental,
         "slope IM3 lower": result.slope_im3_lower,
         "slope IM3 upper": result.slope_im3_upper,
-        "P1dB in (dBm)": result.p1db_in_dbm,
-        "P1dB out (dBm)": result.p1db_out_dbm,
+        "P1dB in, per tone (dBm)": result.p1db_in_dbm,
+        "P1dB out, per tone (dBm)": result.p1db_out_dbm,
         "valid points": f"{result.n_valid} of {result.n_points}",
         "reason": result.reason,
     }
@@ -152,6 +152,9 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
         yaxis_title="output power at the DUT (dBm)",
         legend=dict(orientation="h", y=-0.2),
     )
+    if x0 is not None and intercepts:
+        # Room to the right of the farthest intercept for its label.
+        fig.update_xaxes(range=[x0 - 2.0, max(iip3 for _, _, iip3, _ in intercepts) + 12.0])
     return fig
 
 

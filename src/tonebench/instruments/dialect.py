@@ -17,6 +17,7 @@ from typing import Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from tonebench.errors import InputError
+from tonebench.packaged import data_dir
 
 Role = Literal["source", "analyzer", "power_meter", "supply"]
 ReplyKind = Literal["text", "float", "int", "bool", "error"]
@@ -168,11 +169,8 @@ class Dialect(BaseModel):
 
 def drivers_dirs() -> list[Path]:
     """Where named dialects live: the wheel's package data, else the source checkout's drivers/."""
-    package_dir = Path(__file__).resolve().parent.parent / "_data" / "drivers"
-    if package_dir.is_dir():
-        return [package_dir]
-    repo_dir = Path(__file__).resolve().parents[3] / "drivers"
-    return [repo_dir] if repo_dir.is_dir() else []
+    folder = data_dir("drivers")
+    return [folder] if folder.is_dir() else []
 
 
 def known_dialects() -> dict[str, Path]:

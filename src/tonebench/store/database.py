@@ -20,8 +20,8 @@ from sqlalchemy.engine import make_url
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError
 from sqlalchemy.orm import sessionmaker
 
-import tonebench
 from tonebench.errors import DatabaseError, InputError
+from tonebench.packaged import data_dir
 
 URL_EXAMPLES = "use e.g. sqlite:///path/to/file.db or postgresql+psycopg://user@host/dbname"
 SQLITE_BUSY_TIMEOUT_MS = 10_000  # a second writer waits this long before "database is locked"
@@ -37,11 +37,7 @@ DEFAULT_DB_URL = default_db_url()
 
 def migrations_dir() -> Path:
     """Installed copy inside the package if present, else the source tree's migrations/."""
-    package_dir = Path(tonebench.__file__).resolve().parent
-    installed = package_dir / "_data" / "migrations"
-    if installed.is_dir():
-        return installed
-    return package_dir.parent.parent / "migrations"
+    return data_dir("migrations")
 
 
 def alembic_config(connection: sa.Connection | None = None) -> Config:
