@@ -7,11 +7,10 @@ import sys
 import textwrap
 
 import pytest
+from conftest import SAMPLE_RUNS
 from typer.testing import CliRunner
 
 from tonebench.cli import app
-
-from conftest import SAMPLE_RUNS
 
 runner = CliRunner(env={"COLUMNS": "220"})  # wide enough for the results table
 

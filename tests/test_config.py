@@ -2,16 +2,15 @@
 
 import numpy as np
 import pytest
+from conftest import SAMPLE_RUNS
 
 from tonebench.config.bench_file import load_bench
 from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError
 from tonebench.offsets import LossTable
 from tonebench.plan import expand
-from tonebench.safety import SourceRange, check_plan
 from tonebench.runner import offsets_from_bench
-
-from conftest import SAMPLE_RUNS
+from tonebench.safety import SourceRange, check_plan
 
 
 def write(tmp_path, name, text):

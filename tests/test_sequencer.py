@@ -4,14 +4,13 @@ and a truthful run status. RF state is asserted from the simulator, not from wha
 import signal
 
 import pytest
+from conftest import SAMPLE_RUNS
 from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
 
 from tonebench.errors import InstrumentError
 from tonebench.runner import Terminated, execute_run
 from tonebench.store.models import Point, Run
-
-from conftest import SAMPLE_RUNS
 
 PLAN = SAMPLE_RUNS / "demo_plan.toml"
 BENCH = SAMPLE_RUNS / "sim_bench.toml"

@@ -8,28 +8,24 @@ from typing import Any
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
-from tonebench.config.loading import read_toml, validate
+from tonebench.config.loading import StrictModel, read_toml, validate
 from tonebench.errors import InputError
 
 REQUIRED_ROLES = ("source1", "source2", "analyzer")
 
 
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
-
-class BenchInfo(_Strict):
+class BenchInfo(StrictModel):
     name: str = Field(min_length=1)
     description: str = ""
 
 
-class InstrumentEntry(_Strict):
+class InstrumentEntry(StrictModel):
     dialect: str = Field(min_length=1)
     # A VISA resource string; left out on a simulated bench, where the simulator assigns one.
     resource: str | None = None
 
 
-class OffsetTables(_Strict):
+class OffsetTables(StrictModel):
     """Path losses in positive dB as [freq_hz, loss_db] pairs, in increasing frequency."""
 
     in1: list[tuple[float, float]] = Field(min_length=1)
@@ -49,7 +45,7 @@ class OffsetTables(_Strict):
         return rows
 
 
-class BenchLimits(_Strict):
+class BenchLimits(StrictModel):
     """Checked before RF goes on, for every point of a plan."""
 
     max_tone_dbm: float = Field(ge=-150.0, le=30.0, description="per tone at the DUT input plane")
@@ -57,7 +53,7 @@ class BenchLimits(_Strict):
     expected_gain_db: float = Field(ge=-60.0, le=60.0, description="DUT gain used to predict output power")
 
 
-class BenchFile(_Strict):
+class BenchFile(StrictModel):
     bench: BenchInfo
     instruments: dict[str, InstrumentEntry]
     offsets: OffsetTables

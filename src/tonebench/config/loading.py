@@ -6,11 +6,17 @@ import tomllib
 from pathlib import Path
 from typing import TypeVar
 
-from pydantic import BaseModel, ValidationError
+from pydantic import BaseModel, ConfigDict, ValidationError
 
 from tonebench.errors import InputError
 
 Model = TypeVar("Model", bound=BaseModel)
+
+
+class StrictModel(BaseModel):
+    """A table of a TOML file: an unknown key is an error (usually a typo), never ignored."""
+
+    model_config = ConfigDict(extra="forbid")
 
 
 def read_toml(path: Path, what: str) -> tuple[str, dict]:

@@ -8,25 +8,21 @@ from __future__ import annotations
 import hashlib
 from pathlib import Path
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, Field, model_validator
 
-from tonebench.config.loading import read_toml, validate
+from tonebench.config.loading import StrictModel, read_toml, validate
 
 # Tone power at the DUT input plane that any plan may ask for; the bench file narrows it further.
 TONE_MIN_DBM = -150.0
 TONE_MAX_DBM = 30.0
 
 
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
-
-class PlanInfo(_Strict):
+class PlanInfo(StrictModel):
     name: str = Field(min_length=1)
     description: str = ""
 
 
-class DeviceInfo(_Strict):
+class DeviceInfo(StrictModel):
     part_number: str = Field(min_length=1)
     serial: str = Field(min_length=1)
     lot: str | None = None
@@ -36,7 +32,7 @@ class DeviceInfo(_Strict):
     notes: str = ""
 
 
-class SweepSettings(_Strict):
+class SweepSettings(StrictModel):
     center_freqs_hz: list[float] = Field(min_length=1)
     spacings_hz: list[float] = Field(min_length=1)
     tone_start_dbm: float = Field(ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
@@ -64,7 +60,7 @@ class SweepSettings(_Strict):
         return [level for level in levels if level <= self.tone_stop_dbm + 1e-9]
 
 
-class AnalyzerSettings(_Strict):
+class AnalyzerSettings(StrictModel):
     rbw_hz: float = Field(default=1000.0, gt=0.0, le=10e6)
     vbw_hz: float | None = Field(default=None, gt=0.0, le=50e6)
     span_hz: float | None = Field(default=None, gt=0.0, le=1e9)
@@ -86,7 +82,7 @@ class AnalyzerSettings(_Strict):
         return 0.4 * self.effective_span_hz
 
 
-class PlanFile(_Strict):
+class PlanFile(StrictModel):
     plan: PlanInfo
     device: DeviceInfo
     sweep: SweepSettings

@@ -1,6 +1,10 @@
 """Instrument layer: role drivers (source, analyzer) over SCPI dialect files, through pyvisa."""
 
-from tonebench.instruments.analyzer import AnalyzerSetup, MarkerReading, SpectrumAnalyzer
+from tonebench.instruments.analyzer import (
+    AnalyzerSetup,
+    MarkerReading,
+    SpectrumAnalyzer,
+)
 from tonebench.instruments.dialect import Dialect, drivers_dirs, load_dialect
 from tonebench.instruments.scpi import LimitError, ScpiInstrument
 from tonebench.instruments.source import SignalSource

@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from tonebench.instruments.scpi import LimitError, ScpiInstrument
+from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument
 
 
 @dataclass(frozen=True)
@@ -28,24 +28,16 @@ class MarkerReading:
     sweep_time_s: float
 
 
-class SpectrumAnalyzer:
+class SpectrumAnalyzer(RoleDriver):
     """A swept spectrum analyzer reached through an analyzer dialect."""
 
     def __init__(self, instrument: ScpiInstrument):
-        self.instrument = instrument
+        super().__init__(instrument)
         self.limits = instrument.dialect.limits
         self.performance = instrument.dialect.performance
         self._overload_bit = instrument.dialect.status["overload_bit"]
         # operation -> value last sent, so apply() and read_markers() skip unchanged settings
         self._sent: dict[str, float] = {}
-
-    @property
-    def label(self) -> str:
-        return self.instrument.label
-
-    @property
-    def idn(self) -> str:
-        return self.instrument.idn
 
     def prepare(self) -> None:
         """Clear status and switch to single sweeps; the instrument state is then unknown."""

@@ -156,3 +156,18 @@ class ScpiInstrument:
             self.resource.close()
         except (pyvisa.errors.Error, OSError):
             pass  # closing an already dropped connection is not worth reporting
+
+
+class RoleDriver:
+    """What every role driver (source, analyzer, ...) has: its instrument, label and *IDN?."""
+
+    def __init__(self, instrument: ScpiInstrument):
+        self.instrument = instrument
+
+    @property
+    def label(self) -> str:
+        return self.instrument.label
+
+    @property
+    def idn(self) -> str:
+        return self.instrument.idn

@@ -3,27 +3,19 @@
 from __future__ import annotations
 
 from tonebench.errors import InstrumentError
-from tonebench.instruments.scpi import LimitError, ScpiInstrument
+from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument
 
 
-class SignalSource:
+class SignalSource(RoleDriver):
     """A signal generator reached through a source dialect. Frequencies in Hz, powers in dBm."""
 
     def __init__(self, instrument: ScpiInstrument):
-        self.instrument = instrument
+        super().__init__(instrument)
         limits = instrument.dialect.limits
         self.min_power_dbm = limits["min_power_dbm"]
         self.max_power_dbm = limits["max_power_dbm"]
         self.min_freq_hz = limits["min_freq_hz"]
         self.max_freq_hz = limits["max_freq_hz"]
-
-    @property
-    def label(self) -> str:
-        return self.instrument.label
-
-    @property
-    def idn(self) -> str:
-        return self.instrument.idn
 
     def _wait(self) -> None:
         self.instrument.wait_complete(self.instrument.dialect.io.query_timeout_s)

@@ -10,7 +10,14 @@ from __future__ import annotations
 from typing import Callable
 
 from tonebench.sim.bench import SimBench
-from tonebench.sim.scpi import DATA_OUT_OF_RANGE, EXECUTION_ERROR, ScpiDevice, ScpiError, parse_bool, parse_number
+from tonebench.sim.scpi import (
+    DATA_OUT_OF_RANGE,
+    EXECUTION_ERROR,
+    ScpiDevice,
+    ScpiError,
+    parse_bool,
+    parse_number,
+)
 
 SOURCE_MIN_FREQ_HZ = 9e3
 SOURCE_MAX_FREQ_HZ = 6e9

@@ -19,7 +19,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tonebench.units import SYSTEM_IMPEDANCE_OHM, dbm_to_vpeak, thermal_noise_dbm_per_hz, vpeak_to_dbm
+from tonebench.units import (
+    SYSTEM_IMPEDANCE_OHM,
+    dbm_to_vpeak,
+    thermal_noise_dbm_per_hz,
+    vpeak_to_dbm,
+)
 
 # Bins 16 and 17 for the tones: products up to order 15 stay below N/2 (15 * 17 = 255 < 256), and
 # the product families m*f1 + i*(f2 - f1) keep |i| <= 8, so each bin maps to one product.

@@ -4,11 +4,22 @@ from __future__ import annotations
 
 import platform
 import uuid
+
 from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
 from tonebench import __version__
-from tonebench.store.models import Bench, Device, Event, Instrument, Offset, Plan, Point, Run, utc_now
+from tonebench.store.models import (
+    Bench,
+    Device,
+    Event,
+    Instrument,
+    Offset,
+    Plan,
+    Point,
+    Run,
+    utc_now,
+)
 
 
 def _get_or_create(session: Session, model, lookup: dict, **defaults):
