@@ -1,7 +1,7 @@
 """The store: migrations match the models, URLs are checked, points survive a crash.
 
-Engines come from the `db_url` fixture, parameterised over backends (only SQLite for now) so the
-same tests can run on PostgreSQL later; SQLite-only checks say so and skip elsewhere.
+Engines come from the `db_url` fixture, parameterised over backends (SQLite and a real
+PostgreSQL server started by the tests), so both pass the same suite; SQLite-only checks say so.
 """
 
 from __future__ import annotations
@@ -39,11 +39,11 @@ from tonebench.store.database import database_revision, default_db_url
 SRC_DIR = Path(tonebench.__file__).resolve().parent.parent
 
 
-@pytest.fixture(params=["sqlite"])
+@pytest.fixture(params=["sqlite", "postgresql"])
 def db_url(request, tmp_path) -> str:
     if request.param == "sqlite":
         return f"sqlite:///{tmp_path / 'store.db'}"
-    raise AssertionError(request.param)
+    return request.getfixturevalue("postgres_url")
 
 
 @pytest.fixture

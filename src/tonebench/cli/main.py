@@ -2,12 +2,10 @@
 
 from __future__ import annotations
 
-from contextlib import contextmanager
 from pathlib import Path
-from typing import Annotated, Iterator
+from typing import Annotated
 
 import typer
-from rich.console import Console
 from rich.progress import (
     BarColumn,
     MofNCompleteColumn,
@@ -18,7 +16,11 @@ from rich.progress import (
 )
 from rich.table import Table
 
-from tonebench.errors import DatabaseError, InputError, TonebenchError
+from tonebench.cli.calibration import cal_app
+from tonebench.cli.catalog import register_catalog_commands
+from tonebench.cli.common import DbOption, default_db, err, one_line_errors, out
+from tonebench.cli.queue import register_queue_commands
+from tonebench.errors import InputError
 
 app = typer.Typer(
     help="Two-tone intercept (IIP3/OIP3) measurements on real or simulated benches, with every point logged.",
@@ -29,39 +31,9 @@ sim_app = typer.Typer(help="The simulated bench.", no_args_is_help=True)
 db_app = typer.Typer(help="Database housekeeping.", no_args_is_help=True)
 app.add_typer(sim_app, name="sim")
 app.add_typer(db_app, name="db")
-
-# soft_wrap: paths and one-line errors stay on one line whatever the terminal width.
-out = Console(soft_wrap=True)
-err = Console(stderr=True, soft_wrap=True)
-
-
-def _default_db() -> str:
-    from tonebench.store.database import default_db_url
-
-    return default_db_url()
-
-
-DbOption = Annotated[
-    str | None,
-    typer.Option("--db", help="SQLAlchemy database URL (default: sqlite file tonebench.db in the current folder)."),
-]
-
-
-@contextmanager
-def one_line_errors() -> Iterator[None]:
-    """Bad input: one line and exit 2. Instrument or other tonebench failures: one line and exit 1."""
-    try:
-        yield
-    except (InputError, DatabaseError) as exc:
-        err.print(f"error: {exc}", markup=False, highlight=False)
-        raise typer.Exit(2) from None
-    except TonebenchError as exc:
-        err.print(f"error: {exc}", markup=False, highlight=False)
-        raise typer.Exit(1) from None
-    except KeyboardInterrupt:
-        err.print("interrupted: RF was switched off; the run is stored as aborted", markup=False)
-        raise typer.Exit(130) from None
-
+app.add_typer(cal_app, name="cal")
+register_queue_commands(app)
+register_catalog_commands(app)
 
 def _progress() -> Progress:
     return Progress(
@@ -111,7 +83,7 @@ def run(
 ) -> None:
     """Measure a plan on a bench, store every point, fit intercepts and write a report."""
     with one_line_errors():
-        db_url = db or _default_db()
+        db_url = db or default_db()
         outcome = _run_with_progress(plan, bench, db_url, report)
         out.print(f"run {outcome.guid}: {outcome.status}")
         out.print(f"database: {outcome.db_url}")
@@ -142,7 +114,7 @@ def runs(
         table = Table(title="Runs")
         for column in ("GUID", "Started (UTC)", "Status", "Device", "Bench", "Points"):
             table.add_column(column)
-        for row in list_runs(db or _default_db(), limit):
+        for row in list_runs(db or default_db(), limit):
             table.add_row(*row)
         out.print(table)
 
@@ -156,7 +128,7 @@ def show(
     from tonebench.queries import describe_run
 
     with one_line_errors():
-        describe_run(db or _default_db(), run_id, out)
+        describe_run(db or default_db(), run_id, out)
 
 
 @app.command()
@@ -169,7 +141,7 @@ def analyze(
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        results = analyze_run(session_factory(open_database(db or _default_db())), run_id)
+        results = analyze_run(session_factory(open_database(db or default_db())), run_id)
         _print_results(results)
 
 
@@ -184,7 +156,7 @@ def report(
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        written = write_run_report(session_factory(open_database(db or _default_db())), run_id, out_path)
+        written = write_run_report(session_factory(open_database(db or default_db())), run_id, out_path)
         out.print(f"report: {written}")
 
 
@@ -219,4 +191,4 @@ def db_upgrade(db: DbOption = None) -> None:
     from tonebench.store.database import upgrade_database
 
     with one_line_errors():
-        out.print(f"database at schema revision {upgrade_database(db or _default_db())}")
+        out.print(f"database at schema revision {upgrade_database(db or default_db())}")

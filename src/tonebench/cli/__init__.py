@@ -1,0 +1,5 @@
+"""The tonebench command line (typer)."""
+
+from tonebench.cli.main import app
+
+__all__ = ["app"]
