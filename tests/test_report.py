@@ -1,5 +1,6 @@
 """HTML report: self-contained page, one figure per sweep, escaped results table, atomic write."""
 
+import html
 import re
 
 import numpy as np
@@ -97,3 +98,57 @@ def test_missing_directory_is_input_error(tmp_path):
     plot, row = _sweep(2.45e9, 1e6, 4.0)
     with pytest.raises(InputError, match="does not exist"):
         write_report(tmp_path / "nowhere" / "r.html", "x", [], [plot], [row])
+
+
+# --- flags and bounds -----------------------------------------------------------------------
+
+def _flagged_sweep():
+    """A sweep whose lowest points sit in the noise and whose sources add a residual 14 dB down."""
+    from tonebench.analysis import AnalysisSettings, SweepData, assess_sweep
+
+    tone = np.arange(-50.0, -24.0, 2.0)
+    n = tone.size
+    gain_db, iip3_dbm, system_ip3_dbm = 15.0, 0.0, 7.0
+    pout = tone + gain_db
+    noise = np.full(n, -112.0)
+    # Device and residual in phase (amplitudes add), then the noise in power.
+    dut_v = 10 ** ((3 * tone - 2 * iip3_dbm + gain_db) / 20)
+    residual_v = 10 ** ((3 * tone - 2 * system_ip3_dbm + gain_db) / 20)
+    im3 = 10 * np.log10((dut_v + residual_v) ** 2 + 10 ** (noise / 10))
+    data = SweepData(tone, tone, tone, pout, pout, im3, im3, noise, noise, np.zeros(n, bool))
+    assessment = assess_sweep(data, AnalysisSettings(system_ip3_dbm=system_ip3_dbm))
+    plot = SweepPlotData(title="flagged", pin_dbm=tone, pout_dbm=pout, im3_lower_dbm=im3, im3_upper_dbm=im3,
+                         noise_dbm=noise, valid_mask=assessment.fit.valid_mask, result=assessment.fit,
+                         assessment=assessment)
+    return plot, assessment
+
+
+def test_flagged_points_drawn_distinctly_with_reasons():
+    from tonebench.report import sweep_figure
+
+    plot, assessment = _flagged_sweep()
+    noisy = np.array(["analyzer-limited (noise)" in [f.label for f in p] for p in assessment.point_flags])
+    assert noisy[:3].all() and not noisy[-3:].any()
+    fig = sweep_figure(plot)
+    trace = fig.data[1]  # IM3 lower
+    symbols = list(trace.marker.symbol)
+    hover = list(trace.hovertext)
+    for i, flags in enumerate(assessment.point_flags):
+        assert flags  # every point carries the source-intermod flag here
+        assert symbols[i] == ("diamond" if assessment.fit.valid_mask[i] else "diamond-open")
+        for f in flags:
+            assert f.label in hover[i] and html.escape(f.detail) in hover[i]
+    assert "IM3 only" in hover[-1] and "residual" in hover[-1]
+
+
+def test_results_table_has_bound_and_flags(tmp_path):
+    plot, assessment = _flagged_sweep()
+    row = result_row(2.45e9, 1e6, assessment.fit, assessment)
+    assert row["+/- (dB)"] == assessment.iip3_bound_db and row["+/- (dB)"] > 0.5
+    assert row["flags"].startswith("source-intermod-limited: ")
+    page = write_report(tmp_path / "f.html", "flags", [], [plot], [row]).read_text(encoding="utf-8")
+    assert f'<td class="num">{assessment.iip3_bound_db:.2f}</td>' in page
+    assert "<th>+/- (dB)</th>" in page and "<th>flags</th>" in page
+    assert html.escape(row["flags"]) in page
+    # Truth (0 dBm) within the reported bound: the residual is what the bound is made of.
+    assert abs(assessment.fit.iip3_dbm - 0.0) <= assessment.iip3_bound_db

@@ -340,7 +340,7 @@ def test_marker_without_trace_is_an_scpi_error():
 def test_pyvisa_reads_marker_over_tcp():
     pyvisa = pytest.importorskip("pyvisa")
     with start_sim_bench(quiet()) as running:
-        assert set(running.resources) == {"source1", "source2", "analyzer"}
+        assert set(running.resources) == {"source1", "source2", "analyzer", "power_meter"}
         manager = pyvisa.ResourceManager("@py")
         try:
             opened = {role: manager.open_resource(resource, read_termination="\n", write_termination="\n", timeout=5000)

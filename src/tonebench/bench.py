@@ -4,14 +4,18 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-from tonebench.config.bench_file import BenchFile
-from tonebench.errors import InstrumentError
+from tonebench.config.bench_file import OPTIONAL_ROLES, BenchFile
+from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import SpectrumAnalyzer
 from tonebench.instruments.dialect import load_dialect
+from tonebench.instruments.power_meter import PowerMeter
 from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.source import SignalSource
 from tonebench.instruments.transport import open_resource
 from tonebench.safety import SourceRange
+
+# Which kind of dialect each bench role takes.
+ROLE_KINDS = {"source1": "source", "source2": "source", "analyzer": "analyzer", "power_meter": "power_meter"}
 
 
 @dataclass(frozen=True)
@@ -30,6 +34,11 @@ class OpenBench:
     source_ranges: tuple[SourceRange, SourceRange]
     instruments: list[InstrumentInfo] = field(default_factory=list)
     _scpi: list[ScpiInstrument] = field(default_factory=list)
+    # At the DUT input plane, for calibration and leveling; only when the bench file names one.
+    power_meter: PowerMeter | None = None
+
+    def sources(self) -> tuple[SignalSource, SignalSource]:
+        return self.source1, self.source2
 
     def rf_on(self) -> None:
         self.source1.rf_on()
@@ -55,13 +64,20 @@ class OpenBench:
 
 
 def open_bench(settings: BenchFile, resources: dict[str, str]) -> OpenBench:
-    """Connect to source1, source2 and analyzer; `resources` maps each role to a VISA resource."""
+    """Connect to source1, source2, analyzer and (if the bench file has one) the power meter;
+    `resources` maps each role to a VISA resource."""
     opened: list[ScpiInstrument] = []
+    roles = ["source1", "source2", "analyzer"] + [r for r in OPTIONAL_ROLES if r in settings.instruments]
     try:
-        for role in ("source1", "source2", "analyzer"):
+        for role in roles:
             dialect = load_dialect(settings.instruments[role].dialect)
+            if dialect.role != ROLE_KINDS[role]:
+                raise InputError(
+                    f"instruments.{role}: dialect {dialect.name} is for a {dialect.role}; this role needs a {ROLE_KINDS[role]} dialect"
+                )
             opened.append(ScpiInstrument(open_resource(resources[role], dialect), dialect, role))
-        scpi1, scpi2, scpi_analyzer = opened
+        scpi1, scpi2, scpi_analyzer = opened[:3]
+        meter = PowerMeter(opened[3]) if len(opened) > 3 else None
         source1, source2 = SignalSource(scpi1), SignalSource(scpi2)
         ranges = tuple(
             SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)
@@ -69,7 +85,7 @@ def open_bench(settings: BenchFile, resources: dict[str, str]) -> OpenBench:
         infos = [
             InstrumentInfo(inst.label, resources[inst.label], inst.dialect.name, inst.idn) for inst in opened
         ]
-        return OpenBench(source1, source2, SpectrumAnalyzer(scpi_analyzer), ranges, infos, opened)
+        return OpenBench(source1, source2, SpectrumAnalyzer(scpi_analyzer), ranges, infos, opened, meter)
     except BaseException:
         for instrument in opened:
             instrument.close()

@@ -9,7 +9,7 @@ from sqlalchemy import func, select
 
 from tonebench.review import find_run, terminal_row
 from tonebench.store.database import open_database, session_factory
-from tonebench.store.models import Point, Run
+from tonebench.store.models import CalibrationSet, Point, Run
 
 
 def results_table(results) -> Table:
@@ -56,6 +56,13 @@ def describe_run(db_url: str, ident: str, console: Console) -> None:
         console.print(f"  bench:   {run.bench.name}{' (simulated)' if run.simulated else ''}", highlight=False)
         console.print(f"  plan:    {run.plan.name} (sha256 {run.plan.sha256[:12]})", highlight=False)
         console.print(f"  points:  {len(run.points)}", highlight=False)
+        cal = run.calibration_set
+        if cal is not None:
+            console.print(f"  calibration: {cal.name} ({cal.method}, {cal.created_at:%Y-%m-%d})", highlight=False)
+        referred = {r.calibration_set_id for r in run.results} - {None, run.calibration_set_id}
+        for set_id in sorted(referred):
+            other = session.get(CalibrationSet, set_id)
+            console.print(f"  results re-referred to: {other.name} ({other.method})", highlight=False)
         console.print("instruments:", highlight=False)
         for inst in sorted(run.instruments, key=lambda i: i.role):
             console.print(f"  {inst.role:9} {inst.dialect:18} {inst.resource}  {inst.idn}", highlight=False)

@@ -16,11 +16,12 @@ import plotly.graph_objects as go
 import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
+from tonebench.analysis.assess import SweepAssessment
 from tonebench.analysis.fit import SweepResult
 from tonebench.errors import InputError
 
 _COLORS = {"fundamental": "#1f5fa8", "im3_lower": "#c0561b", "im3_upper": "#2a8a4a",
-           "noise": "#888888", "invalid": "#9a9a9a"}
+           "noise": "#888888", "invalid": "#9a9a9a", "flag": "#c00000"}
 _INVALID_NOTE = "outside the valid region (see the reason column)"
 
 _STYLE = """
@@ -54,6 +55,25 @@ class SweepPlotData:
     noise_dbm: np.ndarray
     valid_mask: np.ndarray
     result: SweepResult
+    # With an assessment, flagged points are drawn as diamonds outlined in red, their flags in
+    # the hover text.
+    assessment: SweepAssessment | None = None
+
+    def hover_notes(self) -> list[str]:
+        """Per point: 'valid' or why not, then each flag with its reason and IIP3 error."""
+        valid = np.asarray(self.valid_mask, dtype=bool)
+        notes = ["valid" if v else _INVALID_NOTE for v in valid]
+        if self.assessment is not None:
+            for i, flags in enumerate(self.assessment.point_flags):
+                for f in flags:
+                    err = "" if f.error_db is None else f" (IIP3 error up to {f.error_db:.2f} dB)"
+                    notes[i] += f"<br><b>{html.escape(f.label)}</b>: {html.escape(f.detail)}{err}"
+        return notes
+
+    def flagged_mask(self) -> np.ndarray:
+        if self.assessment is None:
+            return np.zeros(np.asarray(self.valid_mask).shape, bool)
+        return self.assessment.flagged_mask
 
 
 def format_freq(freq_hz: float, decimals: int | None = None) -> str:
@@ -72,16 +92,35 @@ def sweep_title(center_freq_hz: float, spacing_hz: float) -> str:
     return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}"
 
 
-def result_row(center_freq_hz: float, spacing_hz: float, result: SweepResult) -> dict[str, object]:
-    """The standard results-table row for one sweep; callers may add columns (bias, device)."""
-    return {
+def flag_text(flag) -> str:
+    """One flag for a table cell: 'label: detail (IIP3 error x dB)'."""
+    err = "" if flag.error_db is None else f" (IIP3 error up to {flag.error_db:.2f} dB)"
+    return f"{flag.label}: {flag.detail}{err}"
+
+
+def result_row(center_freq_hz: float, spacing_hz: float, result: SweepResult,
+               assessment: SweepAssessment | None = None) -> dict[str, object]:
+    """The standard results-table row for one sweep; callers may add columns (bias, device).
+
+    With an assessment the row also carries the IIP3 bound, the lower bound given when noise
+    refused the intercept, IIP2, the result's flags and the checks that could not be made.
+    """
+    row: dict[str, object] = {
         "center": format_freq(center_freq_hz, 3),
         "spacing": format_freq(spacing_hz),
         "gain (dB)": result.gain_db,
         "IIP3 lower (dBm)": result.iip3_lower_dbm,
         "IIP3 upper (dBm)": result.iip3_upper_dbm,
         "IIP3 (dBm)": result.iip3_dbm,
+    }
+    if assessment is not None:
+        a = assessment
+        row["+/- (dB)"] = a.iip3_bound_db
+        if a.iip3_at_least_dbm is not None:
+            row["IIP3 at least (dBm)"] = a.iip3_at_least_dbm
+    row.update({
         "OIP3 (dBm)": result.oip3_dbm,
+        "IIP3 free slopes (dBm)": result.iip3_free_dbm,
         "slope fundamental": result.slope_fundamental,
         "slope IM3 lower": result.slope_im3_lower,
         "slope IM3 upper": result.slope_im3_upper,
@@ -89,17 +128,32 @@ def result_row(center_freq_hz: float, spacing_hz: float, result: SweepResult) ->
         "P1dB out, per tone (dBm)": result.p1db_out_dbm,
         "valid points": f"{result.n_valid} of {result.n_points}",
         "reason": result.reason,
-    }
+    })
+    if assessment is not None:
+        second = assessment.second_order
+        if second is not None:
+            row["IIP2 (dBm)"] = second.iip2_dbm
+            row["IIP2 +/- (dB)"] = second.bound_db
+            row["slope IM2"] = second.slope_im2
+        row["flags"] = "; ".join(flag_text(f) for f in assessment.result_flags) or "none"
+        row["checks not made"] = "; ".join(assessment.notes) or None
+    return row
 
 
-def _measured_trace(name: str, color: str, x, y, valid) -> go.Scatter:
-    valid = np.asarray(valid, dtype=bool)
+def _measured_trace(name: str, color: str, x, y, sweep: SweepPlotData) -> go.Scatter:
+    valid = np.asarray(sweep.valid_mask, dtype=bool)
+    flagged = sweep.flagged_mask()
+    # Filled: in the fit; open: left out; diamond with a red outline: flagged (reason on hover).
+    symbol = np.where(flagged, "diamond", "circle")
+    symbol = np.where(valid, symbol, np.char.add(symbol, "-open"))
+    line_color = np.where(flagged, _COLORS["flag"], np.where(valid, color, _COLORS["invalid"]))
     return go.Scatter(
         x=np.asarray(x, dtype=float), y=np.asarray(y, dtype=float), name=name, mode="markers",
-        marker=dict(size=8, color=np.where(valid, color, _COLORS["invalid"]).tolist(),
-                    symbol=np.where(valid, "circle", "circle-open").tolist(),
-                    line=dict(width=1.5, color=np.where(valid, color, _COLORS["invalid"]).tolist())),
-        hovertext=np.where(valid, "valid", _INVALID_NOTE).tolist(),
+        marker=dict(size=np.where(flagged, 10, 8).tolist(),
+                    color=np.where(valid, color, _COLORS["invalid"]).tolist(),
+                    symbol=symbol.tolist(),
+                    line=dict(width=np.where(flagged, 2.0, 1.5).tolist(), color=line_color.tolist())),
+        hovertext=sweep.hover_notes(),
         hovertemplate="%{x:.2f} dBm in, %{y:.2f} dBm out<br>%{hovertext}<extra>" + name + "</extra>",
     )
 
@@ -115,11 +169,11 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
     r = sweep.result
     fig = go.Figure()
     fig.add_trace(_measured_trace("fundamental", _COLORS["fundamental"], sweep.pin_dbm,
-                                  sweep.pout_dbm, sweep.valid_mask))
+                                  sweep.pout_dbm, sweep))
     fig.add_trace(_measured_trace("IM3 lower", _COLORS["im3_lower"], sweep.pin_dbm,
-                                  sweep.im3_lower_dbm, sweep.valid_mask))
+                                  sweep.im3_lower_dbm, sweep))
     fig.add_trace(_measured_trace("IM3 upper", _COLORS["im3_upper"], sweep.pin_dbm,
-                                  sweep.im3_upper_dbm, sweep.valid_mask))
+                                  sweep.im3_upper_dbm, sweep))
     fig.add_trace(go.Scatter(x=np.asarray(sweep.pin_dbm, dtype=float),
                              y=np.asarray(sweep.noise_dbm, dtype=float), name="noise floor",
                              mode="markers", marker=dict(symbol="x-thin-open", size=8,
@@ -138,11 +192,13 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
         # Slope-3 lines start at the fitted region, not at products buried in the noise.
         valid = np.asarray(sweep.valid_mask, dtype=bool) & np.isfinite(pin)
         x0_fit = float(pin[valid].min()) if valid.any() else x0
+        bound_db = None if sweep.assessment is None else sweep.assessment.iip3_bound_db
         for label, color, iip3, oip3 in intercepts:
             fig.add_trace(_line(f"slope 3, {label}", color, x0_fit, iip3, 3.0, iip3, oip3))
             fig.add_trace(go.Scatter(
                 x=[iip3], y=[oip3], mode="markers+text", name=f"intercept {label}",
-                marker=dict(symbol="diamond", size=11, color=color),
+                marker=dict(symbol="star", size=12, color=color),
+                error_x=None if bound_db is None else dict(type="constant", value=bound_db, color=color),
                 text=[f"IIP3 {iip3:.2f} dBm / OIP3 {oip3:.2f} dBm ({label})"],
                 textposition="top left" if label == "lower" else "bottom right",
                 hoverinfo="text"))

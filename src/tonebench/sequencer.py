@@ -2,6 +2,12 @@
 
 The sequencer speaks in role operations (set a tone, read markers); it never formats SCPI and never
 fits anything. RF goes off on every way out of `run`.
+
+Leveling (when the bench has a power meter): at the start of each sweep (one centre, spacing and
+bias), each tone is leveled at the sweep's highest tone power, one source on at a time, and the
+correction is kept per source and frequency and applied to every point of the sweep (sources are
+taken to be linear in level over a sweep). That costs a few meter readings per sweep instead of
+per point; a later sweep at the same tone frequency reuses the correction.
 """
 
 from __future__ import annotations
@@ -11,6 +17,8 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 from tonebench.bench import OpenBench
+from tonebench.calibration.leveling import IMBALANCE_LIMIT_DB, Leveler, LevelResult
+from tonebench.calibration.referral import point_offsets, referred_values
 from tonebench.config.bench_file import BenchLimits
 from tonebench.config.plan_file import AnalyzerSettings
 from tonebench.instruments.analyzer import AnalyzerSetup
@@ -44,12 +52,17 @@ class Sequencer:
         limits: BenchLimits,
         analyzer_settings: AnalyzerSettings,
         recorder: RunRecorder,
+        leveler: Leveler | None = None,
     ):
         self.bench = bench
         self.offsets = offsets
         self.limits = limits
         self.analyzer_settings = analyzer_settings
         self.recorder = recorder
+        self.leveler = leveler
+        # (source index, freq_hz) -> leveling result, kept for the run
+        self._levels: dict[tuple[int, float], LevelResult] = {}
+        self._rf = [False, False]
         self.setup = AnalyzerSetup(
             span_hz=analyzer_settings.effective_span_hz,
             rbw_hz=analyzer_settings.rbw_hz,
@@ -61,32 +74,106 @@ class Sequencer:
     def run(self, points: list[PlannedPoint], on_progress: ProgressCallback | None = None) -> None:
         """Measure every point in order; RF is switched off however this returns or raises."""
         started_s = time.monotonic()
-        rf_is_on = False
+        rf_was_on = False
+        top_dbm = self._sweep_tops_dbm(points)
         try:
             self.bench.analyzer.prepare()
             self.bench.analyzer.apply(self.setup)
+            if self.leveler is not None:
+                self.bench.rf_off_all()  # known state: leveling switches the sources one at a time
             for done, point in enumerate(points):
+                if self.leveler is not None:
+                    self._level_sweep(point, top_dbm[self._sweep_key(point)])
                 self._set_tones(point)
-                if not rf_is_on:
-                    self.bench.rf_on()
-                    rf_is_on = True
-                    self.recorder.event("info", "rf-on", "RF on at both sources")
+                if not all(self._rf):
+                    self._set_rf(True, True)
+                    if not rf_was_on:
+                        rf_was_on = True
+                        self.recorder.event("info", "rf-on", "RF on at both sources")
                 readings = self._read(point)
                 self.recorder.add_point(self._row(point, readings, time.monotonic() - started_s))
                 if on_progress:
                     on_progress(done + 1, len(points))
         finally:
+            self._rf = [False, False]
             self.bench.rf_off_all()
-            if rf_is_on:
+            if rf_was_on:
                 self.recorder.event("info", "rf-off", "RF off at both sources")
 
+    @staticmethod
+    def _sweep_key(point: PlannedPoint) -> tuple:
+        return (point.center_hz, point.spacing_hz, point.bias_v)
+
+    def _sweep_tops_dbm(self, points: list[PlannedPoint]) -> dict[tuple, float]:
+        tops: dict[tuple, float] = {}
+        for point in points:
+            key = self._sweep_key(point)
+            tops[key] = max(tops.get(key, point.tone_dbm), point.tone_dbm)
+        return tops
+
+    def _set_rf(self, on1: bool, on2: bool) -> None:
+        """Switch each source only if its state changes (off first, so two tones never meet the meter)."""
+        wanted = [on1, on2]
+        for index in sorted((0, 1), key=lambda i: wanted[i]):
+            if self._rf[index] != wanted[index]:
+                source = self.bench.sources()[index]
+                source.rf_on() if wanted[index] else source.rf_off()
+                self._rf[index] = wanted[index]
+
+    def _level_sweep(self, point: PlannedPoint, reference_dbm: float) -> None:
+        """Level both tones of this point's sweep at reference_dbm, unless already done for their frequencies."""
+        tones = ((1, point.f1_hz, "in1"), (2, point.f2_hz, "in2"))
+        if all((index, freq_hz) in self._levels for index, freq_hz, _ in tones):
+            return
+        for index, freq_hz, path in tones:
+            if (index, freq_hz) in self._levels:
+                continue
+            source = self.bench.sources()[index - 1]
+            open_loop_dbm = reference_dbm + self.offsets[path].loss_db(freq_hz)
+            check_source_power(self.bench.source_ranges[index - 1], open_loop_dbm, point.key)
+            source.set_tone(freq_hz, open_loop_dbm)
+            self._set_rf(index == 1, index == 2)  # a broadband meter must see one tone only
+            result = self.leveler.level(source, self.bench.source_ranges[index - 1], freq_hz, reference_dbm,
+                                        open_loop_dbm)
+            self._levels[(index, freq_hz)] = result
+            if not result.converged:
+                self.recorder.event(
+                    "warning", "leveling",
+                    f"source{index} at {freq_hz:.6g} Hz: {result.error_db:+.3f} dB from its target after "
+                    f"{result.readings} readings (tolerance {self.leveler.tolerance_db:g} dB)",
+                    {"source": index, "freq_hz": freq_hz, "error_db": result.error_db,
+                     "correction_db": result.correction_db},
+                )
+        self._set_rf(False, False)
+        first, second = (self._levels[(index, freq_hz)] for index, freq_hz, _ in tones)
+        imbalance_db = first.error_db - second.error_db
+        if abs(imbalance_db) > IMBALANCE_LIMIT_DB:
+            self.recorder.event(
+                "warning", "tone-imbalance",
+                f"sweep {point.center_hz:.6g} Hz / {point.spacing_hz:.6g} Hz: tones differ by {imbalance_db:+.2f} dB "
+                f"at the DUT input plane (limit {IMBALANCE_LIMIT_DB} dB)",
+                {"center_hz": point.center_hz, "spacing_hz": point.spacing_hz, "imbalance_db": imbalance_db},
+            )
+
+    def _correction(self, index: int, freq_hz: float) -> LevelResult | None:
+        return self._levels.get((index, freq_hz)) if self.leveler is not None else None
+
     def _set_tones(self, point: PlannedPoint) -> None:
-        levels = predict_levels(point, self.offsets, self.limits)
+        settings_dbm = self._source_settings_dbm(point)
         # Checked again here, right before each command, not only in the pre-flight check.
-        check_source_power(self.bench.source_ranges[0], levels.source1_dbm, point.key)
-        check_source_power(self.bench.source_ranges[1], levels.source2_dbm, point.key)
-        self.bench.source1.set_tone(point.f1_hz, levels.source1_dbm)
-        self.bench.source2.set_tone(point.f2_hz, levels.source2_dbm)
+        check_source_power(self.bench.source_ranges[0], settings_dbm[0], point.key)
+        check_source_power(self.bench.source_ranges[1], settings_dbm[1], point.key)
+        self.bench.source1.set_tone(point.f1_hz, settings_dbm[0])
+        self.bench.source2.set_tone(point.f2_hz, settings_dbm[1])
+
+    def _source_settings_dbm(self, point: PlannedPoint) -> tuple[float, float]:
+        levels = predict_levels(point, self.offsets, self.limits)
+        settings = [levels.source1_dbm, levels.source2_dbm]
+        for index, freq_hz in ((1, point.f1_hz), (2, point.f2_hz)):
+            level = self._correction(index, freq_hz)
+            if level is not None:
+                settings[index - 1] += level.correction_db
+        return settings[0], settings[1]
 
     def _read(self, point: PlannedPoint) -> Readings:
         analyzer = self.bench.analyzer
@@ -110,16 +197,11 @@ class Sequencer:
         )
 
     def _row(self, point: PlannedPoint, readings: Readings, elapsed_s: float) -> dict:
-        loss = {
-            "in1": self.offsets["in1"].loss_db(point.f1_hz),
-            "in2": self.offsets["in2"].loss_db(point.f2_hz),
-            "f1": self.offsets["out"].loss_db(point.f1_hz),
-            "f2": self.offsets["out"].loss_db(point.f2_hz),
-            "lower": self.offsets["out"].loss_db(point.lower_hz),
-            "upper": self.offsets["out"].loss_db(point.upper_hz),
-        }
+        offsets = point_offsets(self.offsets, point.f1_hz, point.f2_hz)
+        source1_dbm, source2_dbm = self._source_settings_dbm(point)
+        level1, level2 = self._correction(1, point.f1_hz), self._correction(2, point.f2_hz)
         setup = self.setup
-        return dict(
+        row = dict(
             point_key=point.key,
             seq=point.seq,
             status="measured",
@@ -130,14 +212,15 @@ class Sequencer:
             f2_hz=point.f2_hz,
             tone_dbm=point.tone_dbm,
             bias_v=point.bias_v,
-            source1_dbm=point.tone_dbm + loss["in1"],
-            source2_dbm=point.tone_dbm + loss["in2"],
-            in1_loss_db=loss["in1"],
-            in2_loss_db=loss["in2"],
-            out_loss_f1_db=loss["f1"],
-            out_loss_f2_db=loss["f2"],
-            out_loss_lower_db=loss["lower"],
-            out_loss_upper_db=loss["upper"],
+            source1_dbm=source1_dbm,
+            source2_dbm=source2_dbm,
+            source1_correction_db=None if level1 is None else level1.correction_db,
+            source2_correction_db=None if level2 is None else level2.correction_db,
+            # A leveled tone is at its target plus the error the meter last saw; an open-loop one
+            # is worked out from the input loss (referred_values).
+            pin1_dbm=None if level1 is None else point.tone_dbm + level1.error_db,
+            pin2_dbm=None if level2 is None else point.tone_dbm + level2.error_db,
+            **{column: value for column, value in offsets.items() if value is not None},
             raw_f1_dbm=readings.f1_dbm,
             raw_f2_dbm=readings.f2_dbm,
             raw_lower_dbm=readings.lower_dbm,
@@ -151,14 +234,7 @@ class Sequencer:
             ref_level_dbm=setup.ref_level_dbm,
             overload=readings.overload,
             sweep_time_s=readings.sweep_time_s,
-            # DUT-referred: the tones were set to their target at the input plane through the
-            # input losses; the analyzer readings get the output loss added back.
-            pin1_dbm=point.tone_dbm,
-            pin2_dbm=point.tone_dbm,
-            pout_f1_dbm=readings.f1_dbm + loss["f1"],
-            pout_f2_dbm=readings.f2_dbm + loss["f2"],
-            im3_lower_dbm=readings.lower_dbm + loss["lower"],
-            im3_upper_dbm=readings.upper_dbm + loss["upper"],
-            noise_lower_dbm=readings.noise_lower_dbm + loss["lower"],
-            noise_upper_dbm=readings.noise_upper_dbm + loss["upper"],
         )
+        # DUT-referred: inputs at the input plane, analyzer readings plus the output loss.
+        row.update(referred_values(row, offsets))
+        return row

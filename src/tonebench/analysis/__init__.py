@@ -1,18 +1,41 @@
 """Analysis: pure functions over numpy arrays (no database, no instruments).
 
 intercepts: per-point gain and third-order intercepts; fit: one sweep's valid region and fits;
-compression: the 1 dB compression point.
+compression: the 1 dB compression point; phasor: coherent-sum error bounds; attenuation: the
+analyzer's own IM3 and noise versus attenuation, and the optimum; flags: the flag vocabulary and
+the attenuation-step judgement; uncertainty: the intercept bound; second_order: IIP2;
+assess: one sweep from readings to flags, fits and bound.
 """
 
+from tonebench.analysis.assess import AnalysisSettings, SweepAssessment, SweepData, assess_sweep
+from tonebench.analysis.attenuation import AttenChoice, analyzer_im3_dbm, optimum_atten_db
 from tonebench.analysis.compression import p1db
 from tonebench.analysis.fit import SweepResult, fit_sweep, noise_corrected_dbm
+from tonebench.analysis.flags import Flag, judge_step
 from tonebench.analysis.intercepts import PointIntercepts, point_intercepts
+from tonebench.analysis.phasor import intercept_error_db, phasor_bounds_db, reading_error_bounds_db
+from tonebench.analysis.second_order import SecondOrderResult, fit_second_order, point_iip2_dbm
 
 __all__ = [
+    "AnalysisSettings",
+    "AttenChoice",
+    "Flag",
     "PointIntercepts",
+    "SecondOrderResult",
+    "SweepAssessment",
+    "SweepData",
     "SweepResult",
+    "analyzer_im3_dbm",
+    "assess_sweep",
+    "fit_second_order",
     "fit_sweep",
+    "intercept_error_db",
+    "judge_step",
     "noise_corrected_dbm",
+    "optimum_atten_db",
     "p1db",
+    "phasor_bounds_db",
+    "point_iip2_dbm",
     "point_intercepts",
+    "reading_error_bounds_db",
 ]

@@ -49,6 +49,12 @@ class SweepResult:
     valid_tone_min_dbm: float | None
     valid_tone_max_dbm: float | None
     reason: str | None
+    # Free-slope fits: where the free fundamental line meets the free IM3 line (mean of lower
+    # and upper), None without two distinct input powers or when the lines do not converge.
+    iip3_free_dbm: float | None = None
+    # Per point: gain (dB) and the mean of the lower and upper intercepts (dBm), every point.
+    point_gain_db: np.ndarray | None = None
+    point_iip3_dbm: np.ndarray | None = None
 
 
 def noise_corrected_dbm(reading_dbm, noise_dbm) -> tuple[np.ndarray, np.ndarray]:
@@ -84,7 +90,7 @@ def small_signal_gain_db(tone_dbm, gain_db, usable) -> float | None:
 
 def fit_sweep(
     tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm, im3_upper_dbm,
-    noise_lower_dbm, noise_upper_dbm, overload,
+    noise_lower_dbm, noise_upper_dbm, overload, exclude: dict[str, np.ndarray] | None = None,
 ) -> SweepResult:
     """Fit one sweep (1-D arrays, one value per point; overload is a bool array).
 
@@ -95,6 +101,9 @@ def fit_sweep(
     means of per-point terms, IIP3 = mean((2P1+P2 - Pim3_i + G_i)/2) = the mean of the per-point
     intercepts; OIP3 = IIP3 + b1 = the mean of the per-point OIP3. Lower and upper are fitted
     separately; the reported mean intercept is (lower + upper)/2 in dB.
+
+    exclude maps a reason (e.g. "analyzer-made") to a bool array of further points to leave out of
+    the valid region; they are counted under that reason when the fit is refused.
     """
     names = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
              "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm")
@@ -129,7 +138,13 @@ def fit_sweep(
         compressed = pts.gain_db < gss - GAIN_TOLERANCE_DB
         expanded = pts.gain_db > gss + GAIN_TOLERANCE_DB
         gain_ok = np.abs(pts.gain_db - gss) <= GAIN_TOLERANCE_DB
-    valid = finite & ~noisy & gain_ok & ~over
+    excluded = np.zeros(n_points, bool)
+    for label, mask in (exclude or {}).items():
+        mask = np.asarray(mask, dtype=bool)
+        if mask.shape != (n_points,):
+            raise InputError(f"fit_sweep: exclude[{label!r}] has shape {mask.shape}; needs ({n_points},)")
+        excluded |= mask
+    valid = finite & ~noisy & gain_ok & ~over & ~excluded
     n_valid = int(valid.sum())
 
     p1db_in = p1db_out = None
@@ -138,6 +153,7 @@ def fit_sweep(
 
     valid_tone = a["tone_dbm"][valid]
     common = dict(n_points=n_points, n_valid=n_valid, valid_mask=valid, gain_db=gss,
+                  point_gain_db=pts.gain_db, point_iip3_dbm=(pts.iip3_lower_dbm + pts.iip3_upper_dbm) / 2.0,
                   p1db_in_dbm=p1db_in, p1db_out_dbm=p1db_out,
                   valid_tone_min_dbm=float(valid_tone.min()) if n_valid else None,
                   valid_tone_max_dbm=float(valid_tone.max()) if n_valid else None)
@@ -149,6 +165,7 @@ def fit_sweep(
             "compressed": compressed,
             "expanded": expanded,
             "overloaded": over,
+            **{label: np.asarray(mask, dtype=bool) for label, mask in (exclude or {}).items()},
         }
         parts = [f"{int(m.sum())} {label}" for label, m in causes.items() if m.any()]
         reason = (f"only {n_valid} of {n_points} points {'meets' if n_valid == 1 else 'meet'} "
@@ -169,8 +186,20 @@ def fit_sweep(
     x = pin_mean[valid]
     spread = np.ptp(x) > 0  # a slope needs at least two distinct input powers
 
+    def line(y) -> tuple[float, float] | None:
+        return tuple(float(c) for c in np.polyfit(x, y[valid], 1)) if spread else None
+
     def slope(y) -> float | None:
-        return float(np.polyfit(x, y[valid], 1)[0]) if spread else None
+        fitted = line(y)
+        return None if fitted is None else fitted[0]
+
+    # Free slopes: the fundamental s1 x + c1 meets each IM3 line s3 x + c3 at x = (c1 - c3)/(s3 - s1).
+    free = []
+    fundamental = line(pout_mean)
+    for im3 in (im3_lower, im3_upper):
+        third = line(im3)
+        if fundamental is not None and third is not None and third[0] - fundamental[0] > 0:
+            free.append((fundamental[1] - third[1]) / (third[0] - fundamental[0]))
 
     return SweepResult(
         iip3_lower_dbm=iip3_lower,
@@ -182,6 +211,7 @@ def fit_sweep(
         slope_fundamental=slope(pout_mean),
         slope_im3_lower=slope(im3_lower),
         slope_im3_upper=slope(im3_upper),
+        iip3_free_dbm=float(np.mean(free)) if len(free) == 2 else None,
         reason=None,
         **common,
     )

@@ -3,8 +3,355 @@ export and import."""
 
 from __future__ import annotations
 
+import csv
+import datetime as dt
+import json
+import sys
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Annotated, Iterator
+
 import typer
+from rich import box
+from rich.table import Table
+
+from tonebench.cli.common import DbOption, default_db, one_line_errors, out
+from tonebench.errors import InputError
+
+device_app = typer.Typer(help="The device registry: part number, serial, lot, wafer, position, tags.", no_args_is_help=True)
+limit_app = typer.Typer(help="Spec limits per part number; they give each result a pass/fail verdict.", no_args_is_help=True)
+
+
+@contextmanager
+def _session(db: str | None, write: bool = False) -> Iterator:
+    from tonebench.store.database import open_database, session_factory
+
+    engine = open_database(db or default_db())
+    try:
+        sessions = session_factory(engine)
+        with (sessions.begin() if write else sessions()) as session:
+            yield session
+    finally:
+        engine.dispose()
+
+
+def _when(text: str | None, option: str) -> dt.datetime | None:
+    """A date or ISO time; without a zone it is UTC."""
+    if text is None:
+        return None
+    try:
+        value = dt.datetime.fromisoformat(text)
+    except ValueError:
+        raise InputError(f"{option} '{text}': not a date or time; give e.g. 2026-03-01 or 2026-03-01T14:30") from None
+    return value if value.tzinfo else value.replace(tzinfo=dt.timezone.utc)
+
+
+# --- shared filter options ----------------------------------------------------------------------
+Parts = Annotated[list[str] | None, typer.Option("--part", help="Part number (repeat for any of several).")]
+Lots = Annotated[list[str] | None, typer.Option("--lot", help="Lot (repeatable).")]
+Wafers = Annotated[list[str] | None, typer.Option("--wafer", help="Wafer (repeatable).")]
+Serials = Annotated[list[str] | None, typer.Option("--serial", help="Serial number (repeatable).")]
+Tags = Annotated[list[str] | None, typer.Option("--tag", help="Device tag (repeatable: devices with any of them).")]
+FreqMin = Annotated[float | None, typer.Option("--freq-min-hz", help="Lowest center frequency (Hz).")]
+FreqMax = Annotated[float | None, typer.Option("--freq-max-hz", help="Highest center frequency (Hz).")]
+SpacingMin = Annotated[float | None, typer.Option("--spacing-min-hz", help="Smallest tone spacing (Hz).")]
+SpacingMax = Annotated[float | None, typer.Option("--spacing-max-hz", help="Largest tone spacing (Hz).")]
+BiasMin = Annotated[float | None, typer.Option("--bias-min-v", help="Lowest bias (V); results without bias drop out.")]
+BiasMax = Annotated[float | None, typer.Option("--bias-max-v", help="Highest bias (V).")]
+Since = Annotated[str | None, typer.Option("--since", help="Runs started at or after this date/time (UTC unless given).")]
+Until = Annotated[str | None, typer.Option("--until", help="Runs started before this date/time (UTC unless given).")]
+Flags = Annotated[list[str] | None, typer.Option("--flag", help="Results with this flag on the result or one of its points (repeatable).")]
+Flagged = Annotated[bool | None, typer.Option("--flagged/--unflagged", help="Only results with some flag, or only those with none.")]
+Verdicts = Annotated[list[str] | None, typer.Option("--verdict", help="pass, fail or no-limit (repeatable).")]
+Limit = Annotated[int | None, typer.Option("--limit", min=1, help="At most this many results.")]
+
+
+def _filter(part, lot, wafer, serial, tag, freq_min_hz, freq_max_hz, spacing_min_hz, spacing_max_hz,
+            bias_min_v, bias_max_v, since, until, flag, flagged, verdict):
+    from tonebench.catalog.query import ResultFilter
+
+    return ResultFilter(
+        parts=tuple(part or ()), lots=tuple(lot or ()), wafers=tuple(wafer or ()), serials=tuple(serial or ()),
+        tags=tuple(tag or ()), freq_min_hz=freq_min_hz, freq_max_hz=freq_max_hz, spacing_min_hz=spacing_min_hz,
+        spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v,
+        since=_when(since, "--since"), until=_when(until, "--until"), flags=tuple(flag or ()), flagged=flagged,
+        verdicts=tuple(verdict or ()),
+    ).check()
+
+
+def _export_value(value):
+    if isinstance(value, dt.datetime):
+        return value.isoformat()
+    if isinstance(value, tuple):
+        return list(value)
+    return value
+
+
+def _print_rows(rows, as_csv: bool, as_json: bool, out_path: Path | None) -> None:
+    from tonebench.catalog.query import EXPORT_FIELDS
+
+    if not (as_csv or as_json):
+        _print_table(rows)
+        return
+    stream = open(out_path, "w", newline="", encoding="utf-8") if out_path else sys.stdout
+    try:
+        if as_json:
+            json.dump([{name: _export_value(getattr(r, name)) for name in EXPORT_FIELDS} for r in rows], stream, indent=1)
+            stream.write("\n")
+        else:
+            writer = csv.writer(stream)
+            writer.writerow(EXPORT_FIELDS)
+            for r in rows:
+                values = [_export_value(getattr(r, name)) for name in EXPORT_FIELDS]
+                writer.writerow([";".join(v) if isinstance(v, list) else "" if v is None else v for v in values])
+    finally:
+        if out_path:
+            stream.close()
+
+
+def _f(value, spec: str = "+.2f") -> str:
+    return "-" if value is None else format(value, spec)
+
+
+def _print_table(rows) -> None:
+    # Bias and flag columns only when some row has one: the table must fit a terminal.
+    columns = ["Part", "Serial", "Lot", "Wafer", "Run", "GHz", "MHz apart", "Bias V", "Gain", "IIP3", "OIP3",
+               "Verdict", "Flags"]
+    if not any(r.bias_v is not None for r in rows):
+        columns.remove("Bias V")
+    if not any(r.flags for r in rows):
+        columns.remove("Flags")
+    table = Table(title=f"{len(rows)} results (dB, dBm)", box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False,
+                  collapse_padding=True)
+    for column in columns:
+        table.add_column(column, no_wrap=column != "Flags")
+    for r in rows:
+        cells = {"Part": r.part_number, "Serial": r.serial, "Lot": r.lot or "-", "Wafer": r.wafer or "-",
+                 "Run": r.run_guid[:8], "GHz": f"{r.center_hz / 1e9:.4f}", "MHz apart": f"{r.spacing_hz / 1e6:g}",
+                 "Bias V": _f(r.bias_v, "g"), "Gain": _f(r.gain_db, ".2f"), "IIP3": _f(r.iip3_dbm),
+                 "OIP3": _f(r.oip3_dbm), "Verdict": r.verdict or "-", "Flags": ", ".join(r.flags)}
+        table.add_row(*(cells[c] for c in columns))
+    out.print(table)
 
 
 def register_catalog_commands(app: typer.Typer) -> None:
     """Add the device, limit, query, compare, export and import commands to the main app."""
+    app.add_typer(device_app, name="device")
+    app.add_typer(limit_app, name="limit")
+    app.command("find")(find)
+    app.command("compare")(compare)
+    app.command("export")(export)
+    app.command("import")(import_file)
+
+
+# --- devices ------------------------------------------------------------------------------------
+
+@device_app.command("add")
+def device_add(
+    part: Annotated[str, typer.Argument(help="Part number.")],
+    serial: Annotated[str, typer.Argument(help="Serial number.")],
+    lot: Annotated[str | None, typer.Option(help="Lot.")] = None,
+    wafer: Annotated[str | None, typer.Option(help="Wafer.")] = None,
+    position: Annotated[str | None, typer.Option(help="Position on the wafer or in the tray.")] = None,
+    tag: Annotated[list[str] | None, typer.Option("--tag", help="Tag (repeatable).")] = None,
+    notes: Annotated[str | None, typer.Option(help="Free-form notes.")] = None,
+    db: DbOption = None,
+) -> None:
+    """Register a device before measuring it."""
+    from tonebench.catalog.devices import add_device
+
+    with one_line_errors(), _session(db, write=True) as session:
+        device = add_device(session, part, serial, lot=lot, wafer=wafer, position=position, tags=tag or (), notes=notes)
+        out.print(f"device {device.part_number} serial {device.serial} registered", highlight=False)
+
+
+@device_app.command("list")
+def device_list(
+    part: Annotated[str | None, typer.Option("--part", help="Only this part number.")] = None,
+    lot: Annotated[str | None, typer.Option("--lot", help="Only this lot.")] = None,
+    wafer: Annotated[str | None, typer.Option("--wafer", help="Only this wafer.")] = None,
+    tag: Annotated[str | None, typer.Option("--tag", help="Only devices with this tag.")] = None,
+    limit: Annotated[int, typer.Option("--limit", min=1, help="At most this many devices.")] = 200,
+    db: DbOption = None,
+) -> None:
+    """List registered devices with their number of runs."""
+    from tonebench.catalog.devices import list_devices
+
+    with one_line_errors(), _session(db) as session:
+        table = Table(title="Devices", box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False)
+        for column in ("Part", "Serial", "Lot", "Wafer", "Position", "Tags", "Runs"):
+            table.add_column(column)
+        for item in list_devices(session, part_number=part, lot=lot, wafer=wafer, tag=tag, limit=limit):
+            d = item.device
+            table.add_row(d.part_number, d.serial, d.lot or "-", d.wafer or "-", d.position or "-",
+                          ", ".join(d.tags or ()), str(item.n_runs))
+        out.print(table)
+
+
+@device_app.command("show")
+def device_show(
+    part: Annotated[str, typer.Argument(help="Part number.")],
+    serial: Annotated[str, typer.Argument(help="Serial number.")],
+    db: DbOption = None,
+) -> None:
+    """Show one device: registry fields and its runs."""
+    from tonebench.catalog.devices import device_runs, get_device
+
+    with one_line_errors(), _session(db) as session:
+        d = get_device(session, part, serial)
+        for label, value in (("device", f"{d.part_number} serial {d.serial}"), ("lot", d.lot), ("wafer", d.wafer),
+                             ("position", d.position), ("tags", ", ".join(d.tags or ())), ("notes", d.notes)):
+            out.print(f"{label + ':':10} {value or '-'}", highlight=False)
+        out.print("runs (UTC):", highlight=False)
+        for run in device_runs(session, d):
+            out.print(f"  {run.guid}  {run.started_at:%Y-%m-%d %H:%M}  {run.status:9} {run.bench.name}", highlight=False)
+
+
+# --- limits -------------------------------------------------------------------------------------
+
+@limit_app.command("add")
+def limit_add(
+    part: Annotated[str, typer.Argument(help="Part number the limit is for.")],
+    parameter: Annotated[str, typer.Argument(help="iip3_dbm, oip3_dbm, gain_db, p1db_in_dbm or iip2_dbm.")],
+    freq_min_hz: Annotated[float, typer.Option("--freq-min-hz", help="Lowest center frequency it covers (Hz).")],
+    freq_max_hz: Annotated[float, typer.Option("--freq-max-hz", help="Highest center frequency it covers (Hz).")],
+    min_value: Annotated[float | None, typer.Option("--min", help="Lowest allowed value (dBm or dB).")] = None,
+    max_value: Annotated[float | None, typer.Option("--max", help="Highest allowed value (dBm or dB).")] = None,
+    spacing_min_hz: Annotated[float | None, typer.Option("--spacing-min-hz", help="Only from this tone spacing (Hz).")] = None,
+    spacing_max_hz: Annotated[float | None, typer.Option("--spacing-max-hz", help="Only up to this tone spacing (Hz).")] = None,
+    bias_min_v: Annotated[float | None, typer.Option("--bias-min-v", help="Only from this bias (V).")] = None,
+    bias_max_v: Annotated[float | None, typer.Option("--bias-max-v", help="Only up to this bias (V).")] = None,
+    notes: Annotated[str | None, typer.Option(help="Where the limit comes from.")] = None,
+    db: DbOption = None,
+) -> None:
+    """Add a spec limit and judge every stored result again."""
+    from tonebench.catalog.limits import add_limit, apply_verdicts
+
+    with one_line_errors(), _session(db, write=True) as session:
+        limit = add_limit(session, part, parameter, freq_min_hz=freq_min_hz, freq_max_hz=freq_max_hz,
+                          min_value=min_value, max_value=max_value, spacing_min_hz=spacing_min_hz,
+                          spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v, notes=notes)
+        counts = apply_verdicts(session)
+        out.print(f"limit {limit.id} added; verdicts now: " + (", ".join(f"{k} {v}" for k, v in sorted(counts.items())) or "no results"),
+                  highlight=False)
+
+
+@limit_app.command("list")
+def limit_list(
+    part: Annotated[str | None, typer.Option("--part", help="Only this part number.")] = None,
+    db: DbOption = None,
+) -> None:
+    """List spec limits."""
+    from tonebench.catalog.limits import list_limits
+
+    with one_line_errors(), _session(db) as session:
+        table = Table(title="Spec limits", box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False)
+        for column in ("Id", "Part", "Parameter", "Min", "Max", "GHz", "Spacing MHz", "Bias V", "Notes"):
+            table.add_column(column)
+
+        def span(low, high, scale=1.0):
+            return "any" if low is None and high is None else f"{_f(low and low / scale, 'g')}..{_f(high and high / scale, 'g')}"
+
+        for l in list_limits(session, part):
+            table.add_row(str(l.id), l.part_number, l.parameter, _f(l.min_value), _f(l.max_value),
+                          span(l.freq_min_hz, l.freq_max_hz, 1e9), span(l.spacing_min_hz, l.spacing_max_hz, 1e6),
+                          span(l.bias_min_v, l.bias_max_v), l.notes or "")
+        out.print(table)
+
+
+@limit_app.command("remove")
+def limit_remove(
+    limit_id: Annotated[int, typer.Argument(metavar="ID", help="Limit id (see `limit list`).")],
+    db: DbOption = None,
+) -> None:
+    """Remove a spec limit and judge every stored result again."""
+    from tonebench.catalog.limits import apply_verdicts, remove_limit
+
+    with one_line_errors(), _session(db, write=True) as session:
+        remove_limit(session, limit_id)
+        apply_verdicts(session)
+        out.print(f"limit {limit_id} removed", highlight=False)
+
+
+# --- queries and reports ------------------------------------------------------------------------
+
+def find(
+    part: Parts = None, lot: Lots = None, wafer: Wafers = None, serial: Serials = None, tag: Tags = None,
+    freq_min_hz: FreqMin = None, freq_max_hz: FreqMax = None, spacing_min_hz: SpacingMin = None,
+    spacing_max_hz: SpacingMax = None, bias_min_v: BiasMin = None, bias_max_v: BiasMax = None,
+    since: Since = None, until: Until = None, flag: Flags = None, flagged: Flagged = None,
+    verdict: Verdicts = None, limit: Limit = None,
+    as_csv: Annotated[bool, typer.Option("--csv", help="CSV instead of a table.")] = False,
+    as_json: Annotated[bool, typer.Option("--json", help="JSON instead of a table.")] = False,
+    out_path: Annotated[Path | None, typer.Option("--out", help="Write CSV/JSON to this file instead of the terminal.")] = None,
+    db: DbOption = None,
+) -> None:
+    """Find results by device, frequency, spacing, bias, date, flags and verdict."""
+    from tonebench.catalog.query import find_results
+
+    with one_line_errors():
+        if as_csv and as_json:
+            raise InputError("find: give --csv or --json, not both")
+        if out_path and not (as_csv or as_json):
+            raise InputError("find --out: give --csv or --json to say what to write")
+        flt = _filter(part, lot, wafer, serial, tag, freq_min_hz, freq_max_hz, spacing_min_hz, spacing_max_hz,
+                      bias_min_v, bias_max_v, since, until, flag, flagged, verdict)
+        with _session(db) as session:
+            rows = find_results(session, flt, limit)
+        _print_rows(rows, as_csv, as_json, out_path)
+
+
+def compare(
+    part: Parts = None, lot: Lots = None, wafer: Wafers = None, serial: Serials = None, tag: Tags = None,
+    freq_min_hz: FreqMin = None, freq_max_hz: FreqMax = None, spacing_min_hz: SpacingMin = None,
+    spacing_max_hz: SpacingMax = None, bias_min_v: BiasMin = None, bias_max_v: BiasMax = None,
+    since: Since = None, until: Until = None, flag: Flags = None, flagged: Flagged = None,
+    verdict: Verdicts = None, limit: Limit = None,
+    out_path: Annotated[Path, typer.Option("--out", help="HTML file to write.")] = Path("tonebench-compare.html"),
+    db: DbOption = None,
+) -> None:
+    """Write a comparison report (self-contained HTML) of the results a query finds."""
+    from tonebench.catalog.compare_report import write_compare_report
+
+    with one_line_errors():
+        flt = _filter(part, lot, wafer, serial, tag, freq_min_hz, freq_max_hz, spacing_min_hz, spacing_max_hz,
+                      bias_min_v, bias_max_v, since, until, flag, flagged, verdict)
+        with _session(db) as session:
+            written, count = write_compare_report(session, flt, out_path, limit)
+        out.print(f"compare report: {written} ({count} results)", highlight=False)
+
+
+# --- moving runs between databases -------------------------------------------------------------
+
+def export(
+    out_path: Annotated[Path, typer.Argument(metavar="FILE", help="Transfer file to write (gzip JSON lines).")],
+    run: Annotated[list[str] | None, typer.Option("--run", help="Run GUID or unique prefix (repeatable; default all runs).")] = None,
+    since: Since = None,
+    db: DbOption = None,
+) -> None:
+    """Export runs with their points, results, flags, calibration and events to a portable file."""
+    from tonebench.catalog.transfer import export_runs
+
+    with one_line_errors(), _session(db) as session:
+        summary = export_runs(session, out_path, run, _when(since, "--since"))
+        out.print(f"exported {summary.runs} runs, {summary.points} points to {summary.path} "
+                  f"(sha256 {summary.sha256[:16]})", highlight=False)
+
+
+def import_file(
+    in_path: Annotated[Path, typer.Argument(metavar="FILE", help="Transfer file written by `tonebench export`.")],
+    db: DbOption = None,
+) -> None:
+    """Import runs from a transfer file; runs already present (same GUID) are left as they are."""
+    from tonebench.catalog.transfer import import_runs
+    from tonebench.store.database import open_database, session_factory
+
+    with one_line_errors():
+        engine = open_database(db or default_db())
+        try:
+            summary = import_runs(session_factory(engine), in_path)
+        finally:
+            engine.dispose()
+        shared = ", ".join(f"{v} {k.replace('_', ' ')}s" for k, v in sorted(summary.added.items()))
+        out.print(f"imported {summary.runs_added} runs ({summary.points_added} points); "
+                  f"{summary.runs_present} already present" + (f"; added {shared}" if shared else ""), highlight=False)

@@ -32,6 +32,11 @@ db_app = typer.Typer(help="Database housekeeping.", no_args_is_help=True)
 app.add_typer(sim_app, name="sim")
 app.add_typer(db_app, name="db")
 app.add_typer(cal_app, name="cal")
+
+CalOption = Annotated[
+    str | None,
+    typer.Option("--cal", help="Calibration set to use (see `tonebench cal list`); default: the bench file's [bench] calibration, else its [offsets]."),
+]
 register_queue_commands(app)
 register_catalog_commands(app)
 
@@ -48,7 +53,12 @@ def _progress() -> Progress:
     )
 
 
-def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None):
+def _warn(message: str) -> None:
+    err.print(f"warning: {message}", markup=False, highlight=False)
+
+
+def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None,
+                       cal_name: str | None = None):
     from tonebench.runner import execute_run
 
     # Started at the first measured point, so a refused plan prints its error line and nothing else.
@@ -62,7 +72,7 @@ def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None
         progress.update(task, completed=done, total=total)
 
     try:
-        return execute_run(plan, bench, db_url, report, advance, on_sim_started)
+        return execute_run(plan, bench, db_url, report, advance, on_sim_started, cal_name=cal_name, on_warning=_warn)
     finally:
         progress.stop()
 
@@ -80,13 +90,16 @@ def run(
     bench: Annotated[Path, typer.Option("--bench", "-b", help="Bench file (TOML): instruments, dialects, path losses, limits.")],
     db: DbOption = None,
     report: Annotated[Path | None, typer.Option(help="Write the HTML report here (default: report-<run>.html beside the database).")] = None,
+    cal: CalOption = None,
 ) -> None:
     """Measure a plan on a bench, store every point, fit intercepts and write a report."""
     with one_line_errors():
         db_url = db or default_db()
-        outcome = _run_with_progress(plan, bench, db_url, report)
+        outcome = _run_with_progress(plan, bench, db_url, report, cal_name=cal)
         out.print(f"run {outcome.guid}: {outcome.status}")
         out.print(f"database: {outcome.db_url}")
+        if outcome.calibration:
+            out.print(f"calibration: {outcome.calibration}", highlight=False)
         out.print(f"report:   {outcome.report_path}")
         _print_results(outcome.results)
 
@@ -135,13 +148,16 @@ def show(
 def analyze(
     run_id: Annotated[str, typer.Argument(metavar="RUN", help="Run GUID or a unique prefix of it.")],
     db: DbOption = None,
+    cal: Annotated[str | None, typer.Option("--cal", help="Re-refer the stored raw readings to this calibration set (no measuring).")] = None,
 ) -> None:
     """Fit intercepts again from the stored points of a run and store the results."""
     from tonebench.review import analyze_run
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        results = analyze_run(session_factory(open_database(db or default_db())), run_id)
+        results = analyze_run(session_factory(open_database(db or default_db())), run_id, cal)
+        if cal:
+            out.print(f"results referred to calibration set {cal}", highlight=False)
         _print_results(results)
 
 

@@ -2,8 +2,100 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+from typing import Annotated
+
 import typer
+from rich import box
+from rich.table import Table
+
+from tonebench.cli.common import DbOption, default_db, err, one_line_errors, out
+
+
+def _sessions(db: str | None):
+    from tonebench.store.database import open_database, session_factory
+
+    return session_factory(open_database(db or default_db()))
 
 
 def register_queue_commands(app: typer.Typer) -> None:
     """Add the queue and worker commands to the main app."""
+    queue_app = typer.Typer(help="Plans waiting for a bench: add, list, cancel.", no_args_is_help=True)
+    app.add_typer(queue_app, name="queue")
+
+    @queue_app.command("add")
+    def queue_add(
+        plan: Annotated[Path, typer.Argument(help="Plan file (TOML).")],
+        bench: Annotated[Path, typer.Option("--bench", "-b", help="Bench file (TOML) of the bench that should run it.")],
+        priority: Annotated[int, typer.Option(help="Higher runs first; equal priorities run in the order queued.")] = 0,
+        db: DbOption = None,
+    ) -> None:
+        """Check a plan against a bench's limits and queue it for that bench's worker."""
+        from tonebench.worker import add_job
+
+        with one_line_errors():
+            job = add_job(_sessions(db), plan, bench, priority)
+            out.print(f"job {job.guid} queued for bench {job.bench_name}: {job.plan_name}", highlight=False)
+
+    @queue_app.command("list")
+    def queue_list(
+        bench: Annotated[str | None, typer.Option("--bench", "-b", help="Only this bench (its name).")] = None,
+        all_jobs: Annotated[bool, typer.Option("--all", help="Finished and cancelled jobs too.")] = False,
+        db: DbOption = None,
+    ) -> None:
+        """List jobs in the order workers take them."""
+        from tonebench.worker import list_jobs
+
+        with one_line_errors():
+            table = Table(title="Jobs", box=box.SIMPLE_HEAD)
+            for column in ("Job", "Bench", "Plan", "Status", "Prio", "Queued (UTC)", "Worker", "Run", "Note"):
+                table.add_column(column)
+            for job in list_jobs(_sessions(db), bench, all_jobs):
+                table.add_row(job.guid[:8], job.bench_name, job.plan_name, job.status, str(job.priority),
+                              f"{job.created_at:%Y-%m-%d %H:%M}", job.claimed_by or "",
+                              (job.run_guid or "")[:8], job.message or "")
+            out.print(table)
+
+    @queue_app.command("cancel")
+    def queue_cancel(
+        job: Annotated[str, typer.Argument(metavar="JOB", help="Job GUID or a unique prefix of it.")],
+        db: DbOption = None,
+    ) -> None:
+        """Cancel a queued job; a running one is stopped after its current point (RF off)."""
+        from tonebench.worker import cancel_job
+
+        with one_line_errors():
+            cancelled = cancel_job(_sessions(db), job)
+            out.print(f"job {cancelled.guid}: {cancelled.message}", highlight=False)
+
+    @app.command("worker")
+    def worker(
+        bench: Annotated[Path, typer.Option("--bench", "-b", help="Bench file (TOML) of the bench this worker drives.")],
+        db: DbOption = None,
+        until_empty: Annotated[bool, typer.Option("--until-empty", help="Stop when no job is queued instead of waiting for more.")] = False,
+        poll_s: Annotated[float, typer.Option("--poll-s", min=0.1, help="Seconds between looks at an empty queue.")] = 5.0,
+        report_dir: Annotated[Path | None, typer.Option("--reports", help="Folder for the HTML reports (default: beside the database).")] = None,
+    ) -> None:
+        """Run the queued jobs of one bench, one after another, unattended (Ctrl-C or SIGTERM stops)."""
+        import signal
+
+        from tonebench.runner import Terminated
+        from tonebench.worker import Worker
+
+        def said(what: str, job, detail: str) -> None:
+            line = f"job {job.guid[:8]} ({job.plan_name}): {what}" + (f": {detail}" if detail else "")
+            err.print(line, markup=False, highlight=False)
+
+        with one_line_errors():
+            unit = Worker(db or default_db(), bench, on_job=said, poll_s=poll_s, report_dir=report_dir)
+            # Between runs SIGTERM just ends the loop; during a run the runner turns it into an
+            # exception so RF goes off first.
+            previous = signal.signal(signal.SIGTERM, lambda signum, frame: unit.stop.set())
+            try:
+                count = unit.run(until_empty=until_empty)
+            except (KeyboardInterrupt, Terminated):
+                err.print("worker stopped; a run in progress was stored as aborted", markup=False)
+                raise typer.Exit(130) from None
+            finally:
+                signal.signal(signal.SIGTERM, previous)
+            out.print(f"worker for bench {unit.bench_name}: {count} job(s) run", highlight=False)

@@ -12,11 +12,16 @@ from tonebench.config.loading import StrictModel, read_toml, validate
 from tonebench.errors import InputError
 
 REQUIRED_ROLES = ("source1", "source2", "analyzer")
+# A power meter at the DUT input plane: measured input calibration and closed-loop leveling.
+OPTIONAL_ROLES = ("power_meter",)
 
 
 class BenchInfo(StrictModel):
     name: str = Field(min_length=1)
     description: str = ""
+    # Calibration set (by name, in the database) a run uses unless `--cal` names another;
+    # without either, the [offsets] table below.
+    calibration: str | None = Field(default=None, min_length=1)
 
 
 class InstrumentEntry(StrictModel):
@@ -53,11 +58,21 @@ class BenchLimits(StrictModel):
     expected_gain_db: float = Field(ge=-60.0, le=60.0, description="DUT gain used to predict output power")
 
 
+class LevelingSettings(StrictModel):
+    """Closed-loop leveling with the power meter; it runs whenever the bench has one and enabled is true."""
+
+    enabled: bool = True
+    tolerance_db: float = Field(default=0.05, gt=0.0, le=1.0, description="each tone within this of its target")
+    max_iterations: int = Field(default=5, ge=1, le=20, description="meter readings per tone at most")
+    max_correction_db: float = Field(default=3.0, gt=0.0, le=10.0, description="largest correction on top of the calibration")
+
+
 class BenchFile(StrictModel):
     bench: BenchInfo
     instruments: dict[str, InstrumentEntry]
-    offsets: OffsetTables
+    offsets: OffsetTables | None = None
     limits: BenchLimits
+    leveling: LevelingSettings = LevelingSettings()
     simulation: dict[str, Any] | None = None
 
     @field_validator("instruments")
@@ -66,10 +81,15 @@ class BenchFile(StrictModel):
         missing = [role for role in REQUIRED_ROLES if role not in instruments]
         if missing:
             raise ValueError(f"missing instrument role(s) {', '.join(missing)}; needed: {', '.join(REQUIRED_ROLES)}")
-        unknown = [role for role in instruments if role not in REQUIRED_ROLES]
+        allowed = REQUIRED_ROLES + OPTIONAL_ROLES
+        unknown = [role for role in instruments if role not in allowed]
         if unknown:
-            raise ValueError(f"unknown instrument role(s) {', '.join(unknown)}; allowed: {', '.join(REQUIRED_ROLES)}")
+            raise ValueError(f"unknown instrument role(s) {', '.join(unknown)}; allowed: {', '.join(allowed)}")
         return instruments
+
+    @property
+    def has_power_meter(self) -> bool:
+        return "power_meter" in self.instruments
 
     @property
     def simulated(self) -> bool:

@@ -5,7 +5,11 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+from tonebench.errors import InstrumentError
 from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument
+
+# Reads of one product before giving up when each is cut by a reopened connection.
+MAX_READ_ATTEMPTS = 3
 
 
 @dataclass(frozen=True)
@@ -38,6 +42,9 @@ class SpectrumAnalyzer(RoleDriver):
         self._overload_bit = instrument.dialect.status["overload_bit"]
         # operation -> value last sent, so apply() and read_markers() skip unchanged settings
         self._sent: dict[str, float] = {}
+        # The setup last applied, sent again by restore() after a reopened connection or a reset.
+        self.last_setup: AnalyzerSetup | None = None
+        instrument.add_restore_hook(self.restore)
 
     def prepare(self) -> None:
         """Clear status and switch to single sweeps; the instrument state is then unknown."""
@@ -48,6 +55,18 @@ class SpectrumAnalyzer(RoleDriver):
         """Send every setting again next time (e.g. after the analyzer may have lost them)."""
         self._sent.clear()
 
+    def restore(self) -> None:
+        """Single-sweep mode and every setting of the last setup sent again (the analyzer may have
+        been reset or power-cycled); the next read sends its centre frequency again."""
+        center_hz = self._sent.get("set_center")
+        self.prepare()
+        if self.last_setup is not None:
+            self.apply(self.last_setup)
+        if center_hz is not None:
+            # One sweep, so that a marker query in flight when the state was lost has a trace
+            # to read; the reading it belongs to is taken again (see read_markers).
+            self._sweep(center_hz)
+
     def apply(self, setup: AnalyzerSetup) -> None:
         """Send the settings that changed since the last apply, then drain the error queue."""
         low, high = self.limits["min_atten_db"], self.limits["max_atten_db"]
@@ -56,6 +75,7 @@ class SpectrumAnalyzer(RoleDriver):
                 f"{self.label}: attenuation {setup.atten_db:g} dB outside the "
                 f"{self.instrument.dialect.name} range {low:g}..{high:g} dB"
             )
+        self.last_setup = setup
         self._send_changed(
             [
                 ("set_span", "span_hz", setup.span_hz),
@@ -76,18 +96,33 @@ class SpectrumAnalyzer(RoleDriver):
                     f"{self.instrument.dialect.name} range {low:.6g}..{high:.6g} Hz"
                 )
         inst = self.instrument
+        for _ in range(MAX_READ_ATTEMPTS):
+            # A reading taken across a reopened connection may mix two traces: take it again.
+            epoch = inst.epoch
+            sweep_time_s = self._sweep(center_hz)
+            if inst.epoch != epoch:
+                continue
+            status = inst.call("read_status")
+            overload = bool((status >> self._overload_bit) & 1)
+            powers_dbm = []
+            for freq_hz in marker_freqs_hz:
+                inst.call("set_marker_freq", freq_hz=freq_hz)
+                powers_dbm.append(inst.call("read_marker_power"))
+            inst.check_errors()
+            if inst.epoch == epoch:
+                return MarkerReading(tuple(powers_dbm), overload, sweep_time_s)
+        raise InstrumentError(
+            f"{self.label}: the connection was reopened during each of {MAX_READ_ATTEMPTS} reads at {center_hz:.6g} Hz"
+        )
+
+    def _sweep(self, center_hz: float) -> float:
+        """One single sweep at `center_hz` (Hz), waited for; returns the sweep time (s)."""
+        inst = self.instrument
         self._send_changed([("set_center", "freq_hz", center_hz)], drain=False)
         sweep_time_s = inst.call("read_sweep_time")
         inst.call("start_sweep")
         inst.wait_complete(2 * sweep_time_s + inst.dialect.io.query_timeout_s)
-        status = inst.call("read_status")
-        overload = bool((status >> self._overload_bit) & 1)
-        powers_dbm = []
-        for freq_hz in marker_freqs_hz:
-            inst.call("set_marker_freq", freq_hz=freq_hz)
-            powers_dbm.append(inst.call("read_marker_power"))
-        inst.check_errors()
-        return MarkerReading(tuple(powers_dbm), overload, sweep_time_s)
+        return sweep_time_s
 
     def predicted_sweep_time_s(self, setup: AnalyzerSetup) -> float:
         """Swept-analyzer sweep time k * span / RBW^2 (design section 5), k from the dialect."""

@@ -42,8 +42,10 @@ REQUIRED_OPERATIONS: dict[str, tuple[str, ...]] = {
         "read_marker_power",
         "read_status",
     ),
-    # No role driver exists yet for these two; they share the common operations only.
-    "power_meter": _COMMON_OPERATIONS,
+    # configure: single measurements on INITiate; the reading is fetched after *OPC?.
+    "power_meter": _COMMON_OPERATIONS
+    + ("configure", "set_unit_dbm", "set_frequency", "start_measurement", "fetch_power"),
+    # No role driver exists yet for this one; it shares the common operations only.
     "supply": _COMMON_OPERATIONS,
 }
 
@@ -51,6 +53,7 @@ REQUIRED_OPERATIONS: dict[str, tuple[str, ...]] = {
 REQUIRED_LIMITS: dict[str, tuple[str, ...]] = {
     "source": ("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"),
     "analyzer": ("min_freq_hz", "max_freq_hz", "min_atten_db", "max_atten_db"),
+    "power_meter": ("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"),
 }
 REQUIRED_PERFORMANCE: dict[str, tuple[str, ...]] = {
     "analyzer": ("mixer_toi_dbm", "danl_dbm_per_hz", "sweep_time_factor"),

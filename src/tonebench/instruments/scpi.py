@@ -3,12 +3,17 @@
 from __future__ import annotations
 
 import math
-from typing import NamedTuple
+import threading
+from collections.abc import Callable
+from typing import TYPE_CHECKING, NamedTuple
 
 import pyvisa
 
 from tonebench.errors import InstrumentError, TonebenchError
 from tonebench.instruments.dialect import Dialect
+
+if TYPE_CHECKING:
+    from tonebench.instruments.supervision import Supervision
 
 # Bounded so an instrument that never reports "no error" cannot hang the drain.
 MAX_ERROR_READS = 50
@@ -71,50 +76,133 @@ def parse_reply(kind: str, text: str):
     raise ValueError(f"unknown reply kind {kind!r}")
 
 
-class ScpiInstrument:
-    """An open VISA resource driven through a dialect; `label` ("source1") names it in errors."""
+class ConnectionFault(InstrumentError):
+    """No reply in time, a dropped connection, or a reply showing the replies are out of step.
 
-    def __init__(self, resource, dialect: Dialect, label: str):
+    `timed_out` tells whether the connection may still be usable (after a resynchronisation)
+    or is gone (it must be reopened).
+    """
+
+    def __init__(self, message: str, *, timed_out: bool):
+        super().__init__(message)
+        self.timed_out = timed_out
+
+
+class ScpiErrors(InstrumentError):
+    """The instrument's error queue held entries (`entries`) after an operation."""
+
+    def __init__(self, message: str, entries: list[ScpiError]):
+        super().__init__(message)
+        self.entries = entries
+
+
+class IdentityChanged(InstrumentError):
+    """After reopening a connection, a different instrument (maker, model or serial) answered."""
+
+
+# Reply lines read while resynchronising before giving up on this connection.
+MAX_RESYNC_LINES = 20
+
+
+def identity(idn: str) -> tuple[str, ...]:
+    """Maker, model and serial from an identify reply (IEEE 488.2 *IDN? fields; firmware left out)."""
+    return tuple(part.strip().lower() for part in idn.split(",")[:3])
+
+
+class ScpiInstrument:
+    """An open VISA resource driven through a dialect; `label` ("source1") names it in errors.
+
+    With a `supervision` (tonebench.instruments.supervision.Supervision), a timeout or a dropped
+    connection is retried per its policy; `epoch` counts the times the connection was reopened,
+    so a caller can tell that a reading spans a reconnect, and the role drivers' restore hooks
+    re-apply their settings on each reopen.
+    """
+
+    def __init__(self, resource, dialect: Dialect, label: str, supervision: Supervision | None = None):
         self.resource = resource
         self.dialect = dialect
         self.label = label
+        self.supervision = supervision
+        self.epoch = 0
+        # Held for a whole call including its recovery, so a second thread (the watchdog) never
+        # interleaves its lines with a query in flight.
+        self.io_lock = threading.RLock()
         self._idn: str | None = None
+        self._resource_name: str | None = getattr(resource, "resource_name", None)
+        self._restore_hooks: list[Callable[[], None]] = []
+        self._restoring = False
 
     def has(self, operation: str) -> bool:
         return operation in self.dialect.operations
 
+    @property
+    def resource_name(self) -> str | None:
+        """The VISA resource string this instrument was opened with (None if not known)."""
+        return self._resource_name
+
+    def add_restore_hook(self, hook: Callable[[], None]) -> None:
+        """Call `hook` after each reopened connection (calls made inside it are not retried)."""
+        self._restore_hooks.append(hook)
+
     def call(self, operation: str, **fields):
         """Send one operation; for a query return its parsed reply."""
+        op = self._operation(operation)
+        message = op.template.format(**fields)
+        return self._supervised(lambda: self._exchange(operation, op, message, None))
+
+    def _operation(self, operation: str):
         op = self.dialect.operations.get(operation)
         if op is None:
             raise InstrumentError(
                 f"{self.label}: dialect {self.dialect.name} has no operation '{operation}'"
             )
-        message = op.template.format(**fields)
+        return op
+
+    def _supervised(self, attempt: Callable[[], object]):
+        with self.io_lock:
+            if self.supervision is None or self._restoring:
+                return attempt()
+            return self.supervision.run(self, attempt)
+
+    def _exchange(self, operation: str, op, message: str, timeout_s: float | None):
+        """One write (and reply) on the current connection; ConnectionFault if the link failed."""
         where = f"{self.label}: {operation} ({message!r})"
+        resource = self.resource
+        previous_ms = resource.timeout if timeout_s is not None else None
         try:
+            if previous_ms is not None:
+                resource.timeout = max(1, round(timeout_s * 1000))
             if not op.is_query:
-                self.resource.write(message)
+                resource.write(message)
                 return None
-            reply = self.resource.query(message)
+            reply = resource.query(message)
         except pyvisa.errors.VisaIOError as exc:
             if exc.error_code == pyvisa.constants.StatusCode.error_timeout:
-                timeout_s = self.resource.timeout / 1000
-                raise InstrumentError(
-                    f"{self.label}: no reply to {operation} ({message!r}) within {timeout_s:g} s"
+                waited_s = resource.timeout / 1000
+                raise ConnectionFault(
+                    f"{self.label}: no reply to {operation} ({message!r}) within {waited_s:g} s",
+                    timed_out=True,
                 ) from None
-            raise InstrumentError(f"{where} failed: {exc}") from None
-        except OSError as exc:  # connection dropped or refused (pyvisa-py sockets)
-            raise InstrumentError(f"{where} failed: {exc}") from None
+            raise ConnectionFault(f"{where} failed: {exc}", timed_out=False) from None
+        except (OSError, pyvisa.errors.InvalidSession) as exc:  # dropped or closed (pyvisa-py sockets)
+            raise ConnectionFault(f"{where} failed: {exc}", timed_out=False) from None
+        finally:
+            if previous_ms is not None:
+                try:
+                    resource.timeout = previous_ms
+                except (pyvisa.errors.Error, OSError):
+                    pass  # the connection is gone; a reopened one gets the dialect's timeout
         try:
             return parse_reply(op.reply, reply)
         except ValueError:
-            raise InstrumentError(
-                f"{where} replied {reply!r}; expected {_EXPECTED[op.reply]}"
+            # A reply of the wrong shape is most often another query's reply arriving late:
+            # worth a resynchronisation, like a timeout.
+            raise ConnectionFault(
+                f"{where} replied {reply!r}; expected {_EXPECTED[op.reply]}", timed_out=True
             ) from None
 
     def check_errors(self) -> None:
-        """Drain the error queue; raise InstrumentError listing every entry if there were any."""
+        """Drain the error queue; raise ScpiErrors listing every entry if there were any."""
         entries: list[ScpiError] = []
         for _ in range(MAX_ERROR_READS):
             entry = self.call("next_error")
@@ -125,22 +213,34 @@ class ScpiInstrument:
             entries.append(ScpiError(0, f"error queue not empty after {MAX_ERROR_READS} reads"))
         if entries:
             listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
-            raise InstrumentError(f"{self.label}: {listed}")
+            if self.supervision is not None:
+                self.supervision.emit(self.label, "scpi-error", "warning", f"{self.label}: {listed}",
+                                      {"entries": [list(e) for e in entries]})
+            raise ScpiErrors(f"{self.label}: {listed}", entries)
 
-    def configure(self, steps: list[tuple[str, dict]]) -> None:
-        """Run (operation, fields) steps in order, then drain the error queue."""
-        for operation, fields in steps:
-            self.call(operation, **fields)
-        self.check_errors()
+    def configure(self, steps: list[tuple[str, dict]], wait_s: float | None = None) -> None:
+        """Run (operation, fields) steps in order, wait for *OPC? if `wait_s` is given (s), then
+        drain the error queue. Under supervision, steps that left errors are sent again, as often
+        as the policy retries."""
+        attempts = 1
+        if self.supervision is not None and not self._restoring:
+            attempts += self.supervision.policy.retries
+        for attempt in range(attempts):
+            for operation, fields in steps:
+                self.call(operation, **fields)
+            if wait_s is not None:
+                self.wait_complete(wait_s)
+            try:
+                self.check_errors()
+                return
+            except ScpiErrors:
+                if attempt == attempts - 1:
+                    raise
 
     def wait_complete(self, timeout_s: float) -> None:
         """Block on *OPC? (the wait_complete operation) for up to `timeout_s` seconds."""
-        previous_ms = self.resource.timeout
-        self.resource.timeout = max(1, round(timeout_s * 1000))
-        try:
-            done = self.call("wait_complete")
-        finally:
-            self.resource.timeout = previous_ms
+        op = self._operation("wait_complete")
+        done = self._supervised(lambda: self._exchange("wait_complete", op, op.template, timeout_s))
         if done != 1:
             raise InstrumentError(f"{self.label}: wait_complete replied {done}; expected 1")
 
@@ -150,6 +250,55 @@ class ScpiInstrument:
         if self._idn is None:
             self._idn = self.call("identify")
         return self._idn
+
+    def resync(self) -> list[str] | None:
+        """After a timeout: ask for the identity and discard reply lines until it comes back.
+
+        Replies on one connection come in the order of the queries, so once the identity is
+        read no late reply can follow. Returns the discarded lines, or None when the identity
+        did not come back (the connection must be reopened).
+        """
+        if self._idn is None:
+            return None
+        discarded: list[str] = []
+        with self.io_lock:
+            try:
+                self.resource.write(self.dialect.operations["identify"].template)
+                for _ in range(MAX_RESYNC_LINES):
+                    line = self.resource.read().strip()
+                    if line == self._idn:
+                        return discarded
+                    discarded.append(line)
+            except (pyvisa.errors.Error, OSError):
+                return None
+        return None
+
+    def reopen(self) -> str:
+        """Close and open the connection again, check it is the same instrument, run the restore
+        hooks. Returns the identify reply; raises Unreachable, IdentityChanged or ConnectionFault."""
+        from tonebench.instruments.transport import connect
+
+        if self._resource_name is None:
+            raise InstrumentError(f"{self.label}: cannot reopen: its resource string is unknown")
+        with self.io_lock:
+            self.close()
+            handle, idn = connect(self._resource_name, self.dialect)
+            if self._idn is not None and identity(idn) != identity(self._idn):
+                handle.close()
+                raise IdentityChanged(
+                    f"{self.label}: a different instrument answers at {self._resource_name}: "
+                    f"{idn!r} instead of {self._idn!r}"
+                )
+            self.resource = handle
+            self._idn = self._idn or idn
+            self.epoch += 1
+            self._restoring = True
+            try:
+                for hook in self._restore_hooks:
+                    hook()
+            finally:
+                self._restoring = False
+            return idn
 
     def close(self) -> None:
         try:

@@ -2,8 +2,26 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from dataclasses import dataclass, replace
+
+import pyvisa
+
 from tonebench.errors import InstrumentError
-from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument
+from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument, parse_reply
+
+# (source label, freq_hz, power_dbm) -> None, or raises LimitError: the bench's own limits,
+# checked before every power command this driver sends.
+PowerGuard = Callable[[str, float, float], None]
+
+
+@dataclass(frozen=True)
+class SourceState:
+    """A source's frequency (Hz), power (dBm) and RF state; None where not known or not readable."""
+
+    freq_hz: float | None = None
+    power_dbm: float | None = None
+    rf_on: bool | None = None
 
 
 class SignalSource(RoleDriver):
@@ -16,9 +34,14 @@ class SignalSource(RoleDriver):
         self.max_power_dbm = limits["max_power_dbm"]
         self.min_freq_hz = limits["min_freq_hz"]
         self.max_freq_hz = limits["max_freq_hz"]
+        # What this driver last asked for, recorded before it is sent: a reopened connection or
+        # an instrument that lost its state gets exactly this again (restore).
+        self.wanted = SourceState(rf_on=False)
+        self.power_guard: PowerGuard | None = None
+        instrument.add_restore_hook(self.restore)
 
-    def _wait(self) -> None:
-        self.instrument.wait_complete(self.instrument.dialect.io.query_timeout_s)
+    def _wait_s(self) -> float:
+        return self.instrument.dialect.io.query_timeout_s
 
     def set_tone(self, freq_hz: float, power_dbm: float) -> None:
         """Set frequency and power; returns once the source reports them in force (*OPC?)."""
@@ -34,25 +57,106 @@ class SignalSource(RoleDriver):
                 f"{self.min_power_dbm:.2f}..{self.max_power_dbm:.2f} dBm "
                 f"(min_power_dbm/max_power_dbm)"
             )
-        self.instrument.configure(
-            [("set_frequency", {"freq_hz": freq_hz}), ("set_power", {"power_dbm": power_dbm})]
-        )
+        if self.power_guard is not None:
+            self.power_guard(self.label, freq_hz, power_dbm)
+        self.wanted = replace(self.wanted, freq_hz=freq_hz, power_dbm=power_dbm)
         # Nothing orders commands across instruments: only this source's own *OPC? tells the
         # analyzer that the new power is in force (design section 5).
-        self._wait()
+        self.instrument.configure(
+            [("set_frequency", {"freq_hz": freq_hz}), ("set_power", {"power_dbm": power_dbm})],
+            wait_s=self._wait_s(),
+        )
 
     def rf_on(self) -> None:
-        self.instrument.call("rf_on")
-        self._wait()
-        self.instrument.check_errors()
+        supervision = self.instrument.supervision
+        if supervision is not None and supervision.stop.is_set():
+            raise InstrumentError(f"{self.label}: RF on refused: the run is stopping")
+        self.wanted = replace(self.wanted, rf_on=True)
+        self.instrument.configure([("rf_on", {})], wait_s=self._wait_s())
 
     def rf_off(self) -> None:
         """Switch RF off and read the state back; InstrumentError if the source says it is on."""
-        self.instrument.call("rf_off")
-        self._wait()
+        self.wanted = replace(self.wanted, rf_on=False)
+        self.instrument.configure([("rf_off", {})], wait_s=self._wait_s())
         if self.rf_is_on():
             raise InstrumentError(f"{self.label}: RF still on after rf_off")
-        self.instrument.check_errors()
 
     def rf_is_on(self) -> bool:
         return self.instrument.call("read_rf")
+
+    def read_state(self) -> SourceState:
+        """Frequency, power and RF state as the source reports them (None where the dialect
+        has no read-back operation)."""
+        inst = self.instrument
+        return SourceState(
+            freq_hz=inst.call("read_frequency") if inst.has("read_frequency") else None,
+            power_dbm=inst.call("read_power") if inst.has("read_power") else None,
+            rf_on=self.rf_is_on(),
+        )
+
+    def state_lost(self, power_tolerance_db: float = 0.01) -> str | None:
+        """Compare the read-back state with what was last set; describe any difference, else None.
+
+        A source that was reset or power-cycled reports its defaults (RF off, another power).
+        Frequencies may be rounded by the instrument: 1 Hz is allowed.
+        """
+        wanted, actual = self.wanted, self.read_state()
+        differences = []
+        if wanted.rf_on is not None and actual.rf_on != wanted.rf_on:
+            differences.append(f"RF {'on' if actual.rf_on else 'off'}, expected {'on' if wanted.rf_on else 'off'}")
+        if None not in (wanted.power_dbm, actual.power_dbm) and abs(actual.power_dbm - wanted.power_dbm) > power_tolerance_db:
+            differences.append(f"power {actual.power_dbm:.2f} dBm, expected {wanted.power_dbm:.2f} dBm")
+        if None not in (wanted.freq_hz, actual.freq_hz) and abs(actual.freq_hz - wanted.freq_hz) > 1.0:
+            differences.append(f"frequency {actual.freq_hz:.6g} Hz, expected {wanted.freq_hz:.6g} Hz")
+        return f"{self.label}: " + ", ".join(differences) if differences else None
+
+    def restore(self) -> None:
+        """Send what was last asked for again: frequency, power, then the RF state.
+
+        RF comes back on only if it was on and no stop was requested.
+        """
+        wanted = self.wanted
+        steps: list[tuple[str, dict]] = []
+        if wanted.freq_hz is not None:
+            steps.append(("set_frequency", {"freq_hz": wanted.freq_hz}))
+        if wanted.power_dbm is not None:
+            steps.append(("set_power", {"power_dbm": wanted.power_dbm}))
+        supervision = self.instrument.supervision
+        stopping = supervision is not None and supervision.stop.is_set()
+        steps.append(("rf_on", {}) if wanted.rf_on and not stopping else ("rf_off", {}))
+        self.instrument.configure(steps, wait_s=self._wait_s())
+
+    def force_rf_off(self, lock_wait_s: float = 0.5) -> str:
+        """RF off from another thread (the watchdog), even while the run's thread is stuck in a
+        call on this source; confirmed by reading the state back. Returns how it was done.
+
+        Through the usual connection when it is free within `lock_wait_s` seconds, else through a
+        second connection of its own (most LAN instruments accept several).
+        """
+        self.wanted = replace(self.wanted, rf_on=False)
+        inst = self.instrument
+        if inst.io_lock.acquire(timeout=lock_wait_s):
+            try:
+                self.rf_off()
+                return "through its connection"
+            except InstrumentError:
+                pass  # that connection is broken: try a fresh one
+            finally:
+                inst.io_lock.release()
+        from tonebench.instruments.transport import connect
+
+        if inst.resource_name is None:
+            raise InstrumentError(f"{self.label}: RF off failed: no second connection possible")
+        ops = inst.dialect.operations
+        handle, _idn = connect(inst.resource_name, inst.dialect)
+        try:
+            handle.write(ops["rf_off"].template)
+            handle.query(ops["wait_complete"].template)
+            still_on = parse_reply("bool", handle.query(ops["read_rf"].template))
+        except (pyvisa.errors.Error, OSError, ValueError) as exc:
+            raise InstrumentError(f"{self.label}: RF off through a second connection failed: {exc}") from None
+        finally:
+            handle.close()
+        if still_on:
+            raise InstrumentError(f"{self.label}: RF still on after rf_off through a second connection")
+        return "through a second connection"

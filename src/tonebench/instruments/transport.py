@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-import functools
 import socket
 
 import pyvisa
 from pyvisa import rname
 
-from tonebench.errors import InputError
+from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.dialect import Dialect
 
 ALLOWED_FORMS = (
@@ -17,10 +16,24 @@ ALLOWED_FORMS = (
 )
 
 
-@functools.cache
+_manager: pyvisa.ResourceManager | None = None
+
+
 def resource_manager() -> pyvisa.ResourceManager:
-    """The one pyvisa-py resource manager of this process, created on first use."""
-    return pyvisa.ResourceManager("@py")
+    """The one pyvisa-py resource manager of this process, created on first use.
+
+    pyvisa hands out one shared manager per backend, so anyone's close() closes ours too: a
+    closed one is replaced rather than failing every later open (a worker runs for days).
+    """
+    global _manager
+    if _manager is not None:
+        try:
+            _manager.session
+        except pyvisa.errors.InvalidSession:
+            _manager = None
+    if _manager is None:
+        _manager = pyvisa.ResourceManager("@py")
+    return _manager
 
 
 def check_resource_name(resource: str) -> None:
@@ -34,6 +47,10 @@ def check_resource_name(resource: str) -> None:
         ) from None
 
 
+class Unreachable(InstrumentError):
+    """An instrument that cannot be connected to, or does not answer its identify query."""
+
+
 def open_resource(resource: str, dialect: Dialect, rm: pyvisa.ResourceManager | None = None):
     """Open `resource` with the dialect's terminations and timeout, and check that it answers.
 
@@ -42,6 +59,19 @@ def open_resource(resource: str, dialect: Dialect, rm: pyvisa.ResourceManager | 
     input, not halfway through a run.
     """
     check_resource_name(resource)
+    try:
+        handle, _idn = connect(resource, dialect, rm)
+    except Unreachable as exc:
+        raise InputError(str(exc)) from None
+    return handle
+
+
+def connect(resource: str, dialect: Dialect, rm: pyvisa.ResourceManager | None = None) -> tuple[object, str]:
+    """Open `resource` (terminations, timeout, TCP_NODELAY); return the handle and its identify reply.
+
+    Raises Unreachable when the instrument cannot be reached or does not identify itself. Also
+    used to reopen a connection during a run, where that is a fault to retry, not bad input.
+    """
     rm = rm if rm is not None else resource_manager()
     timeout_ms = round(dialect.io.query_timeout_s * 1000)
     where = f"{resource} ({dialect.role})"
@@ -54,21 +84,21 @@ def open_resource(resource: str, dialect: Dialect, rm: pyvisa.ResourceManager | 
             open_timeout=timeout_ms,
         )
     except (pyvisa.errors.VisaIOError, OSError) as exc:
-        raise InputError(f"cannot reach {where}: {_reason(exc)}") from None
+        raise Unreachable(f"cannot reach {where}: {_reason(exc)}") from None
     _disable_nagle(handle)
     try:
-        handle.query(dialect.operations["identify"].template)
+        idn = handle.query(dialect.operations["identify"].template).strip()
     except pyvisa.errors.VisaIOError as exc:
         handle.close()
         if exc.error_code == pyvisa.constants.StatusCode.error_timeout:
             reason = f"no reply to identify within {dialect.io.query_timeout_s:g} s"
         else:
             reason = _reason(exc)
-        raise InputError(f"cannot reach {where}: {reason}") from None
+        raise Unreachable(f"cannot reach {where}: {reason}") from None
     except OSError as exc:
         handle.close()
-        raise InputError(f"cannot reach {where}: {_reason(exc)}") from None
-    return handle
+        raise Unreachable(f"cannot reach {where}: {_reason(exc)}") from None
+    return handle, idn
 
 
 def _disable_nagle(handle) -> None:

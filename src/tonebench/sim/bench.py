@@ -8,6 +8,7 @@ starts earlier still sees the old one.
 
 from __future__ import annotations
 
+import math
 import threading
 from dataclasses import dataclass, field, replace
 
@@ -15,7 +16,7 @@ import numpy as np
 
 from tonebench.sim import physics
 from tonebench.sim.scenario import Scenario
-from tonebench.units import dbm_to_vpeak, vpeak_to_dbm, watt_to_dbm
+from tonebench.units import dbm_to_vpeak, dbm_to_watt, vpeak_to_dbm, watt_to_dbm
 
 PATHS = ("in1", "in2", "out")
 
@@ -37,6 +38,15 @@ class SourceChannel:
     effective: SourceSetting
     # (deadline_s, setting): each change comes into force at its deadline.
     pending: list[tuple[float, SourceSetting]] = field(default_factory=list)
+    # A level still settling (fault injection): (from clock_s, error_db then, time constant s).
+    unsettled: tuple[float, float, float] | None = None
+
+    def level_error_db(self, clock_s: float) -> float:
+        """How far the output level is from its setting at clock_s (dB), decaying exponentially."""
+        if self.unsettled is None:
+            return 0.0
+        start_s, error_db, time_constant_s = self.unsettled
+        return error_db * math.exp(-max(0.0, clock_s - start_s) / time_constant_s)
 
 
 @dataclass
@@ -57,6 +67,16 @@ class AnalyzerState:
     damaged: bool = False  # survives *RST: it is the hardware
 
 
+@dataclass
+class PowerMeterState:
+    """Power meter settings (power-on defaults) and its last reading (None until it measured)."""
+
+    freq_hz: float = 1e9
+    continuous: bool = True
+    unit_dbm: bool = True
+    reading_dbm: float | None = None
+
+
 class BenchTruth:
     """True values of the simulated parts, for tests (never reachable through SCPI)."""
 
@@ -70,6 +90,10 @@ class BenchTruth:
     def true_iip3_dbm(self, freq_hz):
         dut = self._scenario.dut
         return _float_or_array(physics.linear_in_db(dut.iip3_dbm, dut.iip3_slope_db_per_ghz, dut.ref_freq_hz, freq_hz))
+
+    def true_iip2_dbm(self, freq_hz):
+        """Second-order input intercept (dBm); the scenario keeps it flat with frequency."""
+        return _float_or_array(np.full(np.shape(freq_hz), float(self._scenario.dut.iip2_dbm)))
 
     def true_oip3_dbm(self, freq_hz):
         return _float_or_array(np.asarray(self.true_iip3_dbm(freq_hz)) + np.asarray(self.true_gain_db(freq_hz)))
@@ -92,7 +116,8 @@ class BenchTruth:
         """The DUT nonlinearity at freq_hz (a two-tone point uses its centre frequency)."""
         dut = self._scenario.dut
         backoff_db = None if dut.p1db_dbm is None else dut.iip3_dbm - dut.p1db_dbm
-        return physics.dut_nonlinearity(self.true_gain_db(freq_hz), self.true_iip3_dbm(freq_hz), backoff_db)
+        return physics.dut_nonlinearity(self.true_gain_db(freq_hz), self.true_iip3_dbm(freq_hz), backoff_db,
+                                        dut.iip2_dbm)
 
 
 def _float_or_array(value):
@@ -108,14 +133,20 @@ class AnalyzerInput:
     amp_v: np.ndarray  # complex peak phasors, V
 
 
+def input_plane_tones(truth: BenchTruth, settings: tuple[SourceSetting, SourceSetting]) -> list[tuple[float, float]]:
+    """(freq_hz, power_dbm) of each source that is on, at the DUT input plane (through its input path)."""
+    return [(setting.freq_hz, setting.power_dbm - truth.true_loss_db(path, setting.freq_hz))
+            for path, setting in zip(("in1", "in2"), settings) if setting.rf_on]
+
+
 def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[SourceSetting, SourceSetting],
-                   atten_db: float) -> AnalyzerInput:
-    """Lines reaching the analyzer for these source settings, its mixer's own IM3 referred to its input included."""
-    tones = []  # (freq_hz, amplitude at the DUT input, V)
-    for path, setting in zip(("in1", "in2"), settings):
-        if setting.rf_on:
-            dut_in_dbm = setting.power_dbm - truth.true_loss_db(path, setting.freq_hz)
-            tones.append((setting.freq_hz, float(dbm_to_vpeak(dut_in_dbm))))
+                   atten_db: float, thru: bool = False) -> AnalyzerInput:
+    """Lines reaching the analyzer for these source settings, its mixer's own IM3 referred to its input included.
+
+    thru=True puts a 0 dB thru in place of the DUT: what sits at the DUT input plane (tones and the
+    sources' residual IM3) reaches the output path unchanged.
+    """
+    tones = [(freq_hz, float(dbm_to_vpeak(dbm))) for freq_hz, dbm in input_plane_tones(truth, settings)]
     bins = physics.SIM_POINTS // 2 + 1
     if not tones:
         return AnalyzerInput(np.zeros(bins), np.zeros(bins, dtype=complex))
@@ -132,8 +163,13 @@ def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[Source
             float(vpeak_to_dbm(low_v)), float(vpeak_to_dbm(high_v)), scenario.sources.system_ip3_dbm)
         residual_low_v = physics.im3_phasor_v(low_dbm, low_v, high_v, True, phase_deg)
         residual_high_v = physics.im3_phasor_v(high_dbm, low_v, high_v, False, phase_deg)
-    model = truth.dut_model(0.5 * (f_low_hz + f_high_hz))
-    amp_v = physics.dut_output_spectrum_v(model, low_v, high_v, residual_low_v, residual_high_v)
+    if thru:
+        amp_v = np.zeros(bins, dtype=complex)
+        for pq, value_v in (((1, 0), low_v), ((0, 1), high_v), ((2, -1), residual_low_v), ((-1, 2), residual_high_v)):
+            amp_v[physics.product_bin(*pq)] += value_v
+    else:
+        model = truth.dut_model(0.5 * (f_low_hz + f_high_hz))
+        amp_v = physics.dut_output_spectrum_v(model, low_v, high_v, residual_low_v, residual_high_v)
     freq_hz = physics.bin_frequencies_hz(f_low_hz, f_high_hz - f_low_hz)
     keep = freq_hz > 0.0  # products folding through 0 Hz (spacing above f1) are not modelled
     if not two_tone:
@@ -171,6 +207,14 @@ class SimBench:
         self.command_log: list[tuple[float, str, str]] = []  # (clock_s, instrument, line)
         self.damage_log: list[tuple[float, float]] = []  # (clock_s, analyzer input dBm)
         self._rng = np.random.default_rng(scenario.seed)
+        self.thru = scenario.thru
+        self.power_meter = PowerMeterState()
+        # Its own stream, so power meter reads do not shift the analyzer's noise sequence.
+        self._meter_rng = np.random.default_rng((scenario.seed, 2))
+
+    def set_thru(self, thru: bool) -> None:
+        """Put a 0 dB thru in place of the DUT (True) or the DUT back (False): the operator's job on a real bench."""
+        self.thru = bool(thru)
 
     # --- sources --------------------------------------------------------------------------------
 
@@ -190,6 +234,13 @@ class SimBench:
                    (("freq_hz", freq_hz), ("power_dbm", power_dbm), ("rf_on", rf_on)) if value is not None}
         channel.commanded = replace(channel.commanded, **changes)
         channel.pending.append((self.clock_s + self.scenario.sources.settle_time_s, channel.commanded))
+
+    def unsettle_source(self, index: int, level_error_db: float, time_constant_s: float) -> None:
+        """From its last change on, the source's level is off by level_error_db, decaying with
+        time_constant_s on the virtual clock; *OPC? does not wait for it (a fault to inject)."""
+        channel = self._sources[index]
+        start_s = channel.pending[-1][0] if channel.pending else self.clock_s
+        channel.unsettled = (start_s, level_error_db, time_constant_s)
 
     def reset_source(self, index: int) -> None:
         """*RST: power-on setting, RF off (settling like any other change)."""
@@ -215,7 +266,15 @@ class SimBench:
 
     def _effective_settings(self) -> tuple[SourceSetting, SourceSetting]:
         self._catch_up()
-        return self._sources[1].effective, self._sources[2].effective
+        return self._in_force(1), self._in_force(2)
+
+    def _in_force(self, index: int) -> SourceSetting:
+        """The setting in force with any level error of a source still settling."""
+        channel = self._sources[index]
+        error_db = channel.level_error_db(self.clock_s)
+        if error_db == 0.0:
+            return channel.effective
+        return replace(channel.effective, power_dbm=channel.effective.power_dbm + error_db)
 
     # --- analyzer -------------------------------------------------------------------------------
 
@@ -224,7 +283,7 @@ class SimBench:
         self.analyzer = AnalyzerState(damaged=self.analyzer.damaged)
 
     def _input(self) -> AnalyzerInput:
-        return analyzer_input(self.scenario, self.truth, self._effective_settings(), self.analyzer.atten_db)
+        return analyzer_input(self.scenario, self.truth, self._effective_settings(), self.analyzer.atten_db, self.thru)
 
     def input_power_dbm(self) -> float:
         """Total power now at the analyzer input connector (dBm)."""
@@ -239,9 +298,8 @@ class SimBench:
         return self.mixer_power_dbm() > self.scenario.analyzer.overload_mixer_dbm
 
     def _check_damage(self) -> None:
-        input_dbm = _total_dbm(analyzer_input(self.scenario, self.truth, (self._sources[1].effective,
-                                                                          self._sources[2].effective),
-                                              self.analyzer.atten_db).amp_v)
+        input_dbm = _total_dbm(analyzer_input(self.scenario, self.truth, (self._in_force(1), self._in_force(2)),
+                                              self.analyzer.atten_db, self.thru).amp_v)
         if input_dbm > self.scenario.analyzer.damage_dbm:
             self.analyzer.damaged = True
             self.damage_log.append((self.clock_s, input_dbm))
@@ -261,7 +319,9 @@ class SimBench:
         lines = self._input()
         freq_hz = self.trace_freq_hz()
         dut = self.scenario.dut
-        arriving_dbm_per_hz = (physics.dut_output_noise_dbm_per_hz(dut.nf_db, self.truth.true_gain_db(freq_hz))
+        # A thru passes the thermal noise at its input: noise figure 0 dB, gain 0 dB.
+        nf_db, gain_db = (0.0, 0.0) if self.thru else (dut.nf_db, self.truth.true_gain_db(freq_hz))
+        arriving_dbm_per_hz = (physics.dut_output_noise_dbm_per_hz(nf_db, gain_db)
                                - self.truth.true_loss_db("out", freq_hz))
         noise_dbm_per_hz = physics.analyzer_noise_dbm_per_hz(settings.danl_dbm_per_hz, state.atten_db,
                                                              arriving_dbm_per_hz)
@@ -284,6 +344,31 @@ class SimBench:
         if state.trace_dbm is None:
             raise LookupError("no trace yet: start a sweep")
         return float(state.trace_dbm[np.argmin(np.abs(state.trace_freq_hz - state.marker_freq_hz))])
+
+    # --- power meter ----------------------------------------------------------------------------
+
+    def true_input_plane_dbm(self) -> float:
+        """Total power (dBm) now at the DUT input plane from the sources in force; -inf with RF off."""
+        tones = input_plane_tones(self.truth, self._effective_settings())
+        total_w = sum(float(dbm_to_watt(dbm)) for _, dbm in tones)
+        return float(watt_to_dbm(total_w)) if total_w > 0.0 else -np.inf
+
+    def measure_power(self) -> float:
+        """One power meter measurement (INITiate): the total power at the DUT input plane, as the
+        meter reads it; advances the clock by the measurement time."""
+        meter = self.scenario.power_meter
+        tones = input_plane_tones(self.truth, self._effective_settings())
+        total_w = sum(float(dbm_to_watt(dbm)) for _, dbm in tones) + float(dbm_to_watt(meter.noise_floor_dbm))
+        # The sensor is corrected for the frequency it was told; the strongest tone decides the error.
+        tone_hz = max(tones, key=lambda t: t[1])[0] if tones else self.power_meter.freq_hz
+        error_db = (meter.accuracy_db + meter.sensor_slope_db_per_ghz * (tone_hz - self.power_meter.freq_hz) / 1e9
+                    + float(self._meter_rng.normal(0.0, meter.reading_noise_db)))
+        self.power_meter.reading_dbm = float(watt_to_dbm(total_w)) + error_db
+        self.clock_s += meter.measure_time_s
+        return self.power_meter.reading_dbm
+
+    def reset_power_meter(self) -> None:
+        self.power_meter = PowerMeterState()
 
     # --- bookkeeping ----------------------------------------------------------------------------
 

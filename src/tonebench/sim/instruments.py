@@ -1,15 +1,15 @@
 """SCPI front panels of the simulated source and analyzer, over one shared SimBench.
 
-The command trees accept what drivers/generic-source.toml, generic-analyzer.toml and
-verbose-analyzer.toml send (short and long forms, optional nodes, unit suffixes), and the query
-of every setting.
+The command trees accept what drivers/generic-source.toml, generic-analyzer.toml,
+verbose-analyzer.toml and generic-power-meter.toml send (short and long forms, optional nodes,
+unit suffixes), and the query of every setting.
 """
 
 from __future__ import annotations
 
 from typing import Callable
 
-from tonebench.sim.bench import SimBench
+from tonebench.sim.bench import PowerMeterState, SimBench
 from tonebench.sim.scpi import (
     DATA_OUT_OF_RANGE,
     EXECUTION_ERROR,
@@ -18,6 +18,7 @@ from tonebench.sim.scpi import (
     parse_bool,
     parse_number,
 )
+from tonebench.units import dbm_to_watt
 
 SOURCE_MIN_FREQ_HZ = 9e3
 SOURCE_MAX_FREQ_HZ = 6e9
@@ -30,6 +31,8 @@ ANALYZER_ATTEN_STEP_DB = 2.0
 ANALYZER_MIN_REF_DBM = -150.0
 ANALYZER_MAX_REF_DBM = 30.0
 OVERLOAD_BIT = 3  # of STATus:QUEStionable:CONDition
+POWER_METER_MIN_FREQ_HZ = 10e6
+POWER_METER_MAX_FREQ_HZ = 18e9
 
 
 def _in_range(value: float, low: float, high: float, what: str) -> float:
@@ -99,6 +102,10 @@ class SimSource(_BenchDevice):
     def reset(self) -> None:
         self.bench.reset_source(self.index)
 
+    def unsettle(self, level_error_db: float, time_constant_s: float) -> None:
+        """Fault hook (sim/faults.py, kind "unsettled"): the level settles slowly after this change."""
+        self.bench.unsettle_source(self.index, level_error_db, time_constant_s)
+
     def operation_complete(self) -> None:
         self.bench.settle_source(self.index)
 
@@ -146,3 +153,48 @@ class SimAnalyzer(_BenchDevice):
 
     def reset(self) -> None:
         self.bench.reset_analyzer()
+
+
+class SimPowerMeter(_BenchDevice):
+    """Power meter whose sensor sits on a coupled port at the DUT input plane."""
+
+    def __init__(self, bench: SimBench):
+        super().__init__(bench, "power_meter", "tonebench,simulated power meter,SIM-PM-0001,0.1")
+        self._setting(
+            ("[SENSe]:FREQuency[:CW]", "[SENSe]:FREQuency:FIXed"),
+            lambda p: setattr(self._state(), "freq_hz",
+                              _number(p, "HZ", POWER_METER_MIN_FREQ_HZ, POWER_METER_MAX_FREQ_HZ, "frequency")),
+            lambda: _fmt(self._state().freq_hz),
+        )
+        self._setting(("UNIT:POWer",), self._set_unit, lambda: "DBM" if self._state().unit_dbm else "W")
+        self._setting(("INITiate:CONTinuous",),
+                      lambda p: setattr(self._state(), "continuous", parse_bool(p[0])),
+                      lambda: "1" if self._state().continuous else "0")
+        self.command("INITiate[:IMMediate]", lambda p: bench.measure_power(), nparams=0)
+        # CONFigure sets up one measurement: single-shot; its optional expected value and
+        # resolution are accepted and not needed here (one range covers the sensor).
+        self.command("CONFigure[:SCALar][:POWer][:AC]", lambda p: setattr(self._state(), "continuous", False))
+        self.query("FETCh[:SCALar][:POWer][:AC]", lambda p: self._fetch(), nparams=0)
+        self.query("READ[:SCALar][:POWer][:AC]", lambda p: self._read(), nparams=0)
+
+    def _state(self) -> PowerMeterState:
+        return self.bench.power_meter  # looked up on each call: *RST replaces it
+
+    def _set_unit(self, params: list[str]) -> None:
+        word = params[0].strip().upper()
+        if word not in ("DBM", "W"):
+            raise ScpiError(DATA_OUT_OF_RANGE, f"Data out of range;unit {word} is not DBM or W")
+        self._state().unit_dbm = word == "DBM"
+
+    def _fetch(self) -> str:
+        reading_dbm = self._state().reading_dbm
+        if reading_dbm is None:
+            raise ScpiError(EXECUTION_ERROR, "Execution error;no measurement yet, INITiate first")
+        return _fmt(reading_dbm if self._state().unit_dbm else float(dbm_to_watt(reading_dbm)))
+
+    def _read(self) -> str:
+        self.bench.measure_power()
+        return self._fetch()
+
+    def reset(self) -> None:
+        self.bench.reset_power_meter()

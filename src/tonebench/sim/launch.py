@@ -1,9 +1,10 @@
-"""Start a simulated bench in-process: three raw-SCPI instruments on free loopback ports."""
+"""Start a simulated bench in-process: four raw-SCPI instruments on free loopback ports."""
 
 from __future__ import annotations
 
 from tonebench.sim.bench import SimBench
-from tonebench.sim.instruments import SimAnalyzer, SimSource
+from tonebench.sim.faults import FaultSchedule
+from tonebench.sim.instruments import SimAnalyzer, SimPowerMeter, SimSource
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.server import InstrumentServer
 
@@ -11,10 +12,15 @@ from tonebench.sim.server import InstrumentServer
 class RunningSimBench:
     """A started simulated bench; `resources` maps role -> pyvisa resource string. Close it when done."""
 
-    def __init__(self, bench: SimBench, servers: dict[str, InstrumentServer]):
+    def __init__(self, bench: SimBench, servers: dict[str, InstrumentServer], faults: FaultSchedule):
         self.bench = bench
         self._servers = servers
+        self.faults = faults  # add faults while it runs; `faults.fired` records what fired
         self.resources: dict[str, str] = {role: server.resource for role, server in servers.items()}
+
+    def switch_off(self, role: str) -> None:
+        """Stop serving one instrument, as if it were switched off (its port refuses connections)."""
+        self._servers[role].stop()
 
     def close(self) -> None:
         for server in self._servers.values():
@@ -27,18 +33,20 @@ class RunningSimBench:
         self.close()
 
 
-def start_sim_bench(scenario: Scenario) -> RunningSimBench:
-    """Build the bench and serve source1, source2 and analyzer on free ports of 127.0.0.1."""
+def start_sim_bench(scenario: Scenario, faults: FaultSchedule | None = None) -> RunningSimBench:
+    """Build the bench and serve source1, source2, analyzer and power_meter on free ports of 127.0.0.1."""
     bench = SimBench(scenario)
-    devices = {"source1": SimSource(bench, 1), "source2": SimSource(bench, 2), "analyzer": SimAnalyzer(bench)}
+    schedule = faults if faults is not None else FaultSchedule(scenario.faults)
+    devices = {"source1": SimSource(bench, 1), "source2": SimSource(bench, 2), "analyzer": SimAnalyzer(bench),
+               "power_meter": SimPowerMeter(bench)}
     servers: dict[str, InstrumentServer] = {}
     try:
         for role, device in devices.items():
-            server = InstrumentServer(device, bench.lock)
+            server = InstrumentServer(device, bench.lock, name=role, faults=schedule)
             server.start()
             servers[role] = server
     except BaseException:
         for server in servers.values():
             server.stop()
         raise
-    return RunningSimBench(bench, servers)
+    return RunningSimBench(bench, servers, schedule)

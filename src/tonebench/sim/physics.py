@@ -63,17 +63,20 @@ def vpeak_to_watt(vpeak_v):
 
 @dataclass(frozen=True)
 class Nonlinearity:
-    """Memoryless DUT transfer in volts: y = a1 * s * g(x / s), with s = sqrt(a1 / |a3|).
+    """Memoryless DUT transfer in volts: y = a1 * s * g(x / s) + a2 * x^2, with s = sqrt(a1 / |a3|).
 
     g(u) = c(u) = u - u^3 (u held at the turning point 1/sqrt(3) beyond it) for the pure cubic;
     with a compression point, g(u) = v * R(c(u) / v), R the Rapp limiter of smoothness 3, which
     has no cubic Taylor term, so the small-signal a1 and a3 stay exactly as given. v (the output
     saturation in units of a1 * s) is solved numerically for the wanted IIP3 - P1dB distance.
+    The second-order term is added outside the odd part, so it makes no odd-order products and
+    leaves a1, a3 and the compression as they are; x is held at the same turning point there.
     """
 
     a1: float  # small-signal voltage gain, V/V
     a3: float  # cubic coefficient, 1/V^2; negative (compressive)
     sat_norm: float | None  # v above; None = pure cubic
+    a2: float = 0.0  # second-order coefficient, 1/V: adds a2 x^2 (even-order products only)
 
     @property
     def scale_v(self) -> float:
@@ -88,7 +91,11 @@ class Nonlinearity:
     def output_v(self, x_v):
         """Instantaneous output voltage (V) for input voltage x_v (V), any real array."""
         scale_v = self.scale_v
-        return self.a1 * scale_v * _normalized_transfer(np.asarray(x_v, dtype=float) / scale_v, self.sat_norm)
+        u = np.asarray(x_v, dtype=float) / scale_v
+        y_v = self.a1 * scale_v * _normalized_transfer(u, self.sat_norm)
+        if self.a2:
+            y_v = y_v + self.a2 * (scale_v * np.clip(u, -_CUBIC_TURN, _CUBIC_TURN)) ** 2
+        return y_v
 
 
 def _normalized_transfer(u, sat_norm: float | None):
@@ -100,15 +107,19 @@ def _normalized_transfer(u, sat_norm: float | None):
     return sat_norm * z / (1.0 + np.abs(z) ** (2 * RAPP_SMOOTHNESS)) ** (1.0 / (2 * RAPP_SMOOTHNESS))
 
 
-def dut_nonlinearity(gain_db: float, iip3_dbm: float, iip3_above_p1db_db: float | None = None) -> Nonlinearity:
+def dut_nonlinearity(gain_db: float, iip3_dbm: float, iip3_above_p1db_db: float | None = None,
+                     iip2_dbm: float | None = None) -> Nonlinearity:
     """Coefficients for small-signal gain_db and input intercept iip3_dbm (A_IIP3^2 = (4/3)|a1/a3|).
 
     iip3_above_p1db_db=None gives the pure cubic (about 9.64 dB); a larger value adds saturation.
+    iip2_dbm sets the second-order term: with equal tones A the products at f2-f1 and f1+f2 are
+    a2 A^2 each against a1 A at the fundamental, meeting at A_IIP2 = a1/a2; None: no such term.
     """
     a1 = 10.0 ** (gain_db / 20.0)
     a3 = -(4.0 / 3.0) * a1 / float(dbm_to_vpeak(iip3_dbm)) ** 2
     sat_norm = None if iip3_above_p1db_db is None else _saturation_norm(round(float(iip3_above_p1db_db), 9))
-    return Nonlinearity(a1=a1, a3=a3, sat_norm=sat_norm)
+    a2 = 0.0 if iip2_dbm is None else a1 / float(dbm_to_vpeak(iip2_dbm))
+    return Nonlinearity(a1=a1, a3=a3, sat_norm=sat_norm, a2=a2)
 
 
 def _normalized_fundamental_gain(u_amp, sat_norm: float | None) -> np.ndarray:

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
+from tonebench.sim.faults import FaultSpec
+
 # A memoryless cubic compresses 1 dB at 10*log10((4/3) / (4/3 * (1 - 10^(-1/20)))) = 9.64 dB below
 # its IIP3; a saturating stage can only make it compress earlier. Kept a little above that.
 MIN_IIP3_ABOVE_P1DB_DB = 9.7
@@ -28,6 +30,9 @@ class DutScenario(_Strict):
     # Input-referred at ref_freq_hz; elsewhere it keeps its distance below the IIP3.
     # None: the pure cubic, which compresses 1 dB about 9.6 dB below its IIP3.
     p1db_dbm: float | None = Field(None, ge=-80.0, le=90.0)
+    # Second-order input intercept (products at f2-f1 and f1+f2), the same at every frequency.
+    # The default puts them far below anything the third-order tests read.
+    iip2_dbm: float = Field(60.0, ge=-40.0, le=200.0)
     nf_db: float = Field(1.2, ge=0.0, le=40.0)
 
     @model_validator(mode="after")
@@ -85,6 +90,20 @@ class AnalyzerScenario(_Strict):
     trace_points: int = Field(1001, ge=3, le=100_001)
 
 
+class PowerMeterScenario(_Strict):
+    """A broadband power sensor on a coupled port at the DUT input plane: it reads the total power there."""
+
+    # Fixed reading error of this meter and sensor (dB, added to every reading).
+    accuracy_db: float = Field(0.03, ge=-3.0, le=3.0)
+    # Standard deviation of the reading-to-reading scatter (dB), seeded.
+    reading_noise_db: float = Field(0.01, ge=0.0, le=1.0)
+    # Reading with no power applied (sensor noise and zero offset), dBm.
+    noise_floor_dbm: float = Field(-70.0, ge=-150.0, le=0.0)
+    # The sensor is corrected for the frequency it is told; a tone elsewhere reads off by this slope.
+    sensor_slope_db_per_ghz: float = Field(0.5, ge=-10.0, le=10.0)
+    measure_time_s: float = Field(0.02, ge=0.0, le=10.0)
+
+
 class Scenario(_Strict):
     """The whole `[simulation]` table."""
 
@@ -96,3 +115,8 @@ class Scenario(_Strict):
     paths: PathScenario = Field(default_factory=PathScenario)
     sources: SourcesScenario = Field(default_factory=SourcesScenario)
     analyzer: AnalyzerScenario = Field(default_factory=AnalyzerScenario)
+    power_meter: PowerMeterScenario = Field(default_factory=PowerMeterScenario)
+    # A thru (0 dB, perfectly linear, noiseless) in place of the DUT; SimBench.set_thru switches it.
+    thru: bool = False
+    # Faults to inject ([[simulation.faults]] rows; see sim/faults.py), counted from the start.
+    faults: list[FaultSpec] = Field(default_factory=list)

@@ -76,6 +76,7 @@ ESR_QUERY_ERROR = 1 << 2
 ESR_DEVICE_ERROR = 1 << 3
 ESR_EXECUTION_ERROR = 1 << 4
 ESR_COMMAND_ERROR = 1 << 5
+ESR_POWER_ON = 1 << 7
 
 
 class ScpiError(Exception):
@@ -301,6 +302,16 @@ class ScpiDevice:
 
     def operation_complete(self) -> None:
         """Called by *OPC?, *OPC and *WAI: settle every pending operation."""
+
+    def power_cycle(self) -> None:
+        """Switched off and on again: default state, empty error queue, power-on bit set.
+
+        IEEE 488.2 11.5.1.1 (from memory): bit 7 (PON) of the event status register reports that
+        power was turned off and on since the register was last read.
+        """
+        self.reset()
+        self._errors.clear()
+        self._esr = ESR_POWER_ON
 
     # --- error queue --------------------------------------------------------------------------
 

@@ -5,8 +5,11 @@ from __future__ import annotations
 import ipaddress
 import logging
 import socket
+import struct
 import threading
+import time
 
+from tonebench.sim.faults import FaultSchedule, FaultSpec
 from tonebench.sim.scpi import DEVICE_SPECIFIC_ERROR, STANDARD_MESSAGES, ScpiDevice
 
 _log = logging.getLogger(__name__)
@@ -19,10 +22,16 @@ class InstrumentServer:
     """Serves one ScpiDevice as a raw-SCPI socket on loopback: newline-terminated lines.
 
     Each line is handled under `lock`, which all instruments of one simulated bench share so the
-    physics sees one consistent state. Several clients may connect at once.
+    physics sees one consistent state. Several clients may connect at once. `faults` (settable at
+    any time) injects the faults scheduled for `name` (by default the device's own name).
     """
 
-    def __init__(self, device: ScpiDevice, lock: threading.RLock, host: str = "127.0.0.1", port: int = 0):
+    def __init__(self, device: ScpiDevice, lock: threading.RLock, host: str = "127.0.0.1", port: int = 0,
+                 *, name: str | None = None, faults: FaultSchedule | None = None):
+        self.name = name if name is not None else getattr(device, "name", "")
+        self.faults = faults
+        # Wall-clock (time.monotonic) end of a stall: until then no line of any connection is served.
+        self._stalled_until = 0.0
         self._host = _loopback_ipv4(host)
         self._requested_port = port
         self._device = device
@@ -121,15 +130,73 @@ class InstrumentServer:
                 while b"\n" in buffer:
                     raw, buffer = buffer.split(b"\n", 1)
                     line = raw.rstrip(b"\r").decode("ascii", errors="replace")
-                    reply = self._reply_for(line)
-                    if reply is not None:
-                        conn.sendall(reply.encode("ascii", errors="replace") + b"\n")
+                    if not self._serve_line(conn, line):
+                        return
         except OSError:
             return  # the client went away or stop() shut the socket
         finally:
             with self._clients_lock:
                 self._clients.pop(conn, None)
             conn.close()
+
+    def _serve_line(self, conn: socket.socket, line: str) -> bool:
+        """Execute one line (with any fault due on it) and send its reply; False ends the connection."""
+        self._wait_out_stall()
+        due = self.faults.faults_for(self.name, line) if self.faults is not None else []
+        execute, stall, unsettle = True, None, None
+        for spec in due:
+            if spec.kind == "drop":
+                _abort(conn)
+                return False
+            if spec.kind == "reboot":
+                with self._lock:
+                    self._device.power_cycle()
+                if not spec.keep_connection:
+                    self._abort_all()
+                    return False
+            elif spec.kind == "error":
+                with self._lock:
+                    message = STANDARD_MESSAGES.get(spec.code, "Device-specific error")
+                    self._device.push_error(spec.code, f"{message};simulated fault on {line.strip()!r}")
+                execute = execute and "?" in line  # a command in error is not executed
+            elif spec.kind == "stall":
+                stall = spec
+            elif spec.kind == "unsettled":
+                unsettle = spec
+        reply = self._reply_for(line) if execute else None
+        if unsettle is not None:
+            self._unsettle(unsettle)
+        if stall is not None:
+            self._stalled_until = max(self._stalled_until, time.monotonic() + stall.duration_s)
+            self._wait_out_stall()
+            if not stall.late_reply:
+                reply = None
+        if reply is not None:
+            conn.sendall(reply.encode("ascii", errors="replace") + b"\n")
+        return True
+
+    def _wait_out_stall(self) -> None:
+        # An Event wait rather than a sleep so that stop() ends a stall at once.
+        while not self._stopping.is_set():
+            remaining_s = self._stalled_until - time.monotonic()
+            if remaining_s <= 0.0:
+                return
+            self._stopping.wait(remaining_s)
+
+    def _unsettle(self, spec: FaultSpec) -> None:
+        unsettle = getattr(self._device, "unsettle", None)
+        if unsettle is None:
+            _log.warning("%s: an unsettled fault needs a device with unsettle(); ignored", self.name)
+            return
+        with self._lock:
+            unsettle(spec.level_error_db, spec.duration_s)
+
+    def _abort_all(self) -> None:
+        """Reset every connection of this instrument (a power cycle)."""
+        with self._clients_lock:
+            clients = list(self._clients)
+        for conn in clients:
+            _abort(conn)
 
     def _reply_for(self, line: str) -> str | None:
         """Reply text for one received line, or None. The one place where per-line faults can be added."""
@@ -142,6 +209,20 @@ class InstrumentServer:
                 _log.exception("simulated instrument failed on %r", line)
                 self._device.push_error(DEVICE_SPECIFIC_ERROR, STANDARD_MESSAGES[DEVICE_SPECIFIC_ERROR])
                 return None
+
+
+def _abort(conn: socket.socket) -> None:
+    """Make the connection end with a TCP reset, as when an instrument drops off the network.
+
+    SO_LINGER with a zero timeout makes close() send RST instead of FIN, so the client sees
+    "connection reset" at once rather than waiting out its read timeout; shutdown(SHUT_RD) wakes
+    the thread serving this connection, whose close() then sends the reset.
+    """
+    try:
+        conn.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+        conn.shutdown(socket.SHUT_RD)
+    except OSError:
+        pass  # already gone
 
 
 def _loopback_ipv4(host: str) -> str:

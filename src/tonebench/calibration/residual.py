@@ -1,0 +1,120 @@
+"""The system residual: the test system's own IM3 seen through a thru, as intercepts at the DUT input plane.
+
+Pure numpy. With a thru in place the IM3 read at the DUT input plane (analyzer reading plus the
+output loss) comes from two places: the sources (combiner isolation; it does not move with the
+analyzer's attenuation) and the analyzer's first mixer (its input intercept rises dB for dB with
+attenuation). Slope 3 is fixed, so each point gives an intercept and a sweep's intercept is their
+mean (design section 3).
+
+Splitting: an intercept IP3 stands for the product amplitude k = 10^(-IP3/10) (IM3 amplitude
+relative to the tones' cube). The two shares are taken to add in phase, the worst case of the
+phasor sum (design section 4): k(A) = k_src + k_an and k(A + step) = k_src + k_an * 10^(-step/10),
+two equations for the two shares.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from tonebench.analysis.fit import noise_corrected_dbm
+
+MIN_SNR_DB = 10.0  # a residual reading is used only this far above its noise marker (design section 3)
+
+
+@dataclass(frozen=True)
+class InterceptEstimate:
+    """One attenuation's sweep: the intercept (dBm at the DUT input plane) or, with nothing
+    readable, a lower bound on it from the strongest point's noise floor."""
+
+    ip3_dbm: float | None
+    ip3_min_dbm: float | None
+    n_valid: int
+
+
+def point_intercepts_dbm(p1_dbm, p2_dbm, im3_lower_dbm, im3_upper_dbm) -> tuple[np.ndarray, np.ndarray]:
+    """Per point, slope 3: lower product ~ 2 P1 + P2 - 2 IP3, upper ~ P1 + 2 P2 - 2 IP3 (design sec. 3)."""
+    p1, p2 = np.asarray(p1_dbm, dtype=float), np.asarray(p2_dbm, dtype=float)
+    lower = (2.0 * p1 + p2 - np.asarray(im3_lower_dbm, dtype=float)) / 2.0
+    upper = (p1 + 2.0 * p2 - np.asarray(im3_upper_dbm, dtype=float)) / 2.0
+    return lower, upper
+
+
+def system_intercept(p1_dbm, p2_dbm, im3_lower_dbm, im3_upper_dbm, noise_lower_dbm, noise_upper_dbm,
+                     overload) -> InterceptEstimate:
+    """Intercept from one thru sweep; all powers at the DUT input plane (dBm), arrays per point."""
+    overload = np.asarray(overload, dtype=bool)
+    values, bounds = [], []
+    for im3, noise in ((im3_lower_dbm, noise_lower_dbm), (im3_upper_dbm, noise_upper_dbm)):
+        im3, noise = np.asarray(im3, dtype=float), np.asarray(noise, dtype=float)
+        corrected, _ = noise_corrected_dbm(im3, noise)
+        valid = (im3 - noise >= MIN_SNR_DB) & ~overload
+        values.append(np.where(valid, corrected, np.nan))
+        # Not readable: the product is less than MIN_SNR_DB over the noise, so the intercept is above this.
+        bounds.append(np.where(~overload, noise + MIN_SNR_DB, np.nan))
+    lower, upper = point_intercepts_dbm(p1_dbm, p2_dbm, values[0], values[1])
+    readable = np.concatenate([lower, upper])
+    readable = readable[np.isfinite(readable)]
+    if readable.size:
+        return InterceptEstimate(float(np.mean(readable)), None, int(readable.size))
+    lower_b, upper_b = point_intercepts_dbm(p1_dbm, p2_dbm, bounds[0], bounds[1])
+    floor = np.concatenate([lower_b, upper_b])
+    floor = floor[np.isfinite(floor)]
+    # Each point bounds the intercept on its own; the strongest point gives the tightest bound.
+    return InterceptEstimate(None, float(np.max(floor)) if floor.size else None, 0)
+
+
+def _amplitude(ip3_dbm: float) -> float:
+    return 10.0 ** (-ip3_dbm / 10.0)
+
+
+def _intercept(amplitude: float) -> float | None:
+    return -10.0 * math.log10(amplitude) if amplitude > 0.0 else None
+
+
+@dataclass(frozen=True)
+class ResidualSplit:
+    """Intercepts (dBm, DUT input plane) of the whole system at the base attenuation, of the sources,
+    and of the analyzer at the base attenuation. None: not resolved; *_min_dbm then bound it."""
+
+    system_ip3_dbm: float | None
+    source_ip3_dbm: float | None
+    analyzer_ip3_dbm: float | None
+    system_ip3_min_dbm: float | None = None
+    source_ip3_min_dbm: float | None = None
+    analyzer_ip3_min_dbm: float | None = None
+
+
+def split_shares(base: InterceptEstimate, stepped: InterceptEstimate, step_db: float) -> ResidualSplit:
+    """Split the residual into the sources' and the analyzer's share from two attenuations.
+
+    step_db: the attenuation of `stepped` less that of `base` (positive, e.g. 10 dB).
+    """
+    ratio = 10.0 ** (-step_db / 10.0)  # the analyzer's amplitude share scales by this
+    if base.ip3_dbm is None:
+        # Nothing readable at all: every share is at least as far up as the whole.
+        bound = base.ip3_min_dbm
+        return ResidualSplit(None, None, None, bound, bound, bound)
+    k_base = _amplitude(base.ip3_dbm)
+    if stepped.ip3_dbm is None:
+        # Gone into the noise with more attenuation: the analyzer's. The sources' share is at
+        # most what the noise at the step allows (k_step <= k_bound, k_src = (k_step - r k_base)/(1 - r)).
+        source_min = None
+        if stepped.ip3_min_dbm is not None:
+            k_src_max = (_amplitude(stepped.ip3_min_dbm) - ratio * k_base) / (1.0 - ratio)
+            source_min = _intercept(k_src_max)
+        return ResidualSplit(base.ip3_dbm, None, base.ip3_dbm, source_ip3_min_dbm=source_min)
+    k_step = _amplitude(stepped.ip3_dbm)
+    k_analyzer = (k_base - k_step) / (1.0 - ratio)
+    k_source = k_base - k_analyzer
+    # A share that comes out zero or negative is below what the readings resolve: it is at
+    # least as far up as the whole system's intercept.
+    source = _intercept(k_source)
+    analyzer = _intercept(k_analyzer)
+    return ResidualSplit(
+        base.ip3_dbm, source, analyzer,
+        source_ip3_min_dbm=None if source is not None else base.ip3_dbm,
+        analyzer_ip3_min_dbm=None if analyzer is not None else base.ip3_dbm,
+    )

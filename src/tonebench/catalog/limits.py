@@ -1,0 +1,189 @@
+"""Spec limits per part number, and the pass/fail verdict they give each stored result.
+
+A limit applies to a result when the result's device has the limit's part number, its center
+frequency lies in the limit's frequency range, and (when the limit gives them) its spacing and
+bias lie in the limit's spacing and bias ranges; all ranges inclusive. A result fails when any
+applicable limit is broken or its parameter was not measured (a refused fit cannot show the part
+meets its limit), passes when all hold, and gets 'no-limit' when none applies.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from dataclasses import dataclass
+
+import sqlalchemy as sa
+from sqlalchemy.orm import Session
+from sqlalchemy.orm.attributes import set_committed_value
+
+from tonebench.errors import InputError
+from tonebench.store.models import SPEC_PARAMETERS, Device, Result, Run, SpecLimit, utc_now
+
+_BATCH = 2000  # results judged and updated per round trip
+
+
+def parameter_unit(parameter: str) -> str:
+    return "dBm" if parameter.endswith("_dbm") else "dB"
+
+
+def add_limit(
+    session: Session,
+    part_number: str,
+    parameter: str,
+    *,
+    freq_min_hz: float,
+    freq_max_hz: float,
+    min_value: float | None = None,
+    max_value: float | None = None,
+    spacing_min_hz: float | None = None,
+    spacing_max_hz: float | None = None,
+    bias_min_v: float | None = None,
+    bias_max_v: float | None = None,
+    notes: str | None = None,
+) -> SpecLimit:
+    """Store a limit after checking it; values in the parameter's unit (dBm or dB)."""
+    part_number = part_number.strip()
+    if not part_number:
+        raise InputError("limit part_number: empty; give the part number the limit is for")
+    if parameter not in SPEC_PARAMETERS:
+        raise InputError(f"limit parameter '{parameter}': unknown; allowed: {', '.join(SPEC_PARAMETERS)}")
+    if min_value is None and max_value is None:
+        raise InputError("limit: give a minimum, a maximum or both")
+    values = dict(min_value=min_value, max_value=max_value, freq_min_hz=freq_min_hz,
+                  freq_max_hz=freq_max_hz, spacing_min_hz=spacing_min_hz,
+                  spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v)
+    for name, value in values.items():
+        if value is not None and not math.isfinite(value):
+            raise InputError(f"limit {name}: {value} is not a finite number")
+    for low, high in (("min_value", "max_value"), ("freq_min_hz", "freq_max_hz"),
+                      ("spacing_min_hz", "spacing_max_hz"), ("bias_min_v", "bias_max_v")):
+        if values[low] is not None and values[high] is not None and values[low] > values[high]:
+            raise InputError(f"limit {low}={values[low]:g} is above {high}={values[high]:g}; give min <= max")
+    if freq_min_hz <= 0:
+        raise InputError(f"limit freq_min_hz={freq_min_hz:g}: must be above 0 Hz")
+    limit = SpecLimit(part_number=part_number, parameter=parameter, notes=notes, created_at=utc_now(), **values)
+    session.add(limit)
+    session.flush()
+    return limit
+
+
+def list_limits(session: Session, part_number: str | None = None) -> list[SpecLimit]:
+    query = sa.select(SpecLimit).order_by(SpecLimit.part_number, SpecLimit.parameter, SpecLimit.freq_min_hz, SpecLimit.id)
+    if part_number:
+        query = query.where(SpecLimit.part_number == part_number)
+    return list(session.scalars(query))
+
+
+def remove_limit(session: Session, limit_id: int) -> SpecLimit:
+    limit = session.get(SpecLimit, limit_id)
+    if limit is None:
+        raise InputError(f"limit {limit_id}: no such limit (see `tonebench limit list`)")
+    session.delete(limit)
+    session.flush()
+    return limit
+
+
+@dataclass(frozen=True)
+class LimitRule:
+    """A limit detached from the session, so judging needs no database."""
+
+    id: int
+    parameter: str
+    min_value: float | None
+    max_value: float | None
+    freq_min_hz: float
+    freq_max_hz: float
+    spacing_min_hz: float | None = None
+    spacing_max_hz: float | None = None
+    bias_min_v: float | None = None
+    bias_max_v: float | None = None
+
+    @classmethod
+    def of(cls, limit: SpecLimit) -> "LimitRule":
+        return cls(limit.id, limit.parameter, limit.min_value, limit.max_value, limit.freq_min_hz,
+                   limit.freq_max_hz, limit.spacing_min_hz, limit.spacing_max_hz, limit.bias_min_v,
+                   limit.bias_max_v)
+
+    def applies(self, center_hz: float, spacing_hz: float, bias_v: float | None) -> bool:
+        if not self.freq_min_hz <= center_hz <= self.freq_max_hz:
+            return False
+        if self.spacing_min_hz is not None and spacing_hz < self.spacing_min_hz:
+            return False
+        if self.spacing_max_hz is not None and spacing_hz > self.spacing_max_hz:
+            return False
+        if self.bias_min_v is not None or self.bias_max_v is not None:
+            if bias_v is None:
+                return False
+            if self.bias_min_v is not None and bias_v < self.bias_min_v:
+                return False
+            if self.bias_max_v is not None and bias_v > self.bias_max_v:
+                return False
+        return True
+
+    def check(self, value: float | None) -> tuple[bool, str]:
+        """(holds, one phrase saying why) for the parameter's value."""
+        unit = parameter_unit(self.parameter)
+        name = f"{self.parameter} (limit {self.id})"
+        if value is None:
+            return False, f"{name}: not measured"
+        if self.min_value is not None and value < self.min_value:
+            return False, f"{name}: {value:+.2f} {unit} below min {self.min_value:+.2f}"
+        if self.max_value is not None and value > self.max_value:
+            return False, f"{name}: {value:+.2f} {unit} above max {self.max_value:+.2f}"
+        return True, f"{name}: {value:+.2f} {unit} ok"
+
+
+def judge(values: dict[str, float | None], center_hz: float, spacing_hz: float, bias_v: float | None,
+          rules: list[LimitRule]) -> tuple[str, str]:
+    """(verdict, detail) of one result; values maps SPEC_PARAMETERS names to the result's values."""
+    checks = [rule.check(values.get(rule.parameter)) for rule in rules if rule.applies(center_hz, spacing_hz, bias_v)]
+    if not checks:
+        return "no-limit", "no spec limit covers this part at this frequency, spacing and bias"
+    verdict = "pass" if all(ok for ok, _ in checks) else "fail"
+    # Failures first: they are what a reader looks for.
+    return verdict, "; ".join(text for ok, text in sorted(checks, key=lambda c: c[0]))
+
+
+def apply_verdicts(session: Session, run_id: int | None = None) -> Counter:
+    """(Re)compute and store the verdict of every result (of one run, or all); counts per verdict.
+
+    Works in the caller's transaction and does not commit. Results already loaded in the
+    session get the new values too.
+    """
+    session.flush()
+    rules: dict[str, list[LimitRule]] = {}
+    for limit in session.scalars(sa.select(SpecLimit)):
+        rules.setdefault(limit.part_number, []).append(LimitRule.of(limit))
+    columns = [getattr(Result, name) for name in SPEC_PARAMETERS]
+    query = (sa.select(Result.id, Device.part_number, Result.center_hz, Result.spacing_hz, Result.bias_v, *columns)
+             .join(Run, Run.id == Result.run_id).outerjoin(Device, Device.id == Run.device_id)
+             .order_by(Result.id).limit(_BATCH))
+    if run_id is not None:
+        query = query.where(Result.run_id == run_id)
+    update = (sa.update(Result.__table__).where(Result.__table__.c.id == sa.bindparam("result_id"))
+              .values(verdict=sa.bindparam("new_verdict"), verdict_detail=sa.bindparam("new_detail")))
+    counts: Counter = Counter()
+    last_id = None
+    while True:
+        # Pages by id, each read in full before its update, so no read spans a write.
+        page = session.execute(query if last_id is None else query.where(Result.id > last_id)).all()
+        if not page:
+            return counts
+        batch = []
+        for result_id, part_number, center_hz, spacing_hz, bias_v, *values in page:
+            verdict, detail = judge(dict(zip(SPEC_PARAMETERS, values)), center_hz, spacing_hz, bias_v,
+                                    rules.get(part_number, []))
+            counts[verdict] += 1
+            batch.append({"result_id": result_id, "new_verdict": verdict, "new_detail": detail})
+        _write(session, update, batch)
+        last_id = page[-1][0]
+
+
+def _write(session: Session, update, batch: list[dict]) -> None:
+    session.connection().execute(update, batch)
+    for item in batch:
+        loaded = session.identity_map.get(session.identity_key(Result, item["result_id"]))
+        if loaded is not None:
+            set_committed_value(loaded, "verdict", item["new_verdict"])
+            set_committed_value(loaded, "verdict_detail", item["new_detail"])

@@ -1,0 +1,243 @@
+"""Find stored results by device, conditions, date, flags and verdict.
+
+One row per fitted result (one center/spacing/bias group of one run), with its device and run.
+Every filter value is a bound parameter of a SQLAlchemy expression: user text never becomes SQL.
+Several values for one field mean any of them; different fields must all hold.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from dataclasses import dataclass, fields
+
+import sqlalchemy as sa
+from sqlalchemy.orm import Session
+
+from tonebench.errors import InputError
+from tonebench.store.models import (
+    FLAGS,
+    VERDICTS,
+    Device,
+    Point,
+    PointFlag,
+    Result,
+    ResultFlag,
+    Run,
+)
+
+_CHUNK = 500  # ids per IN list when fetching flags (well under SQLite's bound-parameter limit)
+
+
+@dataclass(frozen=True)
+class ResultFilter:
+    """Which results to return. Ranges are inclusive, except `until` (runs started before it).
+
+    flags: results carrying any of these flags, on the result itself or on one of its points.
+    flagged: True keeps only results with some flag, False only results with none.
+    A bias range leaves out results measured without a bias.
+    """
+
+    parts: tuple[str, ...] = ()
+    lots: tuple[str, ...] = ()
+    wafers: tuple[str, ...] = ()
+    serials: tuple[str, ...] = ()
+    tags: tuple[str, ...] = ()
+    freq_min_hz: float | None = None
+    freq_max_hz: float | None = None
+    spacing_min_hz: float | None = None
+    spacing_max_hz: float | None = None
+    bias_min_v: float | None = None
+    bias_max_v: float | None = None
+    since: dt.datetime | None = None
+    until: dt.datetime | None = None
+    flags: tuple[str, ...] = ()
+    flagged: bool | None = None
+    verdicts: tuple[str, ...] = ()
+
+    def check(self) -> "ResultFilter":
+        """Raise InputError (one line, naming the filter) for values no result could match."""
+        for name, allowed in (("flags", FLAGS), ("verdicts", VERDICTS)):
+            bad = [v for v in getattr(self, name) if v not in allowed]
+            if bad:
+                raise InputError(f"filter {name}: unknown value '{bad[0]}'; allowed: {', '.join(allowed)}")
+        for low, high in (("freq_min_hz", "freq_max_hz"), ("spacing_min_hz", "spacing_max_hz"),
+                          ("bias_min_v", "bias_max_v")):
+            lo, hi = getattr(self, low), getattr(self, high)
+            for name, value in ((low, lo), (high, hi)):
+                if value is not None and not math.isfinite(value):
+                    raise InputError(f"filter {name}: {value} is not a finite number")
+            if lo is not None and hi is not None and lo > hi:
+                raise InputError(f"filter {low}={lo:g} is above {high}={hi:g}; give min <= max")
+        for name in ("since", "until"):
+            value = getattr(self, name)
+            if value is not None and value.tzinfo is None:
+                raise InputError(f"filter {name}: {value} has no timezone; give a UTC time")
+        if self.since and self.until and self.since >= self.until:
+            raise InputError(f"filter since={self.since.isoformat()} is not before until={self.until.isoformat()}")
+        return self
+
+    def describe(self) -> str:
+        """The filter in words, for report headings; 'all results' when empty."""
+        parts = []
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if value in (None, ()):
+                continue
+            if isinstance(value, tuple):
+                value = ", ".join(value)
+            elif isinstance(value, dt.datetime):
+                value = value.strftime("%Y-%m-%d %H:%M UTC")
+            elif isinstance(value, float):
+                value = f"{value:g}"
+            parts.append(f"{f.name} {value}")
+        return "; ".join(parts) or "all results"
+
+
+@dataclass
+class ResultRow:
+    """One result with its device and run; powers in dBm, gain in dB, frequencies in Hz."""
+
+    result_id: int
+    run_guid: str
+    started_at: dt.datetime
+    part_number: str
+    serial: str
+    lot: str | None
+    wafer: str | None
+    position: str | None
+    tags: tuple[str, ...]
+    center_hz: float
+    spacing_hz: float
+    bias_v: float | None
+    gain_db: float | None
+    iip3_dbm: float | None
+    iip3_lower_dbm: float | None
+    iip3_upper_dbm: float | None
+    oip3_dbm: float | None
+    oip3_lower_dbm: float | None
+    oip3_upper_dbm: float | None
+    p1db_in_dbm: float | None
+    iip2_dbm: float | None
+    iip3_bound_db: float | None
+    n_valid: int
+    n_points: int
+    verdict: str | None
+    verdict_detail: str | None
+    reason: str | None
+    flags: tuple[str, ...] = ()
+
+
+# Exported columns (CSV, JSON): everything but the database's own row id.
+EXPORT_FIELDS = tuple(f.name for f in fields(ResultRow) if f.name != "result_id")
+
+_COLUMNS = (
+    Result.id, Run.guid, Run.started_at, Device.part_number, Device.serial, Device.lot, Device.wafer,
+    Device.position, Device.tags, Result.center_hz, Result.spacing_hz, Result.bias_v, Result.gain_db,
+    Result.iip3_dbm, Result.iip3_lower_dbm, Result.iip3_upper_dbm, Result.oip3_dbm,
+    Result.oip3_lower_dbm, Result.oip3_upper_dbm, Result.p1db_in_dbm, Result.iip2_dbm,
+    Result.iip3_bound_db, Result.n_valid, Result.n_points, Result.verdict, Result.verdict_detail,
+    Result.reason,
+)
+
+
+def _point_flag_exists(names: tuple[str, ...]) -> sa.Exists:
+    """Some point of the result's group (same run, center, spacing and bias) carries a flag."""
+    query = (sa.select(PointFlag.id).join(Point, Point.id == PointFlag.point_id)
+             .where(Point.run_id == Result.run_id, Point.center_hz == Result.center_hz,
+                    Point.spacing_hz == Result.spacing_hz,
+                    Point.bias_v.is_not_distinct_from(Result.bias_v)))
+    if names:
+        query = query.where(PointFlag.flag.in_(names))
+    return query.exists()
+
+
+def _result_flag_exists(names: tuple[str, ...]) -> sa.Exists:
+    query = sa.select(ResultFlag.id).where(ResultFlag.result_id == Result.id)
+    if names:
+        query = query.where(ResultFlag.flag.in_(names))
+    return query.exists()
+
+
+def has_any_tag(dialect: str, tags: tuple[str, ...]) -> sa.ColumnElement[bool]:
+    # The tags column is a JSON array; each backend has its own function to unnest one.
+    unnest = sa.func.json_each if dialect == "sqlite" else sa.func.json_array_elements_text
+    each = unnest(Device.tags).table_valued("value")
+    return sa.select(each.c.value).where(each.c.value.in_(tags)).exists()
+
+
+def conditions(flt: ResultFilter, dialect: str) -> list[sa.ColumnElement[bool]]:
+    """The WHERE clauses for a filter, over results joined to runs and devices."""
+    where: list[sa.ColumnElement[bool]] = []
+    for column, values in ((Device.part_number, flt.parts), (Device.lot, flt.lots),
+                           (Device.wafer, flt.wafers), (Device.serial, flt.serials),
+                           (Result.verdict, flt.verdicts)):
+        if values:
+            where.append(column.in_(values))
+    if flt.tags:
+        where.append(has_any_tag(dialect, flt.tags))
+    for column, low, high in ((Result.center_hz, flt.freq_min_hz, flt.freq_max_hz),
+                              (Result.spacing_hz, flt.spacing_min_hz, flt.spacing_max_hz),
+                              (Result.bias_v, flt.bias_min_v, flt.bias_max_v)):
+        if low is not None:
+            where.append(column >= low)
+        if high is not None:
+            where.append(column <= high)
+    if flt.since is not None:
+        where.append(Run.started_at >= flt.since)
+    if flt.until is not None:
+        where.append(Run.started_at < flt.until)
+    if flt.flags:
+        where.append(sa.or_(_result_flag_exists(flt.flags), _point_flag_exists(flt.flags)))
+    if flt.flagged is not None:
+        any_flag = sa.or_(_result_flag_exists(()), _point_flag_exists(()))
+        where.append(any_flag if flt.flagged else sa.not_(any_flag))
+    return where
+
+
+def result_query(flt: ResultFilter, dialect: str, columns=_COLUMNS) -> sa.Select:
+    return (sa.select(*columns).select_from(Result).join(Run, Run.id == Result.run_id)
+            .join(Device, Device.id == Run.device_id).where(*conditions(flt, dialect)))
+
+
+def find_results(session: Session, flt: ResultFilter, limit: int | None = None) -> list[ResultRow]:
+    """Results matching the filter, ordered by part, serial, run start, center, spacing, bias."""
+    flt.check()
+    if limit is not None and limit < 1:
+        raise InputError(f"limit {limit}: give at least 1")
+    dialect = session.get_bind().dialect.name
+    query = result_query(flt, dialect).order_by(
+        Device.part_number, Device.serial, Run.started_at, Run.guid, Result.center_hz,
+        Result.spacing_hz, sa.nulls_first(Result.bias_v))
+    if limit is not None:
+        query = query.limit(limit)
+    rows = [ResultRow(*row[:8], tuple(row[8] or ()), *row[9:]) for row in session.execute(query)]
+    flags = result_flags(session, [row.result_id for row in rows])
+    for row in rows:
+        row.flags = tuple(sorted(flags.get(row.result_id, ())))
+    return rows
+
+
+def count_results(session: Session, flt: ResultFilter) -> int:
+    flt.check()
+    dialect = session.get_bind().dialect.name
+    return session.scalar(result_query(flt, dialect, (sa.func.count(Result.id),)))
+
+
+def result_flags(session: Session, result_ids: list[int]) -> dict[int, set[str]]:
+    """Flag names per result id: the result's own and those of its group's points."""
+    found: dict[int, set[str]] = {}
+    for start in range(0, len(result_ids), _CHUNK):
+        chunk = result_ids[start:start + _CHUNK]
+        own = sa.select(ResultFlag.result_id, ResultFlag.flag).where(ResultFlag.result_id.in_(chunk))
+        of_points = (
+            sa.select(Result.id, PointFlag.flag).select_from(Result)
+            .join(Point, sa.and_(Point.run_id == Result.run_id, Point.center_hz == Result.center_hz,
+                                 Point.spacing_hz == Result.spacing_hz,
+                                 Point.bias_v.is_not_distinct_from(Result.bias_v)))
+            .join(PointFlag, PointFlag.point_id == Point.id)
+            .where(Result.id.in_(chunk)))
+        for query in (own, of_points):
+            for result_id, flag in session.execute(query):
+                found.setdefault(result_id, set()).add(flag)
+    return found

@@ -1,0 +1,384 @@
+"""Move runs between databases: export to a portable file, import by run GUID without duplicates.
+
+The file is gzip-compressed JSON lines, one record per line:
+  {"kind": "header", "format": "tonebench-transfer", "version": 1, "schema": <revision>}
+  {"kind": "bench" | "plan" | "device" | "calibration_set", ...}    shared records, once each
+  {"kind": "run", ...}    a run with its instruments, offsets, events, points and results
+  {"kind": "end", "records": <lines before this one>, "sha256": <hash of those lines>}
+Records refer to each other by natural keys (bench name, plan sha256, device part number and
+serial, calibration set name, run GUID), never by database ids, and every list is written in an
+order that depends only on content. So the same runs always give the same bytes, and importing a
+file and exporting the same runs again gives the identical file.
+
+Import checks the hash and the version before writing anything, then adds every run whose GUID
+the database lacks in one transaction; shared records already present (same key) are reused as
+they are. Importing the same file twice adds nothing the second time.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import gzip
+import hashlib
+import json
+import os
+import tempfile
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import sqlalchemy as sa
+from sqlalchemy.orm import Session, selectinload, sessionmaker
+
+from tonebench.errors import InputError
+from tonebench.review import find_run
+from tonebench.store.database import schema_head
+from tonebench.store.models import (
+    Bench,
+    CalibrationOffset,
+    CalibrationSet,
+    Device,
+    Event,
+    Instrument,
+    Offset,
+    Plan,
+    Point,
+    PointFlag,
+    Result,
+    ResultFlag,
+    Run,
+    SystemResidual,
+    UtcDateTime,
+)
+
+FORMAT = "tonebench-transfer"
+VERSION = 1
+
+
+def _columns(model) -> list[sa.Column]:
+    """Columns that travel: all but the row id and foreign keys (those become natural keys)."""
+    return [c for c in model.__table__.columns if c.name != "id" and not c.foreign_keys]
+
+
+def _dump(obj, model) -> dict:
+    record = {}
+    for column in _columns(model):
+        value = getattr(obj, column.key)
+        record[column.name] = value.isoformat() if isinstance(value, dt.datetime) else value
+    return record
+
+
+def _canonical(record) -> str:
+    return json.dumps(record, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+
+
+def _sorted(records: Iterable[dict], *first: str) -> list[dict]:
+    """Ordered by the named fields, then by the whole record, so ids never decide the order."""
+    return sorted(records, key=lambda r: (tuple(_canonical(r.get(name)) for name in first), _canonical(r)))
+
+
+# --- export -------------------------------------------------------------------------------------
+
+@dataclass
+class ExportSummary:
+    path: Path
+    runs: int = 0
+    points: int = 0
+    sha256: str = ""
+
+
+def _run_ids(session: Session, run_idents: list[str] | None, since: dt.datetime | None) -> list[int]:
+    query = sa.select(Run.id).order_by(Run.started_at, Run.guid)
+    if run_idents:
+        query = query.where(Run.id.in_([find_run(session, ident).id for ident in run_idents]))
+    if since is not None:
+        if since.tzinfo is None:
+            raise InputError(f"export since {since}: no timezone; give a UTC time")
+        query = query.where(Run.started_at >= since)
+    return list(session.scalars(query))
+
+
+def _shared_records(session: Session, run_ids: list[int]) -> Iterator[dict]:
+    if not run_ids:
+        return
+    chosen = Run.id.in_(run_ids)
+    set_ids = set(session.scalars(sa.select(Run.calibration_set_id).where(chosen, Run.calibration_set_id.is_not(None))))
+    set_ids |= set(session.scalars(sa.select(Result.calibration_set_id)
+                                   .where(Result.run_id.in_(run_ids), Result.calibration_set_id.is_not(None))))
+    sets = list(session.scalars(sa.select(CalibrationSet).where(CalibrationSet.id.in_(set_ids))
+                                .options(selectinload(CalibrationSet.offsets), selectinload(CalibrationSet.residuals))))
+    bench_ids = set(session.scalars(sa.select(Run.bench_id).where(chosen))) | {s.bench_id for s in sets if s.bench_id}
+    for bench in session.scalars(sa.select(Bench).where(Bench.id.in_(bench_ids)).order_by(Bench.name)):
+        yield {"kind": "bench", **_dump(bench, Bench)}
+    plans = sa.select(Plan).where(Plan.id.in_(sa.select(Run.plan_id).where(chosen))).order_by(Plan.sha256)
+    for plan in session.scalars(plans):
+        yield {"kind": "plan", **_dump(plan, Plan)}
+    devices = (sa.select(Device).where(Device.id.in_(sa.select(Run.device_id).where(chosen)))
+               .order_by(Device.part_number, Device.serial))
+    for device in session.scalars(devices):
+        yield {"kind": "device", **_dump(device, Device)}
+    for cal in sorted(sets, key=lambda s: s.name):
+        yield {
+            "kind": "calibration_set", **_dump(cal, CalibrationSet),
+            "bench": session.get(Bench, cal.bench_id).name if cal.bench_id is not None else None,
+            "offsets": _sorted((_dump(o, CalibrationOffset) for o in cal.offsets), "path", "freq_hz"),
+            "residuals": _sorted((_dump(r, SystemResidual) for r in cal.residuals), "center_hz", "spacing_hz"),
+        }
+
+
+def _run_record(session: Session, run_id: int) -> dict:
+    run = session.scalars(sa.select(Run).where(Run.id == run_id).options(
+        selectinload(Run.instruments), selectinload(Run.offsets), selectinload(Run.events),
+        selectinload(Run.points).selectinload(Point.flags), selectinload(Run.results).selectinload(Result.flags),
+        selectinload(Run.bench), selectinload(Run.plan), selectinload(Run.device),
+        selectinload(Run.calibration_set))).one()
+    set_names = {}
+    if any(r.calibration_set_id for r in run.results):
+        ids = {r.calibration_set_id for r in run.results if r.calibration_set_id}
+        set_names = dict(session.execute(sa.select(CalibrationSet.id, CalibrationSet.name).where(CalibrationSet.id.in_(ids))).all())
+    return {
+        "kind": "run", **_dump(run, Run),
+        "bench": run.bench.name,
+        "plan": run.plan.sha256,
+        "device": [run.device.part_number, run.device.serial] if run.device else None,
+        "calibration_set": run.calibration_set.name if run.calibration_set else None,
+        "instruments": _sorted((_dump(i, Instrument) for i in run.instruments), "role"),
+        "offsets": _sorted((_dump(o, Offset) for o in run.offsets), "path", "freq_hz"),
+        "events": _sorted((_dump(e, Event) for e in run.events), "at"),
+        "points": _sorted(({**_dump(p, Point), "flags": _sorted(_dump(f, PointFlag) for f in p.flags)}
+                           for p in run.points), "seq", "point_key"),
+        "results": _sorted(({**_dump(r, Result), "calibration_set": set_names.get(r.calibration_set_id),
+                             "flags": _sorted(_dump(f, ResultFlag) for f in r.flags)} for r in run.results),
+                           "group_key"),
+    }
+
+
+def export_runs(session: Session, path: Path, run_idents: list[str] | None = None,
+                since: dt.datetime | None = None) -> ExportSummary:
+    """Write the chosen runs (GUIDs or unique prefixes; all when None) started at or after `since`.
+
+    The file appears complete or not at all (written to a temporary file, then renamed).
+    """
+    path = Path(path)
+    if not path.parent.is_dir():
+        raise InputError(f"export file {path}: directory {path.parent} does not exist")
+    run_ids = _run_ids(session, run_idents, since)
+    summary = ExportSummary(path)
+    digest = hashlib.sha256()
+    fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        os.fchmod(fd, 0o644)
+        with os.fdopen(fd, "wb") as raw, gzip.GzipFile(fileobj=raw, mode="wb", filename="", mtime=0) as out:
+            def write(record: dict) -> None:
+                line = (_canonical(record) + "\n").encode("utf-8")
+                digest.update(line)
+                out.write(line)
+
+            write({"kind": "header", "format": FORMAT, "version": VERSION, "schema": schema_head()})
+            records = 1
+            for record in _shared_records(session, run_ids):
+                write(record)
+                records += 1
+            for run_id in run_ids:
+                record = _run_record(session, run_id)
+                write(record)
+                records += 1
+                summary.runs += 1
+                summary.points += len(record["points"])
+                session.expunge_all()  # keep memory to one run at a time
+            summary.sha256 = digest.hexdigest()
+            out.write((_canonical({"kind": "end", "records": records, "sha256": summary.sha256}) + "\n").encode())
+        os.replace(tmp_name, path)
+    except BaseException:
+        Path(tmp_name).unlink(missing_ok=True)
+        raise
+    return summary
+
+
+# --- import -------------------------------------------------------------------------------------
+
+@dataclass
+class ImportSummary:
+    runs_added: int = 0
+    runs_present: int = 0
+    points_added: int = 0
+    added: dict[str, int] = field(default_factory=dict)  # shared records added, per kind
+
+
+def _lines(path: Path) -> Iterator[tuple[int, bytes]]:
+    try:
+        with gzip.open(path, "rb") as f:
+            for number, line in enumerate(f, start=1):
+                yield number, line
+    except (OSError, EOFError) as exc:
+        raise InputError(f"import file {path}: not a readable transfer file ({exc})") from None
+
+
+def _parse(path: Path, number: int, line: bytes) -> dict:
+    try:
+        record = json.loads(line)
+    except ValueError as exc:
+        raise InputError(f"import file {path} line {number}: not JSON ({exc})") from None
+    if not isinstance(record, dict) or "kind" not in record:
+        raise InputError(f"import file {path} line {number}: a record needs a 'kind'")
+    return record
+
+
+def verify(path: Path) -> int:
+    """Check format, version and content hash; returns the number of records. Writes nothing."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"import file {path}: no such file")
+    digest = hashlib.sha256()
+    count = 0
+    end = None
+    for number, line in _lines(path):
+        if end is not None:
+            raise InputError(f"import file {path} line {number}: data after the end record")
+        if count == 0:
+            header = _parse(path, number, line)
+            if header.get("kind") != "header" or header.get("format") != FORMAT:
+                raise InputError(f"import file {path}: not a tonebench transfer file (no '{FORMAT}' header)")
+            if not isinstance(header.get("version"), int) or header["version"] > VERSION:
+                raise InputError(f"import file {path}: format version {header.get('version')} is newer than "
+                                 f"this tonebench reads ({VERSION}); upgrade tonebench")
+        if line.startswith(b'{"kind":"end"'):
+            end = _parse(path, number, line)
+            continue
+        digest.update(line)
+        count += 1
+    if end is None:
+        raise InputError(f"import file {path}: no end record; the file is cut short")
+    if end.get("records") != count or end.get("sha256") != digest.hexdigest():
+        raise InputError(f"import file {path}: content hash or record count does not match; "
+                         "the file is damaged or was edited")
+    return count
+
+
+def _load(model, record: dict, path: Path, what: str, extra: Iterable[str] = ()) -> dict:
+    """Column values of one record, times parsed; unknown fields are refused."""
+    columns = {c.name: c for c in _columns(model)}
+    unknown = set(record) - set(columns) - {"kind", *extra}
+    if unknown:
+        raise InputError(f"import file {path}: {what} has unknown field '{sorted(unknown)[0]}'; "
+                         "was it written by a newer tonebench?")
+    values = {}
+    for name, column in columns.items():
+        if name not in record:
+            continue
+        value = record[name]
+        if value is None and isinstance(column.type, sa.JSON):
+            continue  # left unset it is SQL NULL; None given would be stored as JSON 'null'
+        if value is not None and isinstance(column.type, UtcDateTime):
+            value = dt.datetime.fromisoformat(value)
+        values[column.key] = value
+    return values
+
+
+class _Importer:
+    """Maps natural keys to ids in the target database, adding shared records it lacks."""
+
+    def __init__(self, session: Session, path: Path, summary: ImportSummary):
+        self.session, self.path, self.summary = session, path, summary
+        self.benches: dict[str, int] = {}
+        self.plans: dict[str, int] = {}
+        self.devices: dict[tuple[str, str], int] = {}
+        self.sets: dict[str, int] = {}
+
+    def _get_or_add(self, model, lookup: dict, values: dict, kind: str) -> int:
+        found = self.session.scalar(sa.select(model.id).filter_by(**lookup))
+        if found is not None:
+            return found
+        row = model(**values)
+        self.session.add(row)
+        self.session.flush()
+        self.summary.added[kind] = self.summary.added.get(kind, 0) + 1
+        return row.id
+
+    def _need(self, table: dict, key, kind: str):
+        if key is None:
+            return None
+        key = tuple(key) if isinstance(key, list) else key
+        if key not in table:
+            raise InputError(f"import file {self.path}: a run refers to {kind} {key!r}, which the file does not hold")
+        return table[key]
+
+    def add(self, record: dict) -> None:
+        kind = record["kind"]
+        if kind == "bench":
+            values = _load(Bench, record, self.path, "bench")
+            self.benches[values["name"]] = self._get_or_add(Bench, {"name": values["name"]}, values, kind)
+        elif kind == "plan":
+            values = _load(Plan, record, self.path, "plan")
+            self.plans[values["sha256"]] = self._get_or_add(Plan, {"sha256": values["sha256"]}, values, kind)
+        elif kind == "device":
+            values = _load(Device, record, self.path, "device")
+            key = (values["part_number"], values["serial"])
+            self.devices[key] = self._get_or_add(Device, {"part_number": key[0], "serial": key[1]}, values, kind)
+        elif kind == "calibration_set":
+            self._add_calibration_set(record)
+        elif kind == "run":
+            self._add_run(record)
+        elif kind != "header":
+            raise InputError(f"import file {self.path}: unknown record kind '{kind}'")
+
+    def _add_calibration_set(self, record: dict) -> None:
+        values = _load(CalibrationSet, record, self.path, "calibration set", ("bench", "offsets", "residuals"))
+        existing = self.session.scalars(sa.select(CalibrationSet).where(CalibrationSet.name == values["name"])).first()
+        if existing is not None:
+            if (existing.method, existing.created_at) != (values["method"], values["created_at"]):
+                raise InputError(f"import file {self.path}: calibration set '{values['name']}' differs from the "
+                                 "one of that name in the database (method or creation time)")
+            self.sets[values["name"]] = existing.id
+            return
+        cal = CalibrationSet(**values, bench_id=self._need(self.benches, record["bench"], "bench"))
+        cal.offsets = [CalibrationOffset(**_load(CalibrationOffset, o, self.path, "calibration offset"))
+                       for o in record["offsets"]]
+        cal.residuals = [SystemResidual(**_load(SystemResidual, r, self.path, "system residual"))
+                         for r in record["residuals"]]
+        self.session.add(cal)
+        self.session.flush()
+        self.sets[values["name"]] = cal.id
+        self.summary.added["calibration_set"] = self.summary.added.get("calibration_set", 0) + 1
+
+    def _add_run(self, record: dict) -> None:
+        path = self.path
+        values = _load(Run, record, path, "run", ("bench", "plan", "device", "calibration_set", "instruments",
+                                                 "offsets", "events", "points", "results"))
+        if self.session.scalar(sa.select(Run.id).where(Run.guid == values["guid"])) is not None:
+            self.summary.runs_present += 1
+            return
+        run = Run(**values, bench_id=self._need(self.benches, record["bench"], "bench"),
+                  plan_id=self._need(self.plans, record["plan"], "plan"),
+                  device_id=self._need(self.devices, record["device"], "device"),
+                  calibration_set_id=self._need(self.sets, record["calibration_set"], "calibration set"))
+        run.instruments = [Instrument(**_load(Instrument, i, path, "instrument")) for i in record["instruments"]]
+        run.offsets = [Offset(**_load(Offset, o, path, "offset")) for o in record["offsets"]]
+        run.events = [Event(**_load(Event, e, path, "event")) for e in record["events"]]
+        run.points = [Point(**_load(Point, p, path, "point", ("flags",)),
+                            flags=[PointFlag(**_load(PointFlag, f, path, "point flag")) for f in p["flags"]])
+                      for p in record["points"]]
+        run.results = [Result(**_load(Result, r, path, "result", ("flags", "calibration_set")),
+                              calibration_set_id=self._need(self.sets, r["calibration_set"], "calibration set"),
+                              flags=[ResultFlag(**_load(ResultFlag, f, path, "result flag")) for f in r["flags"]])
+                       for r in record["results"]]
+        self.session.add(run)
+        self.session.flush()
+        self.summary.runs_added += 1
+        self.summary.points_added += len(run.points)
+        self.session.expunge_all()  # one run in memory at a time
+
+
+def import_runs(sessions: sessionmaker, path: Path) -> ImportSummary:
+    """Add the file's runs that the database lacks (by GUID), all in one transaction."""
+    path = Path(path)
+    verify(path)
+    summary = ImportSummary()
+    with sessions.begin() as session:
+        importer = _Importer(session, path, summary)
+        for number, line in _lines(path):
+            record = _parse(path, number, line)
+            if record["kind"] == "end":
+                break
+            importer.add(record)
+    return summary

@@ -1,0 +1,179 @@
+"""Fill a database at lab scale and time it: bulk insert, typical queries, re-running the analysis.
+
+    python tests/benchmarks/bench_database.py                      # SQLite and a temporary PostgreSQL
+    python tests/benchmarks/bench_database.py --devices 500 --backend sqlite     # a quick look
+    python tests/benchmarks/bench_database.py --pg-url postgresql+psycopg://user@host/empty_db
+
+With the defaults: 10,000 devices, one run each of 4 centers x 2 spacings x 25 tone steps, i.e.
+2,000,000 points and 80,000 results. Not a test: it prints figures. A temporary PostgreSQL server
+is started in a temporary folder, as tests/conftest.py does, unless --pg-url names one (which
+must hold an empty database: the benchmark writes into it).
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import glob
+import os
+import random
+import shutil
+import socket
+import statistics
+import subprocess
+import tempfile
+import time
+from pathlib import Path
+
+import sqlalchemy as sa
+
+from tonebench.catalog.limits import add_limit, apply_verdicts
+from tonebench.catalog.query import ResultFilter, find_results
+from tonebench.catalog.synthetic import PARTS, TAGS, fill
+from tonebench.review import analyze_run
+from tonebench.store import open_database, session_factory
+from tonebench.store.models import Device, Run
+
+QUERY_REPEATS = 25
+
+
+@contextlib.contextmanager
+def temporary_postgres():
+    """URL of an empty database on a PostgreSQL server started in a temporary folder."""
+    found = sorted(glob.glob("/usr/lib/postgresql/*/bin/initdb"))
+    bin_dir = os.path.dirname(found[-1]) if found else os.path.dirname(shutil.which("initdb") or "")
+    if not bin_dir:
+        raise SystemExit("PostgreSQL server binaries not found (apt-get install postgresql)")
+    as_user = ["runuser", "-u", "postgres", "--"] if os.geteuid() == 0 else []
+    folder = tempfile.mkdtemp(prefix="tonebench-bench-pg-")
+    os.chmod(folder, 0o777)
+    if os.geteuid() == 0:
+        shutil.chown(folder, "postgres")
+    data = os.path.join(folder, "data")
+    subprocess.run([*as_user, f"{bin_dir}/initdb", "-D", data, "-U", "postgres", "--auth=trust", "-E", "UTF8"],
+                   check=True, capture_output=True)
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        port = str(probe.getsockname()[1])
+    subprocess.run([*as_user, f"{bin_dir}/pg_ctl", "-D", data, "-w", "-l", os.path.join(folder, "log"), "-o",
+                    f"-k {folder} -p {port} -c listen_addresses=''", "start"], check=True, capture_output=True)
+    try:
+        yield f"postgresql+psycopg://postgres@/postgres?host={folder}&port={port}"
+    finally:
+        subprocess.run([*as_user, f"{bin_dir}/pg_ctl", "-D", data, "-m", "fast", "stop"], capture_output=True)
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+def typical_filters(engine: sa.Engine, rng: random.Random) -> dict[str, list[ResultFilter]]:
+    """Each kind of question a user asks, with values drawn from the data."""
+    with engine.connect() as connection:
+        lots = sorted(connection.scalars(sa.select(Device.lot).distinct()))
+        wafers = sorted(connection.scalars(sa.select(Device.wafer).distinct()))
+        serials = connection.scalars(sa.select(Device.serial).order_by(Device.id)).all()
+        first, last = connection.execute(sa.select(sa.func.min(Run.started_at), sa.func.max(Run.started_at))).one()
+    parts = [p[0] for p in PARTS]
+    span = last - first
+
+    def window():
+        start = first + span * rng.random() * 0.9
+        return start, start + span / 30  # about one day in thirty
+
+    def n(make):
+        return [make() for _ in range(QUERY_REPEATS)]
+
+    return {
+        "lot + 2.45 GHz + verdict fail": n(lambda: ResultFilter(lots=(rng.choice(lots),), freq_min_hz=2.44e9,
+                                                                freq_max_hz=2.46e9, verdicts=("fail",))),
+        "part + wafer + spacing range": n(lambda: ResultFilter(parts=(rng.choice(parts),), wafers=(rng.choice(wafers),),
+                                                               spacing_min_hz=5e5, spacing_max_hz=2e6)),
+        "one serial": n(lambda: ResultFilter(serials=(rng.choice(serials),))),
+        "part + flagged (any flag)": n(lambda: ResultFilter(parts=(rng.choice(parts),), lots=(rng.choice(lots),),
+                                                            flagged=True)),
+        "lot + one flag": n(lambda: ResultFilter(lots=(rng.choice(lots),), flags=("analyzer-limited",))),
+        "tag + date window": n(lambda: ResultFilter(tags=(rng.choice(TAGS),), since=(w := window())[0], until=w[1])),
+        "date window only": n(lambda: ResultFilter(since=(w := window())[0], until=w[1])),
+    }
+
+
+def time_queries(engine: sa.Engine) -> None:
+    rng = random.Random(3)
+    sessions = session_factory(engine)
+    for name, filters in typical_filters(engine, rng).items():
+        durations_s, counts = [], []
+        with sessions() as session:
+            for flt in filters:
+                started_s = time.perf_counter()
+                counts.append(len(find_results(session, flt)))
+                durations_s.append(time.perf_counter() - started_s)
+        durations_s.sort()
+        p95 = durations_s[min(len(durations_s) - 1, int(round(0.95 * (len(durations_s) - 1))))]
+        print(f"  query {name:32} median {statistics.median(durations_s) * 1e3:8.1f} ms, "
+              f"95th percentile {p95 * 1e3:8.1f} ms, median {statistics.median(counts):.0f} results", flush=True)
+
+
+def database_size(engine: sa.Engine) -> str:
+    if engine.dialect.name == "sqlite":
+        path = Path(engine.url.database)
+        size = sum(p.stat().st_size for p in path.parent.glob(path.name + "*"))
+    else:
+        with engine.connect() as connection:
+            size = connection.scalar(sa.text("SELECT pg_database_size(current_database())"))
+    return f"{size / 2**20:.0f} MiB"
+
+
+def bench(url: str, n_devices: int, label: str) -> None:
+    print(f"{label}: {n_devices} devices", flush=True)
+    engine = open_database(url)
+    started_s = time.perf_counter()
+    summary = fill(engine, n_devices, seed=1, n_lots=max(4, n_devices // 250), batch_devices=100)
+    insert_s = time.perf_counter() - started_s
+    print(f"  insert: {summary.devices} devices, {summary.runs} runs, {summary.points} points, "
+          f"{summary.results} results in {insert_s:.1f} s ({summary.points / insert_s:,.0f} points/s); "
+          f"database {database_size(engine)}", flush=True)
+
+    sessions = session_factory(engine)
+    with sessions.begin() as session:
+        for part, _, iip3_dbm, gain_db, _ in PARTS:
+            add_limit(session, part, "iip3_dbm", min_value=iip3_dbm - 1.0, freq_min_hz=2.3e9, freq_max_hz=2.6e9)
+            add_limit(session, part, "gain_db", min_value=gain_db - 1.0, max_value=gain_db + 1.0,
+                      freq_min_hz=2.3e9, freq_max_hz=2.6e9, spacing_max_hz=2e6)
+        started_s = time.perf_counter()
+        counts = apply_verdicts(session)
+    print(f"  verdicts over all results: {time.perf_counter() - started_s:.1f} s ({dict(counts)})", flush=True)
+
+    time_queries(engine)
+
+    with engine.connect() as connection:
+        guids = connection.scalars(sa.select(Run.guid).order_by(Run.id)).all()
+    started_s = time.perf_counter()
+    for guid in guids:
+        analyze_run(sessions, guid)
+    analysis_s = time.perf_counter() - started_s
+    with sessions.begin() as session:
+        started_verdicts_s = time.perf_counter()
+        apply_verdicts(session)
+        verdicts_s = time.perf_counter() - started_verdicts_s
+    print(f"  re-analysis of all {len(guids)} runs: {analysis_s:.1f} s ({analysis_s / len(guids) * 1e3:.1f} ms per run), "
+          f"then verdicts {verdicts_s:.1f} s", flush=True)
+    engine.dispose()
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--devices", type=int, default=10_000)
+    parser.add_argument("--backend", choices=("sqlite", "postgresql", "both"), default="both")
+    parser.add_argument("--pg-url", help="an empty PostgreSQL database to use instead of a temporary server")
+    args = parser.parse_args()
+    if args.backend in ("sqlite", "both"):
+        with tempfile.TemporaryDirectory() as folder:
+            bench(f"sqlite:///{folder}/bench.db", args.devices, "SQLite")
+    if args.backend in ("postgresql", "both"):
+        if args.pg_url:
+            bench(args.pg_url, args.devices, "PostgreSQL")
+        else:
+            with temporary_postgres() as url:
+                bench(url, args.devices, "PostgreSQL (temporary local server)")
+
+
+if __name__ == "__main__":
+    main()
