@@ -17,6 +17,7 @@ from typer.testing import CliRunner
 
 from tonebench.calibration import workflow
 from tonebench.cli import app
+from tonebench.offsets import LossTable
 from tonebench.review import analyze_run, rereferred
 from tonebench.runner import execute_run
 from tonebench.store.database import open_database, session_factory
@@ -138,6 +139,9 @@ def test_rereferring_a_run_changes_dut_referred_values_by_exactly_the_offset_dif
         assert after[center_hz].gain_db - before.gain_db == pytest.approx(0.15, abs=1e-9)
     shown = invoke("show", outcome.guid, "--db", db)
     assert "calibration: lab-1" in shown.output and "re-referred to: lab-2" in shown.output
+    page = tmp_path / "again.html"
+    assert invoke("report", outcome.guid, "--db", db, "--out", page).exit_code == 0
+    assert "Re-referred to" in page.read_text() and "lab-2 (table)" in page.read_text()
 
     # Back to the set it was measured with: the original results again.
     assert invoke("analyze", outcome.guid, "--db", db, "--cal", "lab-1").exit_code == 0
@@ -150,7 +154,7 @@ def test_a_leveled_tone_keeps_its_meter_referred_power_when_rereferred(tmp_path)
     simulation = simulation_table(47)
     db, bench, plan, view = measured_set(tmp_path, simulation)
     outcome = execute_run(plan, bench, db, tmp_path / "r.html", cal_name="lab-1")
-    shifted = {path: workflow.importers.LossTable(path, t.freqs_hz, t.losses_db + 1.0, "shifted")
+    shifted = {path: LossTable(path, t.freqs_hz, t.losses_db + 1.0, "shifted")
                for path, t in view.tables.items()}
     with session_factory(open_database(db))() as session:
         point = session.scalars(select(Point).join(Run).where(Run.guid == outcome.guid)).first()
@@ -239,3 +243,51 @@ def test_unknown_set_is_one_line_naming_the_known_ones(tmp_path):
     result = invoke("run", plan, "--bench", bench, "--db", db, "--cal", "nope")
     assert result.exit_code == 2
     assert result.output.strip().splitlines() == ["error: calibration set 'nope': not in this database; known: lab-1"]
+
+
+def test_power_meter_role_is_optional_and_must_be_a_power_meter(tmp_path):
+    from tonebench.bench import open_bench
+    from tonebench.config.bench_file import load_bench
+    from tonebench.errors import InputError
+    from tonebench.sim.launch import start_sim_bench
+
+    simulation = simulation_table(6)
+    with_meter = load_bench(write_bench(tmp_path, simulation))
+    assert with_meter.settings.has_power_meter
+    without = load_bench(write_bench(tmp_path, simulation, power_meter=False, file_name="plain.toml"))
+    assert not without.settings.has_power_meter
+    text = write_bench(tmp_path, simulation, file_name="odd.toml").read_text()
+    odd = tmp_path / "odd.toml"
+    odd.write_text(text.replace("[instruments.power_meter]", "[instruments.thermometer]"))
+    with pytest.raises(InputError, match="unknown instrument role.*thermometer.*allowed: source1, source2, analyzer, power_meter"):
+        load_bench(odd)
+    odd.write_text(text.replace('dialect = "generic-power-meter"', 'dialect = "generic-source"'))
+    with start_sim_bench(load_bench(odd).scenario) as sim:
+        with pytest.raises(InputError, match="instruments.power_meter: dialect generic-source is for a source"):
+            open_bench(load_bench(odd).settings, sim.resources)
+
+
+def test_measuring_the_inputs_needs_a_power_meter(tmp_path):
+    simulation = simulation_table(7)
+    bench = write_bench(tmp_path, simulation, power_meter=False)
+    result = invoke("cal", "measure-input", "x", "--bench", bench, "--plan", write_plan(tmp_path),
+                    "--db", f"sqlite:///{tmp_path / 'm.db'}")
+    assert result.exit_code == 2 and "no [instruments.power_meter]" in result.output
+
+
+def test_cli_measures_lists_and_shows_a_set(tmp_path):
+    simulation = simulation_table(9)
+    db = f"sqlite:///{tmp_path / 'cli.db'}"
+    bench, plan = write_bench(tmp_path, simulation), write_plan(tmp_path, centers_hz=(2.45e9,))
+    measured = invoke("cal", "measure-input", "bench-7", "--bench", bench, "--plan", plan, "--db", db, "--operator", "sam")
+    assert measured.exit_code == 0, measured.output
+    assert "calibration set bench-7 (measured): in1 4 points" in measured.output
+    assert invoke("cal", "measure-output", "bench-7", "--bench", bench, "--plan", plan, "--db", db).exit_code == 0
+    listed = invoke("cal", "list", "--db", db)
+    assert re.search(r"bench-7\s+measured\s.*valid\s.*in1,in2,out", listed.output), listed.output
+    page = tmp_path / "b7.html"
+    shown = invoke("cal", "show", "bench-7", "--db", db, "--html", page)
+    assert shown.exit_code == 0, shown.output
+    assert "SIM-PM-0001" in shown.output and "by sam" in shown.output  # the meter's *IDN? and the operator
+    html = page.read_text()
+    assert html.count("<script") >= 1 and "in1 (source 1 to DUT input)" in html

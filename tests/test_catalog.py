@@ -199,6 +199,20 @@ def test_apply_verdicts_for_one_run_and_on_loaded_results(engine):
     assert run_ids[0] not in by_run and set(by_run) == set(run_ids[1:])
 
 
+def test_apply_verdicts_for_one_part(engine):
+    fill(engine, 6, seed=2, layout=SMALL)
+    sessions = session_factory(engine)
+    with sessions.begin() as session:
+        add_limit(session, "VRA-2205", "gain_db", min_value=-100.0, freq_min_hz=1e9, freq_max_hz=9e9)
+        counts = apply_verdicts(session, part_number="VRA-2205")
+    with sessions() as session:
+        judged = dict(session.execute(
+            sa.select(Device.part_number, sa.func.count()).select_from(Result).join(Run, Run.id == Result.run_id)
+            .join(Device, Device.id == Run.device_id).where(Result.verdict.is_not(None))
+            .group_by(Device.part_number)).all())
+    assert judged == {"VRA-2205": counts["pass"]} and counts["pass"] > 0
+
+
 def test_removing_a_limit(engine):
     sessions = session_factory(engine)
     with sessions.begin() as session:

@@ -87,7 +87,8 @@ class DevTools:
         self._messages: queue.Queue = queue.Queue()
         self._next_id = 0
         self.events: list[dict] = []
-        threading.Thread(target=self._read, daemon=True).start()
+        self._reader = threading.Thread(target=self._read, daemon=True)
+        self._reader.start()
 
     def _read(self) -> None:
         buffer = b""
@@ -133,6 +134,8 @@ class DevTools:
             self.process.kill()
             self.process.wait()
         os.close(self._to_browser)
+        self._reader.join(timeout=10)  # ends at end of file, once the browser has gone
+        os.close(self._from_browser)
 
 
 def load_in_chromium(page: Path, tmp_path: Path, want_figures: int | None = None) -> PageLoad:

@@ -198,3 +198,21 @@ def test_stop_request_cuts_a_backoff_short_and_refuses_rf_on(bench, tmp_path):
     assert time.monotonic() - started < 5.0
     with pytest.raises(InstrumentError, match="RF on refused"):
         source.rf_on()
+
+
+def test_analyzer_preset_is_noticed_from_the_sweep_time_and_the_read_taken_again(bench):
+    sim, schedule, events, _sup, open_driver = bench
+    source, analyzer = open_driver("source1"), open_driver("analyzer")
+    source.set_tone(2.4e9, -20.0)
+    source.rf_on()
+    analyzer.prepare()
+    analyzer.apply(SETUP)
+    before = analyzer.read_markers(2.4e9, [2.4e9])
+    # A front-panel preset just before the next sweep: the connection stays, the settings go.
+    schedule.add(FaultSpec(instrument="analyzer", kind="reboot", on="INIT:IMM", keep_connection=True))
+    after = analyzer.read_markers(2.4e9, [2.4e9])
+    assert "state-lost" in events.kinds()
+    state = sim.bench.analyzer
+    assert (state.span_hz, state.rbw_hz, state.atten_db, state.continuous) == (10e3, 1e3, 20.0, False)
+    assert after.sweep_time_s == before.sweep_time_s
+    assert abs(after.powers_dbm[0] - before.powers_dbm[0]) < 0.1  # read with the right settings

@@ -85,7 +85,10 @@ def open_bench(settings: BenchFile, resources: dict[str, str]) -> OpenBench:
         infos = [
             InstrumentInfo(inst.label, resources[inst.label], inst.dialect.name, inst.idn) for inst in opened
         ]
-        return OpenBench(source1, source2, SpectrumAnalyzer(scpi_analyzer), ranges, infos, opened, meter)
+        analyzer = SpectrumAnalyzer(scpi_analyzer)
+        # The bench file knows this unit; its figures win over the dialect's typical ones.
+        analyzer.performance = {**analyzer.performance, **settings.instruments["analyzer"].performance}
+        return OpenBench(source1, source2, analyzer, ranges, infos, opened, meter)
     except BaseException:
         for instrument in opened:
             instrument.close()

@@ -7,21 +7,24 @@ from rich.console import Console
 from rich.table import Table
 from sqlalchemy import func, select
 
+from tonebench.report import flag_text
 from tonebench.review import find_run, terminal_row
 from tonebench.store.database import open_database, session_factory
-from tonebench.store.models import CalibrationSet, Point, Run
+from tonebench.store.models import CalibrationSet, Point, PointFlag, Run
 
 
 def results_table(results) -> Table:
     """Stored results as a compact terminal table; the Note column only when a sweep has one."""
     rows = [terminal_row(r) for r in results]
-    table = Table(title="Results (dB, dBm)", box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False, collapse_padding=True)
-    show_note = any(row["Note"] for row in rows)
-    for column in rows[0] if rows else ():
-        if column != "Note" or show_note:
-            table.add_column(column, no_wrap=column != "Note")
+    table = Table(title="Results (dB, dBm; IIP3 ± its bound; P1dB per tone)", box=box.SIMPLE_HEAD, padding=(0, 1),
+                  pad_edge=False, collapse_padding=True)
+    # Optional columns only when some sweep has something in them.
+    shown = {"Note": any(row["Note"] for row in rows), "Flags": any(row["Flags"] != "-" for row in rows)}
+    columns = [c for c in (rows[0] if rows else ()) if shown.get(c, True)]
+    for column in columns:
+        table.add_column(column, no_wrap=column not in ("Note", "Flags"))
     for row in rows:
-        table.add_row(*(value for key, value in row.items() if key != "Note" or show_note))
+        table.add_row(*(row[c] for c in columns))
     return table
 
 
@@ -67,7 +70,29 @@ def describe_run(db_url: str, ident: str, console: Console) -> None:
         for inst in sorted(run.instruments, key=lambda i: i.role):
             console.print(f"  {inst.role:9} {inst.dialect:18} {inst.resource}  {inst.idn}", highlight=False)
         if run.results:
-            console.print(results_table(sorted(run.results, key=lambda r: (r.center_hz, r.spacing_hz))))
+            ordered = sorted(run.results, key=lambda r: (r.center_hz, r.spacing_hz, r.bias_v or 0.0))
+            console.print(results_table(ordered))
+            print_flags(session, run, ordered, console)
         console.print("events (UTC):", highlight=False)
         for event in sorted(run.events, key=lambda e: e.at):
             console.print(f"  {event.at:%H:%M:%S} {event.level:7} {event.kind:10} {event.message}", highlight=False)
+
+
+def print_flags(session, run: Run, results, console: Console) -> None:
+    """Each result's flags with reason and error, then a count of the flagged points by flag."""
+    flagged = [r for r in results if r.flags]
+    console.print("flags:" if flagged else "flags: none", highlight=False)
+    for result in flagged:
+        where = f"{result.center_hz / 1e9:.4f} GHz, {result.spacing_hz / 1e6:.3g} MHz"
+        for flag in result.flags:
+            console.print(f"  {where}: {flag_text(flag)}", highlight=False, soft_wrap=True)
+    counts = session.execute(
+        select(PointFlag.flag, PointFlag.cause, func.count(func.distinct(PointFlag.point_id)))
+        .join(Point, Point.id == PointFlag.point_id)
+        .where(Point.run_id == run.id)
+        .group_by(PointFlag.flag, PointFlag.cause)
+        .order_by(PointFlag.flag, PointFlag.cause)
+    ).all()
+    if counts:
+        parts = [f"{flag}{'' if cause is None else f' ({cause})'} {n}" for flag, cause, n in counts]
+        console.print(f"  flagged points: {', '.join(parts)} (reasons in the report's hover text)", highlight=False)

@@ -93,9 +93,11 @@ def sweep_title(center_freq_hz: float, spacing_hz: float) -> str:
 
 
 def flag_text(flag) -> str:
-    """One flag for a table cell: 'label: detail (IIP3 error x dB)'."""
+    """One flag (an analysis Flag or a stored PointFlag/ResultFlag) for a table cell:
+    'name (cause): detail (IIP3 error up to x dB)'."""
+    label = flag.flag if flag.cause is None else f"{flag.flag} ({flag.cause})"
     err = "" if flag.error_db is None else f" (IIP3 error up to {flag.error_db:.2f} dB)"
-    return f"{flag.label}: {flag.detail}{err}"
+    return f"{label}: {flag.detail}{err}"
 
 
 def result_row(center_freq_hz: float, spacing_hz: float, result: SweepResult,

@@ -79,6 +79,18 @@ def offsets_from_bench(bench: LoadedBench) -> dict[str, LossTable]:
     return {path: LossTable.from_rows(path, getattr(tables, path), origin) for path in ("in1", "in2", "out")}
 
 
+def analyzer_figures(open_instruments) -> dict:
+    """What the analysis needs to know of the analyzer, kept with the run so a later `analyze`
+    judges the readings by the instrument that took them: its mixer TOI, noise floor, relative
+    level accuracy (dialect [performance], bench-file overrides) and mixer limit."""
+    analyzer = open_instruments.analyzer
+    figures = {key: analyzer.performance[key] for key in ("mixer_toi_dbm", "danl_dbm_per_hz", "level_accuracy_db")
+               if key in analyzer.performance}
+    if "max_mixer_dbm" in analyzer.limits:
+        figures["max_mixer_dbm"] = analyzer.limits["max_mixer_dbm"]
+    return figures
+
+
 def _print_warning(message: str) -> None:
     print(f"warning: {message}", file=sys.stderr, flush=True)
 
@@ -233,6 +245,7 @@ def execute_run(
             metadata={
                 "plan_file": str(plan_path), "bench_file": str(bench_path), "points_planned": len(points),
                 "leveling": leveler is not None,
+                "analyzer": analyzer_figures(open_instruments),
             },
         )
         with sessions.begin() as session:
@@ -240,7 +253,7 @@ def execute_run(
         if chosen.stale_message:
             recorder.event("warning", "calibration-stale", chosen.stale_message, {"calibration_set_id": set_id})
         sequencer = Sequencer(open_instruments, offsets, bench.settings.limits, plan.settings.analyzer, recorder,
-                              leveler)
+                              leveler, second_order=plan.settings.sweep.second_order)
         try:
             with sigterm_raises():
                 sequencer.run(points, on_progress)

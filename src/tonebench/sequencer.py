@@ -8,19 +8,28 @@ bias), each tone is leveled at the sweep's highest tone power, one source on at 
 correction is kept per source and frequency and applied to every point of the sweep (sources are
 taken to be linear in level over a sweep). That costs a few meter readings per sweep instead of
 per point; a later sweep at the same tone frequency reuses the correction.
+
+Attenuation (design sections 4 and 5): unless the plan fixes it, each point gets the dynamic-range
+optimum for the tone level predicted at the analyzer input (slope 1 from the sweep's last point,
+or the bench file's expected gain for its first). The attenuation-step check repeats the IM3
+reads with more attenuation (reference level moved with it) at the top points of each sweep and
+wherever the analyzer's own IM3, predicted from its mixer TOI, comes within 20 dB of the reading.
 """
 
 from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
+from tonebench.analysis.attenuation import analyzer_im3_dbm, optimum_atten_db
+from tonebench.analysis.flags import SYSTEM_MARGIN_DB
 from tonebench.bench import OpenBench
 from tonebench.calibration.leveling import IMBALANCE_LIMIT_DB, Leveler, LevelResult
 from tonebench.calibration.referral import point_offsets, referred_values
 from tonebench.config.bench_file import BenchLimits
 from tonebench.config.plan_file import AnalyzerSettings
+from tonebench.errors import InputError
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.offsets import LossTable
 from tonebench.plan import PlannedPoint
@@ -44,6 +53,30 @@ class Readings:
     sweep_time_s: float
 
 
+@dataclass(frozen=True)
+class StepReadings:
+    """The IM3 reads repeated with step_atten_db more attenuation (analyzer input plane, dBm)."""
+
+    step_atten_db: float
+    lower_dbm: float
+    upper_dbm: float
+    noise_lower_dbm: float
+    noise_upper_dbm: float
+    reason: str  # "top" (a top point of its sweep) or "near" (analyzer IM3 predicted within 20 dB)
+    sweep_time_s: float
+
+
+@dataclass(frozen=True)
+class SecondOrderReadings:
+    """f2-f1 ("diff") and f1+f2 ("sum") with a noise marker beside each (analyzer input, dBm)."""
+
+    diff_dbm: float
+    sum_dbm: float
+    noise_diff_dbm: float
+    noise_sum_dbm: float
+    sweep_time_s: float
+
+
 class Sequencer:
     def __init__(
         self,
@@ -53,6 +86,7 @@ class Sequencer:
         analyzer_settings: AnalyzerSettings,
         recorder: RunRecorder,
         leveler: Leveler | None = None,
+        second_order: bool = False,
     ):
         self.bench = bench
         self.offsets = offsets
@@ -60,6 +94,11 @@ class Sequencer:
         self.analyzer_settings = analyzer_settings
         self.recorder = recorder
         self.leveler = leveler
+        self.second_order = second_order
+        # sweep key -> (mean raw tone reading dBm, its tone_dbm): predicts the next point's level
+        self._last_tone: dict[tuple, tuple[float, float]] = {}
+        self._top_levels: dict[tuple, set[float]] = {}
+        self._said: set[str] = set()  # events said once per run
         # (source index, freq_hz) -> leveling result, kept for the run
         self._levels: dict[tuple[int, float], LevelResult] = {}
         self._rf = [False, False]
@@ -76,6 +115,7 @@ class Sequencer:
         started_s = time.monotonic()
         rf_was_on = False
         top_dbm = self._sweep_tops_dbm(points)
+        self._top_levels = self._sweep_top_levels(points)
         try:
             self.bench.analyzer.prepare()
             self.bench.analyzer.apply(self.setup)
@@ -90,8 +130,15 @@ class Sequencer:
                     if not rf_was_on:
                         rf_was_on = True
                         self.recorder.event("info", "rf-on", "RF on at both sources")
+                setup, choice = self._setup_for(point)
+                self.bench.analyzer.apply(setup)
                 readings = self._read(point)
-                self.recorder.add_point(self._row(point, readings, time.monotonic() - started_s))
+                second = self._read_second_order(point) if self.second_order else None
+                step = self._step_check(point, setup, readings)
+                self._last_tone[self._sweep_key(point)] = ((readings.f1_dbm + readings.f2_dbm) / 2.0, point.tone_dbm)
+                row = self._row(point, readings, time.monotonic() - started_s, setup)
+                row.update(self._extra_columns(point, choice, step, second, row))
+                self.recorder.add_point(row)
                 if on_progress:
                     on_progress(done + 1, len(points))
         finally:
@@ -110,6 +157,124 @@ class Sequencer:
             key = self._sweep_key(point)
             tops[key] = max(tops.get(key, point.tone_dbm), point.tone_dbm)
         return tops
+
+    def _sweep_top_levels(self, points: list[PlannedPoint]) -> dict[tuple, set[float]]:
+        levels: dict[tuple, set[float]] = {}
+        for point in points:
+            levels.setdefault(self._sweep_key(point), set()).add(point.tone_dbm)
+        count = self.analyzer_settings.step_top_points
+        return {key: set(sorted(values)[-count:]) if count else set() for key, values in levels.items()}
+
+    # --- attenuation ----------------------------------------------------------------------------
+
+    def _ref_level_dbm(self, atten_db: float) -> float:
+        """The plan's reference level, moved dB for dB with the attenuation from the plan's atten_db,
+        and kept at or under the analyzer's damage level (no screen needs to show more)."""
+        settings = self.analyzer_settings
+        ref_dbm = settings.ref_level_dbm + atten_db - settings.atten_db
+        return min(ref_dbm, self.bench.analyzer.limits.get("damage_dbm", ref_dbm))
+
+    def _predicted_tone_dbm(self, point: PlannedPoint) -> float:
+        """Tone level (dBm) expected at the analyzer input: slope 1 from the sweep's last point."""
+        last = self._last_tone.get(self._sweep_key(point))
+        if last is not None:
+            return last[0] + point.tone_dbm - last[1]
+        return point.tone_dbm + self.limits.expected_gain_db - self.offsets["out"].loss_db(point.f1_hz)
+
+    def _setup_for(self, point: PlannedPoint) -> tuple[AnalyzerSetup, str]:
+        """The analyzer setup of this point and how its attenuation was chosen."""
+        if not self.analyzer_settings.auto_atten:
+            return self.setup, "fixed"
+        analyzer = self.bench.analyzer
+        perf, lim = analyzer.performance, analyzer.limits
+        choice = optimum_atten_db(
+            self._predicted_tone_dbm(point), perf["mixer_toi_dbm"], perf["danl_dbm_per_hz"], self.setup.rbw_hz,
+            lim["min_atten_db"], lim["max_atten_db"], lim.get("atten_step_db", 1.0), lim.get("max_mixer_dbm"),
+        )
+        setup = replace(self.setup, atten_db=choice.atten_db, ref_level_dbm=self._ref_level_dbm(choice.atten_db))
+        return setup, choice.limited_by
+
+    def _step_check(self, point: PlannedPoint, setup: AnalyzerSetup, readings: Readings) -> StepReadings | None:
+        """Read the IM3 products again with more attenuation where the step check is due."""
+        analyzer = self.bench.analyzer
+        if point.tone_dbm in self._top_levels.get(self._sweep_key(point), ()):
+            reason = "top"
+        else:
+            predicted = analyzer_im3_dbm(readings.f1_dbm, readings.f2_dbm, setup.atten_db,
+                                         analyzer.performance["mixer_toi_dbm"])
+            margin_db = min(readings.lower_dbm - float(predicted[0]), readings.upper_dbm - float(predicted[1]))
+            if not margin_db < SYSTEM_MARGIN_DB:
+                return None
+            reason = "near"
+        atten_db = min(setup.atten_db + self.analyzer_settings.step_atten_db, analyzer.limits["max_atten_db"])
+        step_db = atten_db - setup.atten_db
+        if step_db < self.analyzer_settings.step_atten_db / 2.0:
+            self._say_once("step-check", "warning", "step-skipped",
+                           f"attenuation-step check skipped: {setup.atten_db:g} dB is within "
+                           f"{self.analyzer_settings.step_atten_db / 2.0:g} dB of the analyzer's maximum")
+            return None
+        analyzer.apply(replace(setup, atten_db=atten_db, ref_level_dbm=self._ref_level_dbm(atten_db)))
+        lower, upper = self._read_im3(point)
+        return StepReadings(step_db, lower.powers_dbm[0], upper.powers_dbm[0], lower.powers_dbm[1],
+                            upper.powers_dbm[1], reason, lower.sweep_time_s + upper.sweep_time_s)
+
+    # --- second order ---------------------------------------------------------------------------
+
+    def _second_order_blocked(self, point: PlannedPoint) -> str | None:
+        """Why f2-f1 and f1+f2 cannot be read for this point, or None."""
+        diff_hz, sum_hz = point.f2_hz - point.f1_hz, point.f1_hz + point.f2_hz
+        lim = self.bench.analyzer.limits
+        half_span_hz = self.setup.span_hz / 2.0
+        if diff_hz - half_span_hz < lim["min_freq_hz"] or sum_hz + half_span_hz > lim["max_freq_hz"]:
+            return (f"f2-f1 = {diff_hz:.6g} Hz or f1+f2 = {sum_hz:.6g} Hz outside the analyzer's "
+                    f"{lim['min_freq_hz']:.6g}..{lim['max_freq_hz']:.6g} Hz")
+        try:
+            self.offsets["out"].loss_db(diff_hz)
+            self.offsets["out"].loss_db(sum_hz)
+        except InputError as exc:
+            return f"no output loss there: {exc}"
+        return None
+
+    def _read_second_order(self, point: PlannedPoint) -> SecondOrderReadings | None:
+        blocked = self._second_order_blocked(point)
+        if blocked is not None:
+            self._say_once(f"second-order {point.center_hz} {point.spacing_hz}", "warning", "second-order-skipped",
+                           f"second order not read at {point.center_hz:.6g} Hz / {point.spacing_hz:.6g} Hz: {blocked}")
+            return None
+        analyzer = self.bench.analyzer
+        offset_hz = self.analyzer_settings.noise_offset_hz
+        diff_hz, sum_hz = point.f2_hz - point.f1_hz, point.f1_hz + point.f2_hz
+        diff = analyzer.read_markers(diff_hz, [diff_hz, diff_hz + offset_hz])
+        total = analyzer.read_markers(sum_hz, [sum_hz, sum_hz + offset_hz])
+        return SecondOrderReadings(diff.powers_dbm[0], total.powers_dbm[0], diff.powers_dbm[1], total.powers_dbm[1],
+                                   diff.sweep_time_s + total.sweep_time_s)
+
+    def _say_once(self, key: str, level: str, kind: str, message: str) -> None:
+        if key not in self._said:
+            self._said.add(key)
+            self.recorder.event(level, kind, message)
+
+    def _extra_columns(self, point: PlannedPoint, choice: str, step: StepReadings | None,
+                       second: SecondOrderReadings | None, row: dict) -> dict:
+        """Step-check and second-order columns of the point row, and what has no column (extra_json)."""
+        extra: dict = {"atten_choice": choice}
+        columns: dict = {}
+        if step is not None:
+            columns.update(step_atten_db=step.step_atten_db, raw_lower_step_dbm=step.lower_dbm,
+                           raw_upper_step_dbm=step.upper_dbm)
+            extra.update(raw_noise_lower_step_dbm=step.noise_lower_dbm, raw_noise_upper_step_dbm=step.noise_upper_dbm,
+                         step_reason=step.reason, step_sweep_time_s=step.sweep_time_s)
+        if second is not None:
+            diff_loss_db = self.offsets["out"].loss_db(point.f2_hz - point.f1_hz)
+            sum_loss_db = self.offsets["out"].loss_db(point.f1_hz + point.f2_hz)
+            columns.update(raw_diff_dbm=second.diff_dbm, raw_sum_dbm=second.sum_dbm, out_loss_diff_db=diff_loss_db,
+                           out_loss_sum_db=sum_loss_db, im2_diff_dbm=second.diff_dbm + diff_loss_db,
+                           im2_sum_dbm=second.sum_dbm + sum_loss_db)
+            extra.update(raw_noise_diff_dbm=second.noise_diff_dbm, raw_noise_sum_dbm=second.noise_sum_dbm)
+        extra_time_s = sum(r.sweep_time_s for r in (step, second) if r is not None)
+        columns["sweep_time_s"] = row["sweep_time_s"] + extra_time_s
+        columns["extra_json"] = {**(row.get("extra_json") or {}), **extra}
+        return columns
 
     def _set_rf(self, on1: bool, on2: bool) -> None:
         """Switch each source only if its state changes (off first, so two tones never meet the meter)."""
@@ -177,13 +342,11 @@ class Sequencer:
 
     def _read(self, point: PlannedPoint) -> Readings:
         analyzer = self.bench.analyzer
-        noise_offset_hz = self.analyzer_settings.noise_offset_hz
         # Four narrow-span reads, one per product; the noise floor is read beside each IM3
         # product, on the side away from the tones.
         f1 = analyzer.read_markers(point.f1_hz, [point.f1_hz])
         f2 = analyzer.read_markers(point.f2_hz, [point.f2_hz])
-        lower = analyzer.read_markers(point.lower_hz, [point.lower_hz, point.lower_hz - noise_offset_hz])
-        upper = analyzer.read_markers(point.upper_hz, [point.upper_hz, point.upper_hz + noise_offset_hz])
+        lower, upper = self._read_im3(point)
         reads = (f1, f2, lower, upper)
         return Readings(
             f1_dbm=f1.powers_dbm[0],
@@ -196,11 +359,18 @@ class Sequencer:
             sweep_time_s=sum(read.sweep_time_s for read in reads),
         )
 
-    def _row(self, point: PlannedPoint, readings: Readings, elapsed_s: float) -> dict:
+    def _read_im3(self, point: PlannedPoint):
+        """Both IM3 products, each with a noise marker on the side away from the tones."""
+        analyzer = self.bench.analyzer
+        noise_offset_hz = self.analyzer_settings.noise_offset_hz
+        lower = analyzer.read_markers(point.lower_hz, [point.lower_hz, point.lower_hz - noise_offset_hz])
+        upper = analyzer.read_markers(point.upper_hz, [point.upper_hz, point.upper_hz + noise_offset_hz])
+        return lower, upper
+
+    def _row(self, point: PlannedPoint, readings: Readings, elapsed_s: float, setup: AnalyzerSetup) -> dict:
         offsets = point_offsets(self.offsets, point.f1_hz, point.f2_hz)
         source1_dbm, source2_dbm = self._source_settings_dbm(point)
         level1, level2 = self._correction(1, point.f1_hz), self._correction(2, point.f2_hz)
-        setup = self.setup
         row = dict(
             point_key=point.key,
             seq=point.seq,

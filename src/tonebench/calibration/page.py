@@ -20,7 +20,8 @@ def _fmt(value, spec: str = "+.2f") -> str:
 def _table(header: list[str], rows: list[list[str]]) -> str:
     head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
     body = "".join("<tr>" + "".join(f"<td>{html.escape(str(c))}</td>" for c in row) + "</tr>" for row in rows)
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+    thead = f"<thead><tr>{head}</tr></thead>" if any(header) else ""
+    return f"<table>{thead}<tbody>{body}</tbody></table>"
 
 
 def offsets_figure(view: CalibrationView) -> go.Figure:
@@ -45,8 +46,8 @@ def write_calibration_page(view: CalibrationView, path: Path) -> Path:
         ["Range", f"{view.freq_min_hz / 1e9:.6f} to {view.freq_max_hz / 1e9:.6f} GHz"],
         ["Notes", view.notes or "-"],
     ]
-    instruments = [[i.get("role", ""), i.get("resource", ""), i.get("idn", "")] for i in view.instruments]
-    files = [[f.get("offset_path", f.get("plan", "")), f.get("file", f.get("plan", "")), f.get("sha256", "")]
+    instruments = [[i.get("step", ""), i.get("role", ""), i.get("resource", ""), i.get("idn", "")] for i in view.instruments]
+    files = [[f.get("offset_path", "plan"), f.get("file", f.get("plan", "")), f.get("sha256", "")]
              for f in view.source_files]
     residuals = [
         [f"{r['center_hz'] / 1e9:.6f}", f"{r['spacing_hz'] / 1e6:.6g}", f"{r['atten_db']:g}", _fmt(r["system_ip3_dbm"]),
@@ -64,7 +65,7 @@ def write_calibration_page(view: CalibrationView, path: Path) -> Path:
         figure_html,
     ]
     if instruments:
-        parts += ["<h2>Instruments</h2>", _table(["Role", "Resource", "*IDN?"], instruments)]
+        parts += ["<h2>Instruments</h2>", _table(["Step", "Role", "Resource", "*IDN?"], instruments)]
     if files:
         parts += ["<h2>Files</h2>", _table(["Path", "File", "SHA-256"], files)]
     if residuals:

@@ -22,6 +22,9 @@ import numpy as np
 from tonebench.analysis.fit import noise_corrected_dbm
 
 MIN_SNR_DB = 10.0  # a residual reading is used only this far above its noise marker (design section 3)
+# A share below 1 % of the whole amplitude (its intercept 20 dB above the system's) is within the
+# scatter of the readings (0.05 dB in an intercept is about 1 % in amplitude): reported as a bound.
+RESOLUTION = 0.01
 
 
 @dataclass(frozen=True)
@@ -109,12 +112,13 @@ def split_shares(base: InterceptEstimate, stepped: InterceptEstimate, step_db: f
     k_step = _amplitude(stepped.ip3_dbm)
     k_analyzer = (k_base - k_step) / (1.0 - ratio)
     k_source = k_base - k_analyzer
-    # A share that comes out zero or negative is below what the readings resolve: it is at
-    # least as far up as the whole system's intercept.
-    source = _intercept(k_source)
-    analyzer = _intercept(k_analyzer)
+    floor = RESOLUTION * k_base
+    # A share below what the readings resolve is given only as a bound on its intercept.
+    source = _intercept(k_source) if k_source >= floor else None
+    analyzer = _intercept(k_analyzer) if k_analyzer >= floor else None
+    bound = _intercept(floor)
     return ResidualSplit(
         base.ip3_dbm, source, analyzer,
-        source_ip3_min_dbm=None if source is not None else base.ip3_dbm,
-        analyzer_ip3_min_dbm=None if analyzer is not None else base.ip3_dbm,
+        source_ip3_min_dbm=None if source is not None else bound,
+        analyzer_ip3_min_dbm=None if analyzer is not None else bound,
     )

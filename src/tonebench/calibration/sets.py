@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from sqlalchemy import select
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from tonebench.calibration.referral import PATHS
@@ -219,11 +220,19 @@ def bench_file_set(session: Session, bench_name: str, bench_path: str, tables: M
     name = f"bench-file:{bench_name[:60]}:{digest[:12]}"
     row = find_set(session, name)
     if row is None:
-        row = create_set(
-            session, name=name, method="bench-file", tables=tables, valid_days=BENCH_FILE_VALID_DAYS,
-            source_files=[{"offset_path": "in1,in2,out", "file": bench_path, "sha256": digest}],
-            notes="the [offsets] table of a bench file, as typed there",
-        )
+        try:
+            # Several workers may start runs with the same bench file at once: the loser of the
+            # race on the unique name takes the winner's row.
+            with session.begin_nested():
+                row = create_set(
+                    session, name=name, method="bench-file", tables=tables, valid_days=BENCH_FILE_VALID_DAYS,
+                    source_files=[{"offset_path": "in1,in2,out", "file": bench_path, "sha256": digest}],
+                    notes="the [offsets] table of a bench file, as typed there",
+                )
+        except IntegrityError:
+            row = find_set(session, name)
+            if row is None:
+                raise
     return row.id
 
 

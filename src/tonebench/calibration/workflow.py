@@ -98,8 +98,9 @@ def calibration_bench(bench: LoadedBench, thru: bool, thru_in_place: bool,
             sim.close()
 
 
-def _provenance(opened: OpenBench, roles: tuple[str, ...]) -> list[dict]:
-    return [{"role": i.role, "resource": i.resource, "idn": i.idn} for i in opened.instruments if i.role in roles]
+def _provenance(opened: OpenBench, roles: tuple[str, ...], step: str) -> list[dict]:
+    return [{"step": step, "role": i.role, "resource": i.resource, "idn": i.idn}
+            for i in opened.instruments if i.role in roles]
 
 
 def _analyzer_limit_dbm(bench: LoadedBench, opened: OpenBench) -> float:
@@ -162,7 +163,7 @@ def measure_input(db_url: str, name: str, bench_path: Path, plan_path: Path, *, 
         level = _default_level(bench, gain_db, analyzer_limit_dbm) if level_dbm is None else level_dbm
         _check_level(bench, level, gain_db, analyzer_limit_dbm, f"input calibration {name}")
         paths = measure.measure_input_paths(opened, freqs_hz, level)
-        instruments = _provenance(opened, ("source1", "source2", "power_meter"))
+        instruments = _provenance(opened, ("source1", "source2", "power_meter"), "input paths")
     origin = f"calibration set {name}"
     tables = {
         "in1": table_from_arrays("in1", paths.freqs_hz, paths.in1_loss_db, origin),
@@ -202,7 +203,7 @@ def measure_output(db_url: str, name: str, bench_path: Path, plan_path: Path, *,
         _check_level(bench, level, 0.0, analyzer_limit_dbm, f"output calibration {name}")
         losses_db = measure.measure_output_path(opened, in1, freqs_hz, level, _setup(plan),
                                                 plan.settings.analyzer.noise_offset_hz)
-        instruments = _provenance(opened, ("analyzer",))
+        instruments = _provenance(opened, ("analyzer",), "output path")
     table = table_from_arrays("out", freqs_hz, losses_db, view.label)
     importers.check_losses("measured out (is the thru in place?)", table.freqs_hz, table.losses_db)
     with sessions.begin() as session:
@@ -273,7 +274,7 @@ def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, 
             base, stepped = measure.measure_residual_sweeps(
                 opened, view.tables, center_hz, spacing_hz, levels, setup, noise_offset_hz, (base_db, step_atten_db))
             rows.append(_residual_row(center_hz, spacing_hz, levels, base, stepped, setup))
-        instruments = _provenance(opened, ("source1", "source2", "analyzer"))
+        instruments = _provenance(opened, ("source1", "source2", "analyzer"), "system residual")
     with sessions.begin() as session:
         replace_residuals(session, name, rows)
         add_paths(session, name, {}, instruments, f"system residual at {len(groups)} (center, spacing) pairs")

@@ -145,8 +145,9 @@ def judge(values: dict[str, float | None], center_hz: float, spacing_hz: float, 
     return verdict, "; ".join(text for ok, text in sorted(checks, key=lambda c: c[0]))
 
 
-def apply_verdicts(session: Session, run_id: int | None = None) -> Counter:
-    """(Re)compute and store the verdict of every result (of one run, or all); counts per verdict.
+def apply_verdicts(session: Session, run_id: int | None = None, *, part_number: str | None = None) -> Counter:
+    """(Re)compute and store the verdict of every result (of one run, of one part number, or
+    all); returns the count per verdict.
 
     Works in the caller's transaction and does not commit. Results already loaded in the
     session get the new values too.
@@ -161,6 +162,8 @@ def apply_verdicts(session: Session, run_id: int | None = None) -> Counter:
              .order_by(Result.id).limit(_BATCH))
     if run_id is not None:
         query = query.where(Result.run_id == run_id)
+    if part_number is not None:
+        query = query.where(Device.part_number == part_number)
     update = (sa.update(Result.__table__).where(Result.__table__.c.id == sa.bindparam("result_id"))
               .values(verdict=sa.bindparam("new_verdict"), verdict_detail=sa.bindparam("new_detail")))
     counts: Counter = Counter()

@@ -30,7 +30,7 @@ from pathlib import Path
 import sqlalchemy as sa
 from sqlalchemy.orm import Session, selectinload, sessionmaker
 
-from tonebench.errors import InputError
+from tonebench.errors import DatabaseError, InputError
 from tonebench.review import find_run
 from tonebench.store.database import schema_head
 from tonebench.store.models import (
@@ -374,11 +374,16 @@ def import_runs(sessions: sessionmaker, path: Path) -> ImportSummary:
     path = Path(path)
     verify(path)
     summary = ImportSummary()
-    with sessions.begin() as session:
-        importer = _Importer(session, path, summary)
-        for number, line in _lines(path):
-            record = _parse(path, number, line)
-            if record["kind"] == "end":
-                break
-            importer.add(record)
+    try:
+        with sessions.begin() as session:
+            importer = _Importer(session, path, summary)
+            for number, line in _lines(path):
+                record = _parse(path, number, line)
+                if record["kind"] == "end":
+                    break
+                importer.add(record)
+    except sa.exc.IntegrityError:
+        # Another import (or a bench) added one of these rows while this one ran; nothing was kept.
+        raise DatabaseError(f"import of {path}: another writer added some of the same rows meanwhile; "
+                            "nothing was imported, run the import again") from None
     return summary

@@ -80,7 +80,8 @@ def import_touchstone(
     db: DbOption = None,
 ) -> None:
     """Store a new set from Touchstone 2-port files (|S21| in dB); several files per path are cascaded."""
-    from tonebench.calibration.workflow import default_operator, import_touchstone as run_import
+    from tonebench.calibration.workflow import default_operator
+    from tonebench.calibration.workflow import import_touchstone as run_import
 
     with one_line_errors():
         view = run_import(_db(db), name, _path_files(in1, in2, out_), valid_days=valid_days,
@@ -94,7 +95,8 @@ def measure_input(
     valid_days: ValidOpt = 30.0, operator: OperatorOpt = None, db: DbOption = None,
 ) -> None:
     """Measure in1 and in2 with the power meter at the DUT input plane; stores a new set."""
-    from tonebench.calibration.workflow import default_operator, measure_input as run_measure
+    from tonebench.calibration.workflow import default_operator
+    from tonebench.calibration.workflow import measure_input as run_measure
 
     with one_line_errors():
         view = run_measure(_db(db), name, bench, plan, level_dbm=level_dbm, step_hz=step_hz,
@@ -168,7 +170,8 @@ def show(
         _summary(view)
         out.print(f"  created {view.created_at:%Y-%m-%d %H:%M:%S} UTC by {view.operator or '-'}; {view.notes or ''}", highlight=False)
         for inst in view.instruments:
-            out.print(f"  {inst.get('role', ''):11} {inst.get('resource', '')}  {inst.get('idn', '')}", highlight=False)
+            out.print(f"  {inst.get('step', ''):15} {inst.get('role', ''):11} {inst.get('resource', '')}  {inst.get('idn', '')}",
+                      highlight=False)
         for source in view.source_files:
             out.print(f"  file {source.get('file', source.get('plan', ''))} sha256 {source.get('sha256', '')[:16]}", highlight=False)
         written = write_calibration_page(view, html_out or Path(f"cal-{name}.html"))

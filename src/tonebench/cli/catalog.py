@@ -224,15 +224,15 @@ def limit_add(
     notes: Annotated[str | None, typer.Option(help="Where the limit comes from.")] = None,
     db: DbOption = None,
 ) -> None:
-    """Add a spec limit and judge every stored result again."""
+    """Add a spec limit and judge the part's stored results again."""
     from tonebench.catalog.limits import add_limit, apply_verdicts
 
     with one_line_errors(), _session(db, write=True) as session:
         limit = add_limit(session, part, parameter, freq_min_hz=freq_min_hz, freq_max_hz=freq_max_hz,
                           min_value=min_value, max_value=max_value, spacing_min_hz=spacing_min_hz,
                           spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v, notes=notes)
-        counts = apply_verdicts(session)
-        out.print(f"limit {limit.id} added; verdicts now: " + (", ".join(f"{k} {v}" for k, v in sorted(counts.items())) or "no results"),
+        counts = apply_verdicts(session, part_number=limit.part_number)
+        out.print(f"limit {limit.id} added; verdicts of {limit.part_number} now: " + (", ".join(f"{k} {v}" for k, v in sorted(counts.items())) or "no results"),
                   highlight=False)
 
 
@@ -264,12 +264,12 @@ def limit_remove(
     limit_id: Annotated[int, typer.Argument(metavar="ID", help="Limit id (see `limit list`).")],
     db: DbOption = None,
 ) -> None:
-    """Remove a spec limit and judge every stored result again."""
+    """Remove a spec limit and judge the part's stored results again."""
     from tonebench.catalog.limits import apply_verdicts, remove_limit
 
     with one_line_errors(), _session(db, write=True) as session:
-        remove_limit(session, limit_id)
-        apply_verdicts(session)
+        removed = remove_limit(session, limit_id)
+        apply_verdicts(session, part_number=removed.part_number)
         out.print(f"limit {limit_id} removed", highlight=False)
 
 

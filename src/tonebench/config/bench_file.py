@@ -24,10 +24,33 @@ class BenchInfo(StrictModel):
     calibration: str | None = Field(default=None, min_length=1)
 
 
+# Analyzer figures a bench file may set over its dialect's [performance] table: this unit's own
+# mixer TOI and noise floor, and its relative level accuracy (tone versus IM3 reading) for the bound.
+PERFORMANCE_OVERRIDES = {
+    "mixer_toi_dbm": (-50.0, 100.0),
+    "danl_dbm_per_hz": (-200.0, -100.0),
+    "sweep_time_factor": (0.01, 100.0),
+    "level_accuracy_db": (0.0, 5.0),
+}
+
+
 class InstrumentEntry(StrictModel):
     dialect: str = Field(min_length=1)
     # A VISA resource string; left out on a simulated bench, where the simulator assigns one.
     resource: str | None = None
+    performance: dict[str, float] = {}
+
+    @field_validator("performance")
+    @classmethod
+    def _known_figures(cls, figures: dict[str, float]) -> dict[str, float]:
+        for key, value in figures.items():
+            if key not in PERFORMANCE_OVERRIDES:
+                raise ValueError(f"performance.{key} is not a figure tonebench uses; allowed: "
+                                 f"{', '.join(PERFORMANCE_OVERRIDES)}")
+            low, high = PERFORMANCE_OVERRIDES[key]
+            if not low <= value <= high:
+                raise ValueError(f"performance.{key} = {value:g} outside {low:g}..{high:g}")
+        return figures
 
 
 class OffsetTables(StrictModel):
@@ -85,6 +108,9 @@ class BenchFile(StrictModel):
         unknown = [role for role in instruments if role not in allowed]
         if unknown:
             raise ValueError(f"unknown instrument role(s) {', '.join(unknown)}; allowed: {', '.join(allowed)}")
+        for role, entry in instruments.items():
+            if entry.performance and role != "analyzer":
+                raise ValueError(f"instruments.{role}.performance: only the analyzer takes performance figures")
         return instruments
 
     @property

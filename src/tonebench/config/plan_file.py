@@ -38,6 +38,9 @@ class SweepSettings(StrictModel):
     tone_start_dbm: float = Field(ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
     tone_stop_dbm: float = Field(ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
     tone_step_dbm: float = Field(gt=0.0, le=20.0)
+    # Also read the second-order products f2-f1 and f1+f2 (IIP2), where the analyzer's range
+    # and the output-path calibration reach them.
+    second_order: bool = False
 
     @model_validator(mode="after")
     def _check(self) -> "SweepSettings":
@@ -64,8 +67,20 @@ class AnalyzerSettings(StrictModel):
     rbw_hz: float = Field(default=1000.0, gt=0.0, le=10e6)
     vbw_hz: float | None = Field(default=None, gt=0.0, le=50e6)
     span_hz: float | None = Field(default=None, gt=0.0, le=1e9)
+    # Given: a fixed attenuation for every point. Left out: the sequencer chooses it per point at
+    # the dynamic-range optimum (auto_atten), and 10 dB is the reference for the others.
     atten_db: float = Field(default=10.0, ge=0.0, le=70.0)
+    # The reference level at atten_db; it moves dB for dB with the attenuation.
     ref_level_dbm: float = Field(default=0.0, ge=-120.0, le=30.0)
+    # The attenuation-step check: the IM3 reads repeated with this much more attenuation at the
+    # step_top_points highest tone powers of each sweep (and wherever the analyzer's own IM3 is
+    # predicted within 20 dB of the reading).
+    step_atten_db: float = Field(default=10.0, ge=4.0, le=30.0)
+    step_top_points: int = Field(default=2, ge=0, le=50)
+
+    @property
+    def auto_atten(self) -> bool:
+        return "atten_db" not in self.model_fields_set
 
     @property
     def effective_vbw_hz(self) -> float:

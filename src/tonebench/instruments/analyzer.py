@@ -10,6 +10,8 @@ from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument
 
 # Reads of one product before giving up when each is cut by a reopened connection.
 MAX_READ_ATTEMPTS = 3
+# Relative change of the reported sweep time taken as changed settings.
+SWEEP_TIME_TOLERANCE = 0.01
 
 
 @dataclass(frozen=True)
@@ -44,6 +46,8 @@ class SpectrumAnalyzer(RoleDriver):
         self._sent: dict[str, float] = {}
         # The setup last applied, sent again by restore() after a reopened connection or a reset.
         self.last_setup: AnalyzerSetup | None = None
+        # The sweep time first reported for each setup: its signature (see _settings_lost).
+        self._sweep_time_by_setup: dict[AnalyzerSetup, float] = {}
         instrument.add_restore_hook(self.restore)
 
     def prepare(self) -> None:
@@ -100,7 +104,7 @@ class SpectrumAnalyzer(RoleDriver):
             # A reading taken across a reopened connection may mix two traces: take it again.
             epoch = inst.epoch
             sweep_time_s = self._sweep(center_hz)
-            if inst.epoch != epoch:
+            if inst.epoch != epoch or self._settings_lost(sweep_time_s):
                 continue
             status = inst.call("read_status")
             overload = bool((status >> self._overload_bit) & 1)
@@ -109,11 +113,36 @@ class SpectrumAnalyzer(RoleDriver):
                 inst.call("set_marker_freq", freq_hz=freq_hz)
                 powers_dbm.append(inst.call("read_marker_power"))
             inst.check_errors()
-            if inst.epoch == epoch:
+            # Asked again at the end: settings lost at any moment of the read show here.
+            if inst.epoch == epoch and not self._settings_lost(inst.call("read_sweep_time")):
                 return MarkerReading(tuple(powers_dbm), overload, sweep_time_s)
         raise InstrumentError(
-            f"{self.label}: the connection was reopened during each of {MAX_READ_ATTEMPTS} reads at {center_hz:.6g} Hz"
+            f"{self.label}: the connection was reopened or the settings lost during each of "
+            f"{MAX_READ_ATTEMPTS} reads at {center_hz:.6g} Hz"
         )
+
+    def _settings_lost(self, sweep_time_s: float) -> bool:
+        """True (after restoring them) when the analyzer's sweep time shows other settings.
+
+        The sweep time follows span and RBW, so the value first reported for a setup is its
+        signature: a different one later means the analyzer was reset or power-cycled behind our
+        back. No extra query is needed; the sweep time is read for every sweep anyway.
+        """
+        setup = self.last_setup
+        if setup is None:
+            return False
+        expected_s = self._sweep_time_by_setup.setdefault(setup, sweep_time_s)
+        if abs(sweep_time_s - expected_s) <= SWEEP_TIME_TOLERANCE * expected_s:
+            return False
+        message = (f"{self.label}: sweep time {sweep_time_s:.6g} s where {expected_s:.6g} s was reported "
+                   "for these settings: settings lost (reset?); sent again")
+        supervision = self.instrument.supervision
+        if supervision is not None:
+            supervision.emit(self.label, "state-lost", "warning", message)
+        # Seeded again after the restore, in case the first value was the wrong one.
+        self._sweep_time_by_setup.pop(setup, None)
+        self.restore()
+        return True
 
     def _sweep(self, center_hz: float) -> float:
         """One single sweep at `center_hz` (Hz), waited for; returns the sweep time (s)."""
