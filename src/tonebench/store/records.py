@@ -6,6 +6,7 @@ import platform
 import uuid
 
 from sqlalchemy import select
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
 from tonebench import __version__
@@ -23,11 +24,18 @@ from tonebench.store.models import (
 
 
 def _get_or_create(session: Session, model, lookup: dict, **defaults):
+    """The row matching `lookup`, created if missing. Two processes may race to create it (two
+    workers starting on one bench): the loser's insert fails on the unique key inside a savepoint
+    and it takes the winner's row."""
     row = session.scalars(select(model).filter_by(**lookup)).first()
-    if row is None:
-        row = model(**lookup, **defaults)
-        session.add(row)
-        session.flush()
+    if row is not None:
+        return row
+    try:
+        with session.begin_nested():
+            row = model(**lookup, **defaults)
+            session.add(row)
+    except IntegrityError:
+        row = session.scalars(select(model).filter_by(**lookup)).one()
     return row
 
 
