@@ -5,7 +5,11 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from tonebench.analysis import intercept_error_db, phasor_bounds_db, reading_error_bounds_db
+from tonebench.analysis import (
+    intercept_error_db,
+    phasor_bounds_db,
+    reading_error_bounds_db,
+)
 
 PHASES_RAD = np.linspace(0.0, 2.0 * np.pi, 3601)
 

@@ -6,8 +6,8 @@ bound of the simulated truth. Then the bound calibration: 100 seeded runs across
 
 import numpy as np
 import pytest
-
 from simsweep import measure_sweep
+
 from tonebench.analysis import AnalysisSettings, assess_sweep
 from tonebench.sim.scenario import Scenario
 
@@ -61,7 +61,7 @@ def test_analyzer_limited_at_0_db_then_recovered_with_automatic_attenuation():
 @pytest.mark.parametrize("phase_deg", [0.0, 180.0])
 def test_source_intermod_limited_with_a_poor_combiner(phase_deg):
     sc = scenario(phase_deg=phase_deg, sources={"system_ip3_dbm": 5.0})
-    data, a = run(sc, np.arange(-34.0, -21.0, 2.0), system_ip3_dbm=5.0)
+    _, a = run(sc, np.arange(-34.0, -21.0, 2.0), system_ip3_dbm=5.0)
     assert labels(a.result_flags) == ["source-intermod-limited"]
     assert all("source-intermod-limited" in labels(p) for p in a.point_flags)
     assert abs(a.fit.iip3_dbm - sc.dut.iip3_dbm) <= a.iip3_bound_db
@@ -70,7 +70,7 @@ def test_source_intermod_limited_with_a_poor_combiner(phase_deg):
 
 def test_noise_limited_gives_only_a_bound():
     sc = scenario()
-    data, a = run(sc, np.arange(-60.0, -43.0, 2.0))
+    _, a = run(sc, np.arange(-60.0, -43.0, 2.0))
     assert a.fit.iip3_dbm is None and a.iip3_bound_db is None
     assert labels(a.result_flags) == ["analyzer-limited (noise)"]
     assert a.iip3_at_least_dbm is not None and a.iip3_at_least_dbm <= sc.dut.iip3_dbm
@@ -79,7 +79,7 @@ def test_noise_limited_gives_only_a_bound():
 def test_compressed_top_points_excluded():
     sc = scenario()
     tones = np.arange(-34.0, -5.0, 2.0)
-    data, a = run(sc, tones)
+    _, a = run(sc, tones)
     compressed = np.array(["compressed" in labels(p) for p in a.point_flags])
     assert compressed[-6:].all() and not compressed[:5].any()
     assert not (a.fit.valid_mask & compressed).any()

@@ -8,9 +8,14 @@ cos((w1+w2) t)], so each second-order product has amplitude a2 A1 A2, and the cu
 
 import numpy as np
 import pytest
-
 from simsweep import measure_sweep
-from tonebench.analysis import AnalysisSettings, assess_sweep, fit_second_order, point_iip2_dbm
+
+from tonebench.analysis import (
+    AnalysisSettings,
+    assess_sweep,
+    fit_second_order,
+    point_iip2_dbm,
+)
 from tonebench.sim import physics
 from tonebench.sim.scenario import Scenario
 

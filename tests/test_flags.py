@@ -200,7 +200,7 @@ def test_tone_imbalance_flagged_but_intercept_exact():
 
 def test_slope_flag_with_the_free_slope_gap_as_error():
     a = assess_sweep(sweep(im3_slope=2.5))
-    flag = [f for f in a.result_flags if f.flag == "slope"][0]
+    flag = next(f for f in a.result_flags if f.flag == "slope")
     assert "2.50" in flag.detail
     assert flag.error_db == pytest.approx(abs(a.fit.iip3_free_dbm - a.fit.iip3_dbm))
     assert a.fit.slope_im3_lower == pytest.approx(2.5, abs=1e-6)

@@ -4,7 +4,6 @@ analysis, `tonebench show`. Each scenario has a known truth (the simulator's), n
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 from sqlalchemy import create_engine, func, select
 from sqlalchemy.orm import Session
@@ -165,7 +164,7 @@ def test_analyzer_limited_at_0_db_then_recovered_automatically(tmp_path):
     assert "analyzer-limited (distortion)" in shown.output and "raise the analyzer attenuation" in shown.output
 
     (tmp_path / "auto").mkdir()
-    outcome, session, _ = run(tmp_path / "auto", write_plan(tmp_path, -40.0, -28.0, name="auto.toml"), bench)
+    _outcome, session, _ = run(tmp_path / "auto", write_plan(tmp_path, -40.0, -28.0, name="auto.toml"), bench)
     result = session.scalars(select(Result)).one()
     truth = true_iip3_dbm()
     assert abs(result.iip3_dbm - truth) <= result.iip3_bound_db
@@ -198,7 +197,7 @@ def test_source_intermod_flag_from_the_calibration_residual(tmp_path):
 
 
 def test_noise_limited_run_gives_only_a_bound(tmp_path):
-    outcome, session, _ = run(tmp_path, write_plan(tmp_path, -60.0, -46.0), write_bench(tmp_path))
+    _outcome, session, _ = run(tmp_path, write_plan(tmp_path, -60.0, -46.0), write_bench(tmp_path))
     result = session.scalars(select(Result)).one()
     assert result.iip3_dbm is None and result.iip3_bound_db is None
     assert flags_of(session, ResultFlag, ResultFlag.result_id, result.id) == [("analyzer-limited", "noise")]
@@ -210,7 +209,7 @@ def test_noise_limited_run_gives_only_a_bound(tmp_path):
 
 def test_second_order_read_and_fitted(tmp_path):
     bench = write_bench(tmp_path, iip2_dbm=22.0, wide_out=True)
-    outcome, session, _ = run(tmp_path, write_plan(tmp_path, -40.0, -22.0, second_order=True), bench)
+    _outcome, session, _ = run(tmp_path, write_plan(tmp_path, -40.0, -22.0, second_order=True), bench)
     result = session.scalars(select(Result)).one()
     points = session.scalars(select(Point)).all()
     assert all(p.raw_diff_dbm is not None and p.raw_sum_dbm is not None for p in points)
@@ -222,8 +221,32 @@ def test_second_order_read_and_fitted(tmp_path):
 
 
 def test_second_order_skipped_where_the_output_path_is_not_calibrated(tmp_path):
-    outcome, session, _ = run(tmp_path, write_plan(tmp_path, -34.0, -28.0, second_order=True), write_bench(tmp_path))
+    _outcome, session, _ = run(tmp_path, write_plan(tmp_path, -34.0, -28.0, second_order=True), write_bench(tmp_path))
     assert all(p.raw_diff_dbm is None for p in session.scalars(select(Point)))
     events = [e for e in session.scalars(select(Event)) if e.kind == "second-order-skipped"]
     assert len(events) == 1 and "no output loss" in events[0].message
     assert session.scalars(select(Result)).one().iip2_dbm is None
+
+
+def test_bench_file_performance_figures_are_checked(tmp_path):
+    from tonebench.config.bench_file import load_bench
+    from tonebench.errors import InputError
+
+    good = write_bench(tmp_path, declared_toi_dbm=5.0)
+    assert load_bench(good).settings.instruments["analyzer"].performance == {"mixer_toi_dbm": 5.0}
+    text = good.read_text().replace("mixer_toi_dbm = 5.0", "mixer_toy_dbm = 5.0")
+    good.write_text(text)
+    with pytest.raises(InputError, match=r"mixer_toy_dbm is not a figure tonebench uses; allowed: mixer_toi_dbm") as exc:
+        load_bench(good)
+    assert "\n" not in str(exc.value)
+    good.write_text(text.replace("mixer_toy_dbm = 5.0", "level_accuracy_db = 9.0"))
+    with pytest.raises(InputError, match=r"level_accuracy_db = 9 outside 0\.\.5"):
+        load_bench(good)
+
+
+def test_plan_attenuation_is_automatic_unless_given(tmp_path):
+    from tonebench.config.plan_file import load_plan
+
+    assert load_plan(write_plan(tmp_path, -30.0, -20.0)).settings.analyzer.auto_atten
+    fixed = load_plan(write_plan(tmp_path, -30.0, -20.0, atten_db=10.0, name="fixed.toml")).settings.analyzer
+    assert not fixed.auto_atten and fixed.atten_db == 10.0  # the default value, given: fixed

@@ -202,3 +202,35 @@ def test_two_worker_processes_on_postgresql_run_each_job_once(tmp_path, postgres
         assert all(run.status == "complete" and len(run.points) == 3 for run in runs)
     started = [line for out, err in outputs for line in err.splitlines() if ": start" in line]
     assert len(started) == 6  # six starts over both workers: no job ran twice
+
+
+def test_a_worker_killed_mid_run_is_taken_over_and_its_run_resumed(tmp_path, sqlite_url):
+    import os
+    import signal
+
+    sessions = sessions_for(sqlite_url)
+    job = add_job(sessions, small_plan(tmp_path, "overnight", start=-40.0, stop=-8.0), BENCH)
+    killed = subprocess.Popen([sys.executable, "-m", "tonebench", "worker", "--bench", str(BENCH), "--db", sqlite_url,
+                               "--until-empty"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 120
+    try:
+        while True:
+            with sessions() as session:
+                if session.scalar(select(func.count()).select_from(Point)) >= 4:
+                    break
+            assert killed.poll() is None and time.monotonic() < deadline
+            threading.Event().wait(0.02)
+        os.kill(killed.pid, signal.SIGKILL)
+    finally:
+        killed.wait(30)
+    with sessions() as session:
+        assert session.scalars(select(Job.status)).one() == "running"  # what the dead worker left
+    assert Worker(sqlite_url, BENCH).run(until_empty=True) == 1
+    with sessions() as session:
+        stored = session.scalars(select(Job)).one()
+        assert stored.guid == job.guid and stored.status == "done"
+        run = stored.run
+        keys = [point.point_key for point in run.points]
+        assert run.status == "complete" and len(keys) == 17 and len(set(keys)) == 17
+        assert {"owner-gone", "resume"} <= {event.kind for event in run.events}
+        assert session.scalar(select(func.count()).select_from(Run)) == 1  # resumed, not run again

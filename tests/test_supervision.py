@@ -89,7 +89,7 @@ def test_late_reply_after_a_stall_is_discarded_not_taken_for_the_next_answer(ben
     # The marker query stalls past the timeout and its reply comes late: a naive retry would
     # read that late reply, and every later query would get the answer of the one before.
     schedule.add(FaultSpec(instrument="analyzer", kind="stall", on="CALC:MARK1:Y?",
-                           duration_s=2 * QUERY_TIMEOUT_S, late_reply=True))
+                           duration_s=1.5 * QUERY_TIMEOUT_S, late_reply=True))
     reading = analyzer.read_markers(2.4e9, [2.4e9])
     retries = [event for event in events if event.kind == "retry"]
     assert retries and any(event.details["discarded"] for event in retries)

@@ -11,6 +11,7 @@ from tonebench.instruments.dialect import load_dialect
 from tonebench.instruments.power_meter import PowerMeter
 from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.source import SignalSource
+from tonebench.instruments.supervision import Supervision
 from tonebench.instruments.transport import open_resource
 from tonebench.safety import SourceRange
 
@@ -55,6 +56,28 @@ class OpenBench:
         if failures:
             raise InstrumentError("RF off failed: " + "; ".join(failures))
 
+    @property
+    def connections(self) -> list[ScpiInstrument]:
+        """Every open instrument connection (their epochs tell a reopened one)."""
+        return list(self._scpi)
+
+    def restore_all(self) -> None:
+        """Send every driver's last settings again (after a reset or a reopened connection)."""
+        for driver in (self.source1, self.source2, self.analyzer):
+            driver.restore()
+        if self.power_meter is not None:
+            self.power_meter.prepare()
+
+    def force_rf_off_all(self) -> list[str]:
+        """RF off at both sources from another thread (the watchdog); returns one line per source."""
+        said = []
+        for source in (self.source1, self.source2):
+            try:
+                said.append(f"{source.label} RF off {source.force_rf_off()}")
+            except Exception as exc:  # noqa: BLE001 - the other source must still be switched off
+                said.append(f"{source.label} RF off FAILED: {exc}")
+        return said
+
     def close(self) -> None:
         for instrument in self._scpi:
             try:
@@ -63,9 +86,10 @@ class OpenBench:
                 pass
 
 
-def open_bench(settings: BenchFile, resources: dict[str, str]) -> OpenBench:
+def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:
     """Connect to source1, source2, analyzer and (if the bench file has one) the power meter;
-    `resources` maps each role to a VISA resource."""
+    `resources` maps each role to a VISA resource. With `supervision`, timeouts and dropped
+    connections are retried and reconnected per its policy."""
     opened: list[ScpiInstrument] = []
     roles = ["source1", "source2", "analyzer"] + [r for r in OPTIONAL_ROLES if r in settings.instruments]
     try:
@@ -75,9 +99,12 @@ def open_bench(settings: BenchFile, resources: dict[str, str]) -> OpenBench:
                 raise InputError(
                     f"instruments.{role}: dialect {dialect.name} is for a {dialect.role}; this role needs a {ROLE_KINDS[role]} dialect"
                 )
-            opened.append(ScpiInstrument(open_resource(resources[role], dialect), dialect, role))
+            opened.append(ScpiInstrument(open_resource(resources[role], dialect), dialect, role, supervision))
         scpi1, scpi2, scpi_analyzer = opened[:3]
         meter = PowerMeter(opened[3]) if len(opened) > 3 else None
+        if meter is not None:
+            # After a reopened connection the meter may have lost its mode and frequency.
+            opened[3].add_restore_hook(meter.prepare)
         source1, source2 = SignalSource(scpi1), SignalSource(scpi2)
         ranges = tuple(
             SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)

@@ -8,9 +8,13 @@ from rich.table import Table
 from sqlalchemy import func, select
 
 from tonebench.report import flag_text
+from tonebench.resume import close_dead_runs
 from tonebench.review import find_run, terminal_row
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import CalibrationSet, Point, PointFlag, Run
+
+
+MAX_FAILED_SHOWN = 10  # failed points listed by `show`; the rest are counted
 
 
 def results_table(results) -> Table:
@@ -30,6 +34,7 @@ def results_table(results) -> Table:
 
 def list_runs(db_url: str, limit: int) -> list[tuple[str, ...]]:
     sessions = session_factory(open_database(db_url))
+    close_dead_runs(sessions)  # a run whose process is gone is not shown as running
     with sessions() as session:
         counts = dict(session.execute(select(Point.run_id, func.count()).group_by(Point.run_id)).all())
         runs = session.scalars(select(Run).order_by(Run.started_at.desc()).limit(limit)).all()
@@ -48,6 +53,7 @@ def list_runs(db_url: str, limit: int) -> list[tuple[str, ...]]:
 
 def describe_run(db_url: str, ident: str, console: Console) -> None:
     sessions = session_factory(open_database(db_url))
+    close_dead_runs(sessions)
     with sessions() as session:
         run = find_run(session, ident)
         device = run.device
@@ -58,7 +64,11 @@ def describe_run(db_url: str, ident: str, console: Console) -> None:
         console.print(f"  device:  {device.part_number} serial {device.serial} lot {device.lot or '-'}", highlight=False)
         console.print(f"  bench:   {run.bench.name}{' (simulated)' if run.simulated else ''}", highlight=False)
         console.print(f"  plan:    {run.plan.name} (sha256 {run.plan.sha256[:12]})", highlight=False)
-        console.print(f"  points:  {len(run.points)}", highlight=False)
+        failed = [p for p in run.points if p.status == "failed"]
+        console.print(f"  points:  {len(run.points)}" + (f" ({len(failed)} failed)" if failed else ""), highlight=False)
+        if run.status == "running" and run.owner:
+            beat = run.heartbeat_at.strftime("%H:%M:%S") if run.heartbeat_at else "-"
+            console.print(f"  owner:   {run.owner}, last heartbeat {beat} UTC", highlight=False)
         cal = run.calibration_set
         if cal is not None:
             console.print(f"  calibration: {cal.name} ({cal.method}, {cal.created_at:%Y-%m-%d})", highlight=False)
@@ -73,9 +83,13 @@ def describe_run(db_url: str, ident: str, console: Console) -> None:
             ordered = sorted(run.results, key=lambda r: (r.center_hz, r.spacing_hz, r.bias_v or 0.0))
             console.print(results_table(ordered))
             print_flags(session, run, ordered, console)
+        for point in failed[:MAX_FAILED_SHOWN]:
+            console.print(f"  failed point {point.point_key}: {point.fail_reason}", highlight=False)
+        if len(failed) > MAX_FAILED_SHOWN:
+            console.print(f"  ... and {len(failed) - MAX_FAILED_SHOWN} more failed points", highlight=False)
         console.print("events (UTC):", highlight=False)
-        for event in sorted(run.events, key=lambda e: e.at):
-            console.print(f"  {event.at:%H:%M:%S} {event.level:7} {event.kind:10} {event.message}", highlight=False)
+        for event in sorted(run.events, key=lambda e: (e.at, e.id)):
+            console.print(f"  {event.at:%H:%M:%S} {event.level:7} {event.kind:12} {event.message}", highlight=False)
 
 
 def print_flags(session, run: Run, results, console: Console) -> None:

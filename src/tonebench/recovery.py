@@ -27,8 +27,13 @@ class PointFailed(TonebenchError):
     """A point could not be measured within its attempts; the message is the reason stored."""
 
 
-# Errors that end the run rather than one point: a different instrument, a stop request.
-NOT_RETRIED = (IdentityChanged, RecoveryStopped)
+class BenchFault(InstrumentError):
+    """A fault of the bench itself that measuring again cannot cure (a leveling correction beyond
+    its limit: a loose cable; a sensor reading out of range): the run stops."""
+
+
+# Errors that end the run rather than one point: a different instrument, a stop request, a bench fault.
+NOT_RETRIED = (IdentityChanged, RecoveryStopped, BenchFault)
 
 
 class PointGuard(Generic[T]):
@@ -42,13 +47,15 @@ class PointGuard(Generic[T]):
         log: EventSink,
         attempts: int = 3,
         kick: Callable[[], None] = lambda: None,
+        check: Callable[[], None] = lambda: None,
     ):
         self.instruments = instruments
         self.sources = sources
         self.restore_all = restore_all
         self.log = log
         self.attempts = attempts
-        self.kick = kick
+        self.kick = kick  # progress was made (the watchdog)
+        self.check = check  # raises when the run must stop (the watchdog tripped)
 
     def measure(self, point_key: str, measure: Callable[[], T],
                 confirm: Callable[[T], str | None] = lambda result: None) -> T:
@@ -59,6 +66,7 @@ class PointGuard(Generic[T]):
         """
         reason = "no attempt made"
         for attempt in range(1, self.attempts + 1):
+            self.check()
             self.kick()
             epochs = self._epochs()
             try:
@@ -69,6 +77,7 @@ class PointGuard(Generic[T]):
                 raise
             except InstrumentError as exc:
                 reason = str(exc)
+            self.check()  # a reading finished after the watchdog switched RF off is not kept
             if reason is None:
                 return result
             if attempt == self.attempts:

@@ -14,7 +14,7 @@ import os
 import platform
 import time
 
-from sqlalchemy import delete, select
+from sqlalchemy import delete, select, update
 from sqlalchemy.orm import Session, sessionmaker
 
 from tonebench.errors import InputError
@@ -60,13 +60,21 @@ def owner_gone(run: Run, now: dt.datetime | None = None) -> str | None:
     return None
 
 
-def take_ownership(sessions: sessionmaker, run_id: int, owner: str | None = None) -> None:
-    """Mark the run as driven by this process, running, with a fresh heartbeat."""
+def take_ownership(sessions: sessionmaker, run_id: int, owner: str | None = None, *, resuming: bool = False) -> None:
+    """Mark the run as driven by this process, running, with a fresh heartbeat.
+
+    When resuming, only a run that is not 'running' is taken, in one conditional UPDATE, so two
+    processes resuming the same run at once cannot both go on (InputError for the second).
+    """
+    values = dict(owner=owner or process_owner(), heartbeat_at=utc_now(), status="running", end_reason=None,
+                  ended_at=None)
     with sessions.begin() as session:
-        run = session.get(Run, run_id)
-        run.owner = owner or process_owner()
-        run.heartbeat_at = utc_now()
-        run.status, run.end_reason, run.ended_at = "running", None, None
+        query = update(Run).where(Run.id == run_id)
+        if resuming:
+            query = query.where(Run.status != "running")
+        taken = session.execute(query.values(**values).execution_options(synchronize_session=False)).rowcount
+    if taken != 1:
+        raise InputError(f"run {run_id} is already being resumed by another process")
 
 
 class Heartbeat:
@@ -101,9 +109,10 @@ def close_dead_runs(sessions: sessionmaker) -> list[str]:
     return closed
 
 
-def check_resumable(run: Run) -> None:
-    """Refuse (InputError, one line) a run that is complete or still driven by a live process."""
-    if run.status == "complete":
+def check_resumable(run: Run, failed_points: int = 0) -> None:
+    """Refuse (InputError, one line) a run that is complete with no failed point, or is still
+    driven by a live process."""
+    if run.status == "complete" and failed_points == 0:
         raise InputError(f"run {run.guid} is complete; nothing to resume")
     if run.status == "running":
         where = run.owner or "another process"

@@ -12,21 +12,34 @@ from pathlib import Path
 
 from sqlalchemy.orm import sessionmaker
 
-from tonebench.bench import open_bench
+from tonebench.bench import OpenBench, open_bench
 from tonebench.calibration.leveling import Leveler
 from tonebench.calibration.referral import check_coverage
 from tonebench.calibration.sets import CalibrationView, bench_file_set, load_set
 from tonebench.config.bench_file import LoadedBench, load_bench
-from tonebench.config.plan_file import LoadedPlan, load_plan
-from tonebench.errors import InputError
+from tonebench.config.plan_file import LoadedPlan, load_plan, plan_from_text
+from tonebench.errors import InputError, InstrumentError
+from tonebench.instruments.scpi import LimitError, identity
+from tonebench.instruments.supervision import InstrumentEvent, RecoveryStopped, RetryPolicy, Supervision
 from tonebench.offsets import LossTable
-from tonebench.plan import expand
-from tonebench.review import analyze_run, write_run_report
-from tonebench.safety import check_plan
-from tonebench.sequencer import ProgressCallback, Sequencer
+from tonebench.plan import PlannedPoint, expand
+from tonebench.resume import (
+    Heartbeat,
+    check_resumable,
+    close_dead_runs,
+    process_owner,
+    stored_points,
+    take_ownership,
+)
+from tonebench.review import analyze_run, find_run, write_run_report
+from tonebench.runlog import RunLog, log_path_for
+from tonebench.safety import check_plan, power_guard
+from tonebench.sequencer import ProgressCallback, RunStopped, Sequencer
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Run
 from tonebench.store.records import RunRecorder
+from tonebench.watchdog import Watchdog, WatchdogTripped
+from tonebench.worker import JobCancelled
 
 
 class Terminated(Exception):
@@ -167,10 +180,14 @@ def execute_run(
     *,
     cal_name: str | None = None,
     on_warning: Callable[[str], None] | None = None,
+    on_run_started: Callable[[str], None] | None = None,
 ) -> RunOutcome:
     """Measure a plan on a bench. cal_name picks a calibration set (else the bench file's
     [bench] calibration, else its [offsets]); on_warning gets warnings before the run starts
-    (default: one line on stderr)."""
+    (default: one line on stderr); on_run_started gets the run's GUID once it is stored.
+
+    A run stopped by the bench file's on_point_failure policy or by the watchdog returns with
+    status 'paused' or 'aborted' (RF off, the reason stored); Ctrl-C, SIGTERM and errors raise."""
     plan: LoadedPlan = load_plan(plan_path)
     bench: LoadedBench = load_bench(bench_path)
     points = expand(plan.settings)
@@ -202,7 +219,9 @@ def execute_run(
             resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
 
         # Everything that can refuse the plan happens before the database is written and RF goes on.
-        open_instruments = open_bench(bench.settings, resources)
+        relay = EventRelay()
+        supervision = supervision_for(bench, relay)
+        open_instruments = open_bench(bench.settings, resources, supervision)
         stack.callback(open_instruments.close)
         check_plan(
             points,
@@ -252,23 +271,250 @@ def execute_run(
             session.get(Run, recorder.run_id).calibration_set_id = set_id
         if chosen.stale_message:
             recorder.event("warning", "calibration-stale", chosen.stale_message, {"calibration_set_id": set_id})
-        sequencer = Sequencer(open_instruments, offsets, bench.settings.limits, plan.settings.analyzer, recorder,
-                              leveler, second_order=plan.settings.sweep.second_order)
-        try:
-            with sigterm_raises():
-                sequencer.run(points, on_progress)
-        except KeyboardInterrupt:
-            recorder.finish("aborted", "interrupted by Ctrl-C")
-            raise
-        except Terminated as exc:
-            recorder.finish("aborted", str(exc))
-            raise
-        except Exception as exc:
-            recorder.finish("failed", f"{type(exc).__name__}: {exc}")
-            raise
-        recorder.finish("complete", f"all {len(points)} points measured")
+        log = RunLog(recorder, log_path_for(db_url))
+        log.line("info", "run-start", f"run {recorder.guid} started: plan {plan.settings.plan.name}, "
+                                      f"bench {bench.settings.bench.name}, {len(points)} points")
+        return drive(Drive(
+            recorder=recorder, log=log, sessions=sessions, bench=bench, plan=plan, points=points,
+            done_keys=frozenset(), offsets=offsets, instruments=open_instruments, supervision=supervision,
+            relay=relay, leveler=leveler, db_url=db_url, report_path=report_path,
+            calibration=None if chosen.view is None else chosen.view.name,
+        ), on_progress, on_run_started)
 
-        results = analyze_run(sessions, recorder.guid)
-        written = write_run_report(sessions, recorder.guid, report_path or default_report_path(db_url, recorder.guid))
-        return RunOutcome(recorder.guid, "complete", db_url, written, results,
-                          None if chosen.view is None else chosen.view.name)
+
+def resume_run(
+    ident: str,
+    db_url: str,
+    *,
+    bench_path: Path | None = None,
+    plan_path: Path | None = None,
+    report_path: Path | None = None,
+    on_progress: ProgressCallback | None = None,
+    on_sim_started: Callable[[object], None] | None = None,
+    on_run_started: Callable[[str], None] | None = None,
+) -> RunOutcome:
+    """Continue an interrupted run (killed, crashed, paused, aborted or failed).
+
+    The plan is the one stored with the run (a plan file given must be identical); the bench file
+    is the one the run started with unless `bench_path` names another for the same bench, and its
+    instruments must identify as the same ones (maker, model, serial). The offsets are those the
+    run stored. Points already measured are skipped by key; failed ones are measured again.
+    """
+    engine = open_database(db_url)
+    with ExitStack() as stack:
+        stack.callback(engine.dispose)
+        sessions = session_factory(engine)
+        close_dead_runs(sessions)
+        with sessions() as session:
+            run = find_run(session, ident)
+            states = stored_points(session, run.id)
+            check_resumable(run, sum(1 for status in states.values() if status == "failed"))
+            guid, run_id, bench_name = run.guid, run.id, run.bench.name
+            plan_text, plan_sha256 = run.plan.text, run.plan.sha256
+            metadata = dict(run.metadata_json or {})
+            stored_ids = {inst.role: inst.idn for inst in run.instruments}
+            offsets = stored_offsets(run)
+            calibration = run.calibration_set.name if run.calibration_set is not None else None
+        if plan_path is not None:
+            given = load_plan(plan_path)
+            if given.sha256 != plan_sha256:
+                raise InputError(
+                    f"plan {plan_path} differs from the plan run {guid} started with (sha256 {given.sha256[:12]} "
+                    f"vs {plan_sha256[:12]}); a resume measures the same plan"
+                )
+        plan = plan_from_text(plan_text, Path(metadata.get("plan_file", "stored plan")), f"run {guid} stored plan")
+        bench_path = Path(bench_path or metadata.get("bench_file", ""))
+        bench = load_bench(bench_path)
+        if bench.settings.bench.name != bench_name:
+            raise InputError(
+                f"bench file {bench_path} is for bench {bench.settings.bench.name!r}; run {guid} was measured "
+                f"on {bench_name!r}"
+            )
+        points = expand(plan.settings)
+        done_keys = frozenset(key for key, status in states.items() if status == "measured")
+        remaining = [point for point in points if point.key not in done_keys]
+        plan_origin = f"run {guid} plan"
+
+        if bench.settings.simulated:
+            from tonebench.sim.launch import start_sim_bench
+
+            sim = stack.enter_context(start_sim_bench(bench.scenario))
+            resources = dict(sim.resources)
+            if on_sim_started:
+                on_sim_started(sim)
+        else:
+            resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
+        relay = EventRelay()
+        supervision = supervision_for(bench, relay)
+        open_instruments = open_bench(bench.settings, resources, supervision)
+        stack.callback(open_instruments.close)
+        check_same_instruments(guid, stored_ids, open_instruments)
+        check_plan(remaining, offsets, bench.settings.limits, open_instruments.source_ranges,
+                   open_instruments.analyzer.limits.get("damage_dbm"), plan_origin)
+        leveler = make_leveler(bench, open_instruments, points, plan_origin)
+
+        recorder = RunRecorder(sessions, run_id, guid)
+        log = RunLog(recorder, log_path_for(db_url))
+        failed_before = sum(1 for key, status in states.items() if status == "failed")
+        again = f", {failed_before} of them failed before" if failed_before else ""
+        note = f"resumed by {process_owner()}: {len(done_keys)} already stored, {len(remaining)} to measure{again}"
+        return drive(Drive(
+            recorder=recorder, log=log, sessions=sessions, bench=bench, plan=plan, points=points,
+            done_keys=done_keys, offsets=offsets, instruments=open_instruments, supervision=supervision,
+            relay=relay, leveler=leveler, db_url=db_url, report_path=report_path, calibration=calibration,
+            resume_note=note,
+        ), on_progress, on_run_started)
+
+
+def stored_offsets(run: Run) -> dict[str, LossTable]:
+    """The path losses a run stored when it started (whatever their source), as tables."""
+    rows: dict[str, list] = {}
+    origins: dict[str, str] = {}
+    for offset in sorted(run.offsets, key=lambda o: (o.path, o.freq_hz)):
+        rows.setdefault(offset.path, []).append((offset.freq_hz, offset.loss_db))
+        origins[offset.path] = offset.origin
+    missing = [path for path in ("in1", "in2", "out") if path not in rows]
+    if missing:
+        raise InputError(f"run {run.guid}: no stored '{missing[0]}' offsets; it cannot be resumed")
+    return {path: LossTable.from_rows(path, rows[path], f"run {run.guid} offsets ({origins[path]})") for path in rows}
+
+
+def check_same_instruments(guid: str, stored_ids: dict[str, str], bench: OpenBench) -> None:
+    """A resumed run must be measured with the instruments it started with (maker, model, serial)."""
+    now = {info.role: info.idn for info in bench.instruments}
+    if set(now) != set(stored_ids):
+        raise InputError(
+            f"run {guid} was measured with {', '.join(sorted(stored_ids))}; the bench now has {', '.join(sorted(now))}"
+        )
+    for role, idn in stored_ids.items():
+        if identity(now[role]) != identity(idn):
+            raise InputError(f"run {guid}: {role} was {idn!r}; the bench now has {now[role]!r}")
+
+
+class EventRelay:
+    """The instruments' event callback: events held until the run's log exists, then passed on."""
+
+    def __init__(self):
+        self.log: RunLog | None = None
+        self._early: list[InstrumentEvent] = []
+
+    def __call__(self, event: InstrumentEvent) -> None:
+        if self.log is None:
+            self._early.append(event)
+        else:
+            self.log.instrument_event(event)
+
+    def attach(self, log: RunLog) -> None:
+        self.log = log
+        for event in self._early:
+            log.instrument_event(event)
+        self._early.clear()
+
+
+def supervision_for(bench: LoadedBench, relay: EventRelay) -> Supervision:
+    settings = bench.settings.unattended
+    policy = RetryPolicy(retries=settings.retries, reconnects=settings.reconnects, backoff_s=settings.backoff_s,
+                         max_backoff_s=max(5.0, settings.backoff_s))
+    return Supervision(policy, relay)
+
+
+@dataclass
+class Drive:
+    """Everything one run (or its resumption) needs once the checks have passed."""
+
+    recorder: RunRecorder
+    log: RunLog
+    sessions: sessionmaker
+    bench: LoadedBench
+    plan: LoadedPlan
+    points: list[PlannedPoint]
+    done_keys: frozenset[str]
+    offsets: dict[str, LossTable]
+    instruments: OpenBench
+    supervision: Supervision
+    relay: EventRelay
+    leveler: Leveler | None
+    db_url: str
+    report_path: Path | None
+    calibration: str | None
+    resume_note: str | None = None  # set when resuming: the "resume" event, written once the run is ours
+
+
+def watchdog_seconds(run: Drive, sequencer: Sequencer) -> float:
+    """The bench file's watchdog_s, raised if one sweep may legitimately take longer (narrow RBW)."""
+    analyzer = run.instruments.analyzer
+    longest_wait_s = 2 * analyzer.predicted_sweep_time_s(sequencer.setup) + analyzer.instrument.dialect.io.query_timeout_s
+    return max(run.bench.settings.unattended.watchdog_s, 2 * longest_wait_s)
+
+
+def drive(run: Drive, on_progress: ProgressCallback | None, on_run_started: Callable[[str], None] | None) -> RunOutcome:
+    """Measure what is left of the run with supervision, the run-time power guard and the
+    watchdog; store the end truthfully; analyze and report a complete run."""
+    recorder, log, bench = run.recorder, run.log, run.bench
+    take_ownership(run.sessions, recorder.run_id, resuming=run.resume_note is not None)
+    if run.resume_note is not None:
+        log.event("info", "resume", run.resume_note, {"done": len(run.done_keys),
+                                                      "remaining": len(run.points) - len(run.done_keys)})
+    run.relay.attach(log)
+    if on_run_started:
+        on_run_started(recorder.guid)
+    guard = power_guard(run.offsets, bench.settings.limits, run.instruments.analyzer.limits.get("damage_dbm"))
+    for source in run.instruments.sources():
+        source.power_guard = guard
+    heartbeat = Heartbeat(run.sessions, recorder.run_id)
+
+    def trip(reason: str) -> None:
+        run.supervision.stop.set()  # no more retries, and no source turns RF on again
+        said = run.instruments.force_rf_off_all()
+        log.event("error", "watchdog", f"{reason}; {'; '.join(said)}")
+
+    sequencer = Sequencer(run.instruments, run.offsets, bench.settings.limits, run.plan.settings.analyzer, recorder,
+                          run.leveler, second_order=run.plan.settings.sweep.second_order,
+                          unattended=bench.settings.unattended, log=log)
+    watchdog = Watchdog(watchdog_seconds(run, sequencer), trip)
+    sequencer.watchdog = watchdog
+    run.supervision.on_activity = watchdog.kick
+
+    def progress(done: int, total: int) -> None:
+        heartbeat.beat()
+        if on_progress:
+            on_progress(done, total)
+
+    def finish(status: str, reason: str) -> None:
+        recorder.finish(status, reason)
+        log.line("info" if status == "complete" else "error", "run-end", f"run {status}: {reason}")
+
+    try:
+        with sigterm_raises(), watchdog:
+            sequencer.run(run.points, progress, run.done_keys)
+    except RunStopped as stop:
+        finish(stop.status, str(stop))
+        return RunOutcome(recorder.guid, stop.status, run.db_url, None, [], run.calibration)
+    except KeyboardInterrupt:
+        finish("aborted", "interrupted by Ctrl-C")
+        raise
+    except Terminated as exc:
+        finish("aborted", str(exc))
+        raise
+    except Exception as exc:
+        if watchdog.tripped is not None and isinstance(exc, (WatchdogTripped, RecoveryStopped, InstrumentError)):
+            finish("aborted", watchdog.tripped)
+            return RunOutcome(recorder.guid, "aborted", run.db_url, None, [], run.calibration)
+        if isinstance(exc, LimitError):
+            log.event("error", "limit-refused", str(exc))
+            finish("aborted", f"refused at run time: {exc}")
+        elif isinstance(exc, JobCancelled):
+            finish("aborted", str(exc))
+        else:
+            finish("failed", f"{type(exc).__name__}: {exc}")
+        raise
+    failed = sequencer.failed_keys
+    total = len(run.points)
+    if failed:
+        finish("complete", f"{total - len(failed)} of {total} points measured, {len(failed)} failed "
+                           "(reasons stored with the points; `tonebench resume` measures them again)")
+    else:
+        finish("complete", f"all {total} points measured")
+    results = analyze_run(run.sessions, recorder.guid)
+    written = write_run_report(run.sessions, recorder.guid, run.report_path or default_report_path(run.db_url, recorder.guid))
+    return RunOutcome(recorder.guid, "complete", run.db_url, written, results, run.calibration)

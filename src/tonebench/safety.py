@@ -75,3 +75,35 @@ def check_source_power(source: SourceRange, setting_dbm: float, point_key: str) 
             f"point {point_key}: {source.label} would be set to {setting_dbm:.2f} dBm; it allows "
             f"{source.min_power_dbm:.2f} to {source.max_power_dbm:.2f} dBm"
         )
+
+
+def power_guard(offsets: dict[str, LossTable], limits: BenchLimits, analyzer_damage_dbm: float | None):
+    """The run-time check of every source power command (SignalSource.power_guard).
+
+    The pre-flight check covers the plan; this one covers each command actually sent (leveling
+    corrections included), through the same offsets: the tone at the DUT input plane must stay
+    within max_tone_dbm, and two such tones through the expected gain within the analyzer limit.
+    Raises LimitError naming the source, the command and the limit.
+    """
+    from tonebench.instruments.scpi import LimitError
+
+    analyzer_limit_dbm = limits.max_analyzer_input_dbm
+    if analyzer_damage_dbm is not None:
+        analyzer_limit_dbm = min(analyzer_limit_dbm, analyzer_damage_dbm)
+    paths = {"source1": "in1", "source2": "in2"}
+
+    def guard(label: str, freq_hz: float, power_dbm: float) -> None:
+        tone_dbm = power_dbm - offsets[paths[label]].loss_db(freq_hz)
+        if tone_dbm > limits.max_tone_dbm + 1e-9:
+            raise LimitError(
+                f"{label}: {power_dbm:.2f} dBm at {freq_hz:.6g} Hz would put {tone_dbm:.2f} dBm at the DUT input; "
+                f"the bench limit max_tone_dbm is {limits.max_tone_dbm:.2f} dBm"
+            )
+        analyzer_dbm = tone_dbm + TWO_EQUAL_TONES_DB + limits.expected_gain_db - offsets["out"].loss_db(freq_hz)
+        if analyzer_dbm > analyzer_limit_dbm + 1e-9:
+            raise LimitError(
+                f"{label}: {power_dbm:.2f} dBm at {freq_hz:.6g} Hz would put {analyzer_dbm:.2f} dBm into the analyzer "
+                f"(expected gain {limits.expected_gain_db:.1f} dB); the limit is {analyzer_limit_dbm:.2f} dBm"
+            )
+
+    return guard

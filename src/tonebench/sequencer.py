@@ -29,14 +29,26 @@ from tonebench.calibration.leveling import IMBALANCE_LIMIT_DB, Leveler, LevelRes
 from tonebench.calibration.referral import point_offsets, referred_values
 from tonebench.config.bench_file import BenchLimits
 from tonebench.config.plan_file import AnalyzerSettings
-from tonebench.errors import InputError
+from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.offsets import LossTable
+from tonebench.config.bench_file import UnattendedSettings
 from tonebench.plan import PlannedPoint
+from tonebench.recovery import BenchFault, PointFailed, PointGuard, settle_check
+from tonebench.resume import store_point
 from tonebench.safety import check_source_power, predict_levels
 from tonebench.store.records import RunRecorder
+from tonebench.watchdog import Watchdog
 
 ProgressCallback = Callable[[int, int], None]
+
+
+class RunStopped(Exception):
+    """The bench file's on_point_failure policy stopped the run: status 'paused' or 'aborted'."""
+
+    def __init__(self, status: str, reason: str):
+        super().__init__(reason)
+        self.status = status
 
 
 @dataclass(frozen=True)
@@ -67,6 +79,17 @@ class StepReadings:
 
 
 @dataclass(frozen=True)
+class Measured:
+    """Everything one attempt at a point read, before it is accepted."""
+
+    readings: Readings
+    setup: AnalyzerSetup
+    choice: str
+    step: StepReadings | None
+    second: SecondOrderReadings | None
+
+
+@dataclass(frozen=True)
 class SecondOrderReadings:
     """f2-f1 ("diff") and f1+f2 ("sum") with a noise marker beside each (analyzer input, dBm)."""
 
@@ -75,6 +98,17 @@ class SecondOrderReadings:
     noise_diff_dbm: float
     noise_sum_dbm: float
     sweep_time_s: float
+
+
+def _extrapolate(history: list[tuple[float, float, float]], tone_dbm: float) -> tuple[float, float]:
+    """Tone readings (f1, f2 dBm) expected at tone_dbm from the last one or two (f1, f2, tone_dbm)."""
+    f1_dbm, f2_dbm, last_dbm = history[-1]
+    slopes = (1.0, 1.0)
+    if len(history) == 2 and history[0][2] != last_dbm:
+        before = history[0]
+        slopes = ((f1_dbm - before[0]) / (last_dbm - before[2]), (f2_dbm - before[1]) / (last_dbm - before[2]))
+    step_db = tone_dbm - last_dbm
+    return f1_dbm + slopes[0] * step_db, f2_dbm + slopes[1] * step_db
 
 
 class Sequencer:
@@ -87,6 +121,9 @@ class Sequencer:
         recorder: RunRecorder,
         leveler: Leveler | None = None,
         second_order: bool = False,
+        unattended: UnattendedSettings | None = None,
+        log=None,
+        watchdog: Watchdog | None = None,
     ):
         self.bench = bench
         self.offsets = offsets
@@ -95,6 +132,15 @@ class Sequencer:
         self.recorder = recorder
         self.leveler = leveler
         self.second_order = second_order
+        self.unattended = unattended or UnattendedSettings()
+        # Events go to the run log (database and text file) when there is one.
+        self.log = log if log is not None else recorder
+        self.watchdog = watchdog
+        self.failed_keys: list[str] = []
+        self._rf_said = False
+        self._top_dbm: dict[tuple, float] = {}
+        # sweep key -> (f1 dBm, f2 dBm, tone_dbm) of its last two accepted points (the settle check)
+        self._last_tones: dict[tuple, list[tuple[float, float, float]]] = {}
         # sweep key -> (mean raw tone reading dBm, its tone_dbm): predicts the next point's level
         self._last_tone: dict[tuple, tuple[float, float]] = {}
         self._top_levels: dict[tuple, set[float]] = {}
@@ -110,42 +156,131 @@ class Sequencer:
             ref_level_dbm=analyzer_settings.ref_level_dbm,
         )
 
-    def run(self, points: list[PlannedPoint], on_progress: ProgressCallback | None = None) -> None:
-        """Measure every point in order; RF is switched off however this returns or raises."""
+    def run(self, points: list[PlannedPoint], on_progress: ProgressCallback | None = None,
+            done_keys: frozenset[str] = frozenset()) -> None:
+        """Measure every point in order, skipping `done_keys` (already stored: a resumed run);
+        RF is switched off however this returns or raises.
+
+        A point that fails all its attempts is stored as failed with the reason, then the bench
+        file's on_point_failure decides: continue, or raise RunStopped ('paused' or 'aborted').
+        """
         started_s = time.monotonic()
-        rf_was_on = False
-        top_dbm = self._sweep_tops_dbm(points)
+        self._top_dbm = self._sweep_tops_dbm(points)
         self._top_levels = self._sweep_top_levels(points)
+        todo = [point for point in points if point.key not in done_keys]
+        done = len(points) - len(todo)
+        guard = PointGuard(self.bench.connections, self.bench.sources(), self._restore, self._event_from_guard,
+                           self.unattended.point_attempts, self._kick, self._check_stop)
         try:
             self.bench.analyzer.prepare()
             self.bench.analyzer.apply(self.setup)
             if self.leveler is not None:
                 self.bench.rf_off_all()  # known state: leveling switches the sources one at a time
-            for done, point in enumerate(points):
-                if self.leveler is not None:
-                    self._level_sweep(point, top_dbm[self._sweep_key(point)])
-                self._set_tones(point)
-                if not all(self._rf):
-                    self._set_rf(True, True)
-                    if not rf_was_on:
-                        rf_was_on = True
-                        self.recorder.event("info", "rf-on", "RF on at both sources")
-                setup, choice = self._setup_for(point)
-                self.bench.analyzer.apply(setup)
-                readings = self._read(point)
-                second = self._read_second_order(point) if self.second_order else None
-                step = self._step_check(point, setup, readings)
-                self._last_tone[self._sweep_key(point)] = ((readings.f1_dbm + readings.f2_dbm) / 2.0, point.tone_dbm)
-                row = self._row(point, readings, time.monotonic() - started_s, setup)
-                row.update(self._extra_columns(point, choice, step, second, row))
-                self.recorder.add_point(row)
+            for point in todo:
+                self._check_stop()
+                try:
+                    measured = guard.measure(point.key, lambda point=point: self._measure(point),
+                                             lambda result, point=point: self._settled(point, result))
+                except PointFailed as exc:
+                    self._fail(point, str(exc), time.monotonic() - started_s)
+                else:
+                    readings, setup = measured.readings, measured.setup
+                    self._last_tone[self._sweep_key(point)] = ((readings.f1_dbm + readings.f2_dbm) / 2.0, point.tone_dbm)
+                    history = self._last_tones.setdefault(self._sweep_key(point), [])
+                    history[:] = [*history[-1:], (readings.f1_dbm, readings.f2_dbm, point.tone_dbm)]
+                    row = self._row(point, readings, time.monotonic() - started_s, setup)
+                    row.update(self._extra_columns(point, measured.choice, measured.step, measured.second, row))
+                    store_point(self.recorder.sessions, self.recorder.run_id, row)
+                done += 1
+                self._kick()
                 if on_progress:
-                    on_progress(done + 1, len(points))
+                    on_progress(done, len(points))
         finally:
             self._rf = [False, False]
             self.bench.rf_off_all()
-            if rf_was_on:
-                self.recorder.event("info", "rf-off", "RF off at both sources")
+            if self._rf_said:
+                self.log.event("info", "rf-off", "RF off at both sources (read back)")
+
+    def _measure(self, point: PlannedPoint) -> Measured:
+        """One attempt at a point: tones set (leveled), RF on, every read it needs."""
+        if self.leveler is not None:
+            try:
+                self._level_sweep(point, self._top_dbm[self._sweep_key(point)])
+            except InstrumentError as exc:
+                # The leveler's own refusals are plain InstrumentErrors (I/O faults are subclasses,
+                # retried): a correction beyond its limit is a bench fault, not worth a retry.
+                if type(exc) is InstrumentError:
+                    raise BenchFault(str(exc)) from None
+                raise
+        self._set_tones(point)
+        if not all(self._rf):
+            self._set_rf(True, True)
+            if not self._rf_said:
+                self._rf_said = True
+                self.log.event("info", "rf-on", "RF on at both sources")
+        setup, choice = self._setup_for(point)
+        self.bench.analyzer.apply(setup)
+        readings = self._read(point)
+        second = self._read_second_order(point) if self.second_order else None
+        step = self._step_check(point, setup, readings)
+        return Measured(readings, setup, choice, step, second)
+
+    def _settled(self, point: PlannedPoint, measured: Measured) -> str | None:
+        """Why the tone levels may still have been moving during the point, or None.
+
+        Tones on the line through the sweep's last two accepted points (slope 1 through the last
+        one when there is only one), within the tolerance, are taken as settled: a level still
+        moving would be off that line. Otherwise (the first point of a sweep, the onset of
+        compression, a moving level) both tones are read again at the end of the point and must
+        agree with the first reads. So the repeat reads cost sweeps only where needed.
+        """
+        tolerance_db = self.unattended.settle_tolerance_db
+        if tolerance_db <= 0:
+            return None
+        first = (measured.readings.f1_dbm, measured.readings.f2_dbm)
+        history = self._last_tones.get(self._sweep_key(point), [])
+        if history:
+            predicted = _extrapolate(history, point.tone_dbm)
+            if all(abs(read - want) <= tolerance_db for read, want in zip(first, predicted)):
+                return None
+        analyzer = self.bench.analyzer
+        analyzer.apply(measured.setup)  # the step check may have left more attenuation
+        again = (analyzer.read_markers(point.f1_hz, [point.f1_hz]).powers_dbm[0],
+                 analyzer.read_markers(point.f2_hz, [point.f2_hz]).powers_dbm[0])
+        return settle_check(first, again, tolerance_db)
+
+    def _fail(self, point: PlannedPoint, reason: str, elapsed_s: float) -> None:
+        """Store the point as failed with its reason, then apply the on_point_failure policy."""
+        store_point(self.recorder.sessions, self.recorder.run_id, dict(
+            point_key=point.key, seq=point.seq, status="failed", fail_reason=reason, bench_clock_s=elapsed_s,
+            center_hz=point.center_hz, spacing_hz=point.spacing_hz, f1_hz=point.f1_hz, f2_hz=point.f2_hz,
+            tone_dbm=point.tone_dbm, bias_v=point.bias_v,
+        ))
+        self.failed_keys.append(point.key)
+        policy = self.unattended.on_point_failure
+        self.log.event("error", "point-failed", f"point {point.key}: {reason}; on_point_failure = {policy}",
+                       {"point_key": point.key, "policy": policy})
+        if policy == "pause":
+            self.log.event("warning", "pause", f"run paused at point {point.key}; RF off; "
+                                               "`tonebench resume` measures it again and goes on")
+            raise RunStopped("paused", f"paused at point {point.key}: {reason}")
+        if policy == "abort":
+            raise RunStopped("aborted", f"aborted at point {point.key}: {reason}")
+
+    def _restore(self) -> None:
+        self._rf = [source.wanted.rf_on for source in self.bench.sources()]
+        self.bench.restore_all()
+
+    def _event_from_guard(self, level: str, kind: str, message: str, details: dict) -> None:
+        self.log.event(level, kind, message, details)
+
+    def _kick(self) -> None:
+        if self.watchdog is not None:
+            self.watchdog.kick()
+
+    def _check_stop(self) -> None:
+        if self.watchdog is not None:
+            self.watchdog.check()
 
     @staticmethod
     def _sweep_key(point: PlannedPoint) -> tuple:
@@ -252,7 +387,7 @@ class Sequencer:
     def _say_once(self, key: str, level: str, kind: str, message: str) -> None:
         if key not in self._said:
             self._said.add(key)
-            self.recorder.event(level, kind, message)
+            self.log.event(level, kind, message)
 
     def _extra_columns(self, point: PlannedPoint, choice: str, step: StepReadings | None,
                        second: SecondOrderReadings | None, row: dict) -> dict:
@@ -302,7 +437,7 @@ class Sequencer:
                                         open_loop_dbm)
             self._levels[(index, freq_hz)] = result
             if not result.converged:
-                self.recorder.event(
+                self.log.event(
                     "warning", "leveling",
                     f"source{index} at {freq_hz:.6g} Hz: {result.error_db:+.3f} dB from its target after "
                     f"{result.readings} readings (tolerance {self.leveler.tolerance_db:g} dB)",
@@ -313,7 +448,7 @@ class Sequencer:
         first, second = (self._levels[(index, freq_hz)] for index, freq_hz, _ in tones)
         imbalance_db = first.error_db - second.error_db
         if abs(imbalance_db) > IMBALANCE_LIMIT_DB:
-            self.recorder.event(
+            self.log.event(
                 "warning", "tone-imbalance",
                 f"sweep {point.center_hz:.6g} Hz / {point.spacing_hz:.6g} Hz: tones differ by {imbalance_db:+.2f} dB "
                 f"at the DUT input plane (limit {IMBALANCE_LIMIT_DB} dB)",

@@ -11,7 +11,6 @@ with an exclusive lock on a file beside the database (released by the OS if the 
 from __future__ import annotations
 
 import hashlib
-import platform
 import tempfile
 import threading
 import uuid
@@ -28,7 +27,7 @@ from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError, TonebenchError
 from tonebench.resume import owner_is_alive, process_owner
 from tonebench.store.database import open_database, session_factory
-from tonebench.store.models import Bench, Job, Plan, Run, utc_now
+from tonebench.store.models import Job, Run, utc_now
 
 IDLE_POLL_S = 5.0  # how often an idle worker looks for new jobs
 CLAIM_ATTEMPTS = 5  # claims lost to another worker before giving up for this round
@@ -201,17 +200,27 @@ def job_status(sessions: sessionmaker, job_id: int) -> str:
         return session.scalars(select(Job.status).where(Job.id == job_id)).one()
 
 
-def requeue_orphans(sessions: sessionmaker, bench_name: str) -> list[str]:
-    """Jobs of this bench left 'running' by a worker of this host that no longer exists: queued
-    again when no run was started for them. Returns their GUIDs."""
-    requeued = []
+def adopt_orphans(sessions: sessionmaker, bench_name: str, owner: str) -> list[tuple[ClaimedJob, str]]:
+    """Jobs of this bench left 'running' by a worker of this host that no longer exists (killed,
+    crashed, power lost). One whose run had not started is queued again; one whose run had is
+    claimed by `owner`, to be resumed. Returns the claimed jobs with their run GUIDs."""
+    adopted = []
     with sessions.begin() as session:
-        for job in session.scalars(select(Job).where(Job.bench_name == bench_name, Job.status == "running")):
-            if owner_is_alive(job.claimed_by) is False and job.run_id is None:
+        jobs = session.scalars(select(Job).where(Job.bench_name == bench_name, Job.status == "running")
+                               .with_for_update(skip_locked=True)).all()
+        for job in jobs:
+            if owner_is_alive(job.claimed_by) is not False:
+                continue
+            if job.run_id is None:
                 job.status, job.claimed_by, job.claimed_at = "queued", None, None
                 job.message = "queued again: its worker died before the run started"
-                requeued.append(job.guid)
-    return requeued
+                continue
+            claimed_at = utc_now()
+            job.claimed_by, job.claimed_at = owner, claimed_at
+            job.message = "resumed: its worker died during the run"
+            adopted.append((ClaimedJob(job.id, job.guid, job.plan_name, job.plan_text, job.plan_sha256,
+                                       job.plan_path, claimed_at), job.run.guid))
+    return adopted
 
 
 # --- one worker per SQLite file -------------------------------------------------------------------
@@ -281,8 +290,10 @@ class Worker:
             if lock is not None:
                 lock.acquire()
             sessions = session_factory(engine)
-            requeue_orphans(sessions, self.bench_name)
             done = 0
+            for job, run_guid in adopt_orphans(sessions, self.bench_name, self.owner):
+                self._run_job(sessions, job, resume_guid=run_guid)
+                done += 1
             while not self.stop.is_set():
                 job = claim_next(sessions, self.bench_name, self.owner)
                 if job is None:
@@ -299,32 +310,48 @@ class Worker:
                 lock.release()
             engine.dispose()
 
-    def _run_job(self, sessions: sessionmaker, job: ClaimedJob) -> None:
-        from tonebench.runner import Terminated, execute_run
+    def _run_job(self, sessions: sessionmaker, job: ClaimedJob, resume_guid: str | None = None) -> None:
+        """Run a claimed job (or resume its run, left by a worker that died) and record the end."""
+        from tonebench.runner import Terminated, execute_run, resume_run
 
-        self.on_job("start", job, "")
+        self.on_job("resume" if resume_guid else "start", job, resume_guid or "")
+        started: list[str] = [resume_guid] if resume_guid else []
+
+        def link_run(guid: str) -> None:  # the job points at its run from the first point on
+            started[:] = [guid]
+            with sessions.begin() as session:
+                session.get(Job, job.id).run_id = session.scalars(select(Run.id).where(Run.guid == guid)).one()
 
         def check_cancelled(done: int, total: int) -> None:
             if job_status(sessions, job.id) == "cancelled":
-                raise JobCancelled(f"job {job.guid} was cancelled from the queue")
+                raise JobCancelled(f"cancelled from the queue (job {job.guid})")
 
         with tempfile.TemporaryDirectory(prefix="tonebench-job-") as folder:
-            plan_path = self._plan_file(job, Path(folder))
             report = self.report_dir / f"report-{job.guid[:8]}.html" if self.report_dir else None
             try:
-                outcome = execute_run(plan_path, self.bench_path, self.db_url, report, check_cancelled)
+                if resume_guid:
+                    outcome = resume_run(resume_guid, self.db_url, bench_path=self.bench_path, report_path=report,
+                                         on_progress=check_cancelled, on_run_started=link_run)
+                else:
+                    outcome = execute_run(self._plan_file(job, Path(folder)), self.bench_path, self.db_url, report,
+                                          check_cancelled, on_run_started=link_run)
             except (KeyboardInterrupt, SystemExit, Terminated):
-                finish_job(sessions, job.id, "failed", "the worker was stopped during the run",
-                           self._run_of(sessions, job))
+                finish_job(sessions, job.id, "failed", "the worker was stopped during the run; "
+                           "`tonebench resume` continues it", started[0] if started else None)
                 raise
             except Exception as exc:  # noqa: BLE001 - one failed job must not stop the night's queue
                 status = "cancelled" if isinstance(exc, JobCancelled) else "failed"
                 detail = " ".join(str(exc).split()) or type(exc).__name__
-                finish_job(sessions, job.id, status, detail, self._run_of(sessions, job))
+                finish_job(sessions, job.id, status, detail, started[0] if started else None)
                 self.on_job(status, job, detail)
                 return
-        finish_job(sessions, job.id, "done", f"run {outcome.guid} {outcome.status}", outcome.guid)
-        self.on_job("done", job, outcome.guid)
+        if outcome.status == "complete":
+            finish_job(sessions, job.id, "done", f"run {outcome.guid} complete", outcome.guid)
+            self.on_job("done", job, outcome.guid)
+        else:
+            detail = f"run {outcome.guid} {outcome.status}; see `tonebench show`, continue with `tonebench resume`"
+            finish_job(sessions, job.id, "failed", detail, outcome.guid)
+            self.on_job("failed", job, detail)
 
     @staticmethod
     def _plan_file(job: ClaimedJob, folder: Path) -> Path:
@@ -341,18 +368,8 @@ class Worker:
         path.write_text(job.plan_text, encoding="utf-8")
         return path
 
-    def _run_of(self, sessions: sessionmaker, job: ClaimedJob) -> str | None:
-        """The run this worker started for `job`, if it got that far."""
-        with sessions() as session:
-            return session.scalars(
-                select(Run.guid).join(Plan, Run.plan_id == Plan.id).join(Bench, Run.bench_id == Bench.id)
-                .where(Plan.sha256 == job.plan_sha256, Bench.name == self.bench_name,
-                       Run.started_at >= job.claimed_at, Run.host == platform.node())
-                .order_by(Run.started_at.desc()).limit(1)
-            ).first()
-
 
 __all__ = [
     "ClaimedJob", "JobCancelled", "JobView", "SqliteWorkerLock", "Worker", "add_job", "cancel_job",
-    "claim_next", "finish_job", "list_jobs", "owner_is_alive", "process_owner", "requeue_orphans",
+    "claim_next", "finish_job", "list_jobs", "owner_is_alive", "process_owner", "adopt_orphans",
 ]

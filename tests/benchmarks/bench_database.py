@@ -2,6 +2,7 @@
 
     python tests/benchmarks/bench_database.py                      # SQLite and a temporary PostgreSQL
     python tests/benchmarks/bench_database.py --devices 500 --backend sqlite     # a quick look
+    python tests/benchmarks/bench_database.py --skip-reanalysis   # insert, verdicts and queries only
     python tests/benchmarks/bench_database.py --pg-url postgresql+psycopg://user@host/empty_db
 
 With the defaults: 10,000 devices, one run each of 4 centers x 2 spacings x 25 tone steps, i.e.
@@ -121,7 +122,7 @@ def database_size(engine: sa.Engine) -> str:
     return f"{size / 2**20:.0f} MiB"
 
 
-def bench(url: str, n_devices: int, label: str) -> None:
+def bench(url: str, n_devices: int, label: str, reanalyze: bool = True) -> None:
     print(f"{label}: {n_devices} devices", flush=True)
     engine = open_database(url)
     started_s = time.perf_counter()
@@ -142,6 +143,9 @@ def bench(url: str, n_devices: int, label: str) -> None:
     print(f"  verdicts over all results: {time.perf_counter() - started_s:.1f} s ({dict(counts)})", flush=True)
 
     time_queries(engine)
+    if not reanalyze:
+        engine.dispose()
+        return
 
     with engine.connect() as connection:
         guids = connection.scalars(sa.select(Run.guid).order_by(Run.id)).all()
@@ -163,16 +167,18 @@ def main() -> None:
     parser.add_argument("--devices", type=int, default=10_000)
     parser.add_argument("--backend", choices=("sqlite", "postgresql", "both"), default="both")
     parser.add_argument("--pg-url", help="an empty PostgreSQL database to use instead of a temporary server")
+    parser.add_argument("--skip-reanalysis", action="store_true", help="stop after the queries (the slowest part)")
     args = parser.parse_args()
+    reanalyze = not args.skip_reanalysis
     if args.backend in ("sqlite", "both"):
         with tempfile.TemporaryDirectory() as folder:
-            bench(f"sqlite:///{folder}/bench.db", args.devices, "SQLite")
+            bench(f"sqlite:///{folder}/bench.db", args.devices, "SQLite", reanalyze)
     if args.backend in ("postgresql", "both"):
         if args.pg_url:
-            bench(args.pg_url, args.devices, "PostgreSQL")
+            bench(args.pg_url, args.devices, "PostgreSQL", reanalyze)
         else:
             with temporary_postgres() as url:
-                bench(url, args.devices, "PostgreSQL (temporary local server)")
+                bench(url, args.devices, "PostgreSQL (temporary local server)", reanalyze)
 
 
 if __name__ == "__main__":

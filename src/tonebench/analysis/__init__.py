@@ -7,14 +7,31 @@ the attenuation-step judgement; uncertainty: the intercept bound; second_order: 
 assess: one sweep from readings to flags, fits and bound.
 """
 
-from tonebench.analysis.assess import AnalysisSettings, SweepAssessment, SweepData, assess_sweep
-from tonebench.analysis.attenuation import AttenChoice, analyzer_im3_dbm, optimum_atten_db
+from tonebench.analysis.assess import (
+    AnalysisSettings,
+    SweepAssessment,
+    SweepData,
+    assess_sweep,
+)
+from tonebench.analysis.attenuation import (
+    AttenChoice,
+    analyzer_im3_dbm,
+    optimum_atten_db,
+)
 from tonebench.analysis.compression import p1db
 from tonebench.analysis.fit import SweepResult, fit_sweep, noise_corrected_dbm
 from tonebench.analysis.flags import Flag, judge_step
 from tonebench.analysis.intercepts import PointIntercepts, point_intercepts
-from tonebench.analysis.phasor import intercept_error_db, phasor_bounds_db, reading_error_bounds_db
-from tonebench.analysis.second_order import SecondOrderResult, fit_second_order, point_iip2_dbm
+from tonebench.analysis.phasor import (
+    intercept_error_db,
+    phasor_bounds_db,
+    reading_error_bounds_db,
+)
+from tonebench.analysis.second_order import (
+    SecondOrderResult,
+    fit_second_order,
+    point_iip2_dbm,
+)
 
 __all__ = [
     "AnalysisSettings",

@@ -12,7 +12,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tonebench.analysis.fit import IM3_OVER_NOISE_MIN_DB, MIN_VALID_POINTS, noise_corrected_dbm
+from tonebench.analysis.fit import (
+    IM3_OVER_NOISE_MIN_DB,
+    MIN_VALID_POINTS,
+    noise_corrected_dbm,
+)
 from tonebench.analysis.uncertainty import scatter_half_width_db
 
 PRODUCTS = ("diff", "sum")

@@ -57,11 +57,9 @@ def _warn(message: str) -> None:
     err.print(f"warning: {message}", markup=False, highlight=False)
 
 
-def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None,
-                       cal_name: str | None = None):
-    from tonebench.runner import execute_run
-
-    # Started at the first measured point, so a refused plan prints its error line and nothing else.
+def _with_progress(start):
+    """start(advance) with a progress bar that appears at the first measured point, so a refused
+    plan prints its error line and nothing else."""
     progress = _progress()
     task = progress.add_task("run", total=None, start=False)
 
@@ -72,9 +70,31 @@ def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None
         progress.update(task, completed=done, total=total)
 
     try:
-        return execute_run(plan, bench, db_url, report, advance, on_sim_started, cal_name=cal_name, on_warning=_warn)
+        return start(advance)
     finally:
         progress.stop()
+
+
+def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None,
+                       cal_name: str | None = None):
+    from tonebench.runner import execute_run
+
+    return _with_progress(lambda advance: execute_run(plan, bench, db_url, report, advance, on_sim_started,
+                                                      cal_name=cal_name, on_warning=_warn))
+
+
+def _say_outcome(outcome) -> None:
+    """The run's end in a few lines; a paused run exits 3, an aborted one 1."""
+    out.print(f"run {outcome.guid}: {outcome.status}")
+    out.print(f"database: {outcome.db_url}")
+    if outcome.calibration:
+        out.print(f"calibration: {outcome.calibration}", highlight=False)
+    if outcome.status != "complete":
+        out.print(f"see `tonebench show {outcome.guid[:8]}`; continue with `tonebench resume {outcome.guid[:8]}`",
+                  highlight=False)
+        raise typer.Exit(3 if outcome.status == "paused" else 1)
+    out.print(f"report:   {outcome.report_path}")
+    _print_results(outcome.results)
 
 
 def _print_results(results) -> None:
@@ -96,12 +116,25 @@ def run(
     with one_line_errors():
         db_url = db or default_db()
         outcome = _run_with_progress(plan, bench, db_url, report, cal_name=cal)
-        out.print(f"run {outcome.guid}: {outcome.status}")
-        out.print(f"database: {outcome.db_url}")
-        if outcome.calibration:
-            out.print(f"calibration: {outcome.calibration}", highlight=False)
-        out.print(f"report:   {outcome.report_path}")
-        _print_results(outcome.results)
+        _say_outcome(outcome)
+
+
+@app.command()
+def resume(
+    run_id: Annotated[str, typer.Argument(metavar="RUN", help="Run GUID or a unique prefix of it.")],
+    bench: Annotated[Path | None, typer.Option("--bench", "-b", help="Bench file (default: the one the run started with).")] = None,
+    plan: Annotated[Path | None, typer.Option("--plan", help="Plan file to check against the stored plan (it must be identical).")] = None,
+    db: DbOption = None,
+    report: Annotated[Path | None, typer.Option(help="Write the HTML report here (default: report-<run>.html beside the database).")] = None,
+) -> None:
+    """Continue an interrupted run: points already stored are kept, failed ones measured again."""
+    from tonebench.runner import resume_run
+
+    with one_line_errors():
+        db_url = db or default_db()
+        outcome = _with_progress(lambda advance: resume_run(run_id, db_url, bench_path=bench, plan_path=plan,
+                                                            report_path=report, on_progress=advance))
+        _say_outcome(outcome)
 
 
 @app.command()

@@ -4,7 +4,7 @@ bench) the simulation scenario."""
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator
 
@@ -90,12 +90,29 @@ class LevelingSettings(StrictModel):
     max_correction_db: float = Field(default=3.0, gt=0.0, le=10.0, description="largest correction on top of the calibration")
 
 
+class UnattendedSettings(StrictModel):
+    """What a run does about instrument faults when nobody watches it."""
+
+    # After a point failed all its attempts (it is stored as failed, with the reason): go on with
+    # the next point, pause the run (RF off; `tonebench resume` measures it again), or abort.
+    on_point_failure: Literal["continue", "pause", "abort"] = "continue"
+    point_attempts: int = Field(default=4, ge=1, le=20, description="measurements of one point at most")
+    retries: int = Field(default=2, ge=0, le=20, description="same-connection retries after a timeout")
+    reconnects: int = Field(default=3, ge=0, le=20, description="close-and-reopen attempts after those")
+    backoff_s: float = Field(default=0.2, ge=0.0, le=60.0, description="first wait, doubled each attempt")
+    watchdog_s: float = Field(default=120.0, ge=0.5, le=86400.0, description="RF off after this long without progress")
+    # Two reads of each tone, at the start and the end of a point, must agree within this (dB),
+    # else the point is measured again (a source still settling); 0 skips the repeat reads.
+    settle_tolerance_db: float = Field(default=0.1, ge=0.0, le=10.0)
+
+
 class BenchFile(StrictModel):
     bench: BenchInfo
     instruments: dict[str, InstrumentEntry]
     offsets: OffsetTables | None = None
     limits: BenchLimits
     leveling: LevelingSettings = LevelingSettings()
+    unattended: UnattendedSettings = UnattendedSettings()
     simulation: dict[str, Any] | None = None
 
     @field_validator("instruments")

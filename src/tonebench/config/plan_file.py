@@ -6,11 +6,13 @@ A plan says what to measure; the bench file says with what. Both are TOML.
 from __future__ import annotations
 
 import hashlib
+import tomllib
 from pathlib import Path
 
 from pydantic import BaseModel, Field, model_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
+from tonebench.errors import InputError
 
 # Tone power at the DUT input plane that any plan may ask for; the bench file narrows it further.
 TONE_MIN_DBM = -150.0
@@ -124,5 +126,16 @@ class LoadedPlan(BaseModel):
 def load_plan(path: Path) -> LoadedPlan:
     text, data = read_toml(path, "plan")
     settings = validate(PlanFile, data, f"plan {path}")
+    digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
+    return LoadedPlan(path=path, text=text, sha256=digest, settings=settings)
+
+
+def plan_from_text(text: str, path: Path, origin: str) -> LoadedPlan:
+    """A plan from its stored text (a run resumed from the database); `origin` names it in errors."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{origin}: not valid TOML ({exc})") from None
+    settings = validate(PlanFile, data, origin)
     digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
     return LoadedPlan(path=path, text=text, sha256=digest, settings=settings)

@@ -192,6 +192,8 @@ class ScpiInstrument:
                     resource.timeout = previous_ms
                 except (pyvisa.errors.Error, OSError):
                     pass  # the connection is gone; a reopened one gets the dialect's timeout
+        if self.supervision is not None:
+            self.supervision.activity()
         try:
             return parse_reply(op.reply, reply)
         except ValueError:

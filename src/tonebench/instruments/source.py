@@ -94,11 +94,12 @@ class SignalSource(RoleDriver):
             rf_on=self.rf_is_on(),
         )
 
-    def state_lost(self, power_tolerance_db: float = 0.01) -> str | None:
+    def state_lost(self, power_tolerance_db: float = 0.1) -> str | None:
         """Compare the read-back state with what was last set; describe any difference, else None.
 
-        A source that was reset or power-cycled reports its defaults (RF off, another power).
-        Frequencies may be rounded by the instrument: 1 Hz is allowed.
+        A source that was reset or power-cycled reports its defaults (RF off, another power and
+        frequency). The tolerances only absorb an instrument's own resolution: 0.1 dB, and 1 Hz
+        or 0.1 ppm of the frequency.
         """
         wanted, actual = self.wanted, self.read_state()
         differences = []
@@ -106,7 +107,7 @@ class SignalSource(RoleDriver):
             differences.append(f"RF {'on' if actual.rf_on else 'off'}, expected {'on' if wanted.rf_on else 'off'}")
         if None not in (wanted.power_dbm, actual.power_dbm) and abs(actual.power_dbm - wanted.power_dbm) > power_tolerance_db:
             differences.append(f"power {actual.power_dbm:.2f} dBm, expected {wanted.power_dbm:.2f} dBm")
-        if None not in (wanted.freq_hz, actual.freq_hz) and abs(actual.freq_hz - wanted.freq_hz) > 1.0:
+        if None not in (wanted.freq_hz, actual.freq_hz) and abs(actual.freq_hz - wanted.freq_hz) > max(1.0, 1e-7 * wanted.freq_hz):
             differences.append(f"frequency {actual.freq_hz:.6g} Hz, expected {wanted.freq_hz:.6g} Hz")
         return f"{self.label}: " + ", ".join(differences) if differences else None
 

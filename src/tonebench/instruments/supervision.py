@@ -62,6 +62,10 @@ class RecoveryStopped(InstrumentError):
     """Recovery was not attempted or was cut short because a stop was requested."""
 
 
+class GaveUp(InstrumentError):
+    """Every retry and reconnect the policy allows failed."""
+
+
 class Supervision:
     """Shared by the instruments of one bench: the retry policy, the event callback, a stop flag."""
 
@@ -70,6 +74,12 @@ class Supervision:
         self.on_event = on_event
         # Set by the watchdog or a shutdown: no further retries, backoff waits end at once.
         self.stop = threading.Event()
+        # Called after every exchange an instrument answered: progress, for the watchdog.
+        self.on_activity: Callable[[], None] | None = None
+
+    def activity(self) -> None:
+        if self.on_activity is not None:
+            self.on_activity()
 
     def emit(self, instrument: str, kind: str, level: str, message: str, details: dict | None = None) -> None:
         if self.on_event is None:
@@ -103,6 +113,9 @@ class Supervision:
                               {"discarded": discarded or []})
                     if discarded is not None:
                         break
+                    # Its identify query may still be answered late: only a fresh connection is
+                    # certain to be in step now.
+                    timed_out = False
                     continue
                 if reconnects < policy.reconnects:
                     reconnects += 1
@@ -123,7 +136,7 @@ class Supervision:
                     break
                 message = f"{last}; gave up after {retries} retries and {reconnects} reconnects"
                 self.emit(label, "gave-up", "error", message)
-                raise InstrumentError(message) from None
+                raise GaveUp(message) from None
 
     def _backoff(self, attempt: int, label: str) -> None:
         # A wait on an Event, not a fixed sleep: a stop request (the watchdog, SIGTERM cleanup)
