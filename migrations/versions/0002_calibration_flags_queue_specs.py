@@ -139,6 +139,7 @@ def upgrade() -> None:
 
     with op.batch_alter_table('devices', schema=None) as batch_op:
         batch_op.create_index(batch_op.f('ix_devices_lot'), ['lot'], unique=False)
+        batch_op.create_index(batch_op.f('ix_devices_serial'), ['serial'], unique=False)
         batch_op.create_index(batch_op.f('ix_devices_wafer'), ['wafer'], unique=False)
 
     with op.batch_alter_table('points', schema=None) as batch_op:
@@ -213,6 +214,7 @@ def downgrade() -> None:
     with op.batch_alter_table('devices', schema=None) as batch_op:
         batch_op.drop_index(batch_op.f('ix_devices_wafer'))
         batch_op.drop_index(batch_op.f('ix_devices_lot'))
+        batch_op.drop_index(batch_op.f('ix_devices_serial'))
 
     with op.batch_alter_table('result_flags', schema=None) as batch_op:
         batch_op.drop_index('ix_result_flags_result_flag')

@@ -97,7 +97,7 @@ class Device(Base):
 
     id: Mapped[int] = mapped_column(primary_key=True)
     part_number: Mapped[str] = mapped_column(sa.String(200))
-    serial: Mapped[str] = mapped_column(sa.String(200))
+    serial: Mapped[str] = mapped_column(sa.String(200), index=True)  # queries by serial alone
     lot: Mapped[str | None] = mapped_column(sa.String(200), index=True)
     wafer: Mapped[str | None] = mapped_column(sa.String(200), index=True)
     position: Mapped[str | None] = mapped_column(sa.String(200))
