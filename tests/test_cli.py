@@ -169,3 +169,29 @@ def test_sim_serve_runs_a_plan_over_tcp(workdir):
     finally:
         server.terminate()
         server.wait(timeout=10)
+
+
+def test_a_run_stores_spec_limit_verdicts(workdir):
+    """analyze judges every stored result against the part's spec limits (pass here, fail there)."""
+    from sqlalchemy import create_engine, select
+    from sqlalchemy.orm import Session
+
+    from tonebench.store.models import Result
+
+    db = f"sqlite:///{workdir}/verdicts.db"
+    (workdir / "plan.toml").write_text(SHORT_PLAN)
+    # The simulated DUT's IIP3 is about -2 dBm at 2.45 GHz: a -10 dBm minimum passes, +5 fails.
+    added = invoke("limit", "add", "KLN-2417A", "iip3_dbm", "--min", "-10", "--freq-min-hz", "2.4e9",
+                   "--freq-max-hz", "2.5e9", "--db", db)
+    assert added.exit_code == 0, added.output
+    assert invoke("run", "plan.toml", "--bench", SAMPLE_RUNS / "sim_bench.toml", "--db", db).exit_code == 0
+    engine = create_engine(db)
+    with Session(engine) as session:
+        assert session.scalars(select(Result.verdict)).all() == ["pass"]
+    assert invoke("limit", "add", "KLN-2417A", "iip3_dbm", "--min", "5", "--freq-min-hz", "2.4e9",
+                  "--freq-max-hz", "2.5e9", "--db", db).exit_code == 0
+    guid = invoke("runs", "--db", db).output.split("│")[1].strip()[:8]
+    assert invoke("analyze", guid, "--db", db).exit_code == 0
+    with Session(engine) as session:
+        assert session.scalars(select(Result.verdict)).all() == ["fail"]
+    engine.dispose()

@@ -167,6 +167,7 @@ def test_reboot_loses_the_state_and_every_connection(source_server):
     try:
         client.send("SOUR:POW -12;:OUTP ON")
         assert client.query("*OPC?") == "1"
+        assert other.query("*OPC?") == "1"  # both connections served before the reboot
         assert bench.source(1).effective.rf_on
         client.send("BOGUS")  # leaves an entry in the error queue
         client.send("SOUR:FREQ 2e9")

@@ -103,3 +103,35 @@ def test_source_power_commands_stay_within_the_plan(tmp_path):
     # Demo plan: -40 .. -8 dBm per tone; the sample bench's input losses are 6.38 to 7.04 dB.
     assert min(powers_dbm) >= -40.0 + 6.38 - 0.01
     assert max(powers_dbm) <= -8.0 + 7.04 + 0.01
+
+
+def test_exception_deep_in_a_point_still_ends_with_rf_off(tmp_path):
+    """Another analyzer answers at the analyzer's address mid-run (IdentityChanged, never retried):
+    the run fails with that reason, and both sources end with RF off in the simulator."""
+    from tonebench.instruments.scpi import IdentityChanged
+    from tonebench.sim.instruments import SimAnalyzer
+    from tonebench.sim.server import InstrumentServer
+
+    captured, servers = {}, []
+
+    def swap_analyzer_after_four(done: int, total: int) -> None:
+        if done != 4:
+            return
+        sim = captured["sim"]
+        port = int(sim.resources["analyzer"].split("::")[2])
+        sim.switch_off("analyzer")
+        impostor = SimAnalyzer(sim.bench)
+        impostor.idn = "tonebench,simulated spectrum analyzer,SIM-SA-0999,0.1"
+        servers.append(InstrumentServer(impostor, sim.bench.lock, port=port))
+        servers[-1].start()
+
+    try:
+        with pytest.raises(IdentityChanged, match="SIM-SA-0999"):
+            execute_run(PLAN, BENCH, f"sqlite:///{tmp_path / 't.db'}", None, swap_analyzer_after_four,
+                        lambda sim: captured.update(sim=sim))
+    finally:
+        for server in servers:
+            server.stop()
+    assert rf_states(captured["sim"]) == [False, False]
+    run_status, end_reason, keys = stored(tmp_path / "t.db")
+    assert run_status == "failed" and "IdentityChanged" in end_reason and len(keys) == 4

@@ -17,13 +17,27 @@ from tonebench.analysis.assess import (
     SweepData,
     assess_sweep,
 )
-from tonebench.calibration.referral import OUTPUT_COLUMNS, check_coverage, point_offsets, referred_values
+from tonebench.calibration.referral import (
+    OUTPUT_COLUMNS,
+    check_coverage,
+    point_offsets,
+    referred_values,
+)
 from tonebench.calibration.sets import load_set, load_set_by_id
+from tonebench.catalog.limits import apply_verdicts
 from tonebench.errors import InputError
 from tonebench.offsets import LossTable
 from tonebench.report import SweepPlotData, sweep_title, write_report
 from tonebench.report import result_row as report_result_row
-from tonebench.store.models import CalibrationSet, Point, PointFlag, Result, ResultFlag, Run, utc_now
+from tonebench.store.models import (
+    CalibrationSet,
+    Point,
+    PointFlag,
+    Result,
+    ResultFlag,
+    Run,
+    utc_now,
+)
 
 POINT_ARRAYS = (
     "tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
@@ -238,6 +252,8 @@ def analyze_run(sessions: sessionmaker, run_guid: str, cal_name: str | None = No
             result.flags = [_flag_row(ResultFlag, f) for f in a.result_flags]
             results.append(result)
         session.add_all(results)
+        # Spec-limit verdicts belong to the results just stored (design: stored per result).
+        apply_verdicts(session, run.id)
     return results
 
 

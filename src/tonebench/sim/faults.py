@@ -11,8 +11,9 @@ power command a source receives (on = "SOUR:POW", nth = k). Kinds:
 - error: an SCPI error (`code`) is pushed to the error queue; a command is not executed, a query
   is answered as usual.
 - reboot: a power cycle: settings back to defaults, RF off, error queue cleared, the power-on bit
-  of the event status register set, and every connection to it reset (kept when
-  `keep_connection`, like a front-panel preset). The triggering line is lost.
+  of the event status register set, and every connection it is serving reset (kept when
+  `keep_connection`, like a front-panel preset). The triggering line is lost. A connection not
+  yet accepted counts as one made after the reboot.
 - unsettled: after the triggering line (a power or frequency change on a source), the source's
   level is off by `level_error_db`, decaying with time constant `duration_s` on the bench's
   virtual clock; its *OPC? still says done. Needs a device that supports it (SimSource).

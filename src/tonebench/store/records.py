@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import platform
 import uuid
 
@@ -82,6 +83,10 @@ class RunRecorder:
                 started_at=utc_now(),
                 simulated=simulated,
                 host=platform.node(),
+                # Who drives it, from its first commit on: a process killed before its first
+                # point still leaves a run that can be told dead (tonebench.resume).
+                owner=f"{platform.node()}:{os.getpid()}",
+                heartbeat_at=utc_now(),
                 software_version=__version__,
                 metadata_json=metadata,
             )
