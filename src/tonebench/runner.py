@@ -207,22 +207,8 @@ def execute_run(
         if chosen.stale_message:
             warn(chosen.stale_message)
 
-        sim = None
-        if bench.settings.simulated:
-            from tonebench.sim.launch import start_sim_bench
-
-            sim = stack.enter_context(start_sim_bench(bench.scenario))
-            resources = dict(sim.resources)
-            if on_sim_started:
-                on_sim_started(sim)
-        else:
-            resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
-
         # Everything that can refuse the plan happens before the database is written and RF goes on.
-        relay = EventRelay()
-        supervision = supervision_for(bench, relay)
-        open_instruments = open_bench(bench.settings, resources, supervision)
-        stack.callback(open_instruments.close)
+        open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started)
         check_plan(
             points,
             offsets,
@@ -335,19 +321,7 @@ def resume_run(
         remaining = [point for point in points if point.key not in done_keys]
         plan_origin = f"run {guid} plan"
 
-        if bench.settings.simulated:
-            from tonebench.sim.launch import start_sim_bench
-
-            sim = stack.enter_context(start_sim_bench(bench.scenario))
-            resources = dict(sim.resources)
-            if on_sim_started:
-                on_sim_started(sim)
-        else:
-            resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
-        relay = EventRelay()
-        supervision = supervision_for(bench, relay)
-        open_instruments = open_bench(bench.settings, resources, supervision)
-        stack.callback(open_instruments.close)
+        open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started)
         check_same_instruments(guid, stored_ids, open_instruments)
         check_plan(remaining, offsets, bench.settings.limits, open_instruments.source_ranges,
                    open_instruments.analyzer.limits.get("damage_dbm"), plan_origin)
@@ -409,6 +383,25 @@ class EventRelay:
         for event in self._early:
             log.instrument_event(event)
         self._early.clear()
+
+
+def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started) -> tuple[OpenBench, EventRelay, Supervision]:
+    """Start the simulator for a simulated bench, then open every instrument under supervision;
+    both are closed when `stack` unwinds."""
+    if bench.settings.simulated:
+        from tonebench.sim.launch import start_sim_bench
+
+        sim = stack.enter_context(start_sim_bench(bench.scenario))
+        resources = dict(sim.resources)
+        if on_sim_started:
+            on_sim_started(sim)
+    else:
+        resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
+    relay = EventRelay()
+    supervision = supervision_for(bench, relay)
+    open_instruments = open_bench(bench.settings, resources, supervision)
+    stack.callback(open_instruments.close)
+    return open_instruments, relay, supervision
 
 
 def supervision_for(bench: LoadedBench, relay: EventRelay) -> Supervision:
