@@ -8,41 +8,20 @@ from pathlib import Path
 
 import pytest
 import pyvisa
+from pyvisa_recorder import Recorder
 
 from tonebench.errors import InstrumentError
-from tonebench.instruments import LimitError, ScpiInstrument, load_dialect, open_resource
+from tonebench.instruments import (
+    LimitError,
+    ScpiInstrument,
+    load_dialect,
+    open_resource,
+)
 from tonebench.instruments.power_meter import PowerMeter
 from tonebench.sim.launch import start_sim_bench
 from tonebench.sim.scenario import Scenario
 
 DIALOGUES = Path(__file__).parent / "dialogues"
-
-
-class Recorder:
-    """Passes everything to a real pyvisa resource and keeps the strings written."""
-
-    def __init__(self, resource):
-        self._resource = resource
-        self.sent: list[str] = []
-
-    def write(self, message):
-        self.sent.append(message)
-        return self._resource.write(message)
-
-    def query(self, message):
-        self.sent.append(message)
-        return self._resource.query(message)
-
-    @property
-    def timeout(self):
-        return self._resource.timeout
-
-    @timeout.setter
-    def timeout(self, value):
-        self._resource.timeout = value
-
-    def close(self):
-        self._resource.close()
 
 
 @pytest.fixture

@@ -10,6 +10,7 @@ from pathlib import Path
 
 import pytest
 import pyvisa
+from pyvisa_recorder import Recorder
 
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments import (
@@ -27,33 +28,6 @@ DIALOGUES = Path(__file__).parent / "dialogues"
 SETUP = AnalyzerSetup(span_hz=100e3, rbw_hz=1e3, vbw_hz=1e3, atten_db=10.0, ref_level_dbm=-10.0)
 CENTER_HZ = 1.0005e9
 MARKERS_HZ = (1.000e9, 1.001e9)
-
-
-class Recorder:
-    """Passes everything to a real pyvisa resource and keeps the strings written."""
-
-    def __init__(self, resource):
-        self._resource = resource
-        self.sent: list[str] = []
-
-    def write(self, message):
-        self.sent.append(message)
-        return self._resource.write(message)
-
-    def query(self, message):
-        self.sent.append(message)
-        return self._resource.query(message)
-
-    @property
-    def timeout(self):
-        return self._resource.timeout
-
-    @timeout.setter
-    def timeout(self, value):
-        self._resource.timeout = value
-
-    def close(self):
-        self._resource.close()
 
 
 @pytest.fixture
