@@ -88,3 +88,21 @@ def postgres_url(postgres_server):
     with admin.connect() as connection:
         connection.exec_driver_sql(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
     admin.dispose()
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def db_url(request, tmp_path) -> str:
+    """An empty database on each backend in turn: an SQLite file, then a real PostgreSQL database."""
+    if request.param == "sqlite":
+        return f"sqlite:///{tmp_path / 'tonebench.db'}"
+    return request.getfixturevalue("postgres_url")
+
+
+@pytest.fixture
+def engine(db_url):
+    """The database of `db_url`, migrated to this code's schema."""
+    from tonebench.store.database import open_database
+
+    engine = open_database(db_url)
+    yield engine
+    engine.dispose()

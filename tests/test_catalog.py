@@ -30,20 +30,6 @@ SMALL = Layout(centers_hz=(2.40e9, 2.45e9, 2.50e9), spacings_hz=(1.0e6, 10.0e6),
                tones_dbm=(-30.0, -20.0, -10.0))
 
 
-@pytest.fixture(params=["sqlite", "postgresql"])
-def db_url(request, tmp_path) -> str:
-    if request.param == "sqlite":
-        return f"sqlite:///{tmp_path / 'catalog.db'}"
-    return request.getfixturevalue("postgres_url")
-
-
-@pytest.fixture
-def engine(db_url):
-    engine = open_database(db_url)
-    yield engine
-    engine.dispose()
-
-
 def invoke(*args):
     return runner.invoke(app, [str(a) for a in args])
 

@@ -14,7 +14,6 @@ import sys
 import textwrap
 from pathlib import Path
 
-import pytest
 import sqlalchemy as sa
 
 import tonebench
@@ -52,13 +51,6 @@ WRITER = textwrap.dedent("""
         recorder.finish("complete", f"all {n_points} points measured")
     print("done", flush=True)
 """)
-
-
-@pytest.fixture(params=["postgresql", "sqlite"])
-def db_url(request, tmp_path) -> str:
-    if request.param == "sqlite":
-        return f"sqlite:///{tmp_path / 'shared.db'}"
-    return request.getfixturevalue("postgres_url")
 
 
 def test_two_processes_write_runs_and_points_at_once(db_url):

@@ -83,7 +83,7 @@ def test_killed_run_resumes_with_every_point_once(tmp_path, points_before_kill):
     assert all(p.status == "measured" for p in points.values())
     kinds = [kind for kind, _ in events]
     assert "owner-gone" in kinds and "resume" in kinds
-    assert any(f"resumed by " in message and f"{len(set(keys_at_kill))} already stored" in message
+    assert any("resumed by " in message and f"{len(set(keys_at_kill))} already stored" in message
                for kind, message in events if kind == "resume")
 
 

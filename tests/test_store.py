@@ -39,20 +39,6 @@ from tonebench.store.database import database_revision, default_db_url
 SRC_DIR = Path(tonebench.__file__).resolve().parent.parent
 
 
-@pytest.fixture(params=["sqlite", "postgresql"])
-def db_url(request, tmp_path) -> str:
-    if request.param == "sqlite":
-        return f"sqlite:///{tmp_path / 'store.db'}"
-    return request.getfixturevalue("postgres_url")
-
-
-@pytest.fixture
-def engine(db_url):
-    engine = open_database(db_url)
-    yield engine
-    engine.dispose()
-
-
 def make_run(session) -> Run:
     bench = Bench(name=f"bench-{uuid.uuid4().hex[:8]}")
     plan = Plan(name="demo plan", text="[sweep]\n", sha256=uuid.uuid4().hex * 2)

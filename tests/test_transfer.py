@@ -36,13 +36,6 @@ LAYOUT = Layout(centers_hz=(2.40e9, 2.45e9), spacings_hz=(1.0e6,), biases_v=(Non
 T0 = dt.datetime(2026, 2, 3, 10, 0, tzinfo=dt.timezone.utc)
 
 
-@pytest.fixture(params=["sqlite", "postgresql"])
-def target_url(request, tmp_path) -> str:
-    if request.param == "sqlite":
-        return f"sqlite:///{tmp_path / 'target.db'}"
-    return request.getfixturevalue("postgres_url")
-
-
 def source_database(url: str, n_devices: int = 5) -> sa.Engine:
     """Synthetic runs plus what the generator leaves out: instruments, offsets, events, a
     calibration set used by runs and results, and values that test the encoding."""
@@ -88,13 +81,13 @@ def counts(engine: sa.Engine) -> dict[str, int]:
                 for table in Base.metadata.sorted_tables if table.name not in ("jobs", "spec_limits")}
 
 
-def test_export_import_export_is_identical_and_import_is_idempotent(tmp_path, target_url):
+def test_export_import_export_is_identical_and_import_is_idempotent(tmp_path, db_url):
     source = source_database(f"sqlite:///{tmp_path / 'bench.db'}")
     with session_factory(source)() as session:
         first = export_runs(session, tmp_path / "first.jsonl.gz")
     assert first.runs == 5 and first.points == 5 * LAYOUT.points_per_run
 
-    target = open_database(target_url)
+    target = open_database(db_url)
     added = import_runs(session_factory(target), tmp_path / "first.jsonl.gz")
     assert (added.runs_added, added.runs_present, added.points_added) == (5, 0, first.points)
     assert counts(target) == counts(source)  # every row arrived, none twice
