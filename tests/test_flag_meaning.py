@@ -8,13 +8,20 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
+import numpy as np
 import pytest
+from simsweep import measure_sweep
 from sqlalchemy import create_engine, func, select
 from sqlalchemy.orm import Session
 from typer.testing import CliRunner
 
+from tonebench.analysis import AnalysisSettings, assess_sweep
 from tonebench.cli import app
+from tonebench.sim import physics
+from tonebench.sim.bench import SimBench
+from tonebench.sim.scenario import Scenario
 from tonebench.store.models import PointFlag, Result, ResultFlag
+from tonebench.units import dbm_to_vpeak
 
 runner = CliRunner(env={"COLUMNS": "220"})
 
@@ -59,3 +66,54 @@ def test_point_flags_do_not_make_a_clean_result_flagged(demo, tmp_path):
     assert shown.exit_code == 0 and "flags: none" in shown.output
     assert "flagged points: analyzer-limited (noise)" in shown.output  # the reasons stay visible
     assert db_path.read_bytes() == before  # the queries wrote nothing
+
+
+# --- the valid region keeps out points biased by higher-order terms -----------------------------
+
+CENTER_HZ, SPACING_HZ = 2.45e9, 1e6
+
+
+def test_fifth_order_im3_matches_the_two_tone_power_series():
+    """Textbook two-tone expansion of y = a1 x + a3 x^3 + a5 x^5, tones A at f1, f2 (from memory,
+    checked here with numpy's FFT): IM3 (3/4) a3 A^3 + (25/8) a5 A^5, 3f1-2f2 (5/8) a5 A^5."""
+    n, k1 = 512, 16
+    t = np.arange(n)
+    a1, a3, a5, amp = 3.0, -0.8, -0.3, 0.4
+    x = amp * np.cos(2 * np.pi * k1 * t / n) + amp * np.cos(2 * np.pi * (k1 + 1) * t / n)
+    spectrum = np.fft.rfft(a1 * x + a3 * x**3 + a5 * x**5) * 2.0 / n
+    im3 = spectrum[k1 - 1].real  # 2 f1 - f2
+    assert im3 == pytest.approx(0.75 * a3 * amp**3 + 25.0 / 8.0 * a5 * amp**5, rel=1e-9)
+    assert spectrum[k1 - 2].real == pytest.approx(5.0 / 8.0 * a5 * amp**5, rel=1e-9)  # 3 f1 - 2 f2
+
+    # The simulated DUT's fifth-order term gives the same IM3, and meets its IIP5 as defined.
+    model = physics.dut_nonlinearity(15.0, -2.0, None, None, iip5_dbm=-4.0)
+    tone_v = float(dbm_to_vpeak(-30.0))
+    products = physics.two_tone_products_v(model, tone_v, tone_v)
+    cubic_only = physics.dut_nonlinearity(15.0, -2.0)
+    expected = 0.75 * cubic_only.a3 * tone_v**3 + 25.0 / 8.0 * model.a5 * tone_v**5
+    assert model.a5 < 0 and abs(products["im3_low"]) == pytest.approx(abs(expected), rel=1e-6)
+    a_iip5 = float(dbm_to_vpeak(-4.0))
+    assert 5.0 / 8.0 * abs(model.a5) * a_iip5**5 == pytest.approx(model.a1 * a_iip5, rel=1e-9)
+
+
+def fifth_order_scenario(seed: int) -> Scenario:
+    """The demo's DUT with a fifth-order term that biases the top points of a sweep low."""
+    return Scenario(seed=seed, dut={"gain_db": 15.0, "iip3_dbm": -2.0, "p1db_dbm": -12.0, "iip5_dbm": -4.0},
+                    analyzer={"level_error_db": 0.4})
+
+
+def test_sweep_from_the_noise_to_compression_reads_iip3_within_0p2_db():
+    for seed in range(4):
+        sc = fifth_order_scenario(seed)
+        # From the noise floor (the lowest IM3 is under it) to past 1 dB compression, 1 dB steps.
+        data = measure_sweep(sc, CENTER_HZ, SPACING_HZ, np.arange(-44.0, -15.0, 1.0))
+        a = assess_sweep(data, AnalysisSettings(mixer_toi_dbm=15.0, max_mixer_dbm=-10.0))
+        truth = SimBench(sc).truth.true_iip3_dbm(CENTER_HZ)
+        assert a.fit.p1db_in_dbm is not None and a.fit.p1db_in_dbm < -15.0  # compression reached
+        assert abs(a.fit.iip3_dbm - truth) <= 0.2, (seed, a.fit.iip3_dbm - truth)
+        assert abs(a.fit.iip3_dbm - truth) <= a.iip3_bound_db
+        assert a.result_flags == []
+        # The trimmed points say why, and sit above the fitted region.
+        trimmed = np.array(["slope" in {f.flag for f in p} for p in a.point_flags])
+        assert trimmed.any() and not (trimmed & a.fit.valid_mask).any()
+        assert data.tone_dbm[trimmed].min() > a.fit.valid_tone_max_dbm

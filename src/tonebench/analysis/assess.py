@@ -19,6 +19,7 @@ from tonebench.analysis.fit import (
     IM3_OVER_NOISE_MIN_DB,
     SweepResult,
     fit_sweep,
+    high_order_top,
     noise_corrected_dbm,
 )
 from tonebench.analysis.flags import Flag
@@ -33,6 +34,7 @@ from tonebench.errors import InputError
 # for a swept analyzer, from memory). Configurable per bench.
 DEFAULT_LEVEL_ACCURACY_DB = 0.2
 ANALYZER_MADE = "with the analyzer's own IM3 within 20 dB"
+HIGH_ORDER = "biased by higher-order terms"
 
 _REQUIRED = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
              "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm", "overload")
@@ -158,6 +160,25 @@ def compression_shift_db(point_iip3_dbm, compression_db, valid) -> float:
     values = np.asarray(point_iip3_dbm, dtype=float)
     shift = abs(float(np.mean(values[idx]) - np.mean(values[keep])))
     return max(shift, mean_c)
+
+
+def fit_region(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray], noise_err) -> tuple[SweepResult, np.ndarray]:
+    """The fit over the valid region, its top trimmed where higher-order terms bias the IM3.
+
+    Returns the fit and the points left out for that (fit.high_order_top; each point's scatter is
+    taken as its noise error).
+    """
+    def fit(extra: dict[str, np.ndarray]) -> SweepResult:
+        return fit_sweep(a["tone_dbm"], a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
+                         a["im3_lower_dbm"], a["im3_upper_dbm"], a["noise_lower_dbm"], a["noise_upper_dbm"],
+                         over, exclude={**exclude, **extra})
+
+    first = fit({})
+    pin_mean = _mean_pair(a["pin1_dbm"], a["pin2_dbm"])
+    trimmed = high_order_top(pin_mean, first.point_iip3_dbm, noise_err, first.valid_mask)
+    if first.iip3_dbm is None or not trimmed.any():
+        return first, np.zeros_like(trimmed)
+    return fit({HIGH_ORDER: trimmed}), trimmed
 
 
 def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings()) -> SweepAssessment:
@@ -286,9 +307,11 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
         float(imbalance[i] / 4.0)))
 
     # --- the fit ---------------------------------------------------------------------------------
-    fit = fit_sweep(a["tone_dbm"], a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
-                    a["im3_lower_dbm"], a["im3_upper_dbm"], a["noise_lower_dbm"], a["noise_upper_dbm"],
-                    over, exclude={ANALYZER_MADE: analyzer_flag})
+    fit, high_order = fit_region(a, over, {ANALYZER_MADE: analyzer_flag}, noise_err)
+    add(high_order, lambda i: Flag(
+        fl.SLOPE, None,
+        f"intercept {fit.point_iip3_dbm[i] - fit.iip3_dbm:+.2f} dB off the fitted region's: the local IM3 slope "
+        "departs from 3 (higher-order terms); left out of the fit", None))
     gss = fit.gain_db
     compression = np.zeros(n)
     if gss is not None:

@@ -117,7 +117,7 @@ class BenchTruth:
         dut = self._scenario.dut
         backoff_db = None if dut.p1db_dbm is None else dut.iip3_dbm - dut.p1db_dbm
         return physics.dut_nonlinearity(self.true_gain_db(freq_hz), self.true_iip3_dbm(freq_hz), backoff_db,
-                                        dut.iip2_dbm)
+                                        dut.iip2_dbm, dut.iip5_dbm)
 
 
 def _float_or_array(value):
