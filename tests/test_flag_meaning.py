@@ -117,3 +117,45 @@ def test_sweep_from_the_noise_to_compression_reads_iip3_within_0p2_db():
         trimmed = np.array(["slope" in {f.flag for f in p} for p in a.point_flags])
         assert trimmed.any() and not (trimmed & a.fit.valid_mask).any()
         assert data.tone_dbm[trimmed].min() > a.fit.valid_tone_max_dbm
+
+
+# --- the attenuation-step check allows for noise ------------------------------------------------
+
+
+def test_a_noisy_step_comparison_does_not_condemn_the_analyzer():
+    """A product 12 dB over the noise at the stepped attenuation moves 1.18 dB (noise, not the
+    analyzer): before, it implied a mixer TOI 14 dB under the declared one and threw out the sweep."""
+    from test_flags import GAIN_DB, IIP3_DBM, power_sum, sweep
+
+    tones = np.arange(-39.0, -22.0, 2.0)  # IM3 -98 dBm at the lowest tone, 22 dB over the noise
+    data = sweep(tones=tones, noise_dbm=-120.0, true_toi_dbm=15.0, step_points=(0, len(tones) - 2, len(tones) - 1))
+    step_noise_dbm = data.raw_noise_lower_step_dbm[0]
+    moved = {}
+    for side in ("lower", "upper"):
+        raw = getattr(data, f"raw_{side}_step_dbm").copy()
+        c1 = 10.0 * np.log10(10.0 ** (data.im3_lower_dbm[0] / 10.0) - 10.0 ** (-120.0 / 10.0))
+        assert c1 - step_noise_dbm == pytest.approx(12.0, abs=0.1)
+        raw[0] = power_sum(c1 + 1.18, step_noise_dbm)  # the noisy comparison
+        moved[f"raw_{side}_step_dbm"] = raw
+    data = type(data)(**{**data.__dict__, **moved})
+    a = assess_sweep(data, AnalysisSettings(mixer_toi_dbm=15.0, max_mixer_dbm=0.0))
+    assert not any(a.point_flags) and a.result_flags == [], [f.detail for p in a.point_flags for f in p]
+    assert a.effective_mixer_toi_dbm == 15.0  # the declared figure stands
+    assert np.isnan(a.step_change_db[0])  # neither the device's nor the analyzer's: not decisive
+    assert a.step_change_db[-1] < 1.0  # the clean top points still vouch for the device
+    assert abs(a.fit.iip3_dbm - IIP3_DBM) <= 0.1 and a.fit.n_valid == tones.size
+    assert GAIN_DB == pytest.approx(a.fit.gain_db)
+
+
+def test_a_clear_analyzer_product_at_low_snr_is_still_found():
+    # A step reading 12 dB over its noise that moved 6 dB is beyond what noise does there.
+    from tonebench.analysis import judge_step
+    from tonebench.analysis.flags import step_limit_db
+
+    limit = float(step_limit_db(22.0, 12.0))
+    assert 1.18 < limit < 6.0
+    j = judge_step(-98.0, -120.0, -104.0, -110.0, 10.0)
+    assert bool(j.conclusive) and bool(j.analyzer_made)
+    from test_flags import power_sum
+    j = judge_step(-98.0, -120.0, power_sum(-98.0 + 1.18, -110.0), -110.0, 10.0)
+    assert not bool(j.conclusive) and not bool(j.analyzer_made)

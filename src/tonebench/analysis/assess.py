@@ -259,7 +259,8 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
         if made:
             detail = "; ".join(
                 f"IM3 {s} moved {judged[s].change_db[i]:+.2f} dB with {a['step_atten_db'][i]:g} dB more "
-                f"attenuation (a real product stays within {fl.STEP_CHANGE_LIMIT_DB:g} dB)" for s in made)
+                f"attenuation (a real product stays within {fl.STEP_CHANGE_LIMIT_DB:g} dB; beyond "
+                f"{judged[s].limit_db[i]:.2f} dB noise cannot explain it)" for s in made)
         else:
             ratio = float(np.nanmin([analyzer_ratio["lower"][i], analyzer_ratio["upper"][i]]))
             detail = (f"the analyzer's own IM3 is predicted {ratio:.1f} dB under the reading "
