@@ -159,3 +159,63 @@ def test_a_clear_analyzer_product_at_low_snr_is_still_found():
     from test_flags import power_sum
     j = judge_step(-98.0, -120.0, power_sum(-98.0 + 1.18, -110.0), -110.0, 10.0)
     assert not bool(j.conclusive) and not bool(j.analyzer_made)
+
+
+# --- the source-intermod check charges the residual at each point's attenuation ----------------
+
+
+def residual_calibrated_run(tmp_path, dut_iip3_dbm: float, residual_atten_db: float):
+    """A clean bench (sources' residual intercept +45 dBm); the thru run at residual_atten_db, where
+    the analyzer's own IM3 dominates it; then a run of a DUT of that IIP3 with automatic attenuation."""
+    from test_flags_run import PATHS, loss_db, run, write_bench, write_plan
+
+    from tonebench.calibration import workflow
+
+    bench = write_bench(tmp_path, system_ip3_dbm=45.0)
+    text = bench.read_text(encoding="utf-8")
+    bench.write_text(text.replace("iip3_dbm = -2.0", f"iip3_dbm = {dut_iip3_dbm!r}")
+                     .replace("p1db_dbm = -12.0", f"p1db_dbm = {dut_iip3_dbm - 10.0!r}"), encoding="utf-8")
+    db = f"sqlite:///{tmp_path / 'runs.db'}"
+    files = {}
+    for path in PATHS:
+        files[path] = tmp_path / f"{path}.csv"
+        files[path].write_text("freq_hz,loss_db\n" + "\n".join(f"{f!r},{loss_db(path, f)!r}" for f in (2.3e9, 2.6e9)))
+    workflow.import_tables(db, "thru-cal", files)
+    workflow.measure_residual(db, "thru-cal", bench,
+                              write_plan(tmp_path, -34.0, -22.0, atten_db=residual_atten_db, name="residual.toml"))
+    top = dut_iip3_dbm - 14.0
+    return run(tmp_path, write_plan(tmp_path, top - 14.0, top), bench, cal_name="thru-cal")
+
+
+def test_unresolved_sources_share_is_not_charged_the_whole_residual(tmp_path):
+    outcome, session, db = residual_calibrated_run(tmp_path, 8.0, 0.0)
+    from tonebench.store.models import SystemResidual
+
+    residual = session.scalars(select(SystemResidual)).one()
+    # The thru could not resolve the sources' share: the analyzer's own IM3 made the residual.
+    assert residual.source_ip3_dbm is None and residual.system_ip3_dbm < 20.0
+    assert residual.sweep_json["source_ip3_min_dbm"] > residual.system_ip3_dbm + 15.0
+    result = session.scalars(select(Result)).one()
+    assert session.scalar(select(func.count()).select_from(ResultFlag)) == 0
+    assert not any(f.flag == "source-intermod-limited" for f in session.scalars(select(PointFlag)))
+    assert result.details_json["bound_terms_db"]["source"] < 0.05
+    truth = 8.0 + 1.0 * (2.45e9 - 2.45e9) / 1e9
+    assert abs(result.iip3_dbm - truth) <= result.iip3_bound_db < 0.5
+    shown = runner.invoke(app, ["show", outcome.guid[:8], "--db", db])
+    assert shown.exit_code == 0 and "flags: none" in shown.output
+
+
+def test_residual_carried_to_the_attenuation_of_each_point():
+    from tonebench.analysis.attenuation import residual_ip3_at_atten_dbm
+    from tonebench.calibration.residual import check_shares
+
+    # Analyzer's share alone at 0 dB: its intercept rises dB for dB with attenuation.
+    assert residual_ip3_at_atten_dbm(None, 16.0, 0.0, [0.0, 10.0, 24.0]) == pytest.approx([16.0, 26.0, 40.0])
+    # Both in phase: equal shares give 3 dB less than either.
+    assert float(residual_ip3_at_atten_dbm(30.0, 20.0, 0.0, 10.0)) == pytest.approx(30.0 - 10 * np.log10(2))
+    shares = check_shares(16.3, None, 16.3, 0.0, source_ip3_min_dbm=36.3)
+    assert (shares.source_ip3_dbm, shares.source_is_bound, shares.analyzer_ip3_dbm) == (36.3, True, 16.3)
+    assert check_shares(None, None, None, 0.0) is None
+    # A set without the split charges the whole residual to the sources, as before.
+    whole = check_shares(16.3, None, None, 0.0, split_known=False)
+    assert (whole.source_ip3_dbm, whole.analyzer_ip3_dbm) == (16.3, None)
