@@ -219,3 +219,20 @@ def test_residual_carried_to_the_attenuation_of_each_point():
     # A set without the split charges the whole residual to the sources, as before.
     whole = check_shares(16.3, None, None, 0.0, split_known=False)
     assert (whole.source_ip3_dbm, whole.analyzer_ip3_dbm) == (16.3, None)
+
+
+# --- acceptance: clean runs carry no test-system flag ------------------------------------------
+
+
+def test_seeded_clean_runs_with_automatic_attenuation_carry_no_system_flag(tmp_path):
+    """A few seeds of tests/benchmarks/bench_clean_flags.py (which runs a hundred): random clean
+    devices from the noise floor to compression, residual from a thru at 0 dB attenuation."""
+    from cleanruns import clean_runs
+
+    outcomes = clean_runs(tmp_path, range(8))
+    assert [o.device.seed for o in outcomes if o.system_flagged] == []
+    assert [o.device.seed for o in outcomes if o.result_flags] == []
+    assert [o.device.seed for o in outcomes if o.iip3_dbm is None] == []
+    # Every sweep still says why its ends were left out.
+    assert all(("analyzer-limited", "noise") in o.point_flags for o in outcomes)
+    assert all(abs(o.error_db) <= o.bound_db for o in outcomes)
