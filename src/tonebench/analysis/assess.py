@@ -180,7 +180,8 @@ def _residual_words(settings: AnalysisSettings, ip3_dbm: float, atten_db: float)
     return f"intercept {ip3_dbm:.1f} dBm at the DUT input{where}; sources' share {source}"
 
 
-def source_check(a, settings: AnalysisSettings, lower_c, upper_c, gain_db, add, notes) -> tuple[np.ndarray, np.ndarray]:
+def source_check(a, settings: AnalysisSettings, lower_c, upper_c, gain_db, add,
+                 notes) -> tuple[np.ndarray, np.ndarray]:
     """The sources' residual IM3 carried through the DUT gain, per point: (IIP3 error, flagged).
 
     The residual is the one that applies at the attenuation each point was measured with
@@ -210,7 +211,8 @@ def source_check(a, settings: AnalysisSettings, lower_c, upper_c, gain_db, add, 
     return source_err, source_flag
 
 
-def fit_region(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray], noise_err) -> tuple[SweepResult, np.ndarray]:
+def fit_region(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray],
+               noise_err) -> tuple[SweepResult, np.ndarray]:
     """The fit over the valid region, its top trimmed where higher-order terms bias the IM3.
 
     Returns the fit and the points left out for that (fit.high_order_top; each point's scatter is
