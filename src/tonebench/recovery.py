@@ -81,6 +81,7 @@ class PointGuard(Generic[T]):
                 # Not measured again: a level beyond damage must not get RF once more, and a reply
                 # that is no reading is stored as a failed point (resume measures it again).
                 self.check()
+                self.log("error", "impossible-reading", f"point {point_key}: {exc}", {"point_key": point_key})
                 raise PointFailed(f"impossible reading: {exc}") from None
             except InstrumentError as exc:
                 reason = str(exc)

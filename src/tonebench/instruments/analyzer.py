@@ -146,12 +146,7 @@ class SpectrumAnalyzer(RoleDriver):
         why = (f"above the damage level {self.limits['damage_dbm']:g} dBm + {ABOVE_DAMAGE_DB:g} dB"
                if power_dbm > high_dbm else
                f"below thermal noise in the RBW - {BELOW_THERMAL_DB:g} dB ({low_dbm:.1f} dBm)")
-        message = f"{self.label}: impossible reading {power_dbm:.6g} dBm at {freq_hz:.6g} Hz: {why}"
-        supervision = self.instrument.supervision
-        if supervision is not None:
-            supervision.emit(self.label, "impossible-reading", "error", message,
-                             {"power_dbm": power_dbm, "freq_hz": freq_hz, "bounds_dbm": [low_dbm, high_dbm]})
-        raise ImpossibleReading(message)
+        raise ImpossibleReading(f"{self.label}: impossible reading {power_dbm:.6g} dBm at {freq_hz:.6g} Hz: {why}")
 
     def _settings_lost(self, sweep_time_s: float) -> bool:
         """True (after restoring them) when the analyzer's sweep time shows other settings.

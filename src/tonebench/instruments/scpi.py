@@ -131,8 +131,19 @@ class IdentityChanged(InstrumentError):
     """After reopening a connection, a different instrument (maker, model or serial) answered."""
 
 
-# Operations named in a refusal: the ones sent since the error queue was last read.
+# Operations remembered since the error queue was last read, to name the one it refused.
+MAX_SENT_REMEMBERED = 20
+# Named when no error text points at one operation: the last few sent.
 MAX_NAMED_OPERATIONS = 3
+
+
+def _refused_operations(sent: list[tuple[str, str]], entries: list[ScpiError]) -> str:
+    """The operations a refusal is about: those whose header the error text quotes (instruments
+    commonly append it, e.g. -113,"Undefined header;BANDX"), else the last few sent."""
+    texts = " ".join(e.message.upper() for e in entries)
+    quoted = [(op, text) for op, text in sent if text.split(" ")[0].upper() in texts]
+    named = quoted or sent[-MAX_NAMED_OPERATIONS:]
+    return ", ".join(f"{op} ({text!r})" for op, text in named) or "an operation"
 
 # Reply lines read while resynchronising before giving up on this connection.
 MAX_RESYNC_LINES = 20
@@ -185,7 +196,7 @@ class ScpiInstrument:
         op = self._operation(operation)
         message = op.template.format(**fields)
         if operation != "next_error":
-            self._sent_since_drain = [*self._sent_since_drain[-(MAX_NAMED_OPERATIONS - 1):], (operation, message)]
+            self._sent_since_drain = [*self._sent_since_drain[-(MAX_SENT_REMEMBERED - 1):], (operation, message)]
         return self._supervised(lambda: self._exchange(operation, op, message, None))
 
     def _operation(self, operation: str):
@@ -259,8 +270,7 @@ class ScpiInstrument:
             listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
             refused = any(e.code in COMMAND_ERROR_CODES for e in entries)
             if refused:
-                ops = ", ".join(f"{op} ({text!r})" for op, text in sent[-MAX_NAMED_OPERATIONS:]) or "an operation"
-                listed = f"the instrument refused {ops} of dialect {self.dialect.name}: {listed}"
+                listed = f"the instrument refused {_refused_operations(sent, entries)} of dialect {self.dialect.name}: {listed}"
             if self.supervision is not None:
                 self.supervision.emit(self.label, "scpi-error", "error" if refused else "warning",
                                       f"{self.label}: {listed}", {"entries": [list(e) for e in entries]})
