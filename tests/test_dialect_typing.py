@@ -64,14 +64,14 @@ def workdir(tmp_path, monkeypatch):
 
 def test_misspelled_damage_limit_is_named_with_the_allowed_keys(workdir):
     line = refused(workdir, ANALYZER.replace("damage_dbm = 30.0", "damage_dBm = 30.0"))
-    assert "limits.damage_dBm: unknown key for an analyzer dialect (did you mean damage_dbm?)" in line
-    assert f"allowed: {LIMITS_ALLOWED}" in line
+    assert "limits.damage_dBm: unknown key for an analyzer dialect" in line
+    assert line.endswith(f"allowed: {LIMITS_ALLOWED} (did you mean damage_dbm?)")
 
 
 def test_unknown_status_key(workdir):
     line = refused(workdir, ANALYZER.replace("overload_bit = 3", "overload_bit = 3\nover_range_bit = 4"))
     assert "status.over_range_bit: unknown key for an analyzer dialect" in line
-    assert line.endswith("allowed: overload_bit")
+    assert "allowed: overload_bit" in line
 
 
 def test_non_finite_performance_value(workdir):
@@ -117,5 +117,6 @@ def test_misspelled_bench_file_override_is_named(workdir):
     (workdir / "plan.toml").write_text(PLAN)
     result = runner.invoke(app, ["run", "plan.toml", "--bench", "bench.toml", "--db", f"sqlite:///{workdir}/t.db"])
     assert result.exit_code == 2, result.output
-    assert "performance.mixer_toi_dBm is not a figure tonebench uses (did you mean mixer_toi_dbm?)" in result.output
+    assert "performance.mixer_toi_dBm is not a figure tonebench uses" in result.output
+    assert "(did you mean mixer_toi_dbm?)" in result.output
     assert not (workdir / "t.db").exists()

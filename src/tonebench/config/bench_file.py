@@ -52,8 +52,8 @@ class InstrumentEntry(StrictModel):
             if key not in PERFORMANCE_OVERRIDES:
                 close = difflib.get_close_matches(key.lower(), PERFORMANCE_OVERRIDES, n=1)
                 hint = f" (did you mean {close[0]}?)" if close else ""
-                raise ValueError(f"performance.{key} is not a figure tonebench uses{hint}; allowed: "
-                                 f"{', '.join(PERFORMANCE_OVERRIDES)}")
+                raise ValueError(f"performance.{key} is not a figure tonebench uses; allowed: "
+                                 f"{', '.join(PERFORMANCE_OVERRIDES)}{hint}")
             low, high = PERFORMANCE_OVERRIDES[key]
             if not low <= value <= high:
                 raise ValueError(f"performance.{key} = {value:g} outside {low:g}..{high:g}")

@@ -200,7 +200,7 @@ def _check_numbers(table: str, values: dict[str, float], role: str,
         if key not in allowed:
             close = difflib.get_close_matches(key.lower(), allowed, n=1)
             hint = f" (did you mean {close[0]}?)" if close else ""
-            raise ValueError(f"{table}.{key}: unknown key for {_article(role)} dialect{hint}; allowed: {allowed_text}")
+            raise ValueError(f"{table}.{key}: unknown key for {_article(role)} dialect; allowed: {allowed_text}{hint}")
         if not math.isfinite(value):
             raise ValueError(f"{table}.{key}: {value!r} is not a finite number; allowed keys: {allowed_text}")
         if table == "status" and value not in STATUS_BITS:
