@@ -97,7 +97,7 @@ def ask(resource: str, line: str, timeout_s: float = 2.0) -> str | None:
         sock.settimeout(timeout_s)
         try:
             return sock.makefile("r").readline().strip() or None
-        except socket.timeout:
+        except TimeoutError:
             return None
 
 
@@ -248,3 +248,44 @@ def test_clean_run_raises_no_drift_event_and_the_same_bench_drifting_does(tmp_pa
     assert not any("source_drift" in p[4] for p in points.values())
     _outcome, _sim, db_path = run_sim(drifting, sim_bench_file(drifting, [DRIFT], seed=seed), DRIFT_PLAN)
     assert len(drift_events(stored(db_path)[2])) == 1
+
+
+class _Log:
+    def __init__(self):
+        self.events = []
+
+    def event(self, level, kind, message, details=None):
+        self.events.append((kind, message, details))
+
+
+def _points(diffs_db, center_hz=2.45e9, bias_v=None, start_dbm=-30.0):
+    from tonebench.plan import PlannedPoint
+
+    return [(PlannedPoint(i, center_hz, 1e6, start_dbm + 2.0 * i, bias_v), diff_db) for i, diff_db in enumerate(diffs_db)]
+
+
+def test_drift_needs_a_one_sided_move_not_one_outlier():
+    from tonebench.drift import DriftTracker
+
+    log = _Log()
+    tracker = DriftTracker(0.1, log)
+    # One reading 0.3 dB off, then back: noise or a glitch, not drift.
+    reasons = [tracker.observe(point, -20.0 + diff_db, -20.0) for point, diff_db in _points([0, 0.01, 0.3, 0.0, 0.01])]
+    assert reasons == [None] * 5 and log.events == []
+    # A steady climb: reported once, at the first point beyond 0.1 dB with two before it on the same side.
+    tracker = DriftTracker(0.1, log)
+    reasons = [tracker.observe(point, -20.0 + diff_db, -20.0)
+               for point, diff_db in _points([0, 0.03, 0.06, 0.09, 0.12, 0.15])]
+    assert reasons[:4] == [None] * 4 and "moved +0.12 dB" in reasons[4]
+    assert "moved +0.15 dB" in reasons[5] and [kind for kind, _, _ in log.events] == ["source-drift"]
+
+
+def test_drift_between_sweeps_at_the_same_tones():
+    from tonebench.drift import DriftTracker
+
+    log = _Log()
+    tracker = DriftTracker(0.1, log)
+    for point, diff_db in _points([0.0, 0.0, 0.0], bias_v=3.0):
+        assert tracker.observe(point, -20.0 + diff_db, -20.0) is None
+    later = [tracker.observe(point, -20.0 + diff_db, -20.0) for point, diff_db in _points([-0.2, -0.2, -0.2], bias_v=3.3)]
+    assert all(reason and "earlier sweep" in reason and "-0.20 dB" in reason for reason in later)

@@ -15,7 +15,12 @@ from collections.abc import Callable, Sequence
 from typing import Generic, TypeVar
 
 from tonebench.errors import InstrumentError, TonebenchError
-from tonebench.instruments.scpi import CommandRefused, IdentityChanged, ImpossibleReading, ScpiInstrument
+from tonebench.instruments.scpi import (
+    CommandRefused,
+    IdentityChanged,
+    ImpossibleReading,
+    ScpiInstrument,
+)
 from tonebench.instruments.source import SignalSource
 from tonebench.instruments.supervision import RecoveryStopped
 

@@ -2,13 +2,17 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-import math
-
 from tonebench.errors import InstrumentError
-from tonebench.instruments.scpi import ImpossibleReading, LimitError, RoleDriver, ScpiInstrument
+from tonebench.instruments.scpi import (
+    ImpossibleReading,
+    LimitError,
+    RoleDriver,
+    ScpiInstrument,
+)
 from tonebench.units import thermal_noise_dbm_per_hz
 
 # Reads of one product before giving up when each is cut by a reopened connection.

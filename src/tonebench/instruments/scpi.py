@@ -107,7 +107,7 @@ class ConnectionFault(InstrumentError):
 class ImpossibleReading(InstrumentError):
     """A reply no instrument can give as a reading: not a number (SCPI 9.91E37, NaN, inf), or a
     level outside what is physically possible (analyzer.judge_marker_dbm). Not a connection fault:
-    the point is measured again and, if it persists, stored as failed with this reason."""
+    the point fails at once and is stored as failed with this reason (recovery.PointGuard)."""
 
 
 class CommandRefused(InstrumentError):
@@ -265,18 +265,24 @@ class ScpiInstrument:
             entries.append(entry)
         else:
             entries.append(ScpiError(0, f"error queue not empty after {MAX_ERROR_READS} reads"))
-        sent, self._sent_since_drain = self._sent_since_drain, []
+        named = self.refused_operations(entries)
         if entries:
             listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
             refused = any(e.code in COMMAND_ERROR_CODES for e in entries)
             if refused:
-                listed = f"the instrument refused {_refused_operations(sent, entries)} of dialect {self.dialect.name}: {listed}"
+                listed = f"the instrument refused {named} of dialect {self.dialect.name}: {listed}"
             if self.supervision is not None:
                 self.supervision.emit(self.label, "scpi-error", "error" if refused else "warning",
                                       f"{self.label}: {listed}", {"entries": [list(e) for e in entries]})
             if refused:
                 raise CommandRefused(f"{self.label}: {listed}", entries)
             raise ScpiErrors(f"{self.label}: {listed}", entries)
+
+    def refused_operations(self, entries: list[ScpiError]) -> str:
+        """Which operations sent since the queue was last read these entries are about (see
+        _refused_operations); forgets them, as the queue has now been read."""
+        sent, self._sent_since_drain = self._sent_since_drain, []
+        return _refused_operations(sent, entries)
 
     def errors_after_no_reply(self) -> list[ScpiError] | None:
         """After a query got no reply: the error queue's entries, read on the same connection

@@ -162,9 +162,10 @@ class Supervision:
         label = instrument.label
         listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
         details = {"entries": [list(e) for e in entries], "operation": fault.operation, "sent": fault.sent}
+        named = instrument.refused_operations(entries)  # the query itself, unless the text names another
         if any(e.code in COMMAND_ERROR_CODES for e in entries):
-            message = (f"{label}: the instrument refused {fault.operation} ({fault.sent!r}) of dialect "
-                       f"{instrument.dialect.name} and sent no reply: {listed}")
+            message = (f"{label}: the instrument refused {named} of dialect {instrument.dialect.name} "
+                       f"and sent no reply to {fault.operation}: {listed}")
             self.emit(label, "scpi-error", "error", message, details)
             raise CommandRefused(message, entries) from None
         message = f"{label}: no reply to {fault.operation} ({fault.sent!r}); the instrument reports: {listed}"
