@@ -29,6 +29,7 @@ from tonebench.calibration.leveling import IMBALANCE_LIMIT_DB, Leveler, LevelRes
 from tonebench.calibration.referral import point_offsets, referred_values
 from tonebench.config.bench_file import BenchLimits
 from tonebench.config.plan_file import AnalyzerSettings
+from tonebench.drift import DriftTracker
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.offsets import LossTable
@@ -136,6 +137,7 @@ class Sequencer:
         # Events go to the run log (database and text file) when there is one.
         self.log = log if log is not None else recorder
         self.watchdog = watchdog
+        self.drift = DriftTracker(self.unattended.drift_tolerance_db, self.log)
         self.failed_keys: list[str] = []
         self._rf_said = False
         self._top_dbm: dict[tuple, float] = {}
@@ -190,6 +192,8 @@ class Sequencer:
                     history[:] = [*history[-1:], (readings.f1_dbm, readings.f2_dbm, point.tone_dbm)]
                     row = self._row(point, readings, time.monotonic() - started_s, setup)
                     row.update(self._extra_columns(point, measured.choice, measured.step, measured.second, row))
+                    if drift := self.drift.observe(point, readings.f1_dbm, readings.f2_dbm):
+                        row["extra_json"] = {**row["extra_json"], "source_drift": drift}
                     store_point(self.recorder.sessions, self.recorder.run_id, row)
                 done += 1
                 self._kick()
