@@ -13,6 +13,7 @@ from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.source import SignalSource
 from tonebench.instruments.supervision import Supervision
 from tonebench.instruments.transport import open_resource
+from tonebench.rf_guard import RF_OFF_BUDGET_S, RfOffReport, shielded, switch_rf_off
 from tonebench.safety import SourceRange
 
 # Which kind of dialect each bench role takes.
@@ -37,6 +38,7 @@ class OpenBench:
     _scpi: list[ScpiInstrument] = field(default_factory=list)
     # At the DUT input plane, for calibration and leveling; only when the bench file names one.
     power_meter: PowerMeter | None = None
+    last_rf_off: RfOffReport | None = None  # the last switch_rf_off, for the command's last line
 
     def sources(self) -> tuple[SignalSource, SignalSource]:
         return self.source1, self.source2
@@ -46,15 +48,44 @@ class OpenBench:
         self.source2.rf_on()
 
     def rf_off_all(self) -> None:
-        """Switch RF off at both sources; try both even if one fails, then report the failure."""
+        """Switch RF off at both sources (each read back); both are tried even if one fails or
+        a signal comes (deferred meanwhile), then the failure is reported."""
         failures = []
-        for source in (self.source1, self.source2):
-            try:
-                source.rf_off()
-            except Exception as exc:  # noqa: BLE001 - the other source must still be switched off
-                failures.append(f"{source.label}: {exc}")
+        with shielded():
+            for source in (self.source1, self.source2):
+                try:
+                    source.rf_off()
+                except BaseException as exc:  # noqa: BLE001 - the other source must still be switched off
+                    failures.append(f"{source.label}: {exc or type(exc).__name__}")
         if failures:
             raise InstrumentError("RF off failed: " + "; ".join(failures))
+
+    def switch_rf_off(self, budget_s: float = RF_OFF_BUDGET_S) -> RfOffReport:
+        """RF off at both sources on the way out: confirmed by read-back, retried with backoff for
+        up to budget_s seconds; never raises (the report names any source not confirmed off)."""
+        report = switch_rf_off(self.sources(), budget_s=budget_s)
+        self.last_rf_off = report
+        return report
+
+    def switch_off_at_connect(self) -> list[str]:
+        """RF off at every source as soon as the bench is connected: a run killed (kill -9, power
+        lost) may have left one on. Returns a line per source that was found on (or unreadable)."""
+        found = []
+        for source in self.sources():
+            try:
+                was_on = source.rf_is_on()
+            except Exception as exc:  # noqa: BLE001 - unknown state: switch it off all the same
+                was_on, why = None, f": {exc}"
+            else:
+                why = ""
+            if was_on is not False:
+                state = "on" if was_on else f"in an unknown state{why}"
+                found.append(f"{source.label} was found with RF {state} (a command before this one ended "
+                             "without switching it off)")
+        report = self.switch_rf_off()
+        if not report.ok:
+            raise InstrumentError(f"connecting the bench: {report.line()}")
+        return [f"{line}; switched off (read back)" for line in found]
 
     @property
     def connections(self) -> list[ScpiInstrument]:
@@ -68,15 +99,11 @@ class OpenBench:
         if self.power_meter is not None:
             self.power_meter.prepare()
 
-    def force_rf_off_all(self) -> list[str]:
-        """RF off at both sources from another thread (the watchdog); returns one line per source."""
-        said = []
-        for source in (self.source1, self.source2):
-            try:
-                said.append(f"{source.label} RF off {source.force_rf_off()}")
-            except Exception as exc:  # noqa: BLE001 - the other source must still be switched off
-                said.append(f"{source.label} RF off FAILED: {exc}")
-        return said
+    def force_rf_off_all(self, budget_s: float = RF_OFF_BUDGET_S) -> RfOffReport:
+        """RF off at both sources from another thread (the watchdog), while the run's thread may
+        be stuck in a call: through a second connection where the first is busy, retried with
+        backoff until read back off or budget_s is spent."""
+        return switch_rf_off([_Forced(source) for source in self.sources()], budget_s=budget_s)
 
     def close(self) -> None:
         for instrument in self._scpi:
@@ -84,6 +111,20 @@ class OpenBench:
                 instrument.close()
             except Exception:  # noqa: BLE001 - closing is best effort, nothing is measured here
                 pass
+
+
+class _Forced:
+    """A source whose RF off goes through force_rf_off (usable from another thread)."""
+
+    def __init__(self, source: SignalSource):
+        self.source = source
+        self.label = source.label
+
+    def rf_off(self) -> None:
+        self.source.force_rf_off()
+
+    def force_rf_off(self) -> None:
+        self.source.force_rf_off()
 
 
 def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:
