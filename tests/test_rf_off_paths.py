@@ -34,6 +34,7 @@ from tonebench.store.models import CalibrationSet, Event, Point, Run
 
 BENCH_TEXT = (SAMPLE_RUNS / "sim_bench.toml").read_text()
 PLAN_TEXT = (SAMPLE_RUNS / "demo_plan.toml").read_text()
+SHORT_PLAN = PLAN_TEXT.replace("center_freqs_hz = [2.40e9, 2.45e9, 2.48e9]", "center_freqs_hz = [2.45e9]")
 WAIT_S = 120.0  # generous bound for anything awaited (2 shared cores)
 FAST_TIMEOUT_S = 0.5
 
@@ -186,6 +187,30 @@ def test_instrument_failure_aborts_with_rf_off(tmp_path):
         lab.sim.close()
 
 
+def test_a_source_that_will_not_switch_off_is_named_stored_and_exits_1(tmp_path):
+    """source2 refuses RF off from the end of the run on (an SCPI error, the command not executed):
+    retried for rf_off_s, then named in one loud line, in an event and in the run's end reason."""
+    lab = make_lab(tmp_path, unattended={"rf_off_s": 1.0})
+    try:
+        # The first RF off (on connecting) goes through; every later one is refused.
+        lab.sim.faults.add(FaultSpec(instrument="source2", kind="error", on="OUTP OFF", nth=2, repeat=1000000,
+                                     code=-221))
+        proc = lab.start("run", str(write_plan(lab.folder, SHORT_PLAN)), "--bench", str(lab.bench_path),
+                         "--db", lab.db_url)
+        code, stdout, stderr = finish(proc)
+        assert code == 1, stderr
+        loud = [line for line in lines_of(stderr) if line.startswith("DANGER: ")]
+        assert len(loud) == 1 and loud[0].startswith(
+            "DANGER: RF off at source1 (read back); RF NOT CONFIRMED OFF at source2 (")
+        assert "RF off at source1, source2" not in stdout + stderr
+        _guid, status, reason, events, _points = stored_run(lab.db_url)
+        assert status == "complete" and "RF NOT CONFIRMED OFF at source2" in reason
+        assert any(kind == "rf-not-off" and "source2" in message for kind, message in events)
+        assert rf_states(lab.sim) == [False, True]  # what was said is what the instrument shows
+    finally:
+        lab.sim.close()
+
+
 @pytest.mark.parametrize("signum, count, code, said", [
     (signal.SIGINT, 1, 130, "interrupted by Ctrl-C"),
     (signal.SIGINT, 5, 130, "interrupted by Ctrl-C"),
@@ -228,6 +253,28 @@ def test_watchdog_trip_with_a_stalled_instrument(tmp_path, stalled):
         assert rf_states(lab.sim) == [False, False]
     finally:
         lab.sim.close()
+
+
+def test_sigterm_three_times_to_a_queue_worker(lab):
+    from tonebench.store.database import open_database, session_factory
+    from tonebench.store.models import Job
+    from tonebench.worker import add_job
+
+    engine = open_database(lab.db_url)
+    add_job(session_factory(engine), write_plan(lab.folder), lab.bench_path)
+    proc = lab.start("worker", "--bench", str(lab.bench_path), "--db", lab.db_url, "--until-empty")
+    wait_for(lambda: both_on(lab.sim), proc, "RF on")
+    send_burst(proc.pid, signal.SIGTERM, 3)
+    code, _stdout, stderr = finish(proc)
+    guid, status, reason, _events, _points = stored_run(lab.db_url)
+    assert code == 143, stderr
+    assert lines_of(stderr)[-1] == (f"worker stopped; terminated by SIGTERM: RF off at source1, source2 (read back); "
+                                    f"run {guid[:8]} stored as aborted; `tonebench resume {guid[:8]}` continues it")
+    assert status == "aborted" and reason == "terminated by SIGTERM"
+    with session_factory(engine)() as session:
+        assert session.scalars(select(Job.status)).one() == "failed"
+    engine.dispose()
+    assert rf_states(lab.sim) == [False, False]
 
 
 def test_kill_9_then_the_next_command_switches_rf_off_first(lab):
@@ -316,8 +363,6 @@ def test_signals_during_calibration(tmp_path, command, signum, count, code, said
 
 
 # --- truthful outcomes (exit codes 1 and 4) ------------------------------------------------------
-
-SHORT_PLAN = PLAN_TEXT.replace("center_freqs_hz = [2.40e9, 2.45e9, 2.48e9]", "center_freqs_hz = [2.45e9]")
 
 
 def _cli(*args: str):

@@ -39,6 +39,7 @@ class OpenBench:
     # At the DUT input plane, for calibration and leveling; only when the bench file names one.
     power_meter: PowerMeter | None = None
     last_rf_off: RfOffReport | None = None  # the last switch_rf_off, for the command's last line
+    rf_off_budget_s: float = RF_OFF_BUDGET_S  # the bench file's [unattended] rf_off_s
 
     def sources(self) -> tuple[SignalSource, SignalSource]:
         return self.source1, self.source2
@@ -60,10 +61,11 @@ class OpenBench:
         if failures:
             raise InstrumentError("RF off failed: " + "; ".join(failures))
 
-    def switch_rf_off(self, budget_s: float = RF_OFF_BUDGET_S) -> RfOffReport:
+    def switch_rf_off(self, budget_s: float | None = None) -> RfOffReport:
         """RF off at both sources on the way out: confirmed by read-back, retried with backoff for
-        up to budget_s seconds; never raises (the report names any source not confirmed off)."""
-        report = switch_rf_off(self.sources(), budget_s=budget_s)
+        up to budget_s seconds (default rf_off_budget_s); never raises (the report names any
+        source not confirmed off)."""
+        report = switch_rf_off(self.sources(), budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
         self.last_rf_off = report
         return report
 
@@ -99,11 +101,12 @@ class OpenBench:
         if self.power_meter is not None:
             self.power_meter.prepare()
 
-    def force_rf_off_all(self, budget_s: float = RF_OFF_BUDGET_S) -> RfOffReport:
+    def force_rf_off_all(self, budget_s: float | None = None) -> RfOffReport:
         """RF off at both sources from another thread (the watchdog), while the run's thread may
         be stuck in a call: through a second connection where the first is busy, retried with
-        backoff until read back off or budget_s is spent."""
-        return switch_rf_off([_Forced(source) for source in self.sources()], budget_s=budget_s)
+        backoff until read back off or budget_s (default rf_off_budget_s) is spent."""
+        return switch_rf_off([_Forced(source) for source in self.sources()],
+                             budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
 
     def close(self) -> None:
         for instrument in self._scpi:
@@ -125,6 +128,9 @@ class _Forced:
 
     def force_rf_off(self) -> None:
         self.source.force_rf_off()
+
+    def rf_is_on(self) -> bool:
+        return self.source.rf_is_on()
 
 
 def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:

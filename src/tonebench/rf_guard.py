@@ -35,8 +35,11 @@ RF_OFF_FIRST_WAIT_S = 0.1
 RF_OFF_MAX_WAIT_S = 2.0
 
 
-class Terminated(Exception):
-    """Raised in the main thread when the process receives SIGTERM, so RF-off cleanup runs."""
+class Terminated(BaseException):
+    """Raised in the main thread when the process receives SIGTERM, so RF-off cleanup runs.
+
+    A BaseException, like KeyboardInterrupt, so that no `except Exception` on the way (an event
+    callback, a best-effort close) can swallow the stop."""
 
 
 @dataclass
@@ -136,6 +139,14 @@ def shielded() -> Iterator[None]:
         raise exception_for(signum)
 
 
+def raise_if_stopping() -> None:
+    """At a safe point of a long loop (between points or steps): raise the stop again if its
+    exception was swallowed on the way (a finalizer or a library that logs and goes on), so a
+    signal is never lost. Later signals are not raised by the handler itself (see _handler)."""
+    if _state.raised is not None and _state.shield_depth == 0 and _is_main_thread():
+        raise exception_for(_state.raised)
+
+
 def stopping_signal() -> int | None:
     """The signal being acted on (raised or deferred), if any."""
     return _state.raised if _state.raised is not None else _state.pending
@@ -177,9 +188,15 @@ def _off_once(source, force: bool) -> str | None:
             source.rf_off()  # reads the state back, raises if still on
         return None
     except BaseException as exc:  # noqa: BLE001 - every source must be tried; signals are deferred
-        if not isinstance(exc, Exception):
-            return f"interrupted ({type(exc).__name__})"
-        return " ".join(str(exc).split()) or type(exc).__name__
+        why = (" ".join(str(exc).split()) or type(exc).__name__) if isinstance(exc, Exception) \
+            else f"interrupted ({type(exc).__name__})"
+    # The command failed (an error reported, a reply lost): its state read back decides.
+    try:
+        if source.rf_is_on() is False:
+            return None
+    except BaseException:  # noqa: BLE001 - unreadable: not confirmed
+        pass
+    return why
 
 
 def switch_rf_off(sources: Sequence, *, budget_s: float = RF_OFF_BUDGET_S,

@@ -403,6 +403,7 @@ def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started,
     supervision = supervision_for(bench, relay)
     open_instruments = open_bench(bench.settings, resources, supervision)
     stack.callback(open_instruments.close)
+    open_instruments.rf_off_budget_s = bench.settings.unattended.rf_off_s
     for line in open_instruments.switch_off_at_connect():
         relay(InstrumentEvent(line.split(" ", 1)[0], "rf-found-on", "warning", line))
         (warn or _print_warning)(line)

@@ -36,7 +36,7 @@ from tonebench.config.bench_file import UnattendedSettings
 from tonebench.plan import PlannedPoint
 from tonebench.recovery import BenchFault, PointFailed, PointGuard, settle_check
 from tonebench.resume import store_point
-from tonebench.rf_guard import RfOffReport, shielded
+from tonebench.rf_guard import RfOffReport, raise_if_stopping, shielded
 from tonebench.safety import check_source_power, predict_levels
 from tonebench.store.records import RunRecorder
 from tonebench.watchdog import Watchdog
@@ -299,6 +299,7 @@ class Sequencer:
             self.watchdog.kick()
 
     def _check_stop(self) -> None:
+        raise_if_stopping()  # a Ctrl-C or SIGTERM whose exception was swallowed somewhere
         if self.watchdog is not None:
             self.watchdog.check()
 

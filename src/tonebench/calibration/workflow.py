@@ -94,6 +94,7 @@ def calibration_bench(bench: LoadedBench, thru: bool, thru_in_place: bool,
             resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
         opened = open_bench(bench.settings, resources)
         stack.callback(opened.close)
+        opened.rf_off_budget_s = bench.settings.unattended.rf_off_s
         for line in opened.switch_off_at_connect():
             (on_warning or _print_warning)(line)
         with _rf_off_on_the_way_out(opened):
