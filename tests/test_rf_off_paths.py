@@ -412,3 +412,63 @@ def test_a_run_with_failed_points_is_failed_with_exit_4_and_resume_measures_them
     _guid, status, reason, _events, points = stored_run(db_url)
     assert status == "complete" and reason == "all 17 points measured"
     assert set(points.values()) == {"measured"} and len(points) == 17
+
+
+# --- the guard itself (in this process, signals raised in the main thread) -------------------------
+
+class FakeSource:
+    """A source that raises `error` on RF off `fails` times, then reads back off."""
+
+    def __init__(self, label: str, fails: int = 0, error: BaseException | None = None):
+        self.label, self.fails, self.error, self.calls, self.on = label, fails, error, 0, True
+
+    def rf_off(self) -> None:
+        self.calls += 1
+        if self.calls <= self.fails:
+            raise self.error
+        self.on = False
+
+    force_rf_off = rf_off
+
+    def rf_is_on(self) -> bool:
+        return self.on
+
+
+def test_every_source_is_tried_even_when_one_raises_a_base_exception():
+    from tonebench.rf_guard import switch_rf_off
+
+    first = FakeSource("source1", fails=1, error=KeyboardInterrupt())
+    second = FakeSource("source2")
+    report = switch_rf_off([first, second], budget_s=5.0)
+    assert second.calls == 1 and not second.on  # tried although source1 raised
+    assert report.ok and report.confirmed == ["source1", "source2"] and first.calls == 2
+    assert report.line() == "RF off at source1, source2 (read back)"
+    stuck = FakeSource("source2", fails=10**6, error=RuntimeError("no reply"))
+    report = switch_rf_off([FakeSource("source1"), stuck], budget_s=0.3)
+    assert not report.ok and stuck.calls >= 2  # retried until the time allowed was spent
+    assert report.line() == ("RF off at source1 (read back); RF NOT CONFIRMED OFF at source2 (source2: no reply); "
+                             "switch it off at the instrument")
+
+
+def test_later_signals_cannot_interrupt_the_cleanup_and_a_shielded_one_comes_after():
+    from tonebench.rf_guard import Terminated, shielded, stop_signals
+
+    before = {sig: signal.getsignal(sig) for sig in (signal.SIGINT, signal.SIGTERM)}
+    cleaned = []
+    with stop_signals():
+        with pytest.raises(KeyboardInterrupt):
+            try:
+                signal.raise_signal(signal.SIGINT)
+            finally:
+                for _ in range(5):  # none of these may cut the cleanup short
+                    signal.raise_signal(signal.SIGINT)
+                    signal.raise_signal(signal.SIGTERM)
+                cleaned.append("RF off")
+    assert cleaned == ["RF off"]
+    with stop_signals():
+        with pytest.raises(Terminated):
+            with shielded():
+                signal.raise_signal(signal.SIGTERM)
+                cleaned.append("closing record")  # still runs: the signal waits for the block
+        assert cleaned[-1] == "closing record"
+    assert {sig: signal.getsignal(sig) for sig in before} == before  # the handlers of before are back

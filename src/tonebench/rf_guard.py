@@ -21,7 +21,7 @@ from __future__ import annotations
 import signal
 import threading
 import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 
@@ -199,13 +199,11 @@ def _off_once(source, force: bool) -> str | None:
     return why
 
 
-def switch_rf_off(sources: Sequence, *, budget_s: float = RF_OFF_BUDGET_S,
-                  stop: threading.Event | None = None,
-                  on_retry: Callable[[str, str], None] | None = None) -> RfOffReport:
+def switch_rf_off(sources: Sequence, *, budget_s: float = RF_OFF_BUDGET_S) -> RfOffReport:
     """RF off at every source, each read back; the ones not confirmed are tried again (through a
     fresh connection after the first try) with waits doubling from RF_OFF_FIRST_WAIT_S up to
-    RF_OFF_MAX_WAIT_S, until all read off or `budget_s` is spent. `stop` set ends the retrying
-    early (the process must end). Never raises; signals are deferred meanwhile."""
+    RF_OFF_MAX_WAIT_S, until all read off or `budget_s` is spent. Never raises; signals are
+    deferred meanwhile."""
     report = RfOffReport()
     with shielded():
         deadline_s = time.monotonic() + budget_s
@@ -225,16 +223,11 @@ def switch_rf_off(sources: Sequence, *, budget_s: float = RF_OFF_BUDGET_S,
                     why[source.label] = reason
                     still.append(source)
             todo = still
-            if not todo:
-                break
             left_s = deadline_s - time.monotonic()
-            if left_s <= 0 or (stop is not None and stop.is_set()):
+            if not todo or left_s <= 0:
                 break
-            if on_retry is not None:
-                for source in todo:
-                    on_retry(source.label, why[source.label])
-            # An Event wait rather than a sleep: a stop request ends it at once.
-            (stop or threading.Event()).wait(min(wait_s, left_s))
+            # The bounded backoff before trying again, as an Event wait (like Supervision._backoff).
+            threading.Event().wait(min(wait_s, left_s))
             wait_s = min(RF_OFF_MAX_WAIT_S, wait_s * 2.0)
             force = True
         order = [source.label for source in sources]
