@@ -405,6 +405,8 @@ def test_a_run_with_failed_points_is_failed_with_exit_4_and_resume_measures_them
     assert "report:" in result.output and list(tmp_path.glob("report-*.html"))  # the measured ones analysed
     listed = _cli("runs", "--db", db_url)
     assert listed.exit_code == 0 and "failed" in listed.output
+    shown = _cli("show", guid[:8], "--db", db_url)
+    assert shown.exit_code == 0 and "status:  failed (16 of 17 points measured, 1 failed" in shown.output
     healthy = tmp_path / "healthy"  # the same bench, its fault gone
     healthy.mkdir()
     again = _cli("resume", guid[:8], "--db", db_url, "--bench", write_bench(healthy))
