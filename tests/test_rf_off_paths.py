@@ -277,6 +277,18 @@ def test_sigterm_three_times_to_a_queue_worker(lab):
     assert rf_states(lab.sim) == [False, False]
 
 
+def test_sigterm_to_an_idle_worker_ends_it_with_sigterms_code(lab):
+    proc = lab.start("worker", "--bench", str(lab.bench_path), "--db", lab.db_url, "--poll-s", "60")
+    lock = lab.folder / "t.db.worker-lock"
+    wait_for(lambda: lock.exists() and lock.read_text().strip(), proc, "the worker's lock")  # it is idle now
+    send_burst(proc.pid, signal.SIGTERM, 3)
+    code, stdout, stderr = finish(proc)
+    assert code == 143, stderr
+    assert lines_of(stdout) == ["worker for bench sim-bench-1: 0 job(s) run"]
+    assert lines_of(stderr) == ["worker stopped by SIGTERM between runs"]
+    assert rf_states(lab.sim) == [False, False]
+
+
 def test_kill_9_then_the_next_command_switches_rf_off_first(lab):
     proc = lab.start("run", str(write_plan(lab.folder)), "--bench", str(lab.bench_path), "--db", lab.db_url)
     wait_for(lambda: both_on(lab.sim), proc, "RF on")
