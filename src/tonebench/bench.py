@@ -51,13 +51,17 @@ class OpenBench:
     def rf_off_all(self) -> None:
         """Switch RF off at both sources (each read back); both are tried even if one fails or
         a signal comes (deferred meanwhile), then the failure is reported."""
-        failures = []
+        failures, interrupted = [], None
         with shielded():
             for source in (self.source1, self.source2):
                 try:
                     source.rf_off()
                 except BaseException as exc:  # noqa: BLE001 - the other source must still be switched off
                     failures.append(f"{source.label}: {exc or type(exc).__name__}")
+                    if not isinstance(exc, Exception) and interrupted is None:
+                        interrupted = exc
+        if interrupted is not None:
+            raise interrupted  # a stop outside stop_signals: after both sources were tried
         if failures:
             raise InstrumentError("RF off failed: " + "; ".join(failures))
 
@@ -130,7 +134,14 @@ class _Forced:
         self.source.force_rf_off()
 
     def rf_is_on(self) -> bool:
-        return self.source.rf_is_on()
+        # Never wait on a connection the stuck thread holds: the watchdog must go on.
+        lock = self.source.instrument.io_lock
+        if not lock.acquire(timeout=0.5):
+            raise InstrumentError(f"{self.label}: its connection is busy; RF state not read")
+        try:
+            return self.source.rf_is_on()
+        finally:
+            lock.release()
 
 
 def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:
