@@ -7,6 +7,8 @@ Two pieces shared by runs, resumes, queue workers and the calibration commands:
   `finally`, the run's closing record) runs; every later signal is only counted, never raised,
   so a second or fifth Ctrl-C cannot cut that cleanup short. `shielded()` defers even the first
   signal over a block (RF off, the closing record) and raises it once the block is done.
+  `raise_if_stopping()`, called between points and calibration steps, raises the stop again if
+  its exception was swallowed on the way (a finalizer that logs and goes on), so none is lost.
 - `switch_rf_off(sources)`: RF off at every source, each confirmed by reading its state back,
   retried with a bounded backoff until each one reads off or the time allowed is spent. Every
   source is tried even when another raises (BaseException included). It never raises; the
@@ -145,11 +147,6 @@ def raise_if_stopping() -> None:
     signal is never lost. Later signals are not raised by the handler itself (see _handler)."""
     if _state.raised is not None and _state.shield_depth == 0 and _is_main_thread():
         raise exception_for(_state.raised)
-
-
-def stopping_signal() -> int | None:
-    """The signal being acted on (raised or deferred), if any."""
-    return _state.raised if _state.raised is not None else _state.pending
 
 
 # --- RF off, confirmed ---------------------------------------------------------------------------
