@@ -119,10 +119,10 @@ def both_on(sim) -> bool:
 
 
 def send_burst(pid: int, signum: int, count: int) -> float:
-    """`count` signals about 1 ms apart; returns the time from the first to the last (s)."""
+    """`count` signals about 0.5 ms apart; returns the time from the first to the last (s)."""
     first_s = time.perf_counter()
     for index in range(count):
-        while time.perf_counter() - first_s < 0.001 * index:
+        while time.perf_counter() - first_s < 0.0005 * index:
             pass  # spacing, not synchronisation: distinct deliveries within 10 ms
         os.kill(pid, signum)
     span_s = time.perf_counter() - first_s
@@ -207,6 +207,28 @@ def test_a_source_that_will_not_switch_off_is_named_stored_and_exits_1(tmp_path)
         assert status == "complete" and "RF NOT CONFIRMED OFF at source2" in reason
         assert any(kind == "rf-not-off" and "source2" in message for kind, message in events)
         assert rf_states(lab.sim) == [False, True]  # what was said is what the instrument shows
+    finally:
+        lab.sim.close()
+
+
+def test_watchdog_trip_with_a_source_stalled_beyond_rf_off_s_says_so_loudly(tmp_path):
+    """source1 stalls far longer than rf_off_s: RF off cannot be read back, and the command says
+    which source, stores it with the run and exits 1 (the issue's watchdog case)."""
+    lab = make_lab(tmp_path, fast=True, unattended={"watchdog_s": 1.0, "rf_off_s": 1.0})
+    try:
+        lab.sim.faults.add(FaultSpec(instrument="source1", kind="stall", on="SOUR:POW", nth=12, duration_s=120.0))
+        proc = lab.start("run", str(write_plan(lab.folder)), "--bench", str(lab.bench_path), "--db", lab.db_url)
+        code, stdout, stderr = finish(proc)
+        assert code == 1, stderr
+        loud = [line for line in lines_of(stderr) if line.startswith("DANGER: ")]
+        assert len(loud) == 1 and loud[0].startswith(
+            "DANGER: RF off at source2 (read back); RF NOT CONFIRMED OFF at source1 (source1: ")
+        _guid, status, reason, events, _points = stored_run(lab.db_url)
+        assert status == "aborted" and reason.startswith("watchdog: no progress for")
+        assert "RF NOT CONFIRMED OFF at source1" in reason
+        assert any(kind == "rf-not-off" and "source1" in message for kind, message in events)
+        # Still stalled, so asked of the simulator only: source1 is on, as the line said.
+        assert lab.sim.bench.source(1).effective.rf_on and not lab.sim.bench.source(2).effective.rf_on
     finally:
         lab.sim.close()
 
