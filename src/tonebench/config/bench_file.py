@@ -108,6 +108,8 @@ class UnattendedSettings(StrictModel):
     reconnects: int = Field(default=3, ge=0, le=20, description="close-and-reopen attempts after those")
     backoff_s: float = Field(default=0.2, ge=0.0, le=60.0, description="first wait, doubled each attempt")
     watchdog_s: float = Field(default=120.0, ge=0.5, le=86400.0, description="RF off after this long without progress")
+    rf_off_s: float = Field(default=30.0, ge=0.5, le=600.0,
+                            description="RF off is retried this long on the way out before a source is reported on")
     # Two reads of each tone, at the start and the end of a point, must agree within this (dB),
     # else the point is measured again (a source still settling); 0 skips the repeat reads.
     settle_tolerance_db: float = Field(default=0.1, ge=0.0, le=10.0)
