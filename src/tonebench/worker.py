@@ -93,19 +93,22 @@ def add_job(sessions: sessionmaker, plan_path: Path, bench_path: Path, priority:
 
 
 def _check_limits(plan, bench) -> None:
-    """The pre-flight limit check, from the dialects' source ranges: a plan that would be refused
-    at run time is refused now, not at 3 am."""
+    """The pre-flight checks of a run, from the dialect files (no bench connection here): power
+    limits and every instrument's frequency range. A plan that would be refused at run time is
+    refused now, not at 3 am."""
     from tonebench.instruments.dialect import load_dialect
     from tonebench.plan import expand
     from tonebench.runner import offsets_from_bench
-    from tonebench.safety import SourceRange, check_plan
+    from tonebench.safety import SourceRange, check_plan, check_plan_frequencies
 
     dialects = {role: load_dialect(entry.dialect) for role, entry in bench.settings.instruments.items()}
     ranges = tuple(
         SourceRange(role, dialects[role].limits["min_power_dbm"], dialects[role].limits["max_power_dbm"])
         for role in ("source1", "source2")
     )
-    check_plan(expand(plan.settings), offsets_from_bench(bench), bench.settings.limits, ranges,
+    points = expand(plan.settings)
+    check_plan_frequencies(points, plan.settings, bench.settings, f"plan {plan.path}")
+    check_plan(points, offsets_from_bench(bench), bench.settings.limits, ranges,
                dialects["analyzer"].limits.get("damage_dbm"), f"plan {plan.path}")
 
 
