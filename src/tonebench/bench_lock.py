@@ -29,6 +29,10 @@ from tonebench.resume import close_if_gone, process_owner
 from tonebench.store.models import Bench, Event, Run, utc_now
 
 
+class BenchBusy(InputError):
+    """Another live run holds the bench (bad input for a command; a worker's job waits instead)."""
+
+
 def _holder(session: Session, bench_name: str, except_run_id: int | None) -> Run | None:
     """A live run holding the bench (dead holders are closed as aborted on the way)."""
     query = select(Run).join(Bench, Run.bench_id == Bench.id).where(Bench.name == bench_name, Run.status == "running")
@@ -40,10 +44,10 @@ def _holder(session: Session, bench_name: str, except_run_id: int | None) -> Run
     return None
 
 
-def _refuse(bench_name: str, run: Run) -> InputError:
+def _refuse(bench_name: str, run: Run) -> BenchBusy:
     host, _, pid = (run.owner or "?:?").rpartition(":")
     beat = run.heartbeat_at or run.started_at
-    return InputError(
+    return BenchBusy(
         f"bench {bench_name!r} is in use by run {run.guid} (host {host}, pid {pid}, heartbeat "
         f"{beat:%Y-%m-%d %H:%M:%S} UTC); one run per bench at a time: wait for it to end or stop it first"
     )
@@ -55,6 +59,14 @@ def check_free(sessions: sessionmaker, bench_name: str, except_run_id: int | Non
         run = _holder(session, bench_name, except_run_id)
         if run is not None:
             raise _refuse(bench_name, run)
+
+
+def is_free(sessions: sessionmaker, bench_name: str) -> bool:
+    try:
+        check_free(sessions, bench_name)
+    except BenchBusy:
+        return False
+    return True
 
 
 def _serialise(connection, bench_name: str) -> None:

@@ -158,10 +158,10 @@ def check_frequency_needs(needs: Iterable[FreqNeed], ranges: dict[str, FreqRange
         covered = ranges.get(need.role)
         if covered is None or covered.min_freq_hz <= need.low_hz and need.high_hz <= covered.max_freq_hz:
             continue
-        band = f"{need.low_hz:.9g} Hz" if need.low_hz == need.high_hz else f"{need.low_hz:.9g}..{need.high_hz:.9g} Hz"
+        band = f"{need.low_hz:.12g} Hz" if need.low_hz == need.high_hz else f"{need.low_hz:.12g}..{need.high_hz:.12g} Hz"
         raise InputError(
-            f"{origin}: {need.what} needs {band}; {covered.label} covers {covered.min_freq_hz:.9g}.."
-            f"{covered.max_freq_hz:.9g} Hz (min_freq_hz/max_freq_hz)"
+            f"{origin}: {need.what} needs {band}; {covered.label} covers {covered.min_freq_hz:.12g}.."
+            f"{covered.max_freq_hz:.12g} Hz (min_freq_hz/max_freq_hz)"
         )
 
 
@@ -186,7 +186,7 @@ def plan_freq_needs(points: Iterable[PlannedPoint], span_hz: float, leveling: bo
                   FreqNeed("source2", f"{at} tone f2", point.f2_hz, point.f2_hz)]
         for name, freq_hz in (("f1", point.f1_hz), ("f2", point.f2_hz), ("the lower IM3 product 2f1-f2", point.lower_hz),
                               ("the upper IM3 product 2f2-f1", point.upper_hz)):
-            needs.append(read_need(f"{at} reading {name} at {freq_hz:.9g} Hz over a {span_hz:.9g} Hz span",
+            needs.append(read_need(f"{at} reading {name} at {freq_hz:.12g} Hz over a {span_hz:.12g} Hz span",
                                    freq_hz, span_hz))
         if leveling:
             needs += [FreqNeed("power_meter", f"{at} leveling tone f1", point.f1_hz, point.f1_hz),

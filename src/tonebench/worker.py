@@ -22,6 +22,7 @@ from sqlalchemy import select, update
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
+from tonebench.bench_lock import BenchBusy, is_free
 from tonebench.config.bench_file import load_bench
 from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError, TonebenchError
@@ -198,6 +199,14 @@ def finish_job(sessions: sessionmaker, job_id: int, status: str, message: str, r
         job.finished_at = utc_now()
 
 
+def requeue_job(sessions: sessionmaker, job_id: int, message: str) -> None:
+    """Put a claimed job whose run did not start back in the queue (unless cancelled meanwhile)."""
+    with sessions.begin() as session:
+        job = session.get(Job, job_id)
+        if job.status == "running":
+            job.status, job.claimed_by, job.claimed_at, job.message = "queued", None, None, message
+
+
 def job_status(sessions: sessionmaker, job_id: int) -> str:
     with sessions() as session:
         return session.scalars(select(Job.status).where(Job.id == job_id)).one()
@@ -298,6 +307,9 @@ class Worker:
                 self._run_job(sessions, job, resume_guid=run_guid)
                 done += 1
             while not self.stop.is_set():
+                if not is_free(sessions, self.bench_name):  # another run holds the bench: jobs wait
+                    self.stop.wait(self.poll_s)
+                    continue
                 job = claim_next(sessions, self.bench_name, self.owner)
                 if job is None:
                     if until_empty:
@@ -338,6 +350,16 @@ class Worker:
                 else:
                     outcome = execute_run(self._plan_file(job, Path(folder)), self.bench_path, self.db_url, report,
                                           check_cancelled, on_run_started=link_run)
+            except BenchBusy as exc:
+                if resume_guid:  # its run exists: left to `tonebench resume`, like any other failure
+                    finish_job(sessions, job.id, "failed", str(exc), resume_guid)
+                    self.on_job("failed", job, str(exc))
+                    return
+                # Taken by another run since the claim: the job waits its turn.
+                requeue_job(sessions, job.id, f"queued again: {exc}")
+                self.on_job("waiting", job, str(exc))
+                self.stop.wait(self.poll_s)
+                return
             except (KeyboardInterrupt, SystemExit, Terminated):
                 finish_job(sessions, job.id, "failed", "the worker was stopped during the run; "
                            "`tonebench resume` continues it", started[0] if started else None)

@@ -139,7 +139,7 @@ def _check_grid(bench: LoadedBench, roles: tuple[str, ...], freqs_hz: np.ndarray
     needs = []
     for role in roles:
         if role == "analyzer":
-            needs += [read_need(f"reading {f:.9g} Hz over a {span_hz:.9g} Hz span", f, span_hz) for f in (low_hz, high_hz)]
+            needs += [read_need(f"reading {f:.12g} Hz over a {span_hz:.12g} Hz span", f, span_hz) for f in (low_hz, high_hz)]
         else:
             needs.append(FreqNeed(role, f"stepping {role} over the calibration frequencies", low_hz, high_hz))
     check_frequency_needs(needs, bench_freq_ranges(bench.settings), origin)
@@ -303,10 +303,10 @@ def _check_residual_freqs(bench: LoadedBench, groups, span_hz: float, origin: st
     needs = []
     for center_hz, spacing_hz in groups:
         f1_hz, f2_hz = center_hz - spacing_hz / 2.0, center_hz + spacing_hz / 2.0
-        at = f"{center_hz:.9g} Hz / {spacing_hz:.9g} Hz"
+        at = f"{center_hz:.12g} Hz / {spacing_hz:.12g} Hz"
         needs += [FreqNeed("source1", f"{at} tone f1", f1_hz, f1_hz), FreqNeed("source2", f"{at} tone f2", f2_hz, f2_hz)]
         for product, freq_hz in (("2f1-f2", 2 * f1_hz - f2_hz), ("2f2-f1", 2 * f2_hz - f1_hz)):
-            needs.append(read_need(f"{at} reading {product} at {freq_hz:.9g} Hz over a {span_hz:.9g} Hz span",
+            needs.append(read_need(f"{at} reading {product} at {freq_hz:.12g} Hz over a {span_hz:.12g} Hz span",
                                    freq_hz, span_hz))
     check_frequency_needs(needs, bench_freq_ranges(bench.settings), origin)
 
