@@ -107,9 +107,9 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
                     f"instruments.{role}: dialect {dialect.name} is for a {dialect.role}; this role needs a {ROLE_KINDS[role]} dialect"
                 )
             opened.append(ScpiInstrument(open_resource(resources[role], dialect), dialect, role, supervision))
-        check_distinct_identities(opened)
         for inst in opened:
             check_role(inst, ROLE_KINDS[inst.label])
+        check_distinct_identities(opened)
         scpi1, scpi2, scpi_analyzer = opened[:3]
         meter = PowerMeter(opened[3]) if len(opened) > 3 else None
         if meter is not None:
