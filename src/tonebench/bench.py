@@ -98,9 +98,10 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
 
     opened: list[ScpiInstrument] = []
     roles = ["source1", "source2", "analyzer"] + [r for r in OPTIONAL_ROLES if r in settings.instruments]
-    check_distinct_resources(resources, roles)
     try:
-        for role in roles:
+        for index, role in enumerate(roles):
+            # Before opening each: an unreachable first instrument is reported as that.
+            check_distinct_resources(resources, roles[: index + 1])
             dialect = load_dialect(settings.instruments[role].dialect)
             if dialect.role != ROLE_KINDS[role]:
                 raise InputError(

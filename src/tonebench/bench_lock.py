@@ -20,6 +20,7 @@ from __future__ import annotations
 import hashlib
 from collections.abc import Iterator
 from contextlib import contextmanager
+from pathlib import Path
 
 from sqlalchemy import select, text, update
 from sqlalchemy.orm import Session, sessionmaker
@@ -59,6 +60,25 @@ def check_free(sessions: sessionmaker, bench_name: str, except_run_id: int | Non
         run = _holder(session, bench_name, except_run_id)
         if run is not None:
             raise _refuse(bench_name, run)
+
+
+def check_free_at(db_url: str, sessions: sessionmaker | None, bench_name: str) -> None:
+    """check_free before the run's database is open (bad input must not create it): a database
+    file that does not exist yet has no holder."""
+    if sessions is not None:
+        return check_free(sessions, bench_name)
+    from sqlalchemy.engine import make_url
+
+    from tonebench.store.database import open_database, session_factory
+
+    url = make_url(db_url)
+    if url.get_backend_name() == "sqlite" and (not url.database or not Path(url.database).expanduser().exists()):
+        return None
+    engine = open_database(db_url)
+    try:
+        return check_free(session_factory(engine), bench_name)
+    finally:
+        engine.dispose()
 
 
 def is_free(sessions: sessionmaker, bench_name: str) -> bool:

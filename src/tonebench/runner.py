@@ -14,6 +14,7 @@ from sqlalchemy.orm import sessionmaker
 
 from tonebench.bench import OpenBench, open_bench
 from tonebench.bench_lock import check_free as check_bench_free
+from tonebench.bench_lock import check_free_at as check_bench_free_at
 from tonebench.bench_lock import hold_bench
 from tonebench.calibration.leveling import Leveler
 from tonebench.calibration.referral import check_coverage
@@ -211,11 +212,7 @@ def execute_run(
 
         # Everything that can refuse the plan happens before the database is written and RF goes on.
         check_plan_frequencies(points, plan.settings, bench.settings, plan_origin)
-        if engine is None:
-            engine = open_database(db_url)
-            stack.callback(engine.dispose)
-            sessions = session_factory(engine)
-        check_bench_free(sessions, bench.settings.bench.name)  # before talking to its instruments
+        check_bench_free_at(db_url, sessions, bench.settings.bench.name)  # before talking to its instruments
         open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started)
         check_plan(
             points,
@@ -226,6 +223,10 @@ def execute_run(
             plan_origin,
         )
         leveler = make_leveler(bench, open_instruments, points, plan_origin)
+        if engine is None:
+            engine = open_database(db_url)
+            stack.callback(engine.dispose)
+            sessions = session_factory(engine)
 
         if chosen.view is None:
             with sessions.begin() as session:
