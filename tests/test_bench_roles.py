@@ -237,3 +237,32 @@ def test_a_killed_holder_does_not_block_the_next_run(tmp_path, db_url):
         assert "owner-gone" in kinds  # closed as aborted, with the reason, by the next run
         assert session.scalar(select(func.count()).select_from(Run)) == 2
     engine.dispose()
+
+
+def test_a_resume_is_refused_while_another_run_holds_the_bench(tmp_path, db_url):
+    """A run left by a killed process is resumable, but not while another run drives the bench."""
+    from tonebench.store.database import open_database
+
+    open_database(db_url).dispose()
+    (tmp_path / "go").write_text("")
+    killed = start_racer(tmp_path, db_url)
+    wait_until(lambda: (tmp_path / f"started-{killed.pid}").exists(), "the first run")
+    left = (tmp_path / f"started-{killed.pid}").read_text()
+    os.kill(killed.pid, signal.SIGKILL)
+    killed.wait(30)
+    holder = start_racer(tmp_path, db_url)
+    try:
+        wait_until(lambda: (tmp_path / f"started-{holder.pid}").exists(), "the holder's run")
+        guid = (tmp_path / f"started-{holder.pid}").read_text()
+        result = CliRunner().invoke(app, ["resume", left, "--db", db_url])
+        assert result.exit_code == 2, result.output
+        line = one_error_line(result)
+        assert "bench 'sim-bench-1' is in use by run" in line and guid in line and f"pid {holder.pid}" in line
+        assert dict(runs_of(db_url))[left] == "aborted"  # left as it was: not taken over
+    finally:
+        (tmp_path / "release").write_text("")
+        holder.wait(120)
+    assert holder.returncode == 0, holder.stderr.read()
+    result = CliRunner().invoke(app, ["resume", left, "--db", db_url, "--report", str(tmp_path / "r.html")])
+    assert result.exit_code == 0, result.output
+    assert dict(runs_of(db_url)) == {left: "complete", guid: "complete"}
