@@ -142,8 +142,9 @@ def wait_for(name):
         threading.Event().wait(0.005)
 
 sims = []
-def started(guid):
-    (folder / f"started-{os.getpid()}").write_text(guid)
+def started(guid):  # written whole, then renamed: the test never reads half a GUID
+    (folder / f"partial-{os.getpid()}").write_text(guid)
+    os.replace(folder / f"partial-{os.getpid()}", folder / f"started-{os.getpid()}")
 
 def hold(done, total):
     wait_for("release")
@@ -265,4 +266,4 @@ def test_a_resume_is_refused_while_another_run_holds_the_bench(tmp_path, db_url)
     assert holder.returncode == 0, holder.stderr.read()
     result = CliRunner().invoke(app, ["resume", left, "--db", db_url, "--report", str(tmp_path / "r.html")])
     assert result.exit_code == 0, result.output
-    assert dict(runs_of(db_url)) == {left: "complete", guid: "complete"}
+    assert dict(runs_of(db_url)) == {left: "complete", guid: "complete"}, result.output
