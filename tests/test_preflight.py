@@ -215,3 +215,20 @@ def test_cal_measure_output_refuses_an_analyzer_span_past_its_range(tmp_path, si
     line = one_error_line(result)
     assert "output calibration ins" in line and "reading 2481500000 Hz over a 10000 Hz span" in line
     assert rf_never_on(sim)
+
+
+def test_cal_measure_residual_refuses_a_product_read_past_the_analyzer_range(tmp_path, sim):
+    narrow = dialect_copy(tmp_path, "generic-analyzer", max_freq_hz=TOP_PRODUCT_HZ + 4.5e3)
+    bench = hardware_bench(tmp_path, sim, dialects={"analyzer": narrow})
+    db = f"sqlite:///{tmp_path / 't.db'}"
+    table = tmp_path / "loss.csv"
+    table.write_text("freq_hz,loss_db\n2.3e9,6.5\n2.6e9,6.6\n")
+    imported = CliRunner().invoke(app, ["cal", "import-table", "all", "--in1", str(table), "--in2", str(table),
+                                        "--out", str(table), "--db", db])
+    assert imported.exit_code == 0, imported.output
+    result = CliRunner().invoke(app, ["cal", "measure-residual", "all", "--bench", str(bench), "--plan",
+                                      str(write_plan(tmp_path)), "--thru-in-place", "--db", db])
+    assert result.exit_code == 2, result.output
+    line = one_error_line(result)
+    assert "system residual all" in line and "reading 2f2-f1 at 2481500000 Hz over a 10000 Hz span" in line
+    assert rf_never_on(sim)
