@@ -329,10 +329,13 @@ class Worker:
         """Run a claimed job (or resume its run, left by a worker that died) and record the end."""
         from tonebench.runner import Terminated, execute_run, resume_run
 
-        self.on_job("resume" if resume_guid else "start", job, resume_guid or "")
+        if resume_guid:
+            self.on_job("resume", job, resume_guid)
         started: list[str] = [resume_guid] if resume_guid else []
 
         def link_run(guid: str) -> None:  # the job points at its run from the first point on
+            if not started:  # said once the run holds the bench (a job that lost it goes back)
+                self.on_job("start", job, "")
             started[:] = [guid]
             with sessions.begin() as session:
                 session.get(Job, job.id).run_id = session.scalars(select(Run.id).where(Run.guid == guid)).one()
