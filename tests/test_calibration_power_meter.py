@@ -60,7 +60,8 @@ def test_power_meter_dialect_strings(dialogue_meter):
 
 def test_power_meter_unlisted_string_is_an_error(dialogue_meter):
     meter = PowerMeter(dialogue_meter(5025))
-    with pytest.raises(InstrumentError, match=r"^power_meter: -113, Undefined header$"):
+    # A command error names the operations it may be about (issue 9, item 5).
+    with pytest.raises(InstrumentError, match=r"^power_meter: the instrument refused .*set_frequency .*: -113, Undefined header$"):
         meter.read_power_dbm(2.41e9)  # "SENS:FREQ 2410000000" is not in the dialogue
 
 

@@ -147,7 +147,7 @@ def test_pause_policy_stores_the_failed_point_and_resume_measures_it(tmp_path):
     assert all(p.status == "measured" for p in points.values())
 
 
-@pytest.mark.parametrize("policy, run_status", [("abort", "aborted"), ("continue", "complete")])
+@pytest.mark.parametrize("policy, run_status", [("abort", "aborted"), ("continue", "failed")])  # failed points: never complete
 def test_abort_and_continue_policies(tmp_path, policy, run_status):
     plan = write_plan(tmp_path, PLAN_TEXT)
     bench = write_bench(tmp_path, unattended={"on_point_failure": policy, "reconnects": 1, "retries": 0,

@@ -13,6 +13,7 @@ from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.source import SignalSource
 from tonebench.instruments.supervision import Supervision
 from tonebench.instruments.transport import open_resource
+from tonebench.rf_guard import RF_OFF_BUDGET_S, RfOffReport, shielded, switch_rf_off
 from tonebench.safety import SourceRange
 
 # Which kind of dialect each bench role takes.
@@ -37,6 +38,8 @@ class OpenBench:
     _scpi: list[ScpiInstrument] = field(default_factory=list)
     # At the DUT input plane, for calibration and leveling; only when the bench file names one.
     power_meter: PowerMeter | None = None
+    last_rf_off: RfOffReport | None = None  # the last switch_rf_off, for the command's last line
+    rf_off_budget_s: float = RF_OFF_BUDGET_S  # the bench file's [unattended] rf_off_s
 
     def sources(self) -> tuple[SignalSource, SignalSource]:
         return self.source1, self.source2
@@ -46,15 +49,49 @@ class OpenBench:
         self.source2.rf_on()
 
     def rf_off_all(self) -> None:
-        """Switch RF off at both sources; try both even if one fails, then report the failure."""
-        failures = []
-        for source in (self.source1, self.source2):
-            try:
-                source.rf_off()
-            except Exception as exc:  # noqa: BLE001 - the other source must still be switched off
-                failures.append(f"{source.label}: {exc}")
+        """Switch RF off at both sources (each read back); both are tried even if one fails or
+        a signal comes (deferred meanwhile), then the failure is reported."""
+        failures, interrupted = [], None
+        with shielded():
+            for source in (self.source1, self.source2):
+                try:
+                    source.rf_off()
+                except BaseException as exc:  # noqa: BLE001 - the other source must still be switched off
+                    failures.append(f"{source.label}: {exc or type(exc).__name__}")
+                    if not isinstance(exc, Exception) and interrupted is None:
+                        interrupted = exc
+        if interrupted is not None:
+            raise interrupted  # a stop outside stop_signals: after both sources were tried
         if failures:
             raise InstrumentError("RF off failed: " + "; ".join(failures))
+
+    def switch_rf_off(self, budget_s: float | None = None) -> RfOffReport:
+        """RF off at both sources on the way out: confirmed by read-back, retried with backoff for
+        up to budget_s seconds (default rf_off_budget_s); never raises (the report names any
+        source not confirmed off)."""
+        report = switch_rf_off(self.sources(), budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
+        self.last_rf_off = report
+        return report
+
+    def switch_off_at_connect(self) -> list[str]:
+        """RF off at every source as soon as the bench is connected: a run killed (kill -9, power
+        lost) may have left one on. Returns a line per source that was found on (or unreadable)."""
+        found = []
+        for source in self.sources():
+            try:
+                was_on = source.rf_is_on()
+            except Exception as exc:  # noqa: BLE001 - unknown state: switch it off all the same
+                was_on, why = None, f": {exc}"
+            else:
+                why = ""
+            if was_on is not False:
+                state = "on" if was_on else f"in an unknown state{why}"
+                found.append(f"{source.label} was found with RF {state} (a command before this one ended "
+                             "without switching it off)")
+        report = self.switch_rf_off()
+        if not report.ok:
+            raise InstrumentError(f"connecting the bench: {report.line()}")
+        return [f"{line}; switched off (read back)" for line in found]
 
     @property
     def connections(self) -> list[ScpiInstrument]:
@@ -68,15 +105,12 @@ class OpenBench:
         if self.power_meter is not None:
             self.power_meter.prepare()
 
-    def force_rf_off_all(self) -> list[str]:
-        """RF off at both sources from another thread (the watchdog); returns one line per source."""
-        said = []
-        for source in (self.source1, self.source2):
-            try:
-                said.append(f"{source.label} RF off {source.force_rf_off()}")
-            except Exception as exc:  # noqa: BLE001 - the other source must still be switched off
-                said.append(f"{source.label} RF off FAILED: {exc}")
-        return said
+    def force_rf_off_all(self, budget_s: float | None = None) -> RfOffReport:
+        """RF off at both sources from another thread (the watchdog), while the run's thread may
+        be stuck in a call: through a second connection where the first is busy, retried with
+        backoff until read back off or budget_s (default rf_off_budget_s) is spent."""
+        return switch_rf_off([_Forced(source) for source in self.sources()],
+                             budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
 
     def close(self) -> None:
         for instrument in self._scpi:
@@ -84,6 +118,30 @@ class OpenBench:
                 instrument.close()
             except Exception:  # noqa: BLE001 - closing is best effort, nothing is measured here
                 pass
+
+
+class _Forced:
+    """A source whose RF off goes through force_rf_off (usable from another thread)."""
+
+    def __init__(self, source: SignalSource):
+        self.source = source
+        self.label = source.label
+
+    def rf_off(self) -> None:
+        self.source.force_rf_off()
+
+    def force_rf_off(self) -> None:
+        self.source.force_rf_off()
+
+    def rf_is_on(self) -> bool:
+        # Never wait on a connection the stuck thread holds: the watchdog must go on.
+        lock = self.source.instrument.io_lock
+        if not lock.acquire(timeout=0.5):
+            raise InstrumentError(f"{self.label}: its connection is busy; RF state not read")
+        try:
+            return self.source.rf_is_on()
+        finally:
+            lock.release()
 
 
 def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:

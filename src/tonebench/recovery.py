@@ -5,7 +5,8 @@ whole point: an attempt that raised an instrument error, that spans a reopened c
 instrument's epoch changed), whose sources no longer hold what was set (a reset or power cycle,
 found by reading them back), or whose tone levels were still moving (a repeat read disagrees) is
 measured again after every setting is re-applied. After `attempts` tries the point fails with the
-last reason, and the caller stores it as failed.
+last reason, and the caller stores it as failed. An impossible reading (instruments/scpi.py
+ImpossibleReading: not a number, or a level no instrument can produce) fails the point at once.
 """
 
 from __future__ import annotations
@@ -14,7 +15,12 @@ from collections.abc import Callable, Sequence
 from typing import Generic, TypeVar
 
 from tonebench.errors import InstrumentError, TonebenchError
-from tonebench.instruments.scpi import IdentityChanged, ScpiInstrument
+from tonebench.instruments.scpi import (
+    CommandRefused,
+    IdentityChanged,
+    ImpossibleReading,
+    ScpiInstrument,
+)
 from tonebench.instruments.source import SignalSource
 from tonebench.instruments.supervision import RecoveryStopped
 
@@ -32,8 +38,9 @@ class BenchFault(InstrumentError):
     its limit: a loose cable; a sensor reading out of range): the run stops."""
 
 
-# Errors that end the run rather than one point: a different instrument, a stop request, a bench fault.
-NOT_RETRIED = (IdentityChanged, RecoveryStopped, BenchFault)
+# Errors that end the run rather than one point: a different instrument, a stop request, a bench
+# fault, an operation the instrument refused as a command error (the dialect does not fit it).
+NOT_RETRIED = (IdentityChanged, RecoveryStopped, BenchFault, CommandRefused)
 
 
 class PointGuard(Generic[T]):
@@ -75,6 +82,12 @@ class PointGuard(Generic[T]):
                 reason = confirm(result) or self._state_lost() or self._reopened(epochs)
             except NOT_RETRIED:
                 raise
+            except ImpossibleReading as exc:
+                # Not measured again: a level beyond damage must not get RF once more, and a reply
+                # that is no reading is stored as a failed point (resume measures it again).
+                self.check()
+                self.log("error", "impossible-reading", f"point {point_key}: {exc}", {"point_key": point_key})
+                raise PointFailed(f"impossible reading: {exc}") from None
             except InstrumentError as exc:
                 reason = str(exc)
             self.check()  # a reading finished after the watchdog switched RF off is not kept

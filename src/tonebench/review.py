@@ -23,6 +23,7 @@ from tonebench.calibration.referral import (
     point_offsets,
     referred_values,
 )
+from tonebench.calibration.residual import check_shares
 from tonebench.calibration.sets import load_set, load_set_by_id
 from tonebench.catalog.limits import apply_verdicts
 from tonebench.errors import InputError
@@ -119,36 +120,44 @@ def sweep_data(rows: list[Point], arrays: dict[str, np.ndarray]) -> SweepData:
                      noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
 
 
-def _residual_ip3(cal: CalibrationSet | None, center_hz: float, spacing_hz: float) -> tuple[float | None, str | None]:
-    """The sources' residual intercept (dBm, DUT input plane) for one sweep, or None and why not.
+def _residual_shares(cal: CalibrationSet | None, center_hz: float, spacing_hz: float) -> tuple[dict, str | None]:
+    """The system residual the source-intermod check charges one sweep with (AnalysisSettings
+    fields), or no fields and why not. The nearest centre measured at this spacing is used.
 
-    The sources' share is what a DUT passes on with its gain; the analyzer's own share is judged
-    separately (prediction and step check). A set without the split gives the whole system's,
-    which can only overstate the sources'. The nearest centre measured at this spacing is used.
+    The sources' share is what a DUT passes on with its gain; a share the thru could not resolve
+    is charged at its bound, and the analyzer's share with the attenuation of each point
+    (calibration/residual.py check_shares). A set without the split gives the whole system's,
+    which can only overstate the sources'.
     """
     if cal is None:
-        return None, "the run has no calibration set"
+        return {}, "the run has no calibration set"
     same = [r for r in cal.residuals if math.isclose(r.spacing_hz, spacing_hz, rel_tol=1e-9)]
     if not same:
-        return None, f"calibration set {cal.name} has no system residual at {spacing_hz:.6g} Hz spacing"
+        return {}, f"calibration set {cal.name} has no system residual at {spacing_hz:.6g} Hz spacing"
     row = min(same, key=lambda r: abs(r.center_hz - center_hz))
-    value = row.source_ip3_dbm if row.source_ip3_dbm is not None else row.system_ip3_dbm
-    if value is None:
-        return None, f"calibration set {cal.name}: the residual at {row.center_hz:.6g} Hz was below its noise"
-    return float(value), None
+    extra = row.sweep_json or {}
+    shares = check_shares(row.system_ip3_dbm, row.source_ip3_dbm, row.analyzer_ip3_dbm, row.atten_db,
+                          extra.get("source_ip3_min_dbm"), extra.get("analyzer_ip3_min_dbm"),
+                          split_known=row.source_ip3_dbm is not None or row.analyzer_ip3_dbm is not None
+                          or "source_ip3_min_dbm" in extra)
+    if shares is None:
+        return {}, f"calibration set {cal.name}: the residual at {row.center_hz:.6g} Hz was below its noise"
+    return {"system_ip3_dbm": float(row.system_ip3_dbm), "source_ip3_dbm": shares.source_ip3_dbm,
+            "source_ip3_is_bound": shares.source_is_bound, "analyzer_ip3_dbm": shares.analyzer_ip3_dbm,
+            "residual_atten_db": float(shares.atten_db)}, None
 
 
 def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, spacing_hz: float) -> AnalysisSettings:
     """What the analysis knows of this run's test system: the analyzer's figures kept with the run,
     and the system residual of the calibration set the results are referred with."""
     figures = (run.metadata_json or {}).get("analyzer", {})
-    ip3_dbm, note = _residual_ip3(cal, center_hz, spacing_hz)
+    shares, note = _residual_shares(cal, center_hz, spacing_hz)
     return AnalysisSettings(
         level_accuracy_db=figures.get("level_accuracy_db", DEFAULT_LEVEL_ACCURACY_DB),
         mixer_toi_dbm=figures.get("mixer_toi_dbm"),
         max_mixer_dbm=figures.get("max_mixer_dbm"),
-        system_ip3_dbm=ip3_dbm,
         system_note=note,
+        **shares,
     )
 
 

@@ -2,11 +2,9 @@
 
 from __future__ import annotations
 
-import signal
 import sys
-import threading
-from collections.abc import Callable, Iterator
-from contextlib import ExitStack, contextmanager
+from collections.abc import Callable
+from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -35,6 +33,15 @@ from tonebench.resume import (
     take_ownership,
 )
 from tonebench.review import analyze_run, find_run, write_run_report
+from tonebench.rf_guard import (
+    SIGINT_EXIT,
+    SIGTERM_EXIT,
+    RfOffReport,
+    Terminated,
+    attach_note,
+    shielded,
+    stop_signals,
+)
 from tonebench.runlog import RunLog, log_path_for
 from tonebench.safety import check_plan, check_plan_frequencies, power_guard
 from tonebench.sequencer import ProgressCallback, RunStopped, Sequencer
@@ -45,34 +52,26 @@ from tonebench.watchdog import Watchdog, WatchdogTripped
 from tonebench.worker import JobCancelled
 
 
-class Terminated(Exception):
-    """Raised in the main thread when the process receives SIGTERM, so RF-off cleanup runs."""
-
-
-@contextmanager
-def sigterm_raises() -> Iterator[None]:
-    if threading.current_thread() is not threading.main_thread():
-        yield
-        return
-
-    def _raise(signum, frame):
-        raise Terminated("terminated by SIGTERM")
-
-    previous = signal.signal(signal.SIGTERM, _raise)
-    try:
-        yield
-    finally:
-        signal.signal(signal.SIGTERM, previous)
+# Ctrl-C and SIGTERM raise once while a run goes on; the name is kept for callers of old.
+sigterm_raises = stop_signals
 
 
 @dataclass
 class RunOutcome:
+    """How a run ended. status: complete (every point measured), failed (points failed; the
+    measured ones analysed), paused or aborted (by the failure policy or the watchdog)."""
+
     guid: str
     status: str
     db_url: str
     report_path: Path | None
     results: list
     calibration: str | None = None  # the calibration set's name
+    reason: str = ""  # the stored end reason
+    rf_off: str | None = None  # how RF went off: "RF off at source1, source2 (read back)"
+    rf_confirmed: bool = True  # False when a source could not be read back off
+    points_measured: int = 0
+    points_failed: int = 0
 
 
 def default_report_path(db_url: str, guid: str) -> Path:
@@ -213,7 +212,7 @@ def execute_run(
         # Everything that can refuse the plan happens before the database is written and RF goes on.
         check_plan_frequencies(points, plan.settings, bench.settings, plan_origin)
         check_bench_free_at(db_url, sessions, bench.settings.bench.name)  # before talking to its instruments
-        open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started)
+        open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, warn)
         check_plan(
             points,
             offsets,
@@ -285,6 +284,7 @@ def resume_run(
     on_progress: ProgressCallback | None = None,
     on_sim_started: Callable[[object], None] | None = None,
     on_run_started: Callable[[str], None] | None = None,
+    on_warning: Callable[[str], None] | None = None,
 ) -> RunOutcome:
     """Continue an interrupted run (killed, crashed, paused, aborted or failed).
 
@@ -330,7 +330,7 @@ def resume_run(
         check_plan_frequencies(remaining, plan.settings, bench.settings, plan_origin)
         check_bench_free(sessions, bench_name, except_run_id=run_id)  # before talking to its instruments
 
-        open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started)
+        open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, on_warning)
         check_same_instruments(guid, stored_ids, open_instruments)
         check_plan(remaining, offsets, bench.settings.limits, open_instruments.source_ranges,
                    open_instruments.analyzer.limits.get("damage_dbm"), plan_origin)
@@ -395,9 +395,11 @@ class EventRelay:
         self._early.clear()
 
 
-def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started) -> tuple[OpenBench, EventRelay, Supervision]:
-    """Start the simulator for a simulated bench, then open every instrument under supervision;
-    both are closed when `stack` unwinds."""
+def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started,
+                  warn: Callable[[str], None] | None = None) -> tuple[OpenBench, EventRelay, Supervision]:
+    """Start the simulator for a simulated bench, then open every instrument under supervision
+    and switch RF off at every source (an earlier command killed with RF on is said in an event
+    and a warning); both are closed when `stack` unwinds."""
     if bench.settings.simulated:
         from tonebench.sim.launch import start_sim_bench
 
@@ -411,6 +413,10 @@ def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started) -> tuple
     supervision = supervision_for(bench, relay)
     open_instruments = open_bench(bench.settings, resources, supervision)
     stack.callback(open_instruments.close)
+    open_instruments.rf_off_budget_s = bench.settings.unattended.rf_off_s
+    for line in open_instruments.switch_off_at_connect():
+        relay(InstrumentEvent(line.split(" ", 1)[0], "rf-found-on", "warning", line))
+        (warn or _print_warning)(line)
     return open_instruments, relay, supervision
 
 
@@ -452,72 +458,128 @@ def watchdog_seconds(run: Drive, sequencer: Sequencer) -> float:
 
 def drive(run: Drive, on_progress: ProgressCallback | None, on_run_started: Callable[[str], None] | None) -> RunOutcome:
     """Measure what is left of the run with supervision, the run-time power guard and the
-    watchdog; store the end truthfully; analyze and report a complete run."""
+    watchdog; store the end truthfully; analyze and report the measured points.
+
+    Ctrl-C and SIGTERM raise once (later signals cannot interrupt the cleanup); RF goes off in
+    the sequencer's `finally`, confirmed by read-back, before the run's end is stored."""
     recorder, log, bench = run.recorder, run.log, run.bench
-    take_ownership(run.sessions, recorder.run_id, resuming=run.resume_note is not None)
-    if run.resume_note is not None:
-        log.event("info", "resume", run.resume_note, {"done": len(run.done_keys),
-                                                      "remaining": len(run.points) - len(run.done_keys)})
-    run.relay.attach(log)
-    if on_run_started:
-        on_run_started(recorder.guid)
-    guard = power_guard(run.offsets, bench.settings.limits, run.instruments.analyzer.limits.get("damage_dbm"))
-    for source in run.instruments.sources():
-        source.power_guard = guard
-    heartbeat = Heartbeat(run.sessions, recorder.run_id)
+    with stop_signals():
+        take_ownership(run.sessions, recorder.run_id, resuming=run.resume_note is not None)
+        if run.resume_note is not None:
+            log.event("info", "resume", run.resume_note, {"done": len(run.done_keys),
+                                                          "remaining": len(run.points) - len(run.done_keys)})
+        run.relay.attach(log)
+        if on_run_started:
+            on_run_started(recorder.guid)
+        guard = power_guard(run.offsets, bench.settings.limits, run.instruments.analyzer.limits.get("damage_dbm"))
+        for source in run.instruments.sources():
+            source.power_guard = guard
+        sequencer = Sequencer(run.instruments, run.offsets, bench.settings.limits, run.plan.settings.analyzer,
+                              recorder, run.leveler, second_order=run.plan.settings.sweep.second_order,
+                              unattended=bench.settings.unattended, log=log)
+        watchdog = Watchdog(watchdog_seconds(run, sequencer), lambda reason: _trip(run, reason))
+        sequencer.watchdog = watchdog
+        run.supervision.on_activity = watchdog.kick
+        heartbeat = Heartbeat(run.sessions, recorder.run_id)
 
-    def trip(reason: str) -> None:
-        run.supervision.stop.set()  # no more retries, and no source turns RF on again
-        said = run.instruments.force_rf_off_all()
-        log.event("error", "watchdog", f"{reason}; {'; '.join(said)}")
+        def progress(done: int, total: int) -> None:
+            heartbeat.beat()
+            if on_progress:
+                on_progress(done, total)
 
-    sequencer = Sequencer(run.instruments, run.offsets, bench.settings.limits, run.plan.settings.analyzer, recorder,
-                          run.leveler, second_order=run.plan.settings.sweep.second_order,
-                          unattended=bench.settings.unattended, log=log)
-    watchdog = Watchdog(watchdog_seconds(run, sequencer), trip)
-    sequencer.watchdog = watchdog
-    run.supervision.on_activity = watchdog.kick
+        try:
+            with watchdog:
+                sequencer.run(run.points, progress, run.done_keys)
+        except RunStopped as stop:
+            return _stopped(run, sequencer.rf_report, stop.status, str(stop))
+        except (KeyboardInterrupt, Terminated) as exc:
+            _interrupted(run, sequencer.rf_report, exc)
+            raise
+        except Exception as exc:
+            if watchdog.tripped is not None and isinstance(exc, (WatchdogTripped, RecoveryStopped, InstrumentError)):
+                return _stopped(run, sequencer.rf_report, "aborted", watchdog.tripped)
+            _failed(run, sequencer.rf_report, exc)
+            raise
+        return _measured(run, sequencer)
 
-    def progress(done: int, total: int) -> None:
-        heartbeat.beat()
-        if on_progress:
-            on_progress(done, total)
 
-    def finish(status: str, reason: str) -> None:
-        recorder.finish(status, reason)
-        log.line("info" if status == "complete" else "error", "run-end", f"run {status}: {reason}")
+def _trip(run: Drive, reason: str) -> None:
+    """The watchdog's action, in its own thread: stop recovery, RF off by any connection, retried
+    until read back off (or the time allowed is spent)."""
+    run.supervision.stop.set()  # no more retries, and no source turns RF on again
+    report = run.instruments.force_rf_off_all()
+    run.log.event("error", "watchdog", f"{reason}; {report.line()}")
 
-    try:
-        with sigterm_raises(), watchdog:
-            sequencer.run(run.points, progress, run.done_keys)
-    except RunStopped as stop:
-        finish(stop.status, str(stop))
-        return RunOutcome(recorder.guid, stop.status, run.db_url, None, [], run.calibration)
-    except KeyboardInterrupt:
-        finish("aborted", "interrupted by Ctrl-C")
-        raise
-    except Terminated as exc:
-        finish("aborted", str(exc))
-        raise
-    except Exception as exc:
-        if watchdog.tripped is not None and isinstance(exc, (WatchdogTripped, RecoveryStopped, InstrumentError)):
-            finish("aborted", watchdog.tripped)
-            return RunOutcome(recorder.guid, "aborted", run.db_url, None, [], run.calibration)
-        if isinstance(exc, LimitError):
-            log.event("error", "limit-refused", str(exc))
-            finish("aborted", f"refused at run time: {exc}")
-        elif isinstance(exc, JobCancelled):
-            finish("aborted", str(exc))
-        else:
-            finish("failed", f"{type(exc).__name__}: {exc}")
-        raise
-    failed = sequencer.failed_keys
-    total = len(run.points)
-    if failed:
-        finish("complete", f"{total - len(failed)} of {total} points measured, {len(failed)} failed "
-                           "(reasons stored with the points; `tonebench resume` measures them again)")
+
+def _rf_said(report: RfOffReport | None) -> RfOffReport:
+    """The sequencer's RF-off report; a run that never got there has one saying so."""
+    if report is not None:
+        return report
+    return RfOffReport(unconfirmed={"source1": "RF off not attempted", "source2": "RF off not attempted"})
+
+
+def _finish(run: Drive, status: str, reason: str, report: RfOffReport) -> str:
+    """Store the run's end (shielded from signals); a source not confirmed off is part of it."""
+    if not report.ok:
+        reason = f"{reason}; {report.line()}"
+    with shielded():
+        run.recorder.finish(status, reason)
+        run.log.line("info" if status == "complete" else "error", "run-end", f"run {status}: {reason}")
+    return reason
+
+
+def _stopped(run: Drive, report: RfOffReport | None, status: str, reason: str) -> RunOutcome:
+    """Paused or aborted by the failure policy or the watchdog: RF off, the reason stored."""
+    report = _rf_said(report)
+    reason = _finish(run, status, reason, report)
+    return RunOutcome(run.recorder.guid, status, run.db_url, None, [], run.calibration, reason=reason,
+                      rf_off=report.line(), rf_confirmed=report.ok)
+
+
+def _interrupted(run: Drive, report: RfOffReport | None, exc: BaseException) -> None:
+    """Ctrl-C or SIGTERM: the run stored as aborted, and the one line the command line prints."""
+    what = "terminated by SIGTERM" if isinstance(exc, Terminated) else "interrupted by Ctrl-C"
+    report = _rf_said(report)
+    _finish(run, "aborted", what, report)
+    short = run.recorder.guid[:8]
+    code = (SIGTERM_EXIT if isinstance(exc, Terminated) else SIGINT_EXIT) if report.ok else 1
+    attach_note(exc, f"{what}: {report.line()}; run {short} stored as aborted; `tonebench resume {short}` "
+                     "continues it", code)
+
+
+def _failed(run: Drive, report: RfOffReport | None, exc: Exception) -> None:
+    """An error ended the run: stored as aborted (refused at run time, cancelled) or failed."""
+    report = _rf_said(report)
+    if isinstance(exc, LimitError):
+        run.log.event("error", "limit-refused", str(exc))
+        _finish(run, "aborted", f"refused at run time: {exc}", report)
+    elif isinstance(exc, JobCancelled):
+        _finish(run, "aborted", str(exc), report)
     else:
-        finish("complete", f"all {total} points measured")
-    results = analyze_run(run.sessions, recorder.guid)
-    written = write_run_report(run.sessions, recorder.guid, run.report_path or default_report_path(run.db_url, recorder.guid))
-    return RunOutcome(recorder.guid, "complete", run.db_url, written, results, run.calibration)
+        _finish(run, "failed", f"{type(exc).__name__}: {exc}", report)
+    if not report.ok:
+        attach_note(exc, f"error: {exc}; {report.line()}", 1)
+
+
+def _measured(run: Drive, sequencer: Sequencer) -> RunOutcome:
+    """Every point was tried: 'complete' only when every one was measured; 'failed' otherwise,
+    with the measured ones (if any) analysed and reported."""
+    report = _rf_said(sequencer.rf_report)
+    total, failed = len(run.points), len(sequencer.failed_keys)
+    measured = total - failed
+    again = "reasons stored with the points; `tonebench resume` measures them again"
+    if failed == 0:
+        status, reason = "complete", f"all {total} points measured"
+    elif measured == 0:
+        status, reason = "failed", f"no point measured: all {total} failed ({again})"
+    else:
+        status, reason = "failed", f"{measured} of {total} points measured, {failed} failed ({again})"
+    reason = _finish(run, status, reason, report)
+    outcome = RunOutcome(run.recorder.guid, status, run.db_url, None, [], run.calibration, reason=reason,
+                         rf_off=report.line(), rf_confirmed=report.ok, points_measured=measured,
+                         points_failed=failed)
+    if measured:
+        outcome.results = analyze_run(run.sessions, run.recorder.guid)
+        outcome.report_path = write_run_report(run.sessions, run.recorder.guid,
+                                               run.report_path or default_report_path(run.db_url, run.recorder.guid))
+    return outcome

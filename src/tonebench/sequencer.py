@@ -29,6 +29,7 @@ from tonebench.calibration.leveling import IMBALANCE_LIMIT_DB, Leveler, LevelRes
 from tonebench.calibration.referral import point_offsets, referred_values
 from tonebench.config.bench_file import BenchLimits
 from tonebench.config.plan_file import AnalyzerSettings
+from tonebench.drift import DriftTracker
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.offsets import LossTable
@@ -36,6 +37,7 @@ from tonebench.config.bench_file import UnattendedSettings
 from tonebench.plan import PlannedPoint
 from tonebench.recovery import BenchFault, PointFailed, PointGuard, settle_check
 from tonebench.resume import store_point
+from tonebench.rf_guard import RfOffReport, raise_if_stopping, shielded
 from tonebench.safety import check_source_power, predict_levels
 from tonebench.store.records import RunRecorder
 from tonebench.watchdog import Watchdog
@@ -136,7 +138,9 @@ class Sequencer:
         # Events go to the run log (database and text file) when there is one.
         self.log = log if log is not None else recorder
         self.watchdog = watchdog
+        self.drift = DriftTracker(self.unattended.drift_tolerance_db, self.log)
         self.failed_keys: list[str] = []
+        self.rf_report: RfOffReport | None = None  # how RF went off at the end of run()
         self._rf_said = False
         self._top_dbm: dict[tuple, float] = {}
         # sweep key -> (f1 dBm, f2 dBm, tone_dbm) of its last two accepted points (the settle check)
@@ -190,16 +194,36 @@ class Sequencer:
                     history[:] = [*history[-1:], (readings.f1_dbm, readings.f2_dbm, point.tone_dbm)]
                     row = self._row(point, readings, time.monotonic() - started_s, setup)
                     row.update(self._extra_columns(point, measured.choice, measured.step, measured.second, row))
+                    if drift := self.drift.observe(point, readings.f1_dbm, readings.f2_dbm):
+                        row["extra_json"] = {**row["extra_json"], "source_drift": drift}
                     store_point(self.recorder.sessions, self.recorder.run_id, row)
                 done += 1
                 self._kick()
                 if on_progress:
                     on_progress(done, len(points))
         finally:
-            self._rf = [False, False]
-            self.bench.rf_off_all()
-            if self._rf_said:
-                self.log.event("info", "rf-off", "RF off at both sources (read back)")
+            with shielded():  # a signal now must not cut the RF off short; it is raised after
+                self._rf = [False, False]
+                self._stop_recovery()
+                self.rf_report = self.bench.switch_rf_off()
+                self._say_rf_off(self.rf_report)
+
+    def _stop_recovery(self) -> None:
+        """No more retries, and no restore turns RF on again: the run is ending."""
+        for connection in self.bench.connections:
+            if connection.supervision is not None:
+                connection.supervision.stop.set()
+
+    def _say_rf_off(self, report: RfOffReport) -> None:
+        if not (self._rf_said or not report.ok):
+            return
+        try:
+            if report.ok:
+                self.log.event("info", "rf-off", report.line())
+            else:
+                self.log.event("error", "rf-not-off", report.line(), {"sources": report.unconfirmed})
+        except Exception:  # noqa: BLE001 - the run's end is still recorded by the runner
+            pass
 
     def _measure(self, point: PlannedPoint) -> Measured:
         """One attempt at a point: tones set (leveled), RF on, every read it needs."""
@@ -279,6 +303,7 @@ class Sequencer:
             self.watchdog.kick()
 
     def _check_stop(self) -> None:
+        raise_if_stopping()  # a Ctrl-C or SIGTERM whose exception was swallowed somewhere
         if self.watchdog is not None:
             self.watchdog.check()
 

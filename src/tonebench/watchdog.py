@@ -3,7 +3,9 @@
 The run's thread kicks it at every step of a point. If no kick comes for `timeout_s` seconds
 (an instrument that hangs beyond its timeouts, a database that blocks), a thread of its own calls
 `on_trip` once, which switches RF off through a path that does not need the stuck thread
-(SignalSource.force_rf_off), and the run's thread stops at its next check (WatchdogTripped).
+(SignalSource.force_rf_off, retried until read back off: tonebench.rf_guard), and the run's
+thread stops at its next check (WatchdogTripped). stop() waits for on_trip to finish, so the
+run's end is stored only once the RF-off attempts are over.
 """
 
 from __future__ import annotations

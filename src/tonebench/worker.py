@@ -373,11 +373,13 @@ class Worker:
                 finish_job(sessions, job.id, status, detail, started[0] if started else None)
                 self.on_job(status, job, detail)
                 return
-        if outcome.status == "complete":
+        if outcome.status == "complete" and outcome.rf_confirmed:
             finish_job(sessions, job.id, "done", f"run {outcome.guid} complete", outcome.guid)
             self.on_job("done", job, outcome.guid)
         else:
-            detail = f"run {outcome.guid} {outcome.status}; see `tonebench show`, continue with `tonebench resume`"
+            # 'failed' (points failed), 'paused' or 'aborted', or RF not read back off: never 'done'.
+            detail = (f"run {outcome.guid} {outcome.status}: {outcome.reason}; see `tonebench show`, "
+                      "continue with `tonebench resume`")
             finish_job(sessions, job.id, "failed", detail, outcome.guid)
             self.on_job("failed", job, detail)
 

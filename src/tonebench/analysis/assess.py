@@ -13,12 +13,13 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from tonebench.analysis import flags as fl
-from tonebench.analysis.attenuation import analyzer_im3_dbm, implied_mixer_toi_dbm
+from tonebench.analysis.attenuation import analyzer_im3_dbm, implied_mixer_toi_dbm, residual_ip3_at_atten_dbm
 from tonebench.analysis.fit import (
     GAIN_TOLERANCE_DB,
     IM3_OVER_NOISE_MIN_DB,
     SweepResult,
     fit_sweep,
+    high_order_top,
     noise_corrected_dbm,
 )
 from tonebench.analysis.flags import Flag
@@ -33,6 +34,7 @@ from tonebench.errors import InputError
 # for a swept analyzer, from memory). Configurable per bench.
 DEFAULT_LEVEL_ACCURACY_DB = 0.2
 ANALYZER_MADE = "with the analyzer's own IM3 within 20 dB"
+HIGH_ORDER = "biased by higher-order terms"
 
 _REQUIRED = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
              "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm", "overload")
@@ -93,8 +95,13 @@ class AnalysisSettings:
     """What the analysis knows about the test system (dB, dBm); None where unknown.
 
     mixer_toi_dbm, max_mixer_dbm: the analyzer's (dialect [performance]/[limits] or bench file);
-    system_ip3_dbm: the system's residual intercept at the DUT input plane (calibration set);
+    system_ip3_dbm: the system's residual intercept at the DUT input plane (calibration set),
+    charged whole to the sources at every attenuation when residual_atten_db is None;
     system_note: why there is none, said when the source-intermod check is skipped.
+    With residual_atten_db given, the residual is charged per point at the point's attenuation:
+    source_ip3_dbm (the sources' share; a bound, the share at most this large, when
+    source_ip3_is_bound) plus analyzer_ip3_dbm (the analyzer's share at residual_atten_db, falling
+    with more attenuation); a share None is absent.
     """
 
     level_accuracy_db: float = DEFAULT_LEVEL_ACCURACY_DB
@@ -102,6 +109,10 @@ class AnalysisSettings:
     max_mixer_dbm: float | None = None
     system_ip3_dbm: float | None = None
     system_note: str | None = None
+    source_ip3_dbm: float | None = None
+    source_ip3_is_bound: bool = False
+    analyzer_ip3_dbm: float | None = None
+    residual_atten_db: float | None = None
 
 
 @dataclass(frozen=True)
@@ -158,6 +169,66 @@ def compression_shift_db(point_iip3_dbm, compression_db, valid) -> float:
     values = np.asarray(point_iip3_dbm, dtype=float)
     shift = abs(float(np.mean(values[idx]) - np.mean(values[keep])))
     return max(shift, mean_c)
+
+
+def _residual_words(settings: AnalysisSettings, ip3_dbm: float, atten_db: float) -> str:
+    if settings.residual_atten_db is None:
+        return f"intercept {ip3_dbm:.1f} dBm at the DUT input"
+    source = ("none resolved" if settings.source_ip3_dbm is None else
+              f"{'at least ' if settings.source_ip3_is_bound else ''}{settings.source_ip3_dbm:.1f} dBm")
+    where = "" if not math.isfinite(atten_db) else f" at {atten_db:g} dB attenuation"
+    return f"intercept {ip3_dbm:.1f} dBm at the DUT input{where}; sources' share {source}"
+
+
+def source_check(a, settings: AnalysisSettings, lower_c, upper_c, gain_db, add,
+                 notes) -> tuple[np.ndarray, np.ndarray]:
+    """The sources' residual IM3 carried through the DUT gain, per point: (IIP3 error, flagged).
+
+    The residual is the one that applies at the attenuation each point was measured with
+    (AnalysisSettings): a share the thru could not resolve is charged at its bound.
+    """
+    n = lower_c.size
+    if settings.system_ip3_dbm is None:
+        notes.append("source intermod not checked: " + (settings.system_note or "no system residual known"))
+        return np.zeros(n), np.zeros(n, bool)
+    if settings.residual_atten_db is None:
+        ip3 = np.full(n, float(settings.system_ip3_dbm))
+    else:
+        ip3 = residual_ip3_at_atten_dbm(settings.source_ip3_dbm, settings.analyzer_ip3_dbm,
+                                        settings.residual_atten_db, a["atten_db"])
+    residual = {"lower": 2.0 * a["pin1_dbm"] + a["pin2_dbm"] - 2.0 * ip3 + gain_db,
+                "upper": a["pin1_dbm"] + 2.0 * a["pin2_dbm"] - 2.0 * ip3 + gain_db}
+    ratio = {"lower": lower_c - residual["lower"], "upper": upper_c - residual["upper"]}
+    with np.errstate(invalid="ignore"):
+        source_err = _mean_pair(intercept_error_db(ratio["lower"]), intercept_error_db(ratio["upper"]))
+        source_flag = np.fmin(ratio["lower"], ratio["upper"]) < fl.SYSTEM_MARGIN_DB
+    add(source_flag, lambda i: Flag(
+        fl.SOURCE_INTERMOD_LIMITED, None,
+        f"IM3 only {min(ratio['lower'][i], ratio['upper'][i]):.1f} dB over the system's residual "
+        f"({_residual_words(settings, ip3[i], a['atten_db'][i])}) carried through the {gain_db[i]:.1f} dB gain; "
+        f"needs {fl.SYSTEM_MARGIN_DB:g} dB",
+        float(source_err[i]) if np.isfinite(source_err[i]) else None))
+    return source_err, source_flag
+
+
+def fit_region(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray],
+               noise_err) -> tuple[SweepResult, np.ndarray]:
+    """The fit over the valid region, its top trimmed where higher-order terms bias the IM3.
+
+    Returns the fit and the points left out for that (fit.high_order_top; each point's scatter is
+    taken as its noise error).
+    """
+    def fit(extra: dict[str, np.ndarray]) -> SweepResult:
+        return fit_sweep(a["tone_dbm"], a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
+                         a["im3_lower_dbm"], a["im3_upper_dbm"], a["noise_lower_dbm"], a["noise_upper_dbm"],
+                         over, exclude={**exclude, **extra})
+
+    first = fit({})
+    pin_mean = _mean_pair(a["pin1_dbm"], a["pin2_dbm"])
+    trimmed = high_order_top(pin_mean, first.point_iip3_dbm, noise_err, first.valid_mask)
+    if first.iip3_dbm is None or not trimmed.any():
+        return first, np.zeros_like(trimmed)
+    return fit({HIGH_ORDER: trimmed}), trimmed
 
 
 def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings()) -> SweepAssessment:
@@ -238,7 +309,8 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
         if made:
             detail = "; ".join(
                 f"IM3 {s} moved {judged[s].change_db[i]:+.2f} dB with {a['step_atten_db'][i]:g} dB more "
-                f"attenuation (a real product stays within {fl.STEP_CHANGE_LIMIT_DB:g} dB)" for s in made)
+                f"attenuation (a real product stays within {fl.STEP_CHANGE_LIMIT_DB:g} dB; beyond "
+                f"{judged[s].limit_db[i]:.2f} dB noise cannot explain it)" for s in made)
         else:
             ratio = float(np.nanmin([analyzer_ratio["lower"][i], analyzer_ratio["upper"][i]]))
             detail = (f"the analyzer's own IM3 is predicted {ratio:.1f} dB under the reading "
@@ -256,24 +328,7 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
         notes.append("no conclusive attenuation-step check in this sweep")
 
     # --- the sources' residual IM3 carried through the DUT gain ---------------------------------
-    source_err = np.zeros(n)
-    source_flag = np.zeros(n, bool)
-    if settings.system_ip3_dbm is None:
-        notes.append("source intermod not checked: " + (settings.system_note or "no system residual known"))
-    else:
-        ip3 = settings.system_ip3_dbm
-        residual = {"lower": 2.0 * a["pin1_dbm"] + a["pin2_dbm"] - 2.0 * ip3 + pts.gain_db,
-                    "upper": a["pin1_dbm"] + 2.0 * a["pin2_dbm"] - 2.0 * ip3 + pts.gain_db}
-        ratio = {"lower": lower_c - residual["lower"], "upper": upper_c - residual["upper"]}
-        source_err = _mean_pair(intercept_error_db(ratio["lower"]), intercept_error_db(ratio["upper"]))
-        with np.errstate(invalid="ignore"):
-            source_flag = np.fmin(ratio["lower"], ratio["upper"]) < fl.SYSTEM_MARGIN_DB
-        add(source_flag, lambda i: Flag(
-            fl.SOURCE_INTERMOD_LIMITED, None,
-            f"IM3 only {min(ratio['lower'][i], ratio['upper'][i]):.1f} dB over the system's residual "
-            f"(intercept {ip3:.1f} dBm at the DUT input) carried through the {pts.gain_db[i]:.1f} dB gain; "
-            f"needs {fl.SYSTEM_MARGIN_DB:g} dB",
-            float(source_err[i]) if np.isfinite(source_err[i]) else None))
+    source_err, source_flag = source_check(a, settings, lower_c, upper_c, pts.gain_db, add, notes)
 
     # --- tone imbalance -------------------------------------------------------------------------
     imbalance = np.abs(a["pin1_dbm"] - a["pin2_dbm"])
@@ -286,9 +341,11 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
         float(imbalance[i] / 4.0)))
 
     # --- the fit ---------------------------------------------------------------------------------
-    fit = fit_sweep(a["tone_dbm"], a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
-                    a["im3_lower_dbm"], a["im3_upper_dbm"], a["noise_lower_dbm"], a["noise_upper_dbm"],
-                    over, exclude={ANALYZER_MADE: analyzer_flag})
+    fit, high_order = fit_region(a, over, {ANALYZER_MADE: analyzer_flag}, noise_err)
+    add(high_order, lambda i: Flag(
+        fl.SLOPE, None,
+        f"intercept {fit.point_iip3_dbm[i] - fit.iip3_dbm:+.2f} dB off the fitted region's: the local IM3 slope "
+        "departs from 3 (higher-order terms); left out of the fit", None))
     gss = fit.gain_db
     compression = np.zeros(n)
     if gss is not None:
@@ -370,7 +427,7 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
         result_flags.append(Flag(
             fl.SOURCE_INTERMOD_LIMITED, None,
             f"{count(source_flag & scope)} within {fl.SYSTEM_MARGIN_DB:g} dB of the system's residual IM3 "
-            f"(intercept {settings.system_ip3_dbm:.1f} dBm at the DUT input); a better combiner or isolator helps",
+            f"({_residual_words(settings, settings.system_ip3_dbm, settings.residual_atten_db or math.nan)}); a better combiner or isolator helps",
             err if err is None or math.isfinite(err) else None))
     if (unbalanced & scope).any():
         result_flags.append(Flag(fl.TONE_IMBALANCE, None,

@@ -44,6 +44,25 @@ def implied_mixer_toi_dbm(tone1_dbm, tone2_dbm, atten_db, analyzer_im3_lower_dbm
     return (2.0 * p1 + p2 - np.asarray(analyzer_im3_lower_dbm, dtype=float)) / 2.0 - np.asarray(atten_db, dtype=float)
 
 
+def residual_ip3_at_atten_dbm(source_ip3_dbm, analyzer_ip3_dbm, base_atten_db, atten_db) -> np.ndarray:
+    """The test system's residual intercept (dBm, DUT input plane) at each attenuation atten_db.
+
+    Its two shares add in phase (the worst case, as calibration/residual.py splits them): the
+    sources' k_src = 10^(-IP3src/10) stays, the analyzer's k_an (measured at base_atten_db) scales
+    by 10^(-(A - A0)/10), its input intercept rising dB for dB with attenuation. A share given as
+    None is taken as absent; an unknown attenuation (NaN) as the base one.
+    """
+    atten = np.asarray(atten_db, dtype=float)
+    atten = np.where(np.isfinite(atten), atten, base_atten_db)
+    k = np.zeros(atten.shape)
+    if source_ip3_dbm is not None:
+        k = k + 10.0 ** (-source_ip3_dbm / 10.0)
+    if analyzer_ip3_dbm is not None:
+        k = k + 10.0 ** (-(analyzer_ip3_dbm + atten - base_atten_db) / 10.0)
+    with np.errstate(divide="ignore"):
+        return -10.0 * np.log10(k)
+
+
 @dataclass(frozen=True)
 class AttenChoice:
     """The attenuation chosen for one point and what the analyzer is predicted to add there (dBm)."""

@@ -9,7 +9,8 @@
 - System residual: the thru in place, both tones stepped in power, the IM3 products read and
   referred back to the DUT input plane, at the plan's attenuation and 10 dB away from it.
 
-Every procedure leaves RF off however it ends, and waits on *OPC? (inside the role drivers).
+Every procedure leaves RF off however it ends (read back, retried), waits on *OPC? (inside the role
+drivers), and acts on a Ctrl-C or SIGTERM between steps even if its exception was swallowed.
 """
 
 from __future__ import annotations
@@ -23,6 +24,7 @@ from tonebench.bench import OpenBench
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.offsets import LossTable
+from tonebench.rf_guard import raise_if_stopping
 from tonebench.safety import check_source_power
 
 # An output-path reading must clear its noise marker by this much to be a loss, not noise.
@@ -67,6 +69,7 @@ def measure_input_paths(bench: OpenBench, freqs_hz: Sequence[float], source_dbm:
             source = bench.sources()[index - 1]
             check_source_power(bench.source_ranges[index - 1], source_dbm, f"input calibration of {path}")
             for i, freq_hz in enumerate(freqs_hz):
+                raise_if_stopping()
                 source.set_tone(float(freq_hz), source_dbm)
                 if i == 0:
                     source.rf_on()
@@ -75,7 +78,7 @@ def measure_input_paths(bench: OpenBench, freqs_hz: Sequence[float], source_dbm:
                 losses[path].append(source_dbm - reading_dbm)
             source.rf_off()
     finally:
-        bench.rf_off_all()
+        bench.switch_rf_off()  # read back, retried; never raises over the error in flight
     return InputPaths(np.asarray(freqs_hz, dtype=float), np.array(losses["in1"]), np.array(losses["in2"]), readings)
 
 
@@ -90,6 +93,7 @@ def measure_output_path(bench: OpenBench, in1: LossTable, freqs_hz: Sequence[flo
         analyzer.apply(setup)
         check_source_power(bench.source_ranges[0], source_dbm, "output calibration")
         for i, freq_hz in enumerate(freqs_hz):
+            raise_if_stopping()
             freq_hz = float(freq_hz)
             plane_dbm = source_dbm - in1.loss_db(freq_hz)
             bench.source1.set_tone(freq_hz, source_dbm)
@@ -109,7 +113,7 @@ def measure_output_path(bench: OpenBench, in1: LossTable, freqs_hz: Sequence[flo
                 )
             losses.append(plane_dbm - tone_dbm)
     finally:
-        bench.rf_off_all()
+        bench.switch_rf_off()  # read back, retried; never raises over the error in flight
     return np.array(losses)
 
 
@@ -150,6 +154,7 @@ def measure_residual_sweeps(bench: OpenBench, tables: dict[str, LossTable], cent
             analyzer.apply(replace(setup, atten_db=atten_db))
             columns: dict[str, list] = {k: [] for k in ("p1", "p2", "lower", "upper", "noise_lower", "noise_upper", "overload")}
             for level_dbm in tone_levels_dbm:
+                raise_if_stopping()
                 settings = (level_dbm + in1_db, level_dbm + in2_db)
                 for source, source_range, setting_dbm in zip(bench.sources(), bench.source_ranges, settings):
                     check_source_power(source_range, setting_dbm, f"system residual at {level_dbm:.2f} dBm")
@@ -172,5 +177,5 @@ def measure_residual_sweeps(bench: OpenBench, tables: dict[str, LossTable], cent
                 np.array(columns["overload"], dtype=bool),
             ))
     finally:
-        bench.rf_off_all()
+        bench.switch_rf_off()  # read back, retried; never raises over the error in flight
     return sweeps

@@ -122,3 +122,39 @@ def split_shares(base: InterceptEstimate, stepped: InterceptEstimate, step_db: f
         source_ip3_min_dbm=None if source is not None else bound,
         analyzer_ip3_min_dbm=None if analyzer is not None else bound,
     )
+
+
+@dataclass(frozen=True)
+class CheckShares:
+    """What the source-intermod check charges a DUT measurement with, from a stored residual.
+
+    source_ip3_dbm: the sources' share (its intercept, dBm at the DUT input plane), or a bound on it
+    (source_is_bound: the share is at most this large, its intercept at least this high);
+    analyzer_ip3_dbm: the analyzer's share at atten_db, which rises dB for dB with attenuation
+    (analysis.attenuation.residual_ip3_at_atten_dbm carries it to each point's attenuation).
+    """
+
+    source_ip3_dbm: float | None
+    source_is_bound: bool
+    analyzer_ip3_dbm: float | None
+    atten_db: float
+
+
+def check_shares(system_ip3_dbm: float | None, source_ip3_dbm: float | None, analyzer_ip3_dbm: float | None,
+                 atten_db: float, source_ip3_min_dbm: float | None = None,
+                 analyzer_ip3_min_dbm: float | None = None, split_known: bool = True) -> CheckShares | None:
+    """The shares to charge, or None when the residual was not readable at all.
+
+    A share the thru run could not resolve is charged at its bound, never as the whole residual:
+    when the analyzer's own IM3 dominated the thru, the whole is the analyzer's at atten_db and
+    falls with more attenuation. A set without the split (split_known False) charges the whole to
+    the sources, which can only overstate them.
+    """
+    if system_ip3_dbm is None:
+        return None
+    if not split_known:
+        return CheckShares(system_ip3_dbm, False, None, atten_db)
+    analyzer = analyzer_ip3_dbm if analyzer_ip3_dbm is not None else analyzer_ip3_min_dbm
+    if source_ip3_dbm is not None:
+        return CheckShares(source_ip3_dbm, False, analyzer, atten_db)
+    return CheckShares(source_ip3_min_dbm, source_ip3_min_dbm is not None, analyzer, atten_db)

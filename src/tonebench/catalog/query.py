@@ -12,15 +12,13 @@ import math
 from dataclasses import dataclass, fields
 
 import sqlalchemy as sa
-from sqlalchemy.orm import Session, aliased
+from sqlalchemy.orm import Session
 
 from tonebench.errors import InputError
 from tonebench.store.models import (
     FLAGS,
     VERDICTS,
     Device,
-    Point,
-    PointFlag,
     Result,
     ResultFlag,
     Run,
@@ -33,8 +31,10 @@ _CHUNK = 500  # ids per IN list when fetching flags (well under SQLite's bound-p
 class ResultFilter:
     """Which results to return. Ranges are inclusive, except `until` (runs started before it).
 
-    flags: results carrying any of these flags, on the result itself or on one of its points.
-    flagged: True keeps only results with some flag, False only results with none.
+    flags: results carrying any of these flags on the result itself.
+    flagged: True keeps only results with some result flag, False only results with none.
+    A result flag means the test system may have limited the fitted region or the intercept;
+    the exclusion reasons of single points (point flags) do not make a result flagged.
     A bias range leaves out results measured without a bias.
     """
 
@@ -142,24 +142,12 @@ _COLUMNS = (
 
 
 def _flagged_result_ids(names: tuple[str, ...]) -> sa.Select:
-    """Ids of results with a flag (any, or one of names) on the result or on one of its points.
-
-    Uncorrelated on purpose: the database builds this set once, starting from the flag tables
-    (flags are few), instead of probing every candidate result's points; a correlated EXISTS
-    was several times slower on PostgreSQL at 2 million points.
-    """
+    """Ids of results with a result flag (any, or one of names). Point flags are exclusion
+    reasons of single points and do not count (see ResultFilter)."""
     own = sa.select(ResultFlag.result_id)
-    grouped = aliased(Result)
-    # "+ 0.0" leaves the values alone but keeps SQLite (without statistics) from looking results up
-    # by the (center, spacing) index, which matches thousands of rows, instead of by run.
-    match = sa.and_(Point.run_id == grouped.run_id, Point.center_hz == grouped.center_hz + 0.0,
-                    Point.spacing_hz == grouped.spacing_hz + 0.0, Point.bias_v.is_not_distinct_from(grouped.bias_v))
-    of_points = (sa.select(grouped.id).select_from(PointFlag).join(Point, Point.id == PointFlag.point_id)
-                 .join(grouped, match))
     if names:
         own = own.where(ResultFlag.flag.in_(names))
-        of_points = of_points.where(PointFlag.flag.in_(names))
-    return sa.union(own, of_points)
+    return own
 
 
 def has_any_tag(dialect: str, tags: tuple[str, ...]) -> sa.ColumnElement[bool]:
@@ -228,25 +216,11 @@ def count_results(session: Session, flt: ResultFilter) -> int:
 
 
 def result_flags(session: Session, result_ids: list[int]) -> dict[int, set[str]]:
-    """Flag names per result id: the result's own and those of its group's points."""
+    """Flag names per result id: the result's own flags (not its points')."""
     found: dict[int, set[str]] = {}
     for start in range(0, len(result_ids), _CHUNK):
         chunk = result_ids[start:start + _CHUNK]
         for result_id, flag in session.execute(
                 sa.select(ResultFlag.result_id, ResultFlag.flag).where(ResultFlag.result_id.in_(chunk))):
             found.setdefault(result_id, set()).add(flag)
-        # Point flags of the chunk's runs, matched to results here: a join on the group columns
-        # misleads PostgreSQL's row estimates into scanning the flag table once per point.
-        groups = {}
-        for result_id, run_id, center_hz, spacing_hz, bias_v in session.execute(
-                sa.select(Result.id, Result.run_id, Result.center_hz, Result.spacing_hz, Result.bias_v)
-                .where(Result.id.in_(chunk))):
-            groups[(run_id, center_hz, spacing_hz, bias_v)] = result_id
-        run_ids = sorted({key[0] for key in groups})
-        for *key, flag in session.execute(
-                sa.select(Point.run_id, Point.center_hz, Point.spacing_hz, Point.bias_v, PointFlag.flag)
-                .join(PointFlag, PointFlag.point_id == Point.id).where(Point.run_id.in_(run_ids))):
-            result_id = groups.get(tuple(key))
-            if result_id is not None:
-                found.setdefault(result_id, set()).add(flag)
     return found

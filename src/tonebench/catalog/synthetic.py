@@ -251,10 +251,7 @@ def _fill_batch(connection, rng, summary, layout, bench_id, plan_id, first, coun
         ids = {(run_id, key): pid for pid, run_id, key in found if (run_id, key) in wanted}
         connection.execute(sa.insert(PointFlag), [_flag_row(rng, {"point_id": ids[(r, k)]}, flag)
                                                   for r, k, flag, *_ in point_flag_keys])
-        by_group = {(t.run_guid, t.group_key): t for t in truths}
-        for *_, flag, guid, group_key in point_flag_keys:
-            if keep_truth:
-                by_group[(guid, group_key)].flags.add(flag)
+        # Point flags are exclusion reasons: they do not make a result flagged (catalog/query.py).
 
     summary.devices += count
     summary.runs += count

@@ -60,8 +60,8 @@ BiasMin = Annotated[float | None, typer.Option("--bias-min-v", help="Lowest bias
 BiasMax = Annotated[float | None, typer.Option("--bias-max-v", help="Highest bias (V).")]
 Since = Annotated[str | None, typer.Option("--since", help="Runs started at or after this date/time (UTC unless given).")]
 Until = Annotated[str | None, typer.Option("--until", help="Runs started before this date/time (UTC unless given).")]
-Flags = Annotated[list[str] | None, typer.Option("--flag", help="Results with this flag on the result or one of its points (repeatable).")]
-Flagged = Annotated[bool | None, typer.Option("--flagged/--unflagged", help="Only results with some flag, or only those with none.")]
+Flags = Annotated[list[str] | None, typer.Option("--flag", help="Results carrying this result flag (repeatable); point flags do not count.")]
+Flagged = Annotated[bool | None, typer.Option("--flagged/--unflagged", help="Only results the test system may have limited (some result flag), or only those with none.")]
 Verdicts = Annotated[list[str] | None, typer.Option("--verdict", help="pass, fail or no-limit (repeatable).")]
 Limit = Annotated[int | None, typer.Option("--limit", min=1, help="At most this many results.")]
 

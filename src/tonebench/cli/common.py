@@ -29,17 +29,28 @@ DbOption = Annotated[
 
 @contextmanager
 def one_line_errors() -> Iterator[None]:
-    """Bad input: one line and exit 2. Instrument or other tonebench failures: one line and exit 1."""
-    try:
-        yield
-    except (InputError, DatabaseError) as exc:
-        err.print(f"error: {exc}", markup=False, highlight=False)
-        raise typer.Exit(2) from None
-    except TonebenchError as exc:
-        err.print(f"error: {exc}", markup=False, highlight=False)
-        raise typer.Exit(1) from None
-    except KeyboardInterrupt:
-        err.print("interrupted: RF was switched off; the run is stored as aborted", markup=False)
-        raise typer.Exit(130) from None
+    """Bad input: one line and exit 2. Instrument or other tonebench failures: one line and exit 1.
+    Ctrl-C: one line and exit 130; SIGTERM: one line and exit 143 (while the command runs, only
+    the first of several signals is acted on, so the cleanup it starts runs to its end). A
+    source not confirmed off makes any of them exit 1 with a line naming it."""
+    from tonebench.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, Terminated, note_of, stop_signals
+
+    with stop_signals():
+        try:
+            yield
+        except (InputError, DatabaseError) as exc:
+            _say(note_of(exc), f"error: {exc}", 2)
+        except TonebenchError as exc:
+            _say(note_of(exc), f"error: {exc}", 1)
+        except KeyboardInterrupt as exc:
+            _say(note_of(exc), "interrupted by Ctrl-C", SIGINT_EXIT)
+        except Terminated as exc:
+            _say(note_of(exc), "terminated by SIGTERM", SIGTERM_EXIT)
 
 
+def _say(note, line: str, exit_code: int) -> None:
+    """Print the stop's one line (the runner's own when it gave one) and exit with its code."""
+    if note is not None:
+        line, exit_code = note.line, note.exit_code
+    err.print(line, markup=False, highlight=False, soft_wrap=True)
+    raise typer.Exit(exit_code) from None

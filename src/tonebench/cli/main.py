@@ -83,18 +83,45 @@ def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None
                                                       cal_name=cal_name, on_warning=_warn))
 
 
+# Exit codes of a run that ended without an exception (README, "Exit codes").
+EXIT_FAILED, EXIT_PAUSED, EXIT_POINTS_FAILED = 1, 3, 4
+
+
+def outcome_exit_code(outcome) -> int:
+    """0 complete; 1 aborted, failed with no point measured, or a source not confirmed off;
+    3 paused; 4 finished with some points failed (the measured ones analysed)."""
+    if not outcome.rf_confirmed:
+        return EXIT_FAILED
+    if outcome.status == "complete":
+        return 0
+    if outcome.status == "paused":
+        return EXIT_PAUSED
+    if outcome.status == "failed" and outcome.points_measured:
+        return EXIT_POINTS_FAILED
+    return EXIT_FAILED
+
+
 def _say_outcome(outcome) -> None:
-    """The run's end in a few lines; a paused run exits 3, an aborted one 1."""
-    out.print(f"run {outcome.guid}: {outcome.status}")
+    """The run's end in a few lines: status and reason, how RF went off, where things are."""
+    out.print(f"run {outcome.guid}: {outcome.status}" + (f": {outcome.reason}" if outcome.reason else ""),
+              highlight=False)
+    if outcome.rf_off:
+        if outcome.rf_confirmed:
+            out.print(outcome.rf_off, highlight=False)
+        else:
+            err.print(f"DANGER: {outcome.rf_off}", markup=False, highlight=False)
     out.print(f"database: {outcome.db_url}")
     if outcome.calibration:
         out.print(f"calibration: {outcome.calibration}", highlight=False)
+    if outcome.report_path is not None:
+        out.print(f"report:   {outcome.report_path}")
+        _print_results(outcome.results)
+    code = outcome_exit_code(outcome)
     if outcome.status != "complete":
         out.print(f"see `tonebench show {outcome.guid[:8]}`; continue with `tonebench resume {outcome.guid[:8]}`",
                   highlight=False)
-        raise typer.Exit(3 if outcome.status == "paused" else 1)
-    out.print(f"report:   {outcome.report_path}")
-    _print_results(outcome.results)
+    if code:
+        raise typer.Exit(code)
 
 
 def _print_results(results) -> None:

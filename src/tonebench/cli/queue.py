@@ -90,12 +90,26 @@ def register_queue_commands(app: typer.Typer) -> None:
             unit = Worker(db or default_db(), bench, on_job=said, poll_s=poll_s, report_dir=report_dir)
             # Between runs SIGTERM just ends the loop; during a run the runner turns it into an
             # exception so RF goes off first.
-            previous = signal.signal(signal.SIGTERM, lambda signum, frame: unit.stop.set())
+            termed = []
+
+            def stop_between_runs(signum, frame) -> None:
+                termed.append(signum)
+                unit.stop.set()
+
+            previous = signal.signal(signal.SIGTERM, stop_between_runs)
             try:
                 count = unit.run(until_empty=until_empty)
-            except (KeyboardInterrupt, Terminated):
-                err.print("worker stopped; a run in progress was stored as aborted", markup=False)
-                raise typer.Exit(130) from None
+            except (KeyboardInterrupt, Terminated) as exc:
+                from tonebench.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, note_of
+
+                note = note_of(exc)
+                code = SIGTERM_EXIT if isinstance(exc, Terminated) else SIGINT_EXIT
+                line = f"worker stopped; {note.line}" if note else "worker stopped"
+                err.print(line, markup=False, highlight=False)
+                raise typer.Exit(note.exit_code if note else code) from None
             finally:
                 signal.signal(signal.SIGTERM, previous)
             out.print(f"worker for bench {unit.bench_name}: {count} job(s) run", highlight=False)
+            if termed:  # SIGTERM between runs: a clean stop, with SIGTERM's exit code all the same
+                err.print("worker stopped by SIGTERM between runs", markup=False, highlight=False)
+                raise typer.Exit(143)

@@ -3,6 +3,7 @@ bench) the simulation scenario."""
 
 from __future__ import annotations
 
+import difflib
 from pathlib import Path
 from typing import Any, Literal
 
@@ -10,6 +11,7 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
 from tonebench.errors import InputError
+from tonebench.instruments.dialect import ANALYZER_PERFORMANCE_KEYS
 
 REQUIRED_ROLES = ("source1", "source2", "analyzer")
 # A power meter at the DUT input plane: measured input calibration and closed-loop leveling.
@@ -26,12 +28,15 @@ class BenchInfo(StrictModel):
 
 # Analyzer figures a bench file may set over its dialect's [performance] table: this unit's own
 # mixer TOI and noise floor, and its relative level accuracy (tone versus IM3 reading) for the bound.
-PERFORMANCE_OVERRIDES = {
+# The keys are the analyzer dialect's [performance] keys (one list, in instruments/dialect.py); a
+# key added there without a range here fails at import.
+_PERFORMANCE_RANGES = {
     "mixer_toi_dbm": (-50.0, 100.0),
     "danl_dbm_per_hz": (-200.0, -100.0),
     "sweep_time_factor": (0.01, 100.0),
     "level_accuracy_db": (0.0, 5.0),
 }
+PERFORMANCE_OVERRIDES = {key: _PERFORMANCE_RANGES[key] for key in ANALYZER_PERFORMANCE_KEYS}
 
 
 class InstrumentEntry(StrictModel):
@@ -45,8 +50,10 @@ class InstrumentEntry(StrictModel):
     def _known_figures(cls, figures: dict[str, float]) -> dict[str, float]:
         for key, value in figures.items():
             if key not in PERFORMANCE_OVERRIDES:
+                close = difflib.get_close_matches(key.lower(), PERFORMANCE_OVERRIDES, n=1)
+                hint = f" (did you mean {close[0]}?)" if close else ""
                 raise ValueError(f"performance.{key} is not a figure tonebench uses; allowed: "
-                                 f"{', '.join(PERFORMANCE_OVERRIDES)}")
+                                 f"{', '.join(PERFORMANCE_OVERRIDES)}{hint}")
             low, high = PERFORMANCE_OVERRIDES[key]
             if not low <= value <= high:
                 raise ValueError(f"performance.{key} = {value:g} outside {low:g}..{high:g}")
@@ -101,9 +108,14 @@ class UnattendedSettings(StrictModel):
     reconnects: int = Field(default=3, ge=0, le=20, description="close-and-reopen attempts after those")
     backoff_s: float = Field(default=0.2, ge=0.0, le=60.0, description="first wait, doubled each attempt")
     watchdog_s: float = Field(default=120.0, ge=0.5, le=86400.0, description="RF off after this long without progress")
+    rf_off_s: float = Field(default=30.0, ge=0.5, le=600.0,
+                            description="RF off is retried this long on the way out before a source is reported on")
     # Two reads of each tone, at the start and the end of a point, must agree within this (dB),
     # else the point is measured again (a source still settling); 0 skips the repeat reads.
     settle_tolerance_db: float = Field(default=0.1, ge=0.0, le=10.0)
+    # Across the points of a sweep, the f1-f2 tone difference must stay within this (dB) of the
+    # sweep's first point, else a source is drifting (src/tonebench/drift.py); 0 switches it off.
+    drift_tolerance_db: float = Field(default=0.1, ge=0.0, le=10.0)
 
 
 class BenchFile(StrictModel):

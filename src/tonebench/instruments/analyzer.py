@@ -2,16 +2,31 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 from tonebench.errors import InstrumentError
-from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument
+from tonebench.instruments.scpi import (
+    ImpossibleReading,
+    LimitError,
+    RoleDriver,
+    ScpiInstrument,
+)
+from tonebench.units import thermal_noise_dbm_per_hz
 
 # Reads of one product before giving up when each is cut by a reopened connection.
 MAX_READ_ATTEMPTS = 3
 # Relative change of the reported sweep time taken as changed settings.
 SWEEP_TIME_TOLERANCE = 0.01
+# Bounds of a marker reading any analyzer can produce (see judge_marker_dbm). Above: the damage
+# level plus 3 dB (twice the power that destroys the input; an analyzer's absolute level error is
+# well under 1 dB, from memory of typical data sheets). Below: thermal noise kT (290 K, -174 dBm/Hz)
+# in the RBW less 50 dB: no analyzer's noise floor lies under kTB, and even an unaveraged noise
+# sample (Rayleigh amplitude) falls 50 dB under its mean with probability about 1e-5, while
+# placeholder replies such as -200 or -999 dBm are caught.
+ABOVE_DAMAGE_DB = 3.0
+BELOW_THERMAL_DB = 50.0
 
 
 @dataclass(frozen=True)
@@ -111,7 +126,7 @@ class SpectrumAnalyzer(RoleDriver):
             powers_dbm = []
             for freq_hz in marker_freqs_hz:
                 inst.call("set_marker_freq", freq_hz=freq_hz)
-                powers_dbm.append(inst.call("read_marker_power"))
+                powers_dbm.append(self.judge_marker_dbm(inst.call("read_marker_power"), freq_hz))
             inst.check_errors()
             # Asked again at the end: settings lost at any moment of the read show here.
             if inst.epoch == epoch and not self._settings_lost(inst.call("read_sweep_time")):
@@ -120,6 +135,22 @@ class SpectrumAnalyzer(RoleDriver):
             f"{self.label}: the connection was reopened or the settings lost during each of "
             f"{MAX_READ_ATTEMPTS} reads at {center_hz:.6g} Hz"
         )
+
+    def marker_bounds_dbm(self) -> tuple[float, float]:
+        """(lowest, highest) marker reading (dBm) this analyzer can physically produce at its RBW."""
+        rbw_hz = self.last_setup.rbw_hz if self.last_setup is not None else 1.0
+        low_dbm = thermal_noise_dbm_per_hz() + 10.0 * math.log10(rbw_hz) - BELOW_THERMAL_DB
+        return low_dbm, self.limits["damage_dbm"] + ABOVE_DAMAGE_DB
+
+    def judge_marker_dbm(self, power_dbm: float, freq_hz: float) -> float:
+        """The reading, or ImpossibleReading when no analyzer could have produced it."""
+        low_dbm, high_dbm = self.marker_bounds_dbm()
+        if low_dbm <= power_dbm <= high_dbm:
+            return power_dbm
+        why = (f"above the damage level {self.limits['damage_dbm']:g} dBm + {ABOVE_DAMAGE_DB:g} dB"
+               if power_dbm > high_dbm else
+               f"below thermal noise in the RBW - {BELOW_THERMAL_DB:g} dB ({low_dbm:.1f} dBm)")
+        raise ImpossibleReading(f"{self.label}: impossible reading {power_dbm:.6g} dBm at {freq_hz:.6g} Hz: {why}")
 
     def _settings_lost(self, sweep_time_s: float) -> bool:
         """True (after restoring them) when the analyzer's sweep time shows other settings.

@@ -9,12 +9,20 @@ knowing the instrument.
 
 from __future__ import annotations
 
+import difflib
+import math
 import string
 import tomllib
 from pathlib import Path
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from tonebench.errors import InputError
 from tonebench.packaged import data_dir
@@ -49,16 +57,33 @@ REQUIRED_OPERATIONS: dict[str, tuple[str, ...]] = {
     "supply": _COMMON_OPERATIONS,
 }
 
-# The role drivers read these numbers; a dialect without them could not be driven.
-REQUIRED_LIMITS: dict[str, tuple[str, ...]] = {
-    "source": ("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"),
-    "analyzer": ("min_freq_hz", "max_freq_hz", "min_atten_db", "max_atten_db"),
-    "power_meter": ("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"),
+# The numbers of [limits], [performance] and [status] per role: (required, optional) keys. These
+# are the keys the role drivers, the safety checks and the planning read (instruments/*.py,
+# safety.py, sequencer.py, runner.py); any other key is refused, so a misspelled one cannot
+# silently remove a limit. The analyzer's damage level is required: the safety checks and the
+# reply judging (an impossible reading) need it.
+KNOWN_LIMITS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
+    "source": (("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"), ()),
+    "analyzer": (("min_freq_hz", "max_freq_hz", "min_atten_db", "max_atten_db", "damage_dbm"),
+                 ("max_mixer_dbm", "atten_step_db")),
+    "power_meter": (("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"), ()),
+    "supply": ((), ()),
 }
-REQUIRED_PERFORMANCE: dict[str, tuple[str, ...]] = {
-    "analyzer": ("mixer_toi_dbm", "danl_dbm_per_hz", "sweep_time_factor"),
+# level_accuracy_db is optional here and may also come from the bench file, which takes the same
+# keys (config/bench_file.py imports ANALYZER_PERFORMANCE_KEYS).
+KNOWN_PERFORMANCE: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
+    "analyzer": (("mixer_toi_dbm", "danl_dbm_per_hz", "sweep_time_factor"), ("level_accuracy_db",)),
 }
-REQUIRED_STATUS: dict[str, tuple[str, ...]] = {"analyzer": ("overload_bit",)}
+ANALYZER_PERFORMANCE_KEYS: tuple[str, ...] = sum(KNOWN_PERFORMANCE["analyzer"], ())
+KNOWN_STATUS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {"analyzer": (("overload_bit",), ())}
+_NUMBER_TABLES = {"limits": KNOWN_LIMITS, "performance": KNOWN_PERFORMANCE, "status": KNOWN_STATUS}
+# Status bits are bits of a 16-bit SCPI status register (SCPI-1999 vol 1 ch. 9, from memory).
+STATUS_BITS = range(0, 16)
+
+# Kept for callers that ask only for the required keys.
+REQUIRED_LIMITS = {role: keys[0] for role, keys in KNOWN_LIMITS.items() if keys[0]}
+REQUIRED_PERFORMANCE = {role: keys[0] for role, keys in KNOWN_PERFORMANCE.items()}
+REQUIRED_STATUS = {role: keys[0] for role, keys in KNOWN_STATUS.items()}
 
 # Template fields each operation may use; any operation not listed takes none.
 TEMPLATE_FIELDS: dict[str, frozenset[str]] = {
@@ -77,9 +102,21 @@ TEMPLATE_FIELDS: dict[str, frozenset[str]] = {
 _HEADER_KEYS = ("name", "role", "description")
 
 
+# An ordinary query is answered in well under a second; sweeps get their own, derived wait.
+MAX_QUERY_TIMEOUT_S = 600.0
+
+
 def template_fields(template: str) -> set[str]:
     """Field names used in a format template ("" for a positional `{}`)."""
     return {field for _, field, _, _ in string.Formatter().parse(template) if field is not None}
+
+
+def _nested_field(template: str) -> str | None:
+    """The first replacement field whose format spec holds a field of its own, e.g. {freq_hz:{w}}."""
+    for _, field, spec, _ in string.Formatter().parse(template):
+        if field is not None and spec and "{" in spec:
+            return f"{{{field}:{spec}}}"
+    return None
 
 
 class IoSettings(BaseModel):
@@ -89,7 +126,14 @@ class IoSettings(BaseModel):
 
     read_termination: str = "\n"
     write_termination: str = "\n"
-    query_timeout_s: float = Field(gt=0)
+    query_timeout_s: float
+
+    @field_validator("query_timeout_s")
+    @classmethod
+    def _finite_timeout(cls, value: float) -> float:
+        if not (math.isfinite(value) and 0.0 < value <= MAX_QUERY_TIMEOUT_S):
+            raise ValueError(f"{value!r} s; allowed: a finite number of seconds, 0 < t <= {MAX_QUERY_TIMEOUT_S:g}")
+        return value
 
 
 class Operation(BaseModel):
@@ -136,38 +180,63 @@ class Dialect(BaseModel):
 
     @model_validator(mode="after")
     def _fits_role(self) -> Dialect:
-        for table, required in (
-            ("operations", REQUIRED_OPERATIONS),
-            ("limits", REQUIRED_LIMITS),
-            ("performance", REQUIRED_PERFORMANCE),
-            ("status", REQUIRED_STATUS),
-        ):
-            present = getattr(self, table)
-            missing = [key for key in required.get(self.role, ()) if key not in present]
-            if missing:
-                raise ValueError(
-                    f"{table}.{missing[0]}: missing; a {self.role} dialect needs "
-                    f"{', '.join(required[self.role])}"
-                )
+        for table, known in _NUMBER_TABLES.items():
+            _check_numbers(table, getattr(self, table), self.role, known.get(self.role, ((), ())))
+        present = self.operations
+        required = REQUIRED_OPERATIONS[self.role]
+        missing = [key for key in required if key not in present]
+        if missing:
+            raise ValueError(f"operations.{missing[0]}: missing; {_article(self.role)} dialect needs {', '.join(required)}")
         for op_name, op in self.operations.items():
-            allowed = TEMPLATE_FIELDS.get(op_name, frozenset())
-            try:
-                used = template_fields(op.template)
-            except ValueError as exc:
-                raise ValueError(f"operations.{op_name}: bad template {op.template!r}: {exc}")
-            unknown = sorted(used - allowed)
-            if unknown:
-                allowed_text = ", ".join(sorted(allowed)) or "none"
-                raise ValueError(
-                    f"operations.{op_name}: unknown template field {{{unknown[0]}}}; "
-                    f"allowed: {allowed_text}"
-                )
-            # Catch a bad format spec (e.g. {freq_hz:.3q}) now rather than mid-run.
-            try:
-                op.template.format(**{field: 1.0 for field in used})
-            except (ValueError, IndexError) as exc:
-                raise ValueError(f"operations.{op_name}: bad template {op.template!r}: {exc}")
+            _check_template(op_name, op.template)
         return self
+
+
+def _article(role: str) -> str:
+    return f"an {role}" if role[0] in "aeiou" else f"a {role}"
+
+
+def _check_numbers(table: str, values: dict[str, float], role: str,
+                   known: tuple[tuple[str, ...], tuple[str, ...]]) -> None:
+    """Only known keys, finite values, every required key present; ValueError names the first fault."""
+    required, optional = known
+    allowed = (*required, *optional)
+    allowed_text = ", ".join(allowed) or "none"
+    for key, value in values.items():
+        if key not in allowed:
+            close = difflib.get_close_matches(key.lower(), allowed, n=1)
+            hint = f" (did you mean {close[0]}?)" if close else ""
+            raise ValueError(f"{table}.{key}: unknown key for {_article(role)} dialect; allowed: {allowed_text}{hint}")
+        if not math.isfinite(value):
+            raise ValueError(f"{table}.{key}: {value!r} is not a finite number; allowed keys: {allowed_text}")
+        if table == "status" and value not in STATUS_BITS:
+            raise ValueError(f"{table}.{key}: bit {value} outside 0..15 (a 16-bit status register)")
+    missing = [key for key in required if key not in values]
+    if missing:
+        raise ValueError(f"{table}.{missing[0]}: missing; {_article(role)} dialect needs {', '.join(required)}"
+                         + (f" (optional: {', '.join(optional)})" if optional else ""))
+
+
+def _check_template(op_name: str, template: str) -> None:
+    """Known fields only, no nested fields, a format spec that formats a number."""
+    allowed = TEMPLATE_FIELDS.get(op_name, frozenset())
+    allowed_text = ", ".join(sorted(allowed)) or "none"
+    try:
+        used = template_fields(template)
+        nested = _nested_field(template)
+    except ValueError as exc:
+        raise ValueError(f"operations.{op_name}: bad template {template!r}: {exc}") from None
+    if nested is not None:
+        raise ValueError(f"operations.{op_name}: nested field in {nested}: a format spec takes no "
+                         f"fields of its own; allowed fields: {allowed_text}")
+    unknown = sorted(used - allowed)
+    if unknown:
+        raise ValueError(f"operations.{op_name}: unknown template field {{{unknown[0]}}}; allowed: {allowed_text}")
+    # Catch a bad format spec (e.g. {freq_hz:.3q}) now rather than mid-run.
+    try:
+        template.format(**{field: 1.0 for field in used})
+    except (ValueError, IndexError, KeyError, TypeError, AttributeError) as exc:
+        raise ValueError(f"operations.{op_name}: bad template {template!r}: {exc}") from None
 
 
 def drivers_dirs() -> list[Path]:

@@ -23,6 +23,19 @@ MAX_ERROR_READS = 50
 SCPI_NAN = 9.91e37
 
 
+# How long the error queue is given to answer after a query got no reply. An instrument that is
+# up answers SYST:ERR? in milliseconds; a stalled one must not cost a second full timeout.
+ERROR_QUERY_TIMEOUT_S = 1.0
+# SCPI-1999 vol 2 ch. 21 (from memory): -100..-199 are command errors (the instrument could not
+# parse the header or its parameters): the dialect's string does not fit this instrument, and
+# sending it again cannot help.
+COMMAND_ERROR_CODES = range(-199, -99)
+
+
+class NotANumber(ValueError):
+    """A float reply that is the instrument's "not a number" (9.91E37), NaN or infinite."""
+
+
 class LimitError(TonebenchError):
     """A setting outside the limits its dialect file declares for the instrument."""
 
@@ -51,7 +64,7 @@ def parse_reply(kind: str, text: str):
     if kind == "float":
         value = float(text)
         if not math.isfinite(value) or value == SCPI_NAN:
-            raise ValueError("not a number")
+            raise NotANumber("not a number")
         return value
     if kind == "int":
         try:
@@ -83,9 +96,27 @@ class ConnectionFault(InstrumentError):
     or is gone (it must be reopened).
     """
 
-    def __init__(self, message: str, *, timed_out: bool):
+    def __init__(self, message: str, *, timed_out: bool, operation: str | None = None, sent: str | None = None):
         super().__init__(message)
         self.timed_out = timed_out
+        # Set when a query got no reply at all: worth asking the error queue why (supervision).
+        self.operation = operation
+        self.sent = sent
+
+
+class ImpossibleReading(InstrumentError):
+    """A reply no instrument can give as a reading: not a number (SCPI 9.91E37, NaN, inf), or a
+    level outside what is physically possible (analyzer.judge_marker_dbm). Not a connection fault:
+    the point fails at once and is stored as failed with this reason (recovery.PointGuard)."""
+
+
+class CommandRefused(InstrumentError):
+    """The instrument refused a dialect operation with a command error (-100..-199, e.g. -113
+    undefined header): the dialect does not fit the instrument. Never retried; the run stops."""
+
+    def __init__(self, message: str, entries: list[ScpiError]):
+        super().__init__(message)
+        self.entries = entries
 
 
 class ScpiErrors(InstrumentError):
@@ -99,6 +130,20 @@ class ScpiErrors(InstrumentError):
 class IdentityChanged(InstrumentError):
     """After reopening a connection, a different instrument (maker, model or serial) answered."""
 
+
+# Operations remembered since the error queue was last read, to name the one it refused.
+MAX_SENT_REMEMBERED = 20
+# Named when no error text points at one operation: the last few sent.
+MAX_NAMED_OPERATIONS = 3
+
+
+def _refused_operations(sent: list[tuple[str, str]], entries: list[ScpiError]) -> str:
+    """The operations a refusal is about: those whose header the error text quotes (instruments
+    commonly append it, e.g. -113,"Undefined header;BANDX"), else the last few sent."""
+    texts = " ".join(e.message.upper() for e in entries)
+    quoted = [(op, text) for op, text in sent if text.split(" ")[0].upper() in texts]
+    named = quoted or sent[-MAX_NAMED_OPERATIONS:]
+    return ", ".join(f"{op} ({text!r})" for op, text in named) or "an operation"
 
 # Reply lines read while resynchronising before giving up on this connection.
 MAX_RESYNC_LINES = 20
@@ -131,6 +176,8 @@ class ScpiInstrument:
         self._resource_name: str | None = getattr(resource, "resource_name", None)
         self._restore_hooks: list[Callable[[], None]] = []
         self._restoring = False
+        # (operation, text) written since the error queue was last drained: named in a refusal.
+        self._sent_since_drain: list[tuple[str, str]] = []
 
     def has(self, operation: str) -> bool:
         return operation in self.dialect.operations
@@ -148,6 +195,8 @@ class ScpiInstrument:
         """Send one operation; for a query return its parsed reply."""
         op = self._operation(operation)
         message = op.template.format(**fields)
+        if operation != "next_error":
+            self._sent_since_drain = [*self._sent_since_drain[-(MAX_SENT_REMEMBERED - 1):], (operation, message)]
         return self._supervised(lambda: self._exchange(operation, op, message, None))
 
     def _operation(self, operation: str):
@@ -181,7 +230,7 @@ class ScpiInstrument:
                 waited_s = resource.timeout / 1000
                 raise ConnectionFault(
                     f"{self.label}: no reply to {operation} ({message!r}) within {waited_s:g} s",
-                    timed_out=True,
+                    timed_out=True, operation=operation, sent=message,
                 ) from None
             raise ConnectionFault(f"{where} failed: {exc}", timed_out=False) from None
         except (OSError, pyvisa.errors.InvalidSession) as exc:  # dropped or closed (pyvisa-py sockets)
@@ -196,6 +245,9 @@ class ScpiInstrument:
             self.supervision.activity()
         try:
             return parse_reply(op.reply, reply)
+        except NotANumber:
+            raise ImpossibleReading(f"{where} replied {reply!r}: the instrument's not-a-number "
+                                    "(SCPI 9.91E37, NaN or inf), not a reading") from None
         except ValueError:
             # A reply of the wrong shape is most often another query's reply arriving late:
             # worth a resynchronisation, like a timeout.
@@ -213,12 +265,44 @@ class ScpiInstrument:
             entries.append(entry)
         else:
             entries.append(ScpiError(0, f"error queue not empty after {MAX_ERROR_READS} reads"))
+        named = self.refused_operations(entries)
         if entries:
             listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
+            refused = any(e.code in COMMAND_ERROR_CODES for e in entries)
+            if refused:
+                listed = f"the instrument refused {named} of dialect {self.dialect.name}: {listed}"
             if self.supervision is not None:
-                self.supervision.emit(self.label, "scpi-error", "warning", f"{self.label}: {listed}",
-                                      {"entries": [list(e) for e in entries]})
+                self.supervision.emit(self.label, "scpi-error", "error" if refused else "warning",
+                                      f"{self.label}: {listed}", {"entries": [list(e) for e in entries]})
+            if refused:
+                raise CommandRefused(f"{self.label}: {listed}", entries)
             raise ScpiErrors(f"{self.label}: {listed}", entries)
+
+    def refused_operations(self, entries: list[ScpiError]) -> str:
+        """Which operations sent since the queue was last read these entries are about (see
+        _refused_operations); forgets them, as the queue has now been read."""
+        sent, self._sent_since_drain = self._sent_since_drain, []
+        return _refused_operations(sent, entries)
+
+    def errors_after_no_reply(self) -> list[ScpiError] | None:
+        """After a query got no reply: the error queue's entries, read on the same connection
+        with a short timeout and no supervision; None when the queue gave no usable answer
+        (a stalled instrument, or the late reply of the query arrived instead)."""
+        op = self.dialect.operations.get("next_error")
+        if op is None:
+            return None
+        entries: list[ScpiError] = []
+        with self.io_lock:
+            for _ in range(MAX_ERROR_READS):
+                try:
+                    entry = self._exchange("next_error", op, op.template,
+                                           min(ERROR_QUERY_TIMEOUT_S, self.dialect.io.query_timeout_s))
+                except ConnectionFault:
+                    return entries or None
+                if entry.code == 0:
+                    break
+                entries.append(entry)
+        return entries
 
     def configure(self, steps: list[tuple[str, dict]], wait_s: float | None = None) -> None:
         """Run (operation, fields) steps in order, wait for *OPC? if `wait_s` is given (s), then

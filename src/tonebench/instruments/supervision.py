@@ -20,14 +20,20 @@ from dataclasses import dataclass, field
 from typing import TypeVar
 
 from tonebench.errors import InstrumentError
-from tonebench.instruments.scpi import ConnectionFault, ScpiInstrument
+from tonebench.instruments.scpi import (
+    COMMAND_ERROR_CODES,
+    CommandRefused,
+    ConnectionFault,
+    ScpiErrors,
+    ScpiInstrument,
+)
 from tonebench.instruments.transport import Unreachable
 
 _log = logging.getLogger(__name__)
 
 T = TypeVar("T")
 
-EVENT_KINDS = ("retry", "reconnect", "reapplied", "scpi-error", "gave-up")
+EVENT_KINDS = ("retry", "reconnect", "reapplied", "scpi-error", "gave-up", "state-lost", "impossible-reading")
 
 
 @dataclass(frozen=True)
@@ -99,6 +105,8 @@ class Supervision:
             except ConnectionFault as fault:
                 last: InstrumentError = fault
                 timed_out = fault.timed_out
+                if fault.operation not in (None, "next_error") and retries == reconnects == 0:
+                    self._ask_why_no_reply(instrument, fault)
             while True:  # recover until the connection is usable again
                 if self.stop.is_set():
                     raise RecoveryStopped(f"{last}; not retried: the run is stopping") from None
@@ -137,6 +145,32 @@ class Supervision:
                 message = f"{last}; gave up after {retries} retries and {reconnects} reconnects"
                 self.emit(label, "gave-up", "error", message)
                 raise GaveUp(message) from None
+
+    def _ask_why_no_reply(self, instrument: ScpiInstrument, fault: ConnectionFault) -> None:
+        """Before the first retry of a query that got no reply, read the error queue on the same
+        connection: an instrument that rejected the query says so there and sends nothing, and
+        retrying or reconnecting would only repeat that for minutes with RF on.
+
+        A command error (-100..-199, e.g. -113 undefined header) raises CommandRefused naming the
+        role, the dialect operation and the instrument's text; any other entry raises ScpiErrors
+        (the point is measured again by the caller, the connection is in step); an empty or
+        silent queue leaves the usual recovery to go on.
+        """
+        entries = instrument.errors_after_no_reply()
+        if not entries:
+            return
+        label = instrument.label
+        listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
+        details = {"entries": [list(e) for e in entries], "operation": fault.operation, "sent": fault.sent}
+        named = instrument.refused_operations(entries)  # the query itself, unless the text names another
+        if any(e.code in COMMAND_ERROR_CODES for e in entries):
+            message = (f"{label}: the instrument refused {named} of dialect {instrument.dialect.name} "
+                       f"and sent no reply to {fault.operation}: {listed}")
+            self.emit(label, "scpi-error", "error", message, details)
+            raise CommandRefused(message, entries) from None
+        message = f"{label}: no reply to {fault.operation} ({fault.sent!r}); the instrument reports: {listed}"
+        self.emit(label, "scpi-error", "warning", message, details)
+        raise ScpiErrors(message, entries) from None
 
     def _backoff(self, attempt: int, label: str) -> None:
         # A wait on an Event, not a fixed sleep: a stop request (the watchdog, SIGTERM cleanup)

@@ -40,13 +40,19 @@ class SourceChannel:
     pending: list[tuple[float, SourceSetting]] = field(default_factory=list)
     # A level still settling (fault injection): (from clock_s, error_db then, time constant s).
     unsettled: tuple[float, float, float] | None = None
+    # A level drifting with time (fault injection): (from clock_s, dB per second).
+    drift: tuple[float, float] | None = None
 
     def level_error_db(self, clock_s: float) -> float:
-        """How far the output level is from its setting at clock_s (dB), decaying exponentially."""
+        """How far the output level is from its setting at clock_s (dB): an unsettled level decaying
+        exponentially plus a drift growing linearly."""
+        error_db = 0.0
+        if self.drift is not None:
+            error_db += self.drift[1] * max(0.0, clock_s - self.drift[0])
         if self.unsettled is None:
-            return 0.0
-        start_s, error_db, time_constant_s = self.unsettled
-        return error_db * math.exp(-max(0.0, clock_s - start_s) / time_constant_s)
+            return error_db
+        start_s, unsettled_db, time_constant_s = self.unsettled
+        return error_db + unsettled_db * math.exp(-max(0.0, clock_s - start_s) / time_constant_s)
 
 
 @dataclass
@@ -117,7 +123,7 @@ class BenchTruth:
         dut = self._scenario.dut
         backoff_db = None if dut.p1db_dbm is None else dut.iip3_dbm - dut.p1db_dbm
         return physics.dut_nonlinearity(self.true_gain_db(freq_hz), self.true_iip3_dbm(freq_hz), backoff_db,
-                                        dut.iip2_dbm)
+                                        dut.iip2_dbm, dut.iip5_dbm)
 
 
 def _float_or_array(value):
@@ -241,6 +247,11 @@ class SimBench:
         channel = self._sources[index]
         start_s = channel.pending[-1][0] if channel.pending else self.clock_s
         channel.unsettled = (start_s, level_error_db, time_constant_s)
+
+    def drift_source(self, index: int, drift_db_per_s: float) -> None:
+        """From now on the source's level moves by drift_db_per_s on the virtual clock, while it
+        reports its set power (a fault to inject)."""
+        self._sources[index].drift = (self.clock_s, drift_db_per_s)
 
     def reset_source(self, index: int) -> None:
         """*RST: power-on setting, RF off (settling like any other change)."""

@@ -17,6 +17,11 @@ power command a source receives (on = "SOUR:POW", nth = k). Kinds:
 - unsettled: after the triggering line (a power or frequency change on a source), the source's
   level is off by `level_error_db`, decaying with time constant `duration_s` on the bench's
   virtual clock; its *OPC? still says done. Needs a device that supports it (SimSource).
+- reading: the reply to the triggering query is replaced by `reading` (e.g. "1e30", "9.91E37",
+  "nan"): an instrument that answers with a value it cannot have measured.
+- drift: from the triggering line on, a source's actual output level moves by `drift_db_per_s`
+  on the bench's virtual clock (a source warming up), while it still reports its set power and
+  *OPC? says done. Needs a device that supports it (SimSource).
 
 Built from test code (FaultSchedule([FaultSpec(...)])) or from `[[simulation.faults]]` rows.
 """
@@ -33,8 +38,8 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_valida
 from tonebench.config.loading import describe_validation_error
 from tonebench.errors import InputError
 
-FaultKind = Literal["stall", "drop", "error", "reboot", "unsettled"]
-FAULT_KINDS: tuple[str, ...] = ("stall", "drop", "error", "reboot", "unsettled")
+FaultKind = Literal["stall", "drop", "error", "reboot", "unsettled", "reading", "drift"]
+FAULT_KINDS: tuple[str, ...] = ("stall", "drop", "error", "reboot", "unsettled", "reading", "drift")
 
 
 class FaultSpec(BaseModel):
@@ -54,11 +59,17 @@ class FaultSpec(BaseModel):
     code: int = Field(-240, ge=-999, le=-1, description="SCPI error code pushed by an error fault")
     keep_connection: bool = False
     level_error_db: float = Field(3.0, ge=-60.0, le=60.0, description="unsettled: initial level error")
+    reading: str = Field("1e30", min_length=1, max_length=100, description="reading: the reply sent instead")
+    drift_db_per_s: float = Field(0.0, ge=-10.0, le=10.0, description="drift: level change per virtual second")
 
     @model_validator(mode="after")
     def _durations(self) -> FaultSpec:
         if self.kind in ("stall", "unsettled") and self.duration_s <= 0.0:
             raise ValueError(f"a {self.kind} fault needs duration_s > 0")
+        if self.kind == "drift" and self.drift_db_per_s == 0.0:
+            raise ValueError("a drift fault needs drift_db_per_s other than 0")
+        if any(char in self.reading for char in "\r\n"):
+            raise ValueError("reading: one line, no line breaks")
         return self
 
 

@@ -106,6 +106,10 @@ class SimSource(_BenchDevice):
         """Fault hook (sim/faults.py, kind "unsettled"): the level settles slowly after this change."""
         self.bench.unsettle_source(self.index, level_error_db, time_constant_s)
 
+    def drift(self, drift_db_per_s: float) -> None:
+        """Fault hook (sim/faults.py, kind "drift"): the level moves slowly from now on."""
+        self.bench.drift_source(self.index, drift_db_per_s)
+
     def operation_complete(self) -> None:
         self.bench.settle_source(self.index)
 

@@ -71,12 +71,16 @@ class Nonlinearity:
     saturation in units of a1 * s) is solved numerically for the wanted IIP3 - P1dB distance.
     The second-order term is added outside the odd part, so it makes no odd-order products and
     leaves a1, a3 and the compression as they are; x is held at the same turning point there.
+    The fifth-order term a5 x^5 is added the same way (same turning point): with two equal tones
+    of amplitude A it puts (25/8) a5 A^5 on each IM3 product beside the cubic's (3/4) a3 A^3, and
+    (5/8) a5 A^5 at 3f1-2f2 (the standard two-tone power-series expansion; tests check it with an FFT).
     """
 
     a1: float  # small-signal voltage gain, V/V
     a3: float  # cubic coefficient, 1/V^2; negative (compressive)
     sat_norm: float | None  # v above; None = pure cubic
     a2: float = 0.0  # second-order coefficient, 1/V: adds a2 x^2 (even-order products only)
+    a5: float = 0.0  # fifth-order coefficient, 1/V^4: adds a5 x^5 (same sign as a3: compressive)
 
     @property
     def scale_v(self) -> float:
@@ -95,6 +99,8 @@ class Nonlinearity:
         y_v = self.a1 * scale_v * _normalized_transfer(u, self.sat_norm)
         if self.a2:
             y_v = y_v + self.a2 * (scale_v * np.clip(u, -_CUBIC_TURN, _CUBIC_TURN)) ** 2
+        if self.a5:
+            y_v = y_v + self.a5 * (scale_v * np.clip(u, -_CUBIC_TURN, _CUBIC_TURN)) ** 5
         return y_v
 
 
@@ -108,18 +114,22 @@ def _normalized_transfer(u, sat_norm: float | None):
 
 
 def dut_nonlinearity(gain_db: float, iip3_dbm: float, iip3_above_p1db_db: float | None = None,
-                     iip2_dbm: float | None = None) -> Nonlinearity:
+                     iip2_dbm: float | None = None, iip5_dbm: float | None = None) -> Nonlinearity:
     """Coefficients for small-signal gain_db and input intercept iip3_dbm (A_IIP3^2 = (4/3)|a1/a3|).
 
     iip3_above_p1db_db=None gives the pure cubic (about 9.64 dB); a larger value adds saturation.
     iip2_dbm sets the second-order term: with equal tones A the products at f2-f1 and f1+f2 are
     a2 A^2 each against a1 A at the fundamental, meeting at A_IIP2 = a1/a2; None: no such term.
+    iip5_dbm sets the fifth-order term: the product at 3f1-2f2, (5/8)|a5| A^5, meets a1 A at
+    A_IIP5^4 = (8/5) a1/|a5|; a5 takes a3's sign, so it adds to the IM3 and the per-point IIP3
+    reads low by (1/2) 20log10(1 + 5 A_IIP3^2 A^2 / A_IIP5^4) dB at tones A; None: no such term.
     """
     a1 = 10.0 ** (gain_db / 20.0)
     a3 = -(4.0 / 3.0) * a1 / float(dbm_to_vpeak(iip3_dbm)) ** 2
     sat_norm = None if iip3_above_p1db_db is None else _saturation_norm(round(float(iip3_above_p1db_db), 9))
     a2 = 0.0 if iip2_dbm is None else a1 / float(dbm_to_vpeak(iip2_dbm))
-    return Nonlinearity(a1=a1, a3=a3, sat_norm=sat_norm, a2=a2)
+    a5 = 0.0 if iip5_dbm is None else -(8.0 / 5.0) * a1 / float(dbm_to_vpeak(iip5_dbm)) ** 4
+    return Nonlinearity(a1=a1, a3=a3, sat_norm=sat_norm, a2=a2, a5=a5)
 
 
 def _normalized_fundamental_gain(u_amp, sat_norm: float | None) -> np.ndarray:

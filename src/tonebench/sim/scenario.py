@@ -33,6 +33,9 @@ class DutScenario(_Strict):
     # Second-order input intercept (products at f2-f1 and f1+f2), the same at every frequency.
     # The default puts them far below anything the third-order tests read.
     iip2_dbm: float = Field(60.0, ge=-40.0, le=200.0)
+    # Fifth-order input intercept (the product at 3f1-2f2, slope 5), the same at every frequency.
+    # Its term adds to the IM3 and biases the top points of a sweep low; None: no fifth-order term.
+    iip5_dbm: float | None = Field(None, ge=-60.0, le=200.0)
     nf_db: float = Field(1.2, ge=0.0, le=40.0)
 
     @model_validator(mode="after")

@@ -143,7 +143,7 @@ class InstrumentServer:
         """Execute one line (with any fault due on it) and send its reply; False ends the connection."""
         self._wait_out_stall()
         due = self.faults.faults_for(self.name, line) if self.faults is not None else []
-        execute, stall, unsettle = True, None, None
+        execute, stall, unsettle, replaced = True, None, None, None
         for spec in due:
             if spec.kind == "drop":
                 _abort(conn)
@@ -161,9 +161,13 @@ class InstrumentServer:
                 execute = execute and "?" in line  # a command in error is not executed
             elif spec.kind == "stall":
                 stall = spec
-            elif spec.kind == "unsettled":
+            elif spec.kind in ("unsettled", "drift"):
                 unsettle = spec
+            elif spec.kind == "reading":
+                replaced = spec.reading
         reply = self._reply_for(line) if execute else None
+        if replaced is not None and reply is not None:
+            reply = replaced
         if unsettle is not None:
             self._unsettle(unsettle)
         if stall is not None:
@@ -184,12 +188,16 @@ class InstrumentServer:
             self._stopping.wait(remaining_s)
 
     def _unsettle(self, spec: FaultSpec) -> None:
-        unsettle = getattr(self._device, "unsettle", None)
-        if unsettle is None:
-            _log.warning("%s: an unsettled fault needs a device with unsettle(); ignored", self.name)
+        """An unsettled or drift fault: the source's level moves on the virtual clock."""
+        hook = getattr(self._device, "unsettle" if spec.kind == "unsettled" else "drift", None)
+        if hook is None:
+            _log.warning("%s: a %s fault needs a source device; ignored", self.name, spec.kind)
             return
         with self._lock:
-            unsettle(spec.level_error_db, spec.duration_s)
+            if spec.kind == "unsettled":
+                hook(spec.level_error_db, spec.duration_s)
+            else:
+                hook(spec.drift_db_per_s)
 
     def _abort_all(self) -> None:
         """Reset every connection of this instrument (a power cycle)."""
