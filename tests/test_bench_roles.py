@@ -28,7 +28,7 @@ from typer.testing import CliRunner
 from tonebench.cli import app
 from tonebench.sim.launch import start_sim_bench
 from tonebench.sim.scenario import Scenario
-from tonebench.store.models import Event, Run
+from tonebench.store.models import CalibrationSet, Event, Run
 
 SMALL_PLAN = (SAMPLE_RUNS / "demo_plan.toml").read_text().replace("[2.40e9, 2.45e9, 2.48e9]", "[2.45e9]").replace(
     "tone_start_dbm = -40.0", "tone_start_dbm = -30.0").replace("tone_stop_dbm = -8.0", "tone_stop_dbm = -26.0")
@@ -267,3 +267,32 @@ def test_a_resume_is_refused_while_another_run_holds_the_bench(tmp_path, db_url)
     result = CliRunner().invoke(app, ["resume", left, "--db", db_url, "--report", str(tmp_path / "r.html")])
     assert result.exit_code == 0, result.output
     assert dict(runs_of(db_url)) == {left: "complete", guid: "complete"}, result.output
+
+
+def test_a_calibration_is_refused_while_a_run_holds_the_bench(tmp_path):
+    """`cal measure-*` switches RF on (and off at connect): never on instruments a run drives."""
+    db_url = f"sqlite:///{tmp_path / 't.db'}"
+    from tonebench.store.database import open_database
+
+    open_database(db_url).dispose()
+    bench = tmp_path / "with-meter.toml"
+    bench.write_text((SAMPLE_RUNS / "sim_bench.toml").read_text().replace(
+        "[offsets]", '[instruments.power_meter]\ndialect = "generic-power-meter"\n\n[offsets]'))
+    (tmp_path / "go").write_text("")
+    holder = start_racer(tmp_path, db_url)
+    try:
+        wait_until(lambda: (tmp_path / f"started-{holder.pid}").exists(), "the holder's run")
+        guid = (tmp_path / f"started-{holder.pid}").read_text()
+        result = CliRunner().invoke(app, ["cal", "measure-input", "during", "--bench", str(bench), "--plan",
+                                          str(write_plan(tmp_path, SMALL_PLAN)), "--db", db_url])
+        assert result.exit_code == 2, result.output
+        line = one_error_line(result)
+        assert "bench 'sim-bench-1' is in use by run" in line and guid in line
+        engine = sa.create_engine(db_url)
+        with Session(engine) as session:
+            assert session.scalars(select(CalibrationSet).where(CalibrationSet.name == "during")).all() == []
+        engine.dispose()
+    finally:
+        (tmp_path / "release").write_text("")
+        holder.wait(120)
+    assert holder.returncode == 0, holder.stderr.read()

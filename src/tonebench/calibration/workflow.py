@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from tonebench.bench import OpenBench, open_bench
+from tonebench.bench_lock import check_free as check_bench_free
 from tonebench.calibration import importers, measure, residual
 from tonebench.calibration.referral import check_coverage
 from tonebench.calibration.sets import (
@@ -191,6 +192,7 @@ def measure_input(db_url: str, name: str, bench_path: Path, plan_path: Path, *, 
     check_valid_days(valid_days)
     _check_grid(bench, ("source1", "source2", "power_meter"), freqs_hz, None, f"input calibration {name}: plan {plan_path}")
     sessions = _sessions(db_url)
+    check_bench_free(sessions, bench.settings.bench.name)  # never talk to instruments a run drives
     _require_new_name(sessions, name)
     with calibration_bench(bench, thru=False, thru_in_place=False, on_sim_started=on_sim_started) as opened:
         meter = opened.power_meter
@@ -229,6 +231,7 @@ def measure_output(db_url: str, name: str, bench_path: Path, plan_path: Path, *,
     plan, freqs_hz = _plan_and_grid(plan_path, step_hz)
     _check_grid(bench, ("source1", "analyzer"), freqs_hz, _setup(plan).span_hz, f"output calibration {name}: plan {plan_path}")
     sessions = _sessions(db_url)
+    check_bench_free(sessions, bench.settings.bench.name)  # never talk to instruments a run drives
     view = _load(sessions, name)
     if "in1" not in view.tables:
         raise InputError(f"{view.label} has no 'in1' path; measure or import the input paths first")
@@ -295,6 +298,7 @@ def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, 
     plan = load_plan(plan_path)
     points = expand(plan.settings)
     sessions = _sessions(db_url)
+    check_bench_free(sessions, bench.settings.bench.name)  # never talk to instruments a run drives
     view = _load(sessions, name)
     check_coverage(view.tables, sorted({(p.f1_hz, p.f2_hz) for p in points}), f"plan {plan_path}: {view.label}")
     setup = _setup(plan)
