@@ -147,17 +147,28 @@ class _Forced:
 def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:
     """Connect to source1, source2, analyzer and (if the bench file has one) the power meter;
     `resources` maps each role to a VISA resource. With `supervision`, timeouts and dropped
-    connections are retried and reconnected per its policy."""
+    connections are retried and reconnected per its policy.
+
+    Refused (InputError) before anything else is sent: two roles on one resource or one
+    instrument (*IDN? maker, model, serial), and an instrument that does not answer its role's
+    probe (tonebench.instruments.role_check)."""
+    from tonebench.instruments.role_check import check_distinct_identities, check_distinct_resources, check_role
+
     opened: list[ScpiInstrument] = []
     roles = ["source1", "source2", "analyzer"] + [r for r in OPTIONAL_ROLES if r in settings.instruments]
     try:
-        for role in roles:
+        for index, role in enumerate(roles):
+            # Before opening each: an unreachable first instrument is reported as that.
+            check_distinct_resources(resources, roles[: index + 1])
             dialect = load_dialect(settings.instruments[role].dialect)
             if dialect.role != ROLE_KINDS[role]:
                 raise InputError(
                     f"instruments.{role}: dialect {dialect.name} is for a {dialect.role}; this role needs a {ROLE_KINDS[role]} dialect"
                 )
             opened.append(ScpiInstrument(open_resource(resources[role], dialect), dialect, role, supervision))
+        for inst in opened:
+            check_role(inst, ROLE_KINDS[inst.label])
+        check_distinct_identities(opened)
         scpi1, scpi2, scpi_analyzer = opened[:3]
         meter = PowerMeter(opened[3]) if len(opened) > 3 else None
         if meter is not None:

@@ -14,7 +14,7 @@ import os
 import platform
 import time
 
-from sqlalchemy import delete, select, update
+from sqlalchemy import delete, or_, select, update
 from sqlalchemy.orm import Session, sessionmaker
 
 from tonebench.errors import InputError
@@ -63,15 +63,16 @@ def owner_gone(run: Run, now: dt.datetime | None = None) -> str | None:
 def take_ownership(sessions: sessionmaker, run_id: int, owner: str | None = None, *, resuming: bool = False) -> None:
     """Mark the run as driven by this process, running, with a fresh heartbeat.
 
-    When resuming, only a run that is not 'running' is taken, in one conditional UPDATE, so two
-    processes resuming the same run at once cannot both go on (InputError for the second).
+    When resuming, only a run that is not 'running' (or was already taken by this owner with the
+    bench, tonebench.bench_lock) is taken, in one conditional UPDATE, so two processes resuming the
+    same run at once cannot both go on (InputError for the second).
     """
-    values = dict(owner=owner or process_owner(), heartbeat_at=utc_now(), status="running", end_reason=None,
-                  ended_at=None)
+    owner = owner or process_owner()
+    values = dict(owner=owner, heartbeat_at=utc_now(), status="running", end_reason=None, ended_at=None)
     with sessions.begin() as session:
         query = update(Run).where(Run.id == run_id)
         if resuming:
-            query = query.where(Run.status != "running")
+            query = query.where(or_(Run.status != "running", Run.owner == owner))
         taken = session.execute(query.values(**values).execution_options(synchronize_session=False)).rowcount
     if taken != 1:
         raise InputError(f"run {run_id} is already being resumed by another process")
@@ -98,15 +99,21 @@ def close_dead_runs(sessions: sessionmaker) -> list[str]:
     """Runs left 'running' by a process that is gone become 'aborted' with the reason; their GUIDs."""
     closed = []
     with sessions.begin() as session:
-        for run in session.scalars(select(Run).where(Run.status == "running")):
-            reason = owner_gone(run)
-            if reason is None:
-                continue
-            run.status, run.end_reason = "aborted", reason
-            run.ended_at = run.heartbeat_at or utc_now()
-            session.add(Event(run_id=run.id, at=utc_now(), level="error", kind="owner-gone", message=reason))
-            closed.append(run.guid)
+        for run in session.scalars(select(Run).where(Run.status == "running")).all():
+            if close_if_gone(session, run):
+                closed.append(run.guid)
     return closed
+
+
+def close_if_gone(session: Session, run: Run) -> bool:
+    """Close a 'running' run whose owner is gone as aborted, with the reason; whether it was."""
+    reason = owner_gone(run)
+    if reason is None:
+        return False
+    run.status, run.end_reason = "aborted", reason
+    run.ended_at = run.heartbeat_at or utc_now()
+    session.add(Event(run_id=run.id, at=utc_now(), level="error", kind="owner-gone", message=reason))
+    return True
 
 
 def check_resumable(run: Run, failed_points: int = 0) -> None:

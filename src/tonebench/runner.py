@@ -11,6 +11,9 @@ from pathlib import Path
 from sqlalchemy.orm import sessionmaker
 
 from tonebench.bench import OpenBench, open_bench
+from tonebench.bench_lock import check_free as check_bench_free
+from tonebench.bench_lock import check_free_at as check_bench_free_at
+from tonebench.bench_lock import hold_bench
 from tonebench.calibration.leveling import Leveler
 from tonebench.calibration.referral import check_coverage
 from tonebench.calibration.sets import CalibrationView, bench_file_set, load_set
@@ -40,7 +43,7 @@ from tonebench.rf_guard import (
     stop_signals,
 )
 from tonebench.runlog import RunLog, log_path_for
-from tonebench.safety import check_plan, power_guard
+from tonebench.safety import check_plan, check_plan_frequencies, power_guard
 from tonebench.sequencer import ProgressCallback, RunStopped, Sequencer
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Run
@@ -207,6 +210,8 @@ def execute_run(
             warn(chosen.stale_message)
 
         # Everything that can refuse the plan happens before the database is written and RF goes on.
+        check_plan_frequencies(points, plan.settings, bench.settings, plan_origin)
+        check_bench_free_at(db_url, sessions, bench.settings.bench.name)  # before talking to its instruments
         open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, warn)
         check_plan(
             points,
@@ -228,8 +233,9 @@ def execute_run(
         else:
             set_id = chosen.view.id
         device = plan.settings.device.model_dump()
+        hold = stack.enter_context(hold_bench(sessions, bench.settings.bench.name))  # one run per bench
         recorder = RunRecorder.start(
-            sessions,
+            hold.sessions,
             bench_name=bench.settings.bench.name,
             bench_description=bench.settings.bench.description,
             device=device,
@@ -252,6 +258,7 @@ def execute_run(
                 "analyzer": analyzer_figures(open_instruments),
             },
         )
+        recorder = hold.commit(recorder)
         with sessions.begin() as session:
             session.get(Run, recorder.run_id).calibration_set_id = set_id
         if chosen.stale_message:
@@ -320,12 +327,15 @@ def resume_run(
         done_keys = frozenset(key for key, status in states.items() if status == "measured")
         remaining = [point for point in points if point.key not in done_keys]
         plan_origin = f"run {guid} plan"
+        check_plan_frequencies(remaining, plan.settings, bench.settings, plan_origin)
+        check_bench_free(sessions, bench_name, except_run_id=run_id)  # before talking to its instruments
 
         open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, on_warning)
         check_same_instruments(guid, stored_ids, open_instruments)
         check_plan(remaining, offsets, bench.settings.limits, open_instruments.source_ranges,
                    open_instruments.analyzer.limits.get("damage_dbm"), plan_origin)
         leveler = make_leveler(bench, open_instruments, points, plan_origin)
+        stack.enter_context(hold_bench(sessions, bench_name, resume_run_id=run_id))  # one run per bench
 
         recorder = RunRecorder(sessions, run_id, guid)
         log = RunLog(recorder, log_path_for(db_url))

@@ -1,12 +1,19 @@
-"""Power limits, checked for the whole plan before RF goes on and again for every source command.
+"""Power limits and frequency ranges, checked for the whole plan before RF goes on; power again
+for every source command.
 
 Predictions use the bench file's expected DUT gain and path losses: the tone power at the DUT
 input plane comes from the plan, the source setting adds the input loss, and the analyzer sees
 both tones amplified by the expected gain less the output loss.
+
+Frequency ranges come from the dialect files' [limits] (min_freq_hz, max_freq_hz), so a run, a
+resume and `queue add` (which has no bench connection) check the same figures before anything
+is connected: each source must reach its tone at every frequency it is stepped to, the analyzer
+each read's whole span (centre +/- span/2), the power meter each tone it levels or calibrates.
 """
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 import numpy as np
@@ -24,6 +31,25 @@ class SourceRange:
     label: str
     min_power_dbm: float
     max_power_dbm: float
+
+
+@dataclass(frozen=True)
+class FreqRange:
+    """What one role's instrument covers, from its dialect's [limits]; label names it in errors."""
+
+    label: str
+    min_freq_hz: float
+    max_freq_hz: float
+
+
+@dataclass(frozen=True)
+class FreqNeed:
+    """A band one role must cover: a tone (low == high) or an analyzer read (centre +/- span/2)."""
+
+    role: str
+    what: str
+    low_hz: float
+    high_hz: float
 
 
 @dataclass(frozen=True)
@@ -107,3 +133,69 @@ def power_guard(offsets: dict[str, LossTable], limits: BenchLimits, analyzer_dam
             )
 
     return guard
+
+
+# --- frequency ranges -----------------------------------------------------------------------------
+
+
+def bench_freq_ranges(bench_settings) -> dict[str, FreqRange]:
+    """role -> frequency range of every instrument a bench file names, from its dialect file."""
+    from tonebench.instruments.dialect import load_dialect
+
+    ranges = {}
+    for role, entry in bench_settings.instruments.items():
+        dialect = load_dialect(entry.dialect)
+        limits = dialect.limits
+        if "min_freq_hz" in limits and "max_freq_hz" in limits:
+            ranges[role] = FreqRange(f"{role} (dialect {dialect.name})", limits["min_freq_hz"], limits["max_freq_hz"])
+    return ranges
+
+
+def check_frequency_needs(needs: Iterable[FreqNeed], ranges: dict[str, FreqRange], origin: str) -> None:
+    """Refuse (InputError, one line) the first need outside its role's range; roles without a
+    range (no such instrument) are not checked."""
+    for need in needs:
+        covered = ranges.get(need.role)
+        if covered is None or covered.min_freq_hz <= need.low_hz and need.high_hz <= covered.max_freq_hz:
+            continue
+        band = f"{need.low_hz:.12g} Hz" if need.low_hz == need.high_hz else f"{need.low_hz:.12g}..{need.high_hz:.12g} Hz"
+        raise InputError(
+            f"{origin}: {need.what} needs {band}; {covered.label} covers {covered.min_freq_hz:.12g}.."
+            f"{covered.max_freq_hz:.12g} Hz (min_freq_hz/max_freq_hz)"
+        )
+
+
+def read_need(what: str, center_hz: float, span_hz: float) -> FreqNeed:
+    """An analyzer read centred on center_hz: the whole span must lie in the analyzer's range."""
+    return FreqNeed("analyzer", what, center_hz - span_hz / 2.0, center_hz + span_hz / 2.0)
+
+
+def plan_freq_needs(points: Iterable[PlannedPoint], span_hz: float, leveling: bool) -> list[FreqNeed]:
+    """What a run reads per (centre, spacing): each source its tone, the analyzer f1, f2, 2f1-f2 and
+    2f2-f1 over the span (the noise markers sit inside it), the meter the tones when leveling.
+    Second-order products (f2-f1, f1+f2) are not needed: where the analyzer cannot read them the
+    run skips them with a warning, the IIP3 measurement is whole without them."""
+    needs: list[FreqNeed] = []
+    seen = set()
+    for point in points:
+        if (point.f1_hz, point.f2_hz) in seen:
+            continue
+        seen.add((point.f1_hz, point.f2_hz))
+        at = f"point {point.key}"
+        needs += [FreqNeed("source1", f"{at} tone f1", point.f1_hz, point.f1_hz),
+                  FreqNeed("source2", f"{at} tone f2", point.f2_hz, point.f2_hz)]
+        for name, freq_hz in (("f1", point.f1_hz), ("f2", point.f2_hz), ("the lower IM3 product 2f1-f2", point.lower_hz),
+                              ("the upper IM3 product 2f2-f1", point.upper_hz)):
+            needs.append(read_need(f"{at} reading {name} at {freq_hz:.12g} Hz over a {span_hz:.12g} Hz span",
+                                   freq_hz, span_hz))
+        if leveling:
+            needs += [FreqNeed("power_meter", f"{at} leveling tone f1", point.f1_hz, point.f1_hz),
+                      FreqNeed("power_meter", f"{at} leveling tone f2", point.f2_hz, point.f2_hz)]
+    return needs
+
+
+def check_plan_frequencies(points: list[PlannedPoint], plan_settings, bench_settings, origin: str) -> None:
+    """The pre-flight frequency check of a run, a resume or `queue add`, from the dialect files."""
+    leveling = bench_settings.has_power_meter and bench_settings.leveling.enabled
+    needs = plan_freq_needs(points, plan_settings.analyzer.effective_span_hz, leveling)
+    check_frequency_needs(needs, bench_freq_ranges(bench_settings), origin)

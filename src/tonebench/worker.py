@@ -22,6 +22,7 @@ from sqlalchemy import select, update
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
+from tonebench.bench_lock import BenchBusy, is_free
 from tonebench.config.bench_file import load_bench
 from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError, TonebenchError
@@ -93,19 +94,22 @@ def add_job(sessions: sessionmaker, plan_path: Path, bench_path: Path, priority:
 
 
 def _check_limits(plan, bench) -> None:
-    """The pre-flight limit check, from the dialects' source ranges: a plan that would be refused
-    at run time is refused now, not at 3 am."""
+    """The pre-flight checks of a run, from the dialect files (no bench connection here): power
+    limits and every instrument's frequency range. A plan that would be refused at run time is
+    refused now, not at 3 am."""
     from tonebench.instruments.dialect import load_dialect
     from tonebench.plan import expand
     from tonebench.runner import offsets_from_bench
-    from tonebench.safety import SourceRange, check_plan
+    from tonebench.safety import SourceRange, check_plan, check_plan_frequencies
 
     dialects = {role: load_dialect(entry.dialect) for role, entry in bench.settings.instruments.items()}
     ranges = tuple(
         SourceRange(role, dialects[role].limits["min_power_dbm"], dialects[role].limits["max_power_dbm"])
         for role in ("source1", "source2")
     )
-    check_plan(expand(plan.settings), offsets_from_bench(bench), bench.settings.limits, ranges,
+    points = expand(plan.settings)
+    check_plan_frequencies(points, plan.settings, bench.settings, f"plan {plan.path}")
+    check_plan(points, offsets_from_bench(bench), bench.settings.limits, ranges,
                dialects["analyzer"].limits.get("damage_dbm"), f"plan {plan.path}")
 
 
@@ -193,6 +197,14 @@ def finish_job(sessions: sessionmaker, job_id: int, status: str, message: str, r
             job.status = status
         job.message = message
         job.finished_at = utc_now()
+
+
+def requeue_job(sessions: sessionmaker, job_id: int, message: str) -> None:
+    """Put a claimed job whose run did not start back in the queue (unless cancelled meanwhile)."""
+    with sessions.begin() as session:
+        job = session.get(Job, job_id)
+        if job.status == "running":
+            job.status, job.claimed_by, job.claimed_at, job.message = "queued", None, None, message
 
 
 def job_status(sessions: sessionmaker, job_id: int) -> str:
@@ -295,6 +307,9 @@ class Worker:
                 self._run_job(sessions, job, resume_guid=run_guid)
                 done += 1
             while not self.stop.is_set():
+                if not is_free(sessions, self.bench_name):  # another run holds the bench: jobs wait
+                    self.stop.wait(self.poll_s)
+                    continue
                 job = claim_next(sessions, self.bench_name, self.owner)
                 if job is None:
                     if until_empty:
@@ -314,10 +329,13 @@ class Worker:
         """Run a claimed job (or resume its run, left by a worker that died) and record the end."""
         from tonebench.runner import Terminated, execute_run, resume_run
 
-        self.on_job("resume" if resume_guid else "start", job, resume_guid or "")
+        if resume_guid:
+            self.on_job("resume", job, resume_guid)
         started: list[str] = [resume_guid] if resume_guid else []
 
         def link_run(guid: str) -> None:  # the job points at its run from the first point on
+            if not started:  # said once the run holds the bench (a job that lost it goes back)
+                self.on_job("start", job, "")
             started[:] = [guid]
             with sessions.begin() as session:
                 session.get(Job, job.id).run_id = session.scalars(select(Run.id).where(Run.guid == guid)).one()
@@ -335,6 +353,16 @@ class Worker:
                 else:
                     outcome = execute_run(self._plan_file(job, Path(folder)), self.bench_path, self.db_url, report,
                                           check_cancelled, on_run_started=link_run)
+            except BenchBusy as exc:
+                if resume_guid:  # its run exists: left to `tonebench resume`, like any other failure
+                    finish_job(sessions, job.id, "failed", str(exc), resume_guid)
+                    self.on_job("failed", job, str(exc))
+                    return
+                # Taken by another run since the claim: the job waits its turn.
+                requeue_job(sessions, job.id, f"queued again: {exc}")
+                self.on_job("waiting", job, str(exc))
+                self.stop.wait(self.poll_s)
+                return
             except (KeyboardInterrupt, SystemExit, Terminated):
                 finish_job(sessions, job.id, "failed", "the worker was stopped during the run; "
                            "`tonebench resume` continues it", started[0] if started else None)

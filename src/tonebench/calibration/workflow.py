@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from tonebench.bench import OpenBench, open_bench
+from tonebench.bench_lock import check_free as check_bench_free
 from tonebench.calibration import importers, measure, residual
 from tonebench.calibration.referral import check_coverage
 from tonebench.calibration.sets import (
@@ -37,7 +38,7 @@ from tonebench.errors import InputError, InstrumentError
 from tonebench.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, Terminated, attach_note, stop_signals
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.plan import expand
-from tonebench.safety import TWO_EQUAL_TONES_DB
+from tonebench.safety import TWO_EQUAL_TONES_DB, FreqNeed, bench_freq_ranges, check_frequency_needs, read_need
 from tonebench.store.database import open_database, session_factory
 
 RESIDUAL_LEVELS_BELOW_TOP_DB = (15.0, 10.0, 5.0, 0.0)  # default thru sweep, per tone, under the top level
@@ -158,6 +159,20 @@ def _plan_and_grid(plan_path: Path, step_hz: float | None) -> tuple[LoadedPlan, 
     return plan, measure.calibration_freqs_hz(pairs, step_hz)
 
 
+def _check_grid(bench: LoadedBench, roles: tuple[str, ...], freqs_hz: np.ndarray, span_hz: float | None,
+                origin: str) -> None:
+    """Before anything is connected: each role in `roles` must cover the whole grid (the analyzer
+    each read's span around every grid frequency), from the dialect files' ranges."""
+    low_hz, high_hz = float(freqs_hz[0]), float(freqs_hz[-1])
+    needs = []
+    for role in roles:
+        if role == "analyzer":
+            needs += [read_need(f"reading {f:.12g} Hz over a {span_hz:.12g} Hz span", f, span_hz) for f in (low_hz, high_hz)]
+        else:
+            needs.append(FreqNeed(role, f"stepping {role} over the calibration frequencies", low_hz, high_hz))
+    check_frequency_needs(needs, bench_freq_ranges(bench.settings), origin)
+
+
 def _setup(plan: LoadedPlan) -> AnalyzerSetup:
     a = plan.settings.analyzer
     return AnalyzerSetup(a.effective_span_hz, a.rbw_hz, a.effective_vbw_hz, a.atten_db, a.ref_level_dbm)
@@ -175,7 +190,9 @@ def measure_input(db_url: str, name: str, bench_path: Path, plan_path: Path, *, 
         raise InputError(f"bench file {bench_path}: no [instruments.power_meter]; the input paths are measured with one")
     plan, freqs_hz = _plan_and_grid(plan_path, step_hz)
     check_valid_days(valid_days)
+    _check_grid(bench, ("source1", "source2", "power_meter"), freqs_hz, None, f"input calibration {name}: plan {plan_path}")
     sessions = _sessions(db_url)
+    check_bench_free(sessions, bench.settings.bench.name)  # never talk to instruments a run drives
     _require_new_name(sessions, name)
     with calibration_bench(bench, thru=False, thru_in_place=False, on_sim_started=on_sim_started) as opened:
         meter = opened.power_meter
@@ -212,7 +229,9 @@ def measure_output(db_url: str, name: str, bench_path: Path, plan_path: Path, *,
     """Add 'out' to a set whose input paths are known: a thru in place, read on the analyzer."""
     bench = load_bench(bench_path)
     plan, freqs_hz = _plan_and_grid(plan_path, step_hz)
+    _check_grid(bench, ("source1", "analyzer"), freqs_hz, _setup(plan).span_hz, f"output calibration {name}: plan {plan_path}")
     sessions = _sessions(db_url)
+    check_bench_free(sessions, bench.settings.bench.name)  # never talk to instruments a run drives
     view = _load(sessions, name)
     if "in1" not in view.tables:
         raise InputError(f"{view.label} has no 'in1' path; measure or import the input paths first")
@@ -279,6 +298,7 @@ def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, 
     plan = load_plan(plan_path)
     points = expand(plan.settings)
     sessions = _sessions(db_url)
+    check_bench_free(sessions, bench.settings.bench.name)  # never talk to instruments a run drives
     view = _load(sessions, name)
     check_coverage(view.tables, sorted({(p.f1_hz, p.f2_hz) for p in points}), f"plan {plan_path}: {view.label}")
     setup = _setup(plan)
@@ -292,6 +312,7 @@ def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, 
         setup = dataclasses.replace(setup, rbw_hz=rbw_hz, vbw_hz=rbw_hz, span_hz=10.0 * rbw_hz)
         noise_offset_hz = 0.4 * setup.span_hz
     groups = sorted({(p.center_hz, p.spacing_hz) for p in points})
+    _check_residual_freqs(bench, groups, setup.span_hz, f"system residual {name}: plan {plan_path}")
     rows = []
     with calibration_bench(bench, thru=True, thru_in_place=thru_in_place, on_sim_started=on_sim_started) as opened:
         base_db = setup.atten_db
@@ -306,6 +327,19 @@ def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, 
         replace_residuals(session, name, rows)
         add_paths(session, name, {}, instruments, f"system residual at {len(groups)} (center, spacing) pairs")
     return _load(sessions, name)
+
+
+def _check_residual_freqs(bench: LoadedBench, groups, span_hz: float, origin: str) -> None:
+    """Before anything is connected: both tones at the sources, both IM3 reads at the analyzer."""
+    needs = []
+    for center_hz, spacing_hz in groups:
+        f1_hz, f2_hz = center_hz - spacing_hz / 2.0, center_hz + spacing_hz / 2.0
+        at = f"{center_hz:.12g} Hz / {spacing_hz:.12g} Hz"
+        needs += [FreqNeed("source1", f"{at} tone f1", f1_hz, f1_hz), FreqNeed("source2", f"{at} tone f2", f2_hz, f2_hz)]
+        for product, freq_hz in (("2f1-f2", 2 * f1_hz - f2_hz), ("2f2-f1", 2 * f2_hz - f1_hz)):
+            needs.append(read_need(f"{at} reading {product} at {freq_hz:.12g} Hz over a {span_hz:.12g} Hz span",
+                                   freq_hz, span_hz))
+    check_frequency_needs(needs, bench_freq_ranges(bench.settings), origin)
 
 
 def _finite(value) -> float | None:

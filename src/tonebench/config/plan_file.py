@@ -17,6 +17,10 @@ from tonebench.errors import InputError
 # Tone power at the DUT input plane that any plan may ask for; the bench file narrows it further.
 TONE_MIN_DBM = -150.0
 TONE_MAX_DBM = 30.0
+# Points one plan may expand to (README, DEVELOPERS.md). Counted from the axes' lengths before
+# anything is expanded: a 10^8-point plan took gigabytes of memory with no message. 100 000
+# points take about 17 MB expanded (measured) and, at a second a point on hardware, more than a day.
+MAX_PLAN_POINTS = 100_000
 
 
 class PlanInfo(StrictModel):
@@ -59,10 +63,19 @@ class SweepSettings(StrictModel):
                     )
         return self
 
-    def tone_levels_dbm(self) -> list[float]:
+    def tone_level_count(self) -> int:
+        """How many levels tone_levels_dbm() gives, computed without building them."""
         count = int(round((self.tone_stop_dbm - self.tone_start_dbm) / self.tone_step_dbm)) + 1
-        levels = [round(self.tone_start_dbm + i * self.tone_step_dbm, 6) for i in range(count)]
-        return [level for level in levels if level <= self.tone_stop_dbm + 1e-9]
+        # Rounding may take the last level past the stop by under half a step: it is left out.
+        if round(self.tone_start_dbm + (count - 1) * self.tone_step_dbm, 6) > self.tone_stop_dbm + 1e-9:
+            count -= 1
+        return count
+
+    def point_count(self) -> int:
+        return len(self.center_freqs_hz) * len(self.spacings_hz) * self.tone_level_count()
+
+    def tone_levels_dbm(self) -> list[float]:
+        return [round(self.tone_start_dbm + i * self.tone_step_dbm, 6) for i in range(self.tone_level_count())]
 
 
 class AnalyzerSettings(StrictModel):
@@ -123,9 +136,23 @@ class LoadedPlan(BaseModel):
     settings: PlanFile
 
 
+def check_point_count(sweep: SweepSettings, origin: str) -> None:
+    """Refuse (one line) a plan that would expand to more than MAX_PLAN_POINTS points."""
+    count = sweep.point_count()
+    if count <= MAX_PLAN_POINTS:
+        return
+    centers, spacings, levels = len(sweep.center_freqs_hz), len(sweep.spacings_hz), sweep.tone_level_count()
+    raise InputError(
+        f"{origin}: {count:,} points ({centers} center_freqs_hz x {spacings} spacings_hz x {levels:,} tone levels) "
+        f"exceed the cap of {MAX_PLAN_POINTS:,} points per plan; split it into several plans (fewer "
+        "center_freqs_hz or spacings_hz each) or raise tone_step_dbm"
+    )
+
+
 def load_plan(path: Path) -> LoadedPlan:
     text, data = read_toml(path, "plan")
     settings = validate(PlanFile, data, f"plan {path}")
+    check_point_count(settings.sweep, f"plan {path}")
     digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
     return LoadedPlan(path=path, text=text, sha256=digest, settings=settings)
 
@@ -137,5 +164,6 @@ def plan_from_text(text: str, path: Path, origin: str) -> LoadedPlan:
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{origin}: not valid TOML ({exc})") from None
     settings = validate(PlanFile, data, origin)
+    check_point_count(settings.sweep, origin)
     digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
     return LoadedPlan(path=path, text=text, sha256=digest, settings=settings)
