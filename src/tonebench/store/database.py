@@ -144,7 +144,11 @@ def _check_sqlite_path(parsed: sa.URL, shown: str) -> None:
     # SQLite creates the file on connect but never its folder; check first so a typo leaves
     # nothing behind.
     database = parsed.database
-    if not database or database == ":memory:" or database.startswith("file:"):
+    if not database or database == ":memory:" or "mode=memory" in database or parsed.query.get("mode") == "memory":
+        # Each connection would get its own empty database, gone with the process: a run's
+        # record must outlive it.
+        raise _bad_url(shown, "an in-memory SQLite database does not outlive the process; give a file")
+    if database.startswith("file:"):
         return
     path = Path(database).expanduser()
     if path.is_dir():
