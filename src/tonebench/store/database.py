@@ -66,15 +66,20 @@ def database_revision(engine: sa.Engine) -> str | None:
     return heads[0] if heads else None
 
 
-def open_database(url: str, *, upgrade: bool = True) -> sa.Engine:
+def open_database(url: str, *, upgrade: bool = True, read_only: bool = False) -> sa.Engine:
     """Engine for `url`, its schema at this code's head.
 
     Raises InputError for a URL that cannot be used (unparseable, unknown dialect or driver,
-    driver not installed, missing directory, unreachable server) and DatabaseError for a
-    schema newer than this code, or older when upgrade is False.
+    driver not installed, missing directory, unreachable server, in-memory SQLite) and
+    DatabaseError for a schema newer than this code, or older when upgrade is False.
+    read_only (the commands that only show what is stored): an SQLite file must exist already,
+    never created by a mistyped path, and no migration runs (upgrade is False).
     """
     parsed = _parse_url(url)
     shown = parsed.render_as_string(hide_password=True)
+    if read_only:
+        upgrade = False
+        _check_sqlite_exists(parsed, shown)
     engine = _create_engine(parsed, shown, foreign_keys=True)
     try:
         _check_reachable(engine, shown)
@@ -157,6 +162,16 @@ def _check_sqlite_path(parsed: sa.URL, shown: str) -> None:
         raise _bad_url(shown, f"directory {path.parent} does not exist")
 
 
+def _check_sqlite_exists(parsed: sa.URL, shown: str) -> None:
+    database = parsed.database
+    if parsed.get_backend_name() != "sqlite" or not database or database.startswith("file:"):
+        return
+    path = Path(database).expanduser()
+    if not path.is_file():
+        raise _bad_url(shown, f"no database file {path} (this command only reads; check the path, "
+                              "or run or import something into it first)")
+
+
 def _create_engine(parsed: sa.URL, shown: str, *, foreign_keys: bool) -> sa.Engine:
     try:
         engine = sa.create_engine(parsed)
@@ -175,10 +190,11 @@ def _add_sqlite_pragmas(engine: sa.Engine, *, foreign_keys: bool) -> None:
     def _on_connect(dbapi_connection, connection_record):
         # WAL lets reports read while a run writes; busy_timeout makes a second writer wait
         # instead of failing at once. Both need to be outside a transaction: on connect is.
+        # busy_timeout first: switching a fresh file to WAL takes a lock another process may hold.
         cursor = dbapi_connection.cursor()
+        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
         cursor.execute("PRAGMA journal_mode=WAL")
         cursor.execute(f"PRAGMA foreign_keys={'ON' if foreign_keys else 'OFF'}")
-        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
         cursor.close()
 
 
@@ -208,6 +224,10 @@ def _upgrade(parsed: sa.URL, shown: str) -> None:
         _use_explicit_sqlite_transactions(engine)
     try:
         with engine.begin() as connection:
+            _lock_for_migration(connection)
+            # Another process may have migrated while this one waited for the lock.
+            if MigrationContext.configure(connection).get_current_heads() == (schema_head(),):
+                return
             command.upgrade(alembic_config(connection), "head")
             if connection.dialect.name == "sqlite":
                 broken = connection.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
@@ -223,6 +243,23 @@ def _upgrade(parsed: sa.URL, shown: str) -> None:
         engine.dispose()
 
 
+# Any fixed number serves: it names tonebench's migration lock among the server's advisory locks.
+POSTGRES_MIGRATION_LOCK = 0x746F6E65  # "tone"
+
+
+def _lock_for_migration(connection: sa.Connection) -> None:
+    """One process migrates at a time; the others wait here, then find the schema at head.
+
+    SQLite: the transaction began with BEGIN IMMEDIATE (the write lock, waited for up to the busy
+    timeout); a plain BEGIN takes a read lock first, and a reader that later wants to write while
+    another process writes gets "database is locked" at once (SQLite's deadlock rule), which is
+    what failed 3 of 4 processes opening a fresh file together. PostgreSQL: a transaction-scoped
+    advisory lock, released at commit or rollback.
+    """
+    if connection.dialect.name == "postgresql":
+        connection.exec_driver_sql(f"SELECT pg_advisory_xact_lock({POSTGRES_MIGRATION_LOCK})")
+
+
 def _use_explicit_sqlite_transactions(engine: sa.Engine) -> None:
     # Python's sqlite3 module does not put DDL in a transaction by itself; take over BEGIN
     # (recipe from the SQLAlchemy SQLite dialect docs, "Serializable isolation / Savepoints /
@@ -233,4 +270,4 @@ def _use_explicit_sqlite_transactions(engine: sa.Engine) -> None:
 
     @event.listens_for(engine, "begin")
     def _explicit_begin(connection):
-        connection.exec_driver_sql("BEGIN")
+        connection.exec_driver_sql("BEGIN IMMEDIATE")  # the write lock now: see _lock_for_migration
