@@ -182,7 +182,83 @@ def _create_engine(parsed: sa.URL, shown: str, *, foreign_keys: bool) -> sa.Engi
         raise _bad_url(shown, str(exc)) from None
     if engine.dialect.name == "sqlite":
         _add_sqlite_pragmas(engine, foreign_keys=foreign_keys)
+    _report_disk_full(engine, shown)
     return engine
+
+
+class DiskFull(DatabaseError):
+    """The database could not be written for lack of space. point_key and run_id are set when it
+    happened while a point was being stored (what a resume then measures again)."""
+
+    def __init__(self, message: str, point_key: str | None = None, run_id: int | None = None):
+        super().__init__(message)
+        self.point_key = point_key
+        self.run_id = run_id
+
+
+SQLITE_FULL = 13  # sqlite3's result code for "database or disk is full"
+POSTGRES_DISK_FULL = "53100"  # SQLSTATE disk_full
+
+
+def is_disk_full(exc: BaseException) -> bool:
+    orig = getattr(exc, "orig", exc)
+    if getattr(orig, "sqlite_errorcode", None) == SQLITE_FULL or getattr(orig, "sqlstate", None) == POSTGRES_DISK_FULL:
+        return True
+    text = str(orig).lower()
+    return "disk is full" in text or "no space left on device" in text
+
+
+def _report_disk_full(engine: sa.Engine, shown: str) -> None:
+    # Turned into one line where it happens, whoever writes (a point, an event, the heartbeat).
+    # SQLite writes at COMMIT, where the statement is gone, so each connection remembers what
+    # its transaction writes for a run (the point's key, the run's id) until the next begins.
+    @event.listens_for(engine, "before_cursor_execute")
+    def _remember(connection, cursor, statement, parameters, context, executemany):
+        head = statement.lstrip()[:20].upper()
+        if not head.startswith(("INSERT INTO POINTS", "INSERT INTO EVENTS", "UPDATE RUNS")):
+            return
+        params = context.compiled_parameters[0] if context is not None and context.compiled_parameters else {}
+        run_id = params.get("run_id", params.get("runs_id", params.get("id_1")))
+        writing = connection.info.setdefault("tonebench_writing", {})
+        if run_id is not None:
+            writing["run_id"] = run_id
+        if head.startswith("INSERT INTO POINTS") and params.get("point_key"):
+            writing["point_key"] = params["point_key"]
+
+    @event.listens_for(engine, "begin")  # not at commit: that event comes before the commit's write
+    def _forget(connection):
+        connection.info.pop("tonebench_writing", None)
+
+    @event.listens_for(engine, "handle_error")
+    def _disk_full(context):
+        if not is_disk_full(context.original_exception):
+            return None
+        connection = context.connection
+        writing = dict(connection.info.get("tonebench_writing", {})) if connection is not None else {}
+        point_key, run_id = writing.get("point_key"), writing.get("run_id")
+        return DiskFull(_disk_full_message(engine, shown, point_key, run_id), point_key, run_id)
+
+
+def _disk_full_message(engine: sa.Engine, shown: str, point_key: str | None, run_id: int | None) -> str:
+    """The one line for a full disk: what was being stored and how far the run is stored. Its
+    transaction is rolled back, so everything committed before is whole; reading still works
+    on a full disk, so the run and its count come from a second connection."""
+    nothing = (f"disk full while writing to database {shown}; the write was rolled back, nothing is "
+               "half-written; free space and try again")
+    if run_id is None:
+        return nothing
+    try:
+        with engine.connect() as connection:
+            guid = connection.execute(sa.text("SELECT guid FROM runs WHERE id = :id"), {"id": run_id}).scalar()
+            stored = connection.execute(sa.text("SELECT count(*) FROM points WHERE run_id = :id"), {"id": run_id}).scalar()
+    except Exception:  # noqa: BLE001 - the line is still given, only without the count
+        guid, stored = "RUN", "its last committed one"
+    if guid is None:  # the run's own first write: nothing of it is stored
+        return nothing
+    short = str(guid)[:8]
+    what = f"point {point_key} of run {short}" if point_key else f"run {short}"
+    return (f"disk full while storing {what} (database {shown}); the run is stored up to point {stored}; "
+            f"free space and `tonebench resume {short}`")
 
 
 def _add_sqlite_pragmas(engine: sa.Engine, *, foreign_keys: bool) -> None:
