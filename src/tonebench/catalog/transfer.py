@@ -308,11 +308,8 @@ def _type_problem(column: sa.Column, value) -> str | None:
         return None if isinstance(value, int) and not isinstance(value, bool) else "must be a whole number"
     if isinstance(kind, (sa.Float, sa.Numeric)):
         return None if isinstance(value, (int, float)) and not isinstance(value, bool) else "must be a number"
-    if isinstance(kind, sa.String):
-        if not isinstance(value, str):
-            return "must be text"
-        if kind.length is not None and len(value) > kind.length:
-            return f"is longer than {kind.length} characters"
+    if isinstance(kind, sa.String) and not isinstance(value, str):
+        return "must be text"
     return None
 
 
