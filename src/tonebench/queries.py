@@ -33,7 +33,7 @@ def results_table(results) -> Table:
 
 
 def list_runs(db_url: str, limit: int) -> list[tuple[str, ...]]:
-    sessions = session_factory(open_database(db_url))
+    sessions = session_factory(open_database(db_url, read_only=True))
     close_dead_runs(sessions)  # a run whose process is gone is not shown as running
     with sessions() as session:
         counts = dict(session.execute(select(Point.run_id, func.count()).group_by(Point.run_id)).all())
@@ -52,7 +52,7 @@ def list_runs(db_url: str, limit: int) -> list[tuple[str, ...]]:
 
 
 def describe_run(db_url: str, ident: str, console: Console) -> None:
-    sessions = session_factory(open_database(db_url))
+    sessions = session_factory(open_database(db_url, read_only=True))
     close_dead_runs(sessions)
     with sessions() as session:
         run = find_run(session, ident)

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import html
 import os
+import stat
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -18,7 +19,7 @@ from plotly.offline import get_plotlyjs
 
 from tonebench.analysis.assess import SweepAssessment
 from tonebench.analysis.fit import SweepResult
-from tonebench.errors import InputError
+from tonebench.errors import InputError, TonebenchError
 
 _COLORS = {"fundamental": "#1f5fa8", "im3_lower": "#c0561b", "im3_upper": "#2a8a4a",
            "noise": "#888888", "invalid": "#9a9a9a", "flag": "#c00000"}
@@ -268,14 +269,46 @@ def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list
 """
 
 
-def write_report(path: Path, heading: str, summary_rows: list[dict[str, str]],
-                 sweeps: list[SweepPlotData], result_rows: list[dict[str, object]]) -> Path:
-    """Write the report to path atomically (temp file, then os.replace); returns the path."""
+def check_report_path(path: Path, what: str = "report path") -> Path:
+    """The file an HTML page may be written to, checked before anything is measured or written.
+
+    A page is never written over a directory, a device, a FIFO or any other non-regular file
+    (os.replace would swap /dev/null for a regular file); the folder must exist and take a new
+    file (probed with a temporary file, which also catches read-only mounts and, for root,
+    what permission bits alone would not show). A symlink is followed to the file it names.
+    """
     path = Path(path)
-    if not path.parent.is_dir():
-        raise InputError(f"report path {path}: directory {path.parent} does not exist; "
-                         "give a file in an existing directory")
-    page = render_report(heading, summary_rows, sweeps, result_rows)  # fails before touching disk
+    if path.is_symlink():
+        path = path.resolve()
+    try:
+        mode = path.stat().st_mode
+    except FileNotFoundError:
+        mode = None
+    except OSError as exc:
+        raise InputError(f"{what} {path}: cannot be checked ({exc.strerror or exc}); give an HTML file path") from None
+    if mode is not None and stat.S_ISDIR(mode):
+        raise InputError(f"{what} {path} is a directory; give a file path such as {path / 'report.html'}")
+    if mode is not None and not stat.S_ISREG(mode):
+        raise InputError(f"{what} {path} is not a regular file (a device, FIFO or socket); it is never "
+                         "replaced: give a file path in a folder")
+    folder = path.parent
+    if not folder.is_dir():
+        raise InputError(f"{what} {path}: directory {folder} does not exist; give a file in an existing directory")
+    try:
+        probe_fd, probe_name = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=".probe")
+    except OSError as exc:
+        raise InputError(f"{what} {path}: cannot create a file in {folder} ({exc.strerror or exc}); "
+                         "give a file in a writable directory") from None
+    os.close(probe_fd)
+    os.unlink(probe_name)
+    return path
+
+
+def write_html_file(path: Path, page: str, what: str = "report path") -> Path:
+    """Write `page` to `path` the one way every HTML page is written: checked (check_report_path),
+    into a temporary file in the same folder, fsynced, then renamed over the old file, so a
+    reader never sees half a page and a crash leaves the old page or the new one."""
+    path = check_report_path(path, what)
     fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     try:
         os.fchmod(fd, 0o644)  # mkstemp makes it private; a report is meant to be shared
@@ -284,7 +317,19 @@ def write_report(path: Path, heading: str, summary_rows: list[dict[str, str]],
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp_name, path)
+    except OSError as exc:
+        Path(tmp_name).unlink(missing_ok=True)
+        # Checked beforehand, so this is the disk (full, failing), not the path given: exit 1.
+        raise TonebenchError(f"{what} {path}: cannot be written ({exc.strerror or exc}); nothing was replaced") from None
     except BaseException:
         Path(tmp_name).unlink(missing_ok=True)
         raise
     return path
+
+
+def write_report(path: Path, heading: str, summary_rows: list[dict[str, str]],
+                 sweeps: list[SweepPlotData], result_rows: list[dict[str, object]]) -> Path:
+    """Write the report to path atomically (write_html_file); returns the path."""
+    check_report_path(path)
+    page = render_report(heading, summary_rows, sweeps, result_rows)  # fails before touching disk
+    return write_html_file(path, page)

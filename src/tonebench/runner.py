@@ -24,6 +24,7 @@ from tonebench.instruments.scpi import LimitError, identity
 from tonebench.instruments.supervision import InstrumentEvent, RecoveryStopped, RetryPolicy, Supervision
 from tonebench.offsets import LossTable
 from tonebench.plan import PlannedPoint, expand
+from tonebench.report import check_report_path
 from tonebench.resume import (
     Heartbeat,
     check_resumable,
@@ -190,6 +191,8 @@ def execute_run(
 
     A run stopped by the bench file's on_point_failure policy or by the watchdog returns with
     status 'paused' or 'aborted' (RF off, the reason stored); Ctrl-C, SIGTERM and errors raise."""
+    if report_path is not None:  # refused before the database is written and RF goes on
+        check_report_path(report_path)
     plan: LoadedPlan = load_plan(plan_path)
     bench: LoadedBench = load_bench(bench_path)
     points = expand(plan.settings)
@@ -293,6 +296,8 @@ def resume_run(
     instruments must identify as the same ones (maker, model, serial). The offsets are those the
     run stored. Points already measured are skipped by key; failed ones are measured again.
     """
+    if report_path is not None:  # refused before the database is written and RF goes on
+        check_report_path(report_path)
     engine = open_database(db_url)
     with ExitStack() as stack:
         stack.callback(engine.dispose)

@@ -75,7 +75,7 @@ def add_job(sessions: sessionmaker, plan_path: Path, bench_path: Path, priority:
     """Queue `plan_path` for the bench named in `bench_path`; both files are checked first."""
     plan = load_plan(plan_path)
     bench = load_bench(bench_path)
-    _check_limits(plan, bench)
+    _check_limits(plan, bench, sessions)
     with sessions.begin() as session:
         job = Job(
             guid=str(uuid.uuid4()),
@@ -93,13 +93,14 @@ def add_job(sessions: sessionmaker, plan_path: Path, bench_path: Path, priority:
         return _view(job)
 
 
-def _check_limits(plan, bench) -> None:
+def _check_limits(plan, bench, sessions: sessionmaker) -> None:
     """The pre-flight checks of a run, from the dialect files (no bench connection here): power
-    limits and every instrument's frequency range. A plan that would be refused at run time is
-    refused now, not at 3 am."""
+    limits with the path losses the run will use (the bench file's [bench] calibration set, else
+    its [offsets], as `tonebench run` picks them) and every instrument's frequency range. A plan
+    that would be refused at run time is refused now, not at 3 am."""
     from tonebench.instruments.dialect import load_dialect
     from tonebench.plan import expand
-    from tonebench.runner import offsets_from_bench
+    from tonebench.runner import choose_calibration
     from tonebench.safety import SourceRange, check_plan, check_plan_frequencies
 
     dialects = {role: load_dialect(entry.dialect) for role, entry in bench.settings.instruments.items()}
@@ -108,9 +109,10 @@ def _check_limits(plan, bench) -> None:
         for role in ("source1", "source2")
     )
     points = expand(plan.settings)
-    check_plan_frequencies(points, plan.settings, bench.settings, f"plan {plan.path}")
-    check_plan(points, offsets_from_bench(bench), bench.settings.limits, ranges,
-               dialects["analyzer"].limits.get("damage_dbm"), f"plan {plan.path}")
+    origin = f"plan {plan.path}"
+    check_plan_frequencies(points, plan.settings, bench.settings, origin)
+    chosen = choose_calibration(bench, bench.settings.bench.calibration, sessions, points, origin)
+    check_plan(points, chosen.tables, bench.settings.limits, ranges, dialects["analyzer"].limits.get("damage_dbm"), origin)
 
 
 def list_jobs(sessions: sessionmaker, bench_name: str | None = None, include_finished: bool = False) -> list[JobView]:
@@ -246,7 +248,9 @@ class SqliteWorkerLock:
         database = url.database or ""
         if not database or database == ":memory:" or database.startswith("file:"):
             raise InputError(f"worker: database {db_url} is not a file; a worker needs a database file or PostgreSQL")
-        self.path = Path(database).expanduser().resolve().with_name(Path(database).name + ".worker-lock")
+        # Keyed by the file itself: a symlink or another spelling of the path names the same lock.
+        resolved = Path(database).expanduser().resolve()
+        self.path = resolved.with_name(resolved.name + ".worker-lock")
         self._file = None
 
     def acquire(self) -> None:

@@ -9,6 +9,7 @@ from pathlib import Path
 import plotly.graph_objects as go
 
 from tonebench.calibration.sets import CalibrationView
+from tonebench.report import check_report_path, write_html_file
 
 PATH_LABELS = {"in1": "in1 (source 1 to DUT input)", "in2": "in2 (source 2 to DUT input)", "out": "out (DUT output to analyzer)"}
 
@@ -39,6 +40,8 @@ def offsets_figure(view: CalibrationView) -> go.Figure:
 
 
 def write_calibration_page(view: CalibrationView, path: Path) -> Path:
+    """Write the page (write_html_file: checked, temporary file, fsync, rename); returns the path."""
+    check_report_path(path, "calibration page")
     provenance = [
         ["Name", view.name], ["Method", view.method],
         ["Created (UTC)", f"{view.created_at:%Y-%m-%d %H:%M:%S}"], ["Operator", view.operator or "-"],
@@ -74,6 +77,4 @@ def write_calibration_page(view: CalibrationView, path: Path) -> Path:
             _table(["Center (GHz)", "Spacing (MHz)", "Atten (dB)", "System", "Sources", "Analyzer"], residuals),
         ]
     parts.append("</body></html>")
-    path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text("\n".join(parts), encoding="utf-8")
-    return path
+    return write_html_file(path, "\n".join(parts), "calibration page")

@@ -9,9 +9,7 @@ own table. plotly.js is embedded once in the page head: the page needs no networ
 from __future__ import annotations
 
 import html
-import os
 import statistics
-import tempfile
 from collections import Counter, defaultdict
 from pathlib import Path
 
@@ -24,7 +22,7 @@ from sqlalchemy.orm import Session
 from tonebench.catalog.limits import LimitRule, list_limits
 from tonebench.catalog.query import ResultFilter, ResultRow, find_results
 from tonebench.errors import InputError
-from tonebench.report import format_freq
+from tonebench.report import check_report_path, format_freq, write_html_file
 
 MAX_DEVICE_TRACES = 60  # above this many devices, traces are per lot (a legend of hundreds helps no one)
 FLAGGED_COLOR = "#9a9a9a"
@@ -274,20 +272,9 @@ def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]
 
 def write_compare_report(session: Session, flt: ResultFilter, path: Path, limit: int | None = None) -> tuple[Path, int]:
     """Query, render and write the page atomically; returns (path, number of results)."""
-    path = Path(path)
-    if not path.parent.is_dir():
-        raise InputError(f"compare report {path}: directory {path.parent} does not exist; "
-                         "give a file in an existing directory")
+    path = check_report_path(path, "compare report")
     rows = find_results(session, flt, limit)
     limits = {part: [LimitRule.of(l) for l in list_limits(session, part)] for part in {r.part_number for r in rows}}
     page = render_compare_page(rows, limits, flt.describe())
-    fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        os.fchmod(fd, 0o644)  # mkstemp makes it private; a report is meant to be shared
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(page)
-        os.replace(tmp_name, path)
-    except BaseException:
-        Path(tmp_name).unlink(missing_ok=True)
-        raise
+    write_html_file(path, page, "compare report")
     return path, len(rows)

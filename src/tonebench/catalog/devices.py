@@ -12,6 +12,7 @@ import sqlalchemy as sa
 from sqlalchemy.orm import Session
 
 from tonebench.catalog.query import has_any_tag
+from tonebench.config.plan_file import control_character_problem
 from tonebench.errors import InputError
 from tonebench.store.models import Device, Run
 
@@ -20,6 +21,9 @@ def _clean(field: str, value: str | None, *, required: bool = False) -> str | No
     value = None if value is None else value.strip()
     if required and not value:
         raise InputError(f"device {field}: empty; give a non-empty {field.replace('_', ' ')}")
+    problem = None if value is None else control_character_problem(value, multiline=field == "notes")
+    if problem:
+        raise InputError(f"device {field} {value!r}: {problem}")
     return value or None
 
 
@@ -30,6 +34,9 @@ def clean_tags(tags) -> list[str]:
         tag = tag.strip()
         if not tag:
             raise InputError("device tags: an empty tag; give words like 'lna' or 'qual'")
+        problem = control_character_problem(tag)
+        if problem:
+            raise InputError(f"device tag {tag!r}: {problem}")
         cleaned.add(tag)
     return sorted(cleaned)
 

@@ -141,7 +141,7 @@ def list_sets(db: DbOption = None) -> None:
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        with session_factory(open_database(_db(db)))() as session:
+        with session_factory(open_database(_db(db), read_only=True))() as session:
             views = stored_sets(session)
         table = Table(title="Calibration sets", box=box.SIMPLE_HEAD)
         for column in ("Name", "Method", "Created (UTC)", "Age (days)", "Valid (days)", "Status", "Range (GHz)", "Paths", "Residuals"):
@@ -165,7 +165,7 @@ def show(
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        with session_factory(open_database(_db(db)))() as session:
+        with session_factory(open_database(_db(db), read_only=True))() as session:
             view = load_set(session, name)
         _summary(view)
         out.print(f"  created {view.created_at:%Y-%m-%d %H:%M:%S} UTC by {view.operator or '-'}; {view.notes or ''}", highlight=False)

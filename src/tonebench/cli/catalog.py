@@ -26,7 +26,7 @@ limit_app = typer.Typer(help="Spec limits per part number; they give each result
 def _session(db: str | None, write: bool = False) -> Iterator:
     from tonebench.store.database import open_database, session_factory
 
-    engine = open_database(db or default_db())
+    engine = open_database(db or default_db(), read_only=not write)  # reading never creates one
     try:
         sessions = session_factory(engine)
         with (sessions.begin() if write else sessions()) as session:

@@ -232,7 +232,7 @@ def report(
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        written = write_run_report(session_factory(open_database(db or default_db())), run_id, out_path)
+        written = write_run_report(session_factory(open_database(db or default_db(), read_only=True)), run_id, out_path)
         out.print(f"report: {written}")
 
 

@@ -12,10 +12,10 @@ from rich.table import Table
 from tonebench.cli.common import DbOption, default_db, err, one_line_errors, out
 
 
-def _sessions(db: str | None):
+def _sessions(db: str | None, read_only: bool = False):
     from tonebench.store.database import open_database, session_factory
 
-    return session_factory(open_database(db or default_db()))
+    return session_factory(open_database(db or default_db(), read_only=read_only))
 
 
 def register_queue_commands(app: typer.Typer) -> None:
@@ -50,7 +50,7 @@ def register_queue_commands(app: typer.Typer) -> None:
             table = Table(title="Jobs", box=box.SIMPLE_HEAD)
             for column in ("Job", "Bench", "Plan", "Status", "Prio", "Queued (UTC)", "Worker", "Run", "Note"):
                 table.add_column(column)
-            for job in list_jobs(_sessions(db), bench, all_jobs):
+            for job in list_jobs(_sessions(db, read_only=True), bench, all_jobs):
                 table.add_row(job.guid[:8], job.bench_name, job.plan_name, job.status, str(job.priority),
                               f"{job.created_at:%Y-%m-%d %H:%M}", job.claimed_by or "",
                               (job.run_guid or "")[:8], job.message or "")

@@ -174,4 +174,15 @@ def load_bench(path: Path) -> LoadedBench:
                     f"bench file {path}: field 'instruments.{role}.resource' is missing "
                     "(needed on a hardware bench; e.g. TCPIP0::192.0.2.10::5025::SOCKET)"
                 )
+    check_resources(settings, path)
     return LoadedBench(path=path, settings=settings, scenario=scenario)
+
+
+def check_resources(settings: BenchFile, path: Path) -> None:
+    """Every role's resource string, when the file is read: a bad one is refused before any
+    connection is tried, naming the role and the allowed forms."""
+    from tonebench.instruments.transport import check_resource_name
+
+    for role, entry in settings.instruments.items():
+        if entry.resource:
+            check_resource_name(entry.resource, f"bench file {path}: instruments.{role}")

@@ -7,9 +7,10 @@ from __future__ import annotations
 
 import hashlib
 import tomllib
+import unicodedata
 from pathlib import Path
 
-from pydantic import BaseModel, Field, model_validator
+from pydantic import BaseModel, Field, field_validator, model_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
 from tonebench.errors import InputError
@@ -28,6 +29,20 @@ class PlanInfo(StrictModel):
     description: str = ""
 
 
+def control_character_problem(value: str, *, multiline: bool = False) -> str | None:
+    """Why a device field cannot hold `value`, or None: control characters (Unicode category Cc,
+    and the line and paragraph separators) would break the one-line listings and the exports
+    that show these fields. Notes (multiline) may hold newlines and tabs."""
+    allowed = "\n\t" if multiline else ""
+    for index, char in enumerate(value):
+        if char in allowed:
+            continue
+        if unicodedata.category(char) == "Cc" or char in "\u2028\u2029":
+            return (f"control character U+{ord(char):04X} at position {index + 1}; only printable text is "
+                    f"allowed{' (and newlines, tabs)' if multiline else ''}")
+    return None
+
+
 class DeviceInfo(StrictModel):
     part_number: str = Field(min_length=1)
     serial: str = Field(min_length=1)
@@ -36,6 +51,23 @@ class DeviceInfo(StrictModel):
     position: str | None = None
     tags: list[str] = []
     notes: str = ""
+
+    @field_validator("part_number", "serial", "lot", "wafer", "position", "notes")
+    @classmethod
+    def _printable(cls, value: str | None, info) -> str | None:
+        problem = None if value is None else control_character_problem(value, multiline=info.field_name == "notes")
+        if problem:
+            raise ValueError(problem)
+        return value
+
+    @field_validator("tags")
+    @classmethod
+    def _printable_tags(cls, tags: list[str]) -> list[str]:
+        for tag in tags:
+            problem = control_character_problem(tag)
+            if problem:
+                raise ValueError(f"tag {tag!r}: {problem}")
+        return tags
 
 
 class SweepSettings(StrictModel):

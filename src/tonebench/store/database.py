@@ -66,15 +66,20 @@ def database_revision(engine: sa.Engine) -> str | None:
     return heads[0] if heads else None
 
 
-def open_database(url: str, *, upgrade: bool = True) -> sa.Engine:
+def open_database(url: str, *, upgrade: bool = True, read_only: bool = False) -> sa.Engine:
     """Engine for `url`, its schema at this code's head.
 
     Raises InputError for a URL that cannot be used (unparseable, unknown dialect or driver,
-    driver not installed, missing directory, unreachable server) and DatabaseError for a
-    schema newer than this code, or older when upgrade is False.
+    driver not installed, missing directory, unreachable server, in-memory SQLite) and
+    DatabaseError for a schema newer than this code, or older when upgrade is False.
+    read_only (the commands that only show what is stored): an SQLite file must exist already,
+    never created by a mistyped path, and no migration runs (upgrade is False).
     """
     parsed = _parse_url(url)
     shown = parsed.render_as_string(hide_password=True)
+    if read_only:
+        upgrade = False
+        _check_sqlite_exists(parsed, shown)
     engine = _create_engine(parsed, shown, foreign_keys=True)
     try:
         _check_reachable(engine, shown)
@@ -144,13 +149,27 @@ def _check_sqlite_path(parsed: sa.URL, shown: str) -> None:
     # SQLite creates the file on connect but never its folder; check first so a typo leaves
     # nothing behind.
     database = parsed.database
-    if not database or database == ":memory:" or database.startswith("file:"):
+    if not database or database == ":memory:" or "mode=memory" in database or parsed.query.get("mode") == "memory":
+        # Each connection would get its own empty database, gone with the process: a run's
+        # record must outlive it.
+        raise _bad_url(shown, "an in-memory SQLite database does not outlive the process; give a file")
+    if database.startswith("file:"):
         return
     path = Path(database).expanduser()
     if path.is_dir():
         raise _bad_url(shown, f"{path} is a directory, not a database file")
     if not path.parent.is_dir():
         raise _bad_url(shown, f"directory {path.parent} does not exist")
+
+
+def _check_sqlite_exists(parsed: sa.URL, shown: str) -> None:
+    database = parsed.database
+    if parsed.get_backend_name() != "sqlite" or not database or database.startswith("file:"):
+        return
+    path = Path(database).expanduser()
+    if not path.is_file():
+        raise _bad_url(shown, f"no database file {path} (this command only reads; check the path, "
+                              "or run or import something into it first)")
 
 
 def _create_engine(parsed: sa.URL, shown: str, *, foreign_keys: bool) -> sa.Engine:
@@ -163,7 +182,83 @@ def _create_engine(parsed: sa.URL, shown: str, *, foreign_keys: bool) -> sa.Engi
         raise _bad_url(shown, str(exc)) from None
     if engine.dialect.name == "sqlite":
         _add_sqlite_pragmas(engine, foreign_keys=foreign_keys)
+    _report_disk_full(engine, shown)
     return engine
+
+
+class DiskFull(DatabaseError):
+    """The database could not be written for lack of space. point_key and run_id are set when it
+    happened while a point was being stored (what a resume then measures again)."""
+
+    def __init__(self, message: str, point_key: str | None = None, run_id: int | None = None):
+        super().__init__(message)
+        self.point_key = point_key
+        self.run_id = run_id
+
+
+SQLITE_FULL = 13  # sqlite3's result code for "database or disk is full"
+POSTGRES_DISK_FULL = "53100"  # SQLSTATE disk_full
+
+
+def is_disk_full(exc: BaseException) -> bool:
+    orig = getattr(exc, "orig", exc)
+    if getattr(orig, "sqlite_errorcode", None) == SQLITE_FULL or getattr(orig, "sqlstate", None) == POSTGRES_DISK_FULL:
+        return True
+    text = str(orig).lower()
+    return "disk is full" in text or "no space left on device" in text
+
+
+def _report_disk_full(engine: sa.Engine, shown: str) -> None:
+    # Turned into one line where it happens, whoever writes (a point, an event, the heartbeat).
+    # SQLite writes at COMMIT, where the statement is gone, so each connection remembers what
+    # its transaction writes for a run (the point's key, the run's id) until the next begins.
+    @event.listens_for(engine, "before_cursor_execute")
+    def _remember(connection, cursor, statement, parameters, context, executemany):
+        head = statement.lstrip()[:20].upper()
+        if not head.startswith(("INSERT INTO POINTS", "INSERT INTO EVENTS", "UPDATE RUNS")):
+            return
+        params = context.compiled_parameters[0] if context is not None and context.compiled_parameters else {}
+        run_id = params.get("run_id", params.get("runs_id", params.get("id_1")))
+        writing = connection.info.setdefault("tonebench_writing", {})
+        if run_id is not None:
+            writing["run_id"] = run_id
+        if head.startswith("INSERT INTO POINTS") and params.get("point_key"):
+            writing["point_key"] = params["point_key"]
+
+    @event.listens_for(engine, "begin")  # not at commit: that event comes before the commit's write
+    def _forget(connection):
+        connection.info.pop("tonebench_writing", None)
+
+    @event.listens_for(engine, "handle_error")
+    def _disk_full(context):
+        if not is_disk_full(context.original_exception):
+            return None
+        connection = context.connection
+        writing = dict(connection.info.get("tonebench_writing", {})) if connection is not None else {}
+        point_key, run_id = writing.get("point_key"), writing.get("run_id")
+        return DiskFull(_disk_full_message(engine, shown, point_key, run_id), point_key, run_id)
+
+
+def _disk_full_message(engine: sa.Engine, shown: str, point_key: str | None, run_id: int | None) -> str:
+    """The one line for a full disk: what was being stored and how far the run is stored. Its
+    transaction is rolled back, so everything committed before is whole; reading still works
+    on a full disk, so the run and its count come from a second connection."""
+    nothing = (f"disk full while writing to database {shown}; the write was rolled back, nothing is "
+               "half-written; free space and try again")
+    if run_id is None:
+        return nothing
+    try:
+        with engine.connect() as connection:
+            guid = connection.execute(sa.text("SELECT guid FROM runs WHERE id = :id"), {"id": run_id}).scalar()
+            stored = connection.execute(sa.text("SELECT count(*) FROM points WHERE run_id = :id"), {"id": run_id}).scalar()
+    except Exception:  # noqa: BLE001 - the line is still given, only without the count
+        guid, stored = "RUN", "its last committed one"
+    if guid is None:  # the run's own first write: nothing of it is stored
+        return nothing
+    short = str(guid)[:8]
+    what = f"point {point_key} of run {short}" if point_key else f"run {short}"
+    return (f"disk full while storing {what} (database {shown}); the run is stored up to point {stored}; "
+            f"free space and `tonebench resume {short}`")
 
 
 def _add_sqlite_pragmas(engine: sa.Engine, *, foreign_keys: bool) -> None:
@@ -171,10 +266,11 @@ def _add_sqlite_pragmas(engine: sa.Engine, *, foreign_keys: bool) -> None:
     def _on_connect(dbapi_connection, connection_record):
         # WAL lets reports read while a run writes; busy_timeout makes a second writer wait
         # instead of failing at once. Both need to be outside a transaction: on connect is.
+        # busy_timeout first: switching a fresh file to WAL takes a lock another process may hold.
         cursor = dbapi_connection.cursor()
+        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
         cursor.execute("PRAGMA journal_mode=WAL")
         cursor.execute(f"PRAGMA foreign_keys={'ON' if foreign_keys else 'OFF'}")
-        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
         cursor.close()
 
 
@@ -204,6 +300,10 @@ def _upgrade(parsed: sa.URL, shown: str) -> None:
         _use_explicit_sqlite_transactions(engine)
     try:
         with engine.begin() as connection:
+            _lock_for_migration(connection)
+            # Another process may have migrated while this one waited for the lock.
+            if MigrationContext.configure(connection).get_current_heads() == (schema_head(),):
+                return
             command.upgrade(alembic_config(connection), "head")
             if connection.dialect.name == "sqlite":
                 broken = connection.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
@@ -219,6 +319,23 @@ def _upgrade(parsed: sa.URL, shown: str) -> None:
         engine.dispose()
 
 
+# Any fixed number serves: it names tonebench's migration lock among the server's advisory locks.
+POSTGRES_MIGRATION_LOCK = 0x746F6E65  # "tone"
+
+
+def _lock_for_migration(connection: sa.Connection) -> None:
+    """One process migrates at a time; the others wait here, then find the schema at head.
+
+    SQLite: the transaction began with BEGIN IMMEDIATE (the write lock, waited for up to the busy
+    timeout); a plain BEGIN takes a read lock first, and a reader that later wants to write while
+    another process writes gets "database is locked" at once (SQLite's deadlock rule), which is
+    what failed 3 of 4 processes opening a fresh file together. PostgreSQL: a transaction-scoped
+    advisory lock, released at commit or rollback.
+    """
+    if connection.dialect.name == "postgresql":
+        connection.exec_driver_sql(f"SELECT pg_advisory_xact_lock({POSTGRES_MIGRATION_LOCK})")
+
+
 def _use_explicit_sqlite_transactions(engine: sa.Engine) -> None:
     # Python's sqlite3 module does not put DDL in a transaction by itself; take over BEGIN
     # (recipe from the SQLAlchemy SQLite dialect docs, "Serializable isolation / Savepoints /
@@ -229,4 +346,4 @@ def _use_explicit_sqlite_transactions(engine: sa.Engine) -> None:
 
     @event.listens_for(engine, "begin")
     def _explicit_begin(connection):
-        connection.exec_driver_sql("BEGIN")
+        connection.exec_driver_sql("BEGIN IMMEDIATE")  # the write lock now: see _lock_for_migration

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import os
 import platform
 import uuid
@@ -11,6 +12,7 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
 from tonebench import __version__
+from tonebench.store.database import DiskFull
 from tonebench.store.models import (
     Bench,
     Device,
@@ -22,6 +24,8 @@ from tonebench.store.models import (
     Run,
     utc_now,
 )
+
+_log = logging.getLogger(__name__)
 
 
 def _get_or_create(session: Session, model, lookup: dict, **defaults):
@@ -107,10 +111,19 @@ class RunRecorder:
             session.add(Event(run_id=self.run_id, at=utc_now(), level=level, kind=kind, message=message, details_json=details or {}))
 
     def finish(self, status: str, end_reason: str) -> None:
-        with self.sessions.begin() as session:
-            run = session.get(Run, self.run_id)
-            run.status = status
-            run.end_reason = end_reason
-            run.ended_at = utc_now()
-            session.add(Event(run_id=self.run_id, at=utc_now(), level="info" if status == "complete" else "error",
-                              kind="run-end", message=f"run {status}: {end_reason}"))
+        """Store the run's end. On a full disk the end cannot be stored: the run stays 'running'
+        under this process, which `resume` (and `runs`, `show`) close as aborted once the process
+        has ended, so it is resumable either way, and the error that brought the run here (the
+        point that could not be stored) is the one reported, not this one."""
+        try:
+            with self.sessions.begin() as session:
+                run = session.get(Run, self.run_id)
+                run.status = status
+                run.end_reason = end_reason
+                run.ended_at = utc_now()
+                session.add(Event(run_id=self.run_id, at=utc_now(), level="info" if status == "complete" else "error",
+                                  kind="run-end", message=f"run {status}: {end_reason}"))
+        except DiskFull:
+            if status == "complete":
+                raise
+            _log.info("disk full: the end of run %s (%s) was not stored", self.guid, status)
