@@ -193,7 +193,7 @@ def test_two_runs_started_at_once_on_one_bench_exactly_one_runs(tmp_path, db_url
         loser = next(racer for racer in racers if racer.poll() is not None)
         winner = next(racer for racer in racers if racer is not loser)
         out, err = loser.communicate(timeout=30)
-        assert loser.returncode == 2, err
+        assert loser.returncode == 2, (out, err)
         said = json.loads(out)
         wait_until(lambda: (tmp_path / f"started-{winner.pid}").exists(), "the winner's run")
         guid = (tmp_path / f"started-{winner.pid}").read_text()
@@ -201,7 +201,7 @@ def test_two_runs_started_at_once_on_one_bench_exactly_one_runs(tmp_path, db_url
         assert "\n" not in message and "bench 'sim-bench-1' is in use by run" in message
         assert guid in message and f"pid {winner.pid}" in message and "host " in message
         assert not said["rf_on_sent"]  # the refused run never switched RF on
-        assert runs_of(db_url) == [(guid, "running")]  # no run row for the refused one
+        assert runs_of(db_url) == [(guid, "running")], said  # no run row for the refused one
     finally:
         (tmp_path / "release").write_text("")
         for racer in racers:
