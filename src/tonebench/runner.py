@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import sys
+import threading
 from collections.abc import Callable
 from contextlib import ExitStack
 from dataclasses import dataclass
@@ -173,6 +174,23 @@ def make_leveler(bench: LoadedBench, open_instruments, points: list, plan_origin
     return Leveler(meter, settings.tolerance_db, settings.max_iterations, settings.max_correction_db)
 
 
+def _bench_file_set_id(sessions, bench: LoadedBench, bench_path: Path, offsets) -> int:
+    """The bench file's [offsets] set, created if new. On SQLite a transaction that read before it
+    writes is refused at once ("database is locked", busy timeout or not) while another process
+    holds the write lock (a second run starting on the same bench takes it): try again, bounded."""
+    from sqlalchemy.exc import OperationalError
+
+    for attempt in range(20):
+        try:
+            with sessions.begin() as session:
+                return bench_file_set(session, bench.settings.bench.name, str(bench_path), offsets)
+        except OperationalError as exc:
+            if "locked" not in str(exc) or attempt == 19:
+                raise
+            threading.Event().wait(0.05 * (attempt + 1))
+    raise AssertionError("unreachable")
+
+
 def execute_run(
     plan_path: Path,
     bench_path: Path,
@@ -231,8 +249,7 @@ def execute_run(
             sessions = session_factory(engine)
 
         if chosen.view is None:
-            with sessions.begin() as session:
-                set_id = bench_file_set(session, bench.settings.bench.name, str(bench_path), offsets)
+            set_id = _bench_file_set_id(sessions, bench, bench_path, offsets)
         else:
             set_id = chosen.view.id
         device = plan.settings.device.model_dump()
