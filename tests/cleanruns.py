@@ -18,8 +18,8 @@ from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
 
 from tonebench.calibration import workflow
-from tonebench.runner import execute_run
-from tonebench.sim.bench import BenchTruth
+from tonebench.run.start import execute_run
+from tonebench.sim.signal_chain import BenchTruth
 from tonebench.sim.scenario import Scenario
 from tonebench.store.models import Point, PointFlag, Result, ResultFlag, Run
 

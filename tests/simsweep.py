@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from tonebench.analysis import SweepData, analyzer_im3_dbm, optimum_atten_db
-from tonebench.sim.bench import SimBench
+from tonebench.sim.signal_chain import SimBench
 from tonebench.sim.scenario import Scenario
 
 SPAN_RBW = 10.0

@@ -6,7 +6,7 @@
 import statistics
 import time
 
-from tonebench.sim.bench import SimBench
+from tonebench.sim.signal_chain import SimBench
 from tonebench.sim.scenario import Scenario
 
 CENTER_HZ, SPACING_HZ = 2.45e9, 1e6

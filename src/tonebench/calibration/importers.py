@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from tonebench.errors import InputError
-from tonebench.offsets import LossTable
+from tonebench.planes.loss_table import LossTable
 
 CSV_COLUMNS = ("freq_hz", "loss_db")
 # A passive path: a little gain is allowed for measurement scatter, as in the bench file.

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from tonebench.errors import InstrumentError
 from tonebench.instruments.power_meter import PowerMeter
 from tonebench.instruments.source import SignalSource
-from tonebench.safety import SourceRange, check_source_power
+from tonebench.plan.limits import SourceRange, check_source_power
 
 DEFAULT_TOLERANCE_DB = 0.05
 DEFAULT_MAX_ITERATIONS = 5

@@ -19,9 +19,9 @@ from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from tonebench.calibration.referral import PATHS
+from tonebench.planes.referral import PATHS
 from tonebench.errors import InputError
-from tonebench.offsets import LossTable
+from tonebench.planes.loss_table import LossTable
 from tonebench.store.models import CalibrationOffset, CalibrationSet, SystemResidual, utc_now
 
 DEFAULT_VALID_DAYS = 30.0

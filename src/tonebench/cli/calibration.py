@@ -160,7 +160,7 @@ def show(
     db: DbOption = None,
 ) -> None:
     """Show one set: provenance, paths and residual; writes a self-contained HTML page of its offsets."""
-    from tonebench.calibration.page import write_calibration_page
+    from tonebench.report.calibration_page import write_calibration_page
     from tonebench.calibration.sets import load_set
     from tonebench.store.database import open_database, session_factory
 

@@ -311,7 +311,7 @@ def compare(
     db: DbOption = None,
 ) -> None:
     """Write a comparison report (self-contained HTML) of the results a query finds."""
-    from tonebench.catalog.compare_report import write_compare_report
+    from tonebench.report.comparison import write_compare_report
 
     with one_line_errors():
         flt = _filter(part, lot, wafer, serial, tag, freq_min_hz, freq_max_hz, spacing_min_hz, spacing_max_hz,

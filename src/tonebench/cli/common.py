@@ -33,7 +33,7 @@ def one_line_errors() -> Iterator[None]:
     Ctrl-C: one line and exit 130; SIGTERM: one line and exit 143 (while the command runs, only
     the first of several signals is acted on, so the cleanup it starts runs to its end). A
     source not confirmed off makes any of them exit 1 with a line naming it."""
-    from tonebench.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, Terminated, note_of, stop_signals
+    from tonebench.instruments.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, Terminated, note_of, stop_signals
 
     with stop_signals():
         try:

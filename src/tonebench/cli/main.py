@@ -77,7 +77,7 @@ def _with_progress(start):
 
 def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None,
                        cal_name: str | None = None):
-    from tonebench.runner import execute_run
+    from tonebench.run.start import execute_run
 
     return _with_progress(lambda advance: execute_run(plan, bench, db_url, report, advance, on_sim_started,
                                                       cal_name=cal_name, on_warning=_warn))
@@ -125,7 +125,7 @@ def _say_outcome(outcome) -> None:
 
 
 def _print_results(results) -> None:
-    from tonebench.queries import results_table
+    from tonebench.report.run_views import results_table
 
     if results:
         out.print(results_table(results))
@@ -155,7 +155,7 @@ def resume(
     report: Annotated[Path | None, typer.Option(help="Write the HTML report here (default: report-<run>.html beside the database).")] = None,
 ) -> None:
     """Continue an interrupted run: points already stored are kept, failed ones measured again."""
-    from tonebench.runner import resume_run
+    from tonebench.run.start import resume_run
 
     with one_line_errors():
         db_url = db or default_db()
@@ -169,7 +169,7 @@ def demo(
     out_dir: Annotated[Path, typer.Option("--out", help="Folder for the demo database and report.")] = Path("tonebench-demo"),
 ) -> None:
     """Run the sample plan on the simulated bench (no hardware) and compare IIP3 with the simulated truth."""
-    from tonebench.demo import run_demo
+    from tonebench.cli.demo import run_demo
 
     with one_line_errors():
         run_demo(out_dir, _run_with_progress, out)
@@ -181,7 +181,7 @@ def runs(
     limit: Annotated[int, typer.Option(min=1, help="Show at most this many runs, newest first.")] = 20,
 ) -> None:
     """List runs, newest first."""
-    from tonebench.queries import list_runs
+    from tonebench.report.run_views import list_runs
 
     with one_line_errors():
         table = Table(title="Runs")
@@ -198,7 +198,7 @@ def show(
     db: DbOption = None,
 ) -> None:
     """Show one run: device, bench, instruments, results and events."""
-    from tonebench.queries import describe_run
+    from tonebench.report.run_views import describe_run
 
     with one_line_errors():
         describe_run(db or default_db(), run_id, out)
@@ -211,7 +211,7 @@ def analyze(
     cal: Annotated[str | None, typer.Option("--cal", help="Re-refer the stored raw readings to this calibration set (no measuring).")] = None,
 ) -> None:
     """Fit intercepts again from the stored points of a run and store the results."""
-    from tonebench.review import analyze_run
+    from tonebench.results.review import analyze_run
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
@@ -228,7 +228,7 @@ def report(
     out_path: Annotated[Path, typer.Option("--out", help="HTML file to write.")] = Path("tonebench-report.html"),
 ) -> None:
     """Write a self-contained HTML report (plots and results) for one run; it works offline."""
-    from tonebench.review import write_run_report
+    from tonebench.results.review import write_run_report
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():

@@ -31,7 +31,7 @@ def register_queue_commands(app: typer.Typer) -> None:
         db: DbOption = None,
     ) -> None:
         """Check a plan against a bench's limits and queue it for that bench's worker."""
-        from tonebench.worker import add_job
+        from tonebench.queue.worker import add_job
 
         with one_line_errors():
             job = add_job(_sessions(db), plan, bench, priority)
@@ -44,7 +44,7 @@ def register_queue_commands(app: typer.Typer) -> None:
         db: DbOption = None,
     ) -> None:
         """List jobs in the order workers take them."""
-        from tonebench.worker import list_jobs
+        from tonebench.queue.worker import list_jobs
 
         with one_line_errors():
             table = Table(title="Jobs", box=box.SIMPLE_HEAD)
@@ -62,7 +62,7 @@ def register_queue_commands(app: typer.Typer) -> None:
         db: DbOption = None,
     ) -> None:
         """Cancel a queued job; a running one is stopped after its current point (RF off)."""
-        from tonebench.worker import cancel_job
+        from tonebench.queue.worker import cancel_job
 
         with one_line_errors():
             cancelled = cancel_job(_sessions(db), job)
@@ -79,8 +79,8 @@ def register_queue_commands(app: typer.Typer) -> None:
         """Run the queued jobs of one bench, one after another, unattended (Ctrl-C or SIGTERM stops)."""
         import signal
 
-        from tonebench.runner import Terminated
-        from tonebench.worker import Worker
+        from tonebench.run.start import Terminated
+        from tonebench.queue.worker import Worker
 
         def said(what: str, job, detail: str) -> None:
             line = f"job {job.guid[:8]} ({job.plan_name}): {what}" + (f": {detail}" if detail else "")
@@ -100,7 +100,7 @@ def register_queue_commands(app: typer.Typer) -> None:
             try:
                 count = unit.run(until_empty=until_empty)
             except (KeyboardInterrupt, Terminated) as exc:
-                from tonebench.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, note_of
+                from tonebench.instruments.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, note_of
 
                 note = note_of(exc)
                 code = SIGTERM_EXIT if isinstance(exc, Terminated) else SIGINT_EXIT

@@ -114,7 +114,7 @@ class UnattendedSettings(StrictModel):
     # else the point is measured again (a source still settling); 0 skips the repeat reads.
     settle_tolerance_db: float = Field(default=0.1, ge=0.0, le=10.0)
     # Across the points of a sweep, the f1-f2 tone difference must stay within this (dB) of the
-    # sweep's first point, else a source is drifting (src/tonebench/drift.py); 0 switches it off.
+    # sweep's first point, else a source is drifting (src/tonebench/run/drift.py); 0 switches it off.
     drift_tolerance_db: float = Field(default=0.1, ge=0.0, le=10.0)
 
 

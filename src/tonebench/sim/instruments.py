@@ -9,8 +9,8 @@ from __future__ import annotations
 
 from typing import Callable
 
-from tonebench.sim.bench import PowerMeterState, SimBench
-from tonebench.sim.scpi import (
+from tonebench.sim.signal_chain import PowerMeterState, SimBench
+from tonebench.sim.scpi_parser import (
     DATA_OUT_OF_RANGE,
     EXECUTION_ERROR,
     ScpiDevice,

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from tonebench.sim.bench import SimBench
+from tonebench.sim.signal_chain import SimBench
 from tonebench.sim.faults import FaultSchedule
 from tonebench.sim.instruments import SimAnalyzer, SimPowerMeter, SimSource
 from tonebench.sim.scenario import Scenario

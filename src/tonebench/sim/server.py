@@ -10,7 +10,7 @@ import threading
 import time
 
 from tonebench.sim.faults import FaultSchedule, FaultSpec
-from tonebench.sim.scpi import DEVICE_SPECIFIC_ERROR, STANDARD_MESSAGES, ScpiDevice
+from tonebench.sim.scpi_parser import DEVICE_SPECIFIC_ERROR, STANDARD_MESSAGES, ScpiDevice
 
 _log = logging.getLogger(__name__)
 

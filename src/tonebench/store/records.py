@@ -88,7 +88,7 @@ class RunRecorder:
                 simulated=simulated,
                 host=platform.node(),
                 # Who drives it, from its first commit on: a process killed before its first
-                # point still leaves a run that can be told dead (tonebench.resume).
+                # point still leaves a run that can be told dead (tonebench.store.ownership).
                 owner=f"{platform.node()}:{os.getpid()}",
                 heartbeat_at=utc_now(),
                 software_version=__version__,

@@ -1,0 +1,191 @@
+"""Open the instruments a bench file names and hold them for one run."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from tonebench.config.bench_file import OPTIONAL_ROLES, BenchFile
+from tonebench.errors import InputError, InstrumentError
+from tonebench.instruments.analyzer import SpectrumAnalyzer
+from tonebench.instruments.dialect import load_dialect
+from tonebench.instruments.power_meter import PowerMeter
+from tonebench.instruments.scpi import ScpiInstrument
+from tonebench.instruments.source import SignalSource
+from tonebench.instruments.supervision import Supervision
+from tonebench.instruments.transport import open_resource
+from tonebench.instruments.rf_guard import RF_OFF_BUDGET_S, RfOffReport, shielded, switch_rf_off
+from tonebench.plan.limits import SourceRange
+
+# Which kind of dialect each bench role takes.
+ROLE_KINDS = {"source1": "source", "source2": "source", "analyzer": "analyzer", "power_meter": "power_meter"}
+
+
+@dataclass(frozen=True)
+class InstrumentInfo:
+    role: str
+    resource: str
+    dialect: str
+    idn: str
+
+
+@dataclass
+class OpenBench:
+    source1: SignalSource
+    source2: SignalSource
+    analyzer: SpectrumAnalyzer
+    source_ranges: tuple[SourceRange, SourceRange]
+    instruments: list[InstrumentInfo] = field(default_factory=list)
+    _scpi: list[ScpiInstrument] = field(default_factory=list)
+    # At the DUT input plane, for calibration and leveling; only when the bench file names one.
+    power_meter: PowerMeter | None = None
+    last_rf_off: RfOffReport | None = None  # the last switch_rf_off, for the command's last line
+    rf_off_budget_s: float = RF_OFF_BUDGET_S  # the bench file's [unattended] rf_off_s
+
+    def sources(self) -> tuple[SignalSource, SignalSource]:
+        return self.source1, self.source2
+
+    def rf_on(self) -> None:
+        self.source1.rf_on()
+        self.source2.rf_on()
+
+    def rf_off_all(self) -> None:
+        """Switch RF off at both sources (each read back); both are tried even if one fails or
+        a signal comes (deferred meanwhile), then the failure is reported."""
+        failures, interrupted = [], None
+        with shielded():
+            for source in (self.source1, self.source2):
+                try:
+                    source.rf_off()
+                except BaseException as exc:  # noqa: BLE001 - the other source must still be switched off
+                    failures.append(f"{source.label}: {exc or type(exc).__name__}")
+                    if not isinstance(exc, Exception) and interrupted is None:
+                        interrupted = exc
+        if interrupted is not None:
+            raise interrupted  # a stop outside stop_signals: after both sources were tried
+        if failures:
+            raise InstrumentError("RF off failed: " + "; ".join(failures))
+
+    def switch_rf_off(self, budget_s: float | None = None) -> RfOffReport:
+        """RF off at both sources on the way out: confirmed by read-back, retried with backoff for
+        up to budget_s seconds (default rf_off_budget_s); never raises (the report names any
+        source not confirmed off)."""
+        report = switch_rf_off(self.sources(), budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
+        self.last_rf_off = report
+        return report
+
+    def switch_off_at_connect(self) -> list[str]:
+        """RF off at every source as soon as the bench is connected: a run killed (kill -9, power
+        lost) may have left one on. Returns a line per source that was found on (or unreadable)."""
+        found = []
+        for source in self.sources():
+            try:
+                was_on = source.rf_is_on()
+            except Exception as exc:  # noqa: BLE001 - unknown state: switch it off all the same
+                was_on, why = None, f": {exc}"
+            else:
+                why = ""
+            if was_on is not False:
+                state = "on" if was_on else f"in an unknown state{why}"
+                found.append(f"{source.label} was found with RF {state} (a command before this one ended "
+                             "without switching it off)")
+        report = self.switch_rf_off()
+        if not report.ok:
+            raise InstrumentError(f"connecting the bench: {report.line()}")
+        return [f"{line}; switched off (read back)" for line in found]
+
+    @property
+    def connections(self) -> list[ScpiInstrument]:
+        """Every open instrument connection (their epochs tell a reopened one)."""
+        return list(self._scpi)
+
+    def restore_all(self) -> None:
+        """Send every driver's last settings again (after a reset or a reopened connection)."""
+        for driver in (self.source1, self.source2, self.analyzer):
+            driver.restore()
+        if self.power_meter is not None:
+            self.power_meter.prepare()
+
+    def force_rf_off_all(self, budget_s: float | None = None) -> RfOffReport:
+        """RF off at both sources from another thread (the watchdog), while the run's thread may
+        be stuck in a call: through a second connection where the first is busy, retried with
+        backoff until read back off or budget_s (default rf_off_budget_s) is spent."""
+        return switch_rf_off([_Forced(source) for source in self.sources()],
+                             budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
+
+    def close(self) -> None:
+        for instrument in self._scpi:
+            try:
+                instrument.close()
+            except Exception:  # noqa: BLE001 - closing is best effort, nothing is measured here
+                pass
+
+
+class _Forced:
+    """A source whose RF off goes through force_rf_off (usable from another thread)."""
+
+    def __init__(self, source: SignalSource):
+        self.source = source
+        self.label = source.label
+
+    def rf_off(self) -> None:
+        self.source.force_rf_off()
+
+    def force_rf_off(self) -> None:
+        self.source.force_rf_off()
+
+    def rf_is_on(self) -> bool:
+        # Never wait on a connection the stuck thread holds: the watchdog must go on.
+        lock = self.source.instrument.io_lock
+        if not lock.acquire(timeout=0.5):
+            raise InstrumentError(f"{self.label}: its connection is busy; RF state not read")
+        try:
+            return self.source.rf_is_on()
+        finally:
+            lock.release()
+
+
+def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:
+    """Connect to source1, source2, analyzer and (if the bench file has one) the power meter;
+    `resources` maps each role to a VISA resource. With `supervision`, timeouts and dropped
+    connections are retried and reconnected per its policy.
+
+    Refused (InputError) before anything else is sent: two roles on one resource or one
+    instrument (*IDN? maker, model, serial), and an instrument that does not answer its role's
+    probe (tonebench.instruments.role_check)."""
+    from tonebench.instruments.role_check import check_distinct_identities, check_distinct_resources, check_role
+
+    opened: list[ScpiInstrument] = []
+    roles = ["source1", "source2", "analyzer"] + [r for r in OPTIONAL_ROLES if r in settings.instruments]
+    try:
+        for index, role in enumerate(roles):
+            # Before opening each: an unreachable first instrument is reported as that.
+            check_distinct_resources(resources, roles[: index + 1])
+            dialect = load_dialect(settings.instruments[role].dialect)
+            if dialect.role != ROLE_KINDS[role]:
+                raise InputError(
+                    f"instruments.{role}: dialect {dialect.name} is for a {dialect.role}; this role needs a {ROLE_KINDS[role]} dialect"
+                )
+            opened.append(ScpiInstrument(open_resource(resources[role], dialect), dialect, role, supervision))
+        for inst in opened:
+            check_role(inst, ROLE_KINDS[inst.label])
+        check_distinct_identities(opened)
+        scpi1, scpi2, scpi_analyzer = opened[:3]
+        meter = PowerMeter(opened[3]) if len(opened) > 3 else None
+        if meter is not None:
+            # After a reopened connection the meter may have lost its mode and frequency.
+            opened[3].add_restore_hook(meter.prepare)
+        source1, source2 = SignalSource(scpi1), SignalSource(scpi2)
+        ranges = tuple(
+            SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)
+        )
+        infos = [
+            InstrumentInfo(inst.label, resources[inst.label], inst.dialect.name, inst.idn) for inst in opened
+        ]
+        analyzer = SpectrumAnalyzer(scpi_analyzer)
+        # The bench file knows this unit; its figures win over the dialect's typical ones.
+        analyzer.performance = {**analyzer.performance, **settings.instruments["analyzer"].performance}
+        return OpenBench(source1, source2, analyzer, ranges, infos, opened, meter)
+    except BaseException:
+        for instrument in opened:
+            instrument.close()
+        raise

@@ -1,0 +1,201 @@
+"""Power limits and frequency ranges, checked for the whole plan before RF goes on; power again
+for every source command.
+
+Predictions use the bench file's expected DUT gain and path losses: the tone power at the DUT
+input plane comes from the plan, the source setting adds the input loss, and the analyzer sees
+both tones amplified by the expected gain less the output loss.
+
+Frequency ranges come from the dialect files' [limits] (min_freq_hz, max_freq_hz), so a run, a
+resume and `queue add` (which has no bench connection) check the same figures before anything
+is connected: each source must reach its tone at every frequency it is stepped to, the analyzer
+each read's whole span (centre +/- span/2), the power meter each tone it levels or calibrates.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass
+
+import numpy as np
+
+from tonebench.config.bench_file import BenchLimits
+from tonebench.errors import InputError
+from tonebench.planes.loss_table import LossTable
+from tonebench.plan.points import PlannedPoint
+
+TWO_EQUAL_TONES_DB = 10.0 * np.log10(2.0)  # total power of two equal tones over one of them
+
+
+@dataclass(frozen=True)
+class SourceRange:
+    label: str
+    min_power_dbm: float
+    max_power_dbm: float
+
+
+@dataclass(frozen=True)
+class FreqRange:
+    """What one role's instrument covers, from its dialect's [limits]; label names it in errors."""
+
+    label: str
+    min_freq_hz: float
+    max_freq_hz: float
+
+
+@dataclass(frozen=True)
+class FreqNeed:
+    """A band one role must cover: a tone (low == high) or an analyzer read (centre +/- span/2)."""
+
+    role: str
+    what: str
+    low_hz: float
+    high_hz: float
+
+
+@dataclass(frozen=True)
+class PointLevels:
+    source1_dbm: float
+    source2_dbm: float
+    analyzer_input_dbm: float
+
+
+def predict_levels(point: PlannedPoint, offsets: dict[str, LossTable], limits: BenchLimits) -> PointLevels:
+    source1_dbm = point.tone_dbm + offsets["in1"].loss_db(point.f1_hz)
+    source2_dbm = point.tone_dbm + offsets["in2"].loss_db(point.f2_hz)
+    out_loss_db = min(offsets["out"].loss_db(point.f1_hz), offsets["out"].loss_db(point.f2_hz))
+    analyzer_input_dbm = point.tone_dbm + TWO_EQUAL_TONES_DB + limits.expected_gain_db - out_loss_db
+    return PointLevels(source1_dbm, source2_dbm, analyzer_input_dbm)
+
+
+def check_plan(
+    points: list[PlannedPoint],
+    offsets: dict[str, LossTable],
+    limits: BenchLimits,
+    sources: tuple[SourceRange, SourceRange],
+    analyzer_damage_dbm: float | None,
+    origin: str,
+) -> None:
+    """Refuse the whole plan (InputError, one line) if any point would break a limit."""
+    analyzer_limit_dbm = limits.max_analyzer_input_dbm
+    if analyzer_damage_dbm is not None:
+        analyzer_limit_dbm = min(analyzer_limit_dbm, analyzer_damage_dbm)
+    for point in points:
+        if point.tone_dbm > limits.max_tone_dbm:
+            raise InputError(
+                f"{origin}: point {point.key} asks {point.tone_dbm:.2f} dBm per tone at the DUT input; "
+                f"the bench limit max_tone_dbm is {limits.max_tone_dbm:.2f} dBm"
+            )
+        levels = predict_levels(point, offsets, limits)
+        for source, setting_dbm in zip(sources, (levels.source1_dbm, levels.source2_dbm)):
+            check_source_power(source, setting_dbm, point.key)
+        if levels.analyzer_input_dbm > analyzer_limit_dbm:
+            raise InputError(
+                f"{origin}: point {point.key} would put {levels.analyzer_input_dbm:.2f} dBm into the "
+                f"analyzer (expected gain {limits.expected_gain_db:.1f} dB); the limit is {analyzer_limit_dbm:.2f} dBm"
+            )
+
+
+def check_source_power(source: SourceRange, setting_dbm: float, point_key: str) -> None:
+    if not source.min_power_dbm <= setting_dbm <= source.max_power_dbm:
+        raise InputError(
+            f"point {point_key}: {source.label} would be set to {setting_dbm:.2f} dBm; it allows "
+            f"{source.min_power_dbm:.2f} to {source.max_power_dbm:.2f} dBm"
+        )
+
+
+def power_guard(offsets: dict[str, LossTable], limits: BenchLimits, analyzer_damage_dbm: float | None):
+    """The run-time check of every source power command (SignalSource.power_guard).
+
+    The pre-flight check covers the plan; this one covers each command actually sent (leveling
+    corrections included), through the same offsets: the tone at the DUT input plane must stay
+    within max_tone_dbm, and two such tones through the expected gain within the analyzer limit.
+    Raises LimitError naming the source, the command and the limit.
+    """
+    from tonebench.instruments.scpi import LimitError
+
+    analyzer_limit_dbm = limits.max_analyzer_input_dbm
+    if analyzer_damage_dbm is not None:
+        analyzer_limit_dbm = min(analyzer_limit_dbm, analyzer_damage_dbm)
+    paths = {"source1": "in1", "source2": "in2"}
+
+    def guard(label: str, freq_hz: float, power_dbm: float) -> None:
+        tone_dbm = power_dbm - offsets[paths[label]].loss_db(freq_hz)
+        if tone_dbm > limits.max_tone_dbm + 1e-9:
+            raise LimitError(
+                f"{label}: {power_dbm:.2f} dBm at {freq_hz:.6g} Hz would put {tone_dbm:.2f} dBm at the DUT input; "
+                f"the bench limit max_tone_dbm is {limits.max_tone_dbm:.2f} dBm"
+            )
+        analyzer_dbm = tone_dbm + TWO_EQUAL_TONES_DB + limits.expected_gain_db - offsets["out"].loss_db(freq_hz)
+        if analyzer_dbm > analyzer_limit_dbm + 1e-9:
+            raise LimitError(
+                f"{label}: {power_dbm:.2f} dBm at {freq_hz:.6g} Hz would put {analyzer_dbm:.2f} dBm into the analyzer "
+                f"(expected gain {limits.expected_gain_db:.1f} dB); the limit is {analyzer_limit_dbm:.2f} dBm"
+            )
+
+    return guard
+
+
+# --- frequency ranges -----------------------------------------------------------------------------
+
+
+def bench_freq_ranges(bench_settings) -> dict[str, FreqRange]:
+    """role -> frequency range of every instrument a bench file names, from its dialect file."""
+    from tonebench.instruments.dialect import load_dialect
+
+    ranges = {}
+    for role, entry in bench_settings.instruments.items():
+        dialect = load_dialect(entry.dialect)
+        limits = dialect.limits
+        if "min_freq_hz" in limits and "max_freq_hz" in limits:
+            ranges[role] = FreqRange(f"{role} (dialect {dialect.name})", limits["min_freq_hz"], limits["max_freq_hz"])
+    return ranges
+
+
+def check_frequency_needs(needs: Iterable[FreqNeed], ranges: dict[str, FreqRange], origin: str) -> None:
+    """Refuse (InputError, one line) the first need outside its role's range; roles without a
+    range (no such instrument) are not checked."""
+    for need in needs:
+        covered = ranges.get(need.role)
+        if covered is None or covered.min_freq_hz <= need.low_hz and need.high_hz <= covered.max_freq_hz:
+            continue
+        band = f"{need.low_hz:.12g} Hz" if need.low_hz == need.high_hz else f"{need.low_hz:.12g}..{need.high_hz:.12g} Hz"
+        raise InputError(
+            f"{origin}: {need.what} needs {band}; {covered.label} covers {covered.min_freq_hz:.12g}.."
+            f"{covered.max_freq_hz:.12g} Hz (min_freq_hz/max_freq_hz)"
+        )
+
+
+def read_need(what: str, center_hz: float, span_hz: float) -> FreqNeed:
+    """An analyzer read centred on center_hz: the whole span must lie in the analyzer's range."""
+    return FreqNeed("analyzer", what, center_hz - span_hz / 2.0, center_hz + span_hz / 2.0)
+
+
+def plan_freq_needs(points: Iterable[PlannedPoint], span_hz: float, leveling: bool) -> list[FreqNeed]:
+    """What a run reads per (centre, spacing): each source its tone, the analyzer f1, f2, 2f1-f2 and
+    2f2-f1 over the span (the noise markers sit inside it), the meter the tones when leveling.
+    Second-order products (f2-f1, f1+f2) are not needed: where the analyzer cannot read them the
+    run skips them with a warning, the IIP3 measurement is whole without them."""
+    needs: list[FreqNeed] = []
+    seen = set()
+    for point in points:
+        if (point.f1_hz, point.f2_hz) in seen:
+            continue
+        seen.add((point.f1_hz, point.f2_hz))
+        at = f"point {point.key}"
+        needs += [FreqNeed("source1", f"{at} tone f1", point.f1_hz, point.f1_hz),
+                  FreqNeed("source2", f"{at} tone f2", point.f2_hz, point.f2_hz)]
+        for name, freq_hz in (("f1", point.f1_hz), ("f2", point.f2_hz), ("the lower IM3 product 2f1-f2", point.lower_hz),
+                              ("the upper IM3 product 2f2-f1", point.upper_hz)):
+            needs.append(read_need(f"{at} reading {name} at {freq_hz:.12g} Hz over a {span_hz:.12g} Hz span",
+                                   freq_hz, span_hz))
+        if leveling:
+            needs += [FreqNeed("power_meter", f"{at} leveling tone f1", point.f1_hz, point.f1_hz),
+                      FreqNeed("power_meter", f"{at} leveling tone f2", point.f2_hz, point.f2_hz)]
+    return needs
+
+
+def check_plan_frequencies(points: list[PlannedPoint], plan_settings, bench_settings, origin: str) -> None:
+    """The pre-flight frequency check of a run, a resume or `queue add`, from the dialect files."""
+    leveling = bench_settings.has_power_meter and bench_settings.leveling.enabled
+    needs = plan_freq_needs(points, plan_settings.analyzer.effective_span_hz, leveling)
+    check_frequency_needs(needs, bench_freq_ranges(bench_settings), origin)

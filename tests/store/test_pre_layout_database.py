@@ -1,0 +1,72 @@
+"""A database and plans written before the package layout changed read, analyze and export as
+they did then (tests/data/pre_layout/README.md says how the expected files were made)."""
+
+import gzip
+import json
+import re
+import shutil
+from pathlib import Path
+
+import pytest
+from typer.testing import CliRunner
+
+from conftest import PROJECT_ROOT
+from tonebench.cli import app
+from tonebench.config.plan_file import load_plan
+from tonebench.plan.points import expand
+
+FIXTURE = PROJECT_ROOT / "tests" / "data" / "pre_layout"
+RUN = "c5af811f"
+runner = CliRunner(env={"COLUMNS": "200"})
+
+
+@pytest.fixture
+def old_db(tmp_path):
+    path = tmp_path / "tonebench.db"
+    shutil.copy(FIXTURE / "tonebench.db", path)
+    return f"sqlite:///{path}"
+
+
+def invoke(*args) -> str:
+    result = runner.invoke(app, [str(a) for a in args])
+    assert result.exit_code == 0, result.output
+    return result.output
+
+
+def exported(db_url: str, tmp_path: Path) -> str:
+    invoke("export", tmp_path / "out.jsonl.gz", "--db", db_url)
+    with gzip.open(tmp_path / "out.jsonl.gz", "rt", encoding="utf-8", newline="") as handle:
+        return handle.read()
+
+
+def without_result_times(text: str) -> str:
+    # An analysis stores its results anew, with the time it ran (and the trailer's digest changes).
+    text = re.sub(r'"created_at":"[^"]*"', '"created_at":"-"', text)
+    return re.sub(r'"sha256":"[0-9a-f]{64}"}\n$', '"sha256":"-"}\n', text)
+
+
+def test_export_is_byte_identical(old_db, tmp_path):
+    assert exported(old_db, tmp_path) == (FIXTURE / "export.jsonl").read_text(encoding="utf-8")
+
+
+def test_analyze_prints_and_stores_the_same(old_db, tmp_path):
+    assert invoke("analyze", RUN, "--db", old_db) == (FIXTURE / "analyze.out").read_text()
+    expected = (FIXTURE / "export.jsonl").read_text(encoding="utf-8")
+    after = exported(old_db, tmp_path)
+    assert after != expected  # the results were written again, with new times
+    assert without_result_times(after) == without_result_times(expected)
+
+
+@pytest.mark.parametrize("command, expected", [
+    (("show", RUN), "show.out"), (("runs",), "runs.out"), (("find",), "find.out"), (("find", "--csv"), "find.csv"),
+])
+def test_views_print_the_same(old_db, command, expected):
+    assert invoke(*command, "--db", old_db) == (FIXTURE / expected).read_text()
+
+
+def test_plans_expand_to_the_same_keys():
+    expected = json.loads((FIXTURE / "plan_keys.json").read_text())
+    plans = sorted((FIXTURE / "plans").glob("*.toml"))
+    assert [p.name for p in plans] == sorted(expected)
+    for plan in plans:
+        assert [point.key for point in expand(load_plan(plan).settings)] == expected[plan.name], plan.name
