@@ -31,7 +31,7 @@ import sqlalchemy as sa
 from tonebench.catalog.limits import add_limit, apply_verdicts
 from tonebench.catalog.query import ResultFilter, find_results
 from tonebench.catalog.synthetic import PARTS, TAGS, fill
-from tonebench.results.review import analyze_run
+from tonebench.results.stored_results import analyze_run
 from tonebench.store import open_database, session_factory
 from tonebench.store.models import Device, Run
 

@@ -18,7 +18,8 @@ from typer.testing import CliRunner
 from tonebench.calibration import workflow
 from tonebench.cli import app
 from tonebench.planes.loss_table import LossTable
-from tonebench.results.review import analyze_run, rereferred
+from tonebench.results.stored_results import analyze_run
+from tonebench.results.sweeps import rereferred
 from tonebench.run.start import execute_run
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import CalibrationSet, Event, Point, Result, Run

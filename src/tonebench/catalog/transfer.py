@@ -32,7 +32,7 @@ import sqlalchemy as sa
 from sqlalchemy.orm import Session, selectinload, sessionmaker
 
 from tonebench.errors import DatabaseError, InputError
-from tonebench.results.review import find_run
+from tonebench.store.lookups import find_run
 from tonebench.store.database import schema_head
 from tonebench.store.models import (
     Bench,

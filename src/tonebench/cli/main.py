@@ -211,7 +211,7 @@ def analyze(
     cal: Annotated[str | None, typer.Option("--cal", help="Re-refer the stored raw readings to this calibration set (no measuring).")] = None,
 ) -> None:
     """Fit intercepts again from the stored points of a run and store the results."""
-    from tonebench.results.review import analyze_run
+    from tonebench.results.stored_results import analyze_run
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
@@ -228,7 +228,7 @@ def report(
     out_path: Annotated[Path, typer.Option("--out", help="HTML file to write.")] = Path("tonebench-report.html"),
 ) -> None:
     """Write a self-contained HTML report (plots and results) for one run; it works offline."""
-    from tonebench.results.review import write_run_report
+    from tonebench.report.run_page import write_run_report
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():

@@ -9,7 +9,8 @@ from sqlalchemy import func, select
 
 from tonebench.report.run_report import flag_text
 from tonebench.store.ownership import close_dead_runs
-from tonebench.results.review import find_run, terminal_row
+from tonebench.report.terminal import terminal_row
+from tonebench.store.lookups import find_run
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import CalibrationSet, Point, PointFlag, Run
 

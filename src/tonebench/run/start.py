@@ -34,7 +34,9 @@ from tonebench.store.ownership import (
     stored_points,
     take_ownership,
 )
-from tonebench.results.review import analyze_run, find_run, write_run_report
+from tonebench.report.run_page import write_run_report
+from tonebench.results.stored_results import analyze_run
+from tonebench.store.lookups import find_run
 from tonebench.instruments.rf_guard import (
     SIGINT_EXIT,
     SIGTERM_EXIT,

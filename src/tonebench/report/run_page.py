@@ -1,0 +1,57 @@
+"""The HTML report of one stored run."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from sqlalchemy.orm import sessionmaker
+
+from tonebench.results.sweeps import assessed_sweeps
+from tonebench.store.lookups import find_run
+from tonebench.calibration.sets import load_set_by_id
+from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
+from tonebench.report.run_report import result_row as report_result_row
+
+
+def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
+    """Write the run's self-contained HTML report, fitted from its stored points."""
+    with sessions() as session:
+        run = find_run(session, run_guid)
+        # The report shows what the stored results were fitted from: re-referred if they were.
+        result_sets = {r.calibration_set_id for r in run.results}
+        tables = None
+        referred_to = None
+        if len(result_sets) == 1 and None not in result_sets and result_sets != {run.calibration_set_id}:
+            referred_to = load_set_by_id(session, result_sets.pop())
+            tables = referred_to.tables
+        sweeps, rows = [], []
+        set_id = referred_to.id if referred_to is not None else run.calibration_set_id
+        for center_hz, spacing_hz, _bias_v, _points, arrays, assessment in assessed_sweeps(session, run, set_id, tables):
+            fit = assessment.fit
+            sweeps.append(
+                SweepPlotData(
+                    title=sweep_title(center_hz, spacing_hz),
+                    pin_dbm=(arrays["pin1_dbm"] + arrays["pin2_dbm"]) / 2.0,
+                    pout_dbm=(arrays["pout_f1_dbm"] + arrays["pout_f2_dbm"]) / 2.0,
+                    im3_lower_dbm=arrays["im3_lower_dbm"],
+                    im3_upper_dbm=arrays["im3_upper_dbm"],
+                    noise_dbm=(arrays["noise_lower_dbm"] + arrays["noise_upper_dbm"]) / 2.0,
+                    valid_mask=fit.valid_mask,
+                    result=fit,
+                    assessment=assessment,
+                )
+            )
+            rows.append(report_result_row(center_hz, spacing_hz, fit, assessment))
+        device = run.device
+        summary = [
+            {"label": "Run", "value": run.guid},
+            {"label": "Device", "value": f"{device.part_number} serial {device.serial}" + (f", lot {device.lot}" if device.lot else "")},
+            {"label": "Bench", "value": run.bench.name + (" (simulated)" if run.simulated else "")},
+            {"label": "Started (UTC)", "value": run.started_at.strftime("%Y-%m-%d %H:%M:%S")},
+            {"label": "Status", "value": run.status + (f": {run.end_reason}" if run.end_reason else "")},
+        ]
+        if run.calibration_set is not None:
+            summary.append({"label": "Calibration", "value": f"{run.calibration_set.name} ({run.calibration_set.method})"})
+        if referred_to is not None:
+            summary.append({"label": "Re-referred to", "value": f"{referred_to.name} ({referred_to.method})"})
+        return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows)

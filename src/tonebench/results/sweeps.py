@@ -1,0 +1,164 @@
+"""Stored points to analysis inputs: per sweep, the arrays the fit takes (as stored, or re-referred
+to another calibration set from the raw readings) and what the analysis knows of the test system."""
+
+from __future__ import annotations
+
+import math
+from itertools import groupby
+
+import numpy as np
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from tonebench.analysis.assess import (
+    DEFAULT_LEVEL_ACCURACY_DB,
+    AnalysisSettings,
+    SweepData,
+    assess_sweep,
+)
+from tonebench.planes.referral import (
+    OUTPUT_COLUMNS,
+    check_coverage,
+    point_offsets,
+    referred_values,
+)
+from tonebench.calibration.residual import check_shares
+from tonebench.calibration.sets import load_set
+from tonebench.planes.loss_table import LossTable
+from tonebench.store.models import (
+    CalibrationSet,
+    Point,
+    Run,
+)
+
+
+POINT_ARRAYS = (
+    "tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
+    "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm", "overload", "im2_diff_dbm", "im2_sum_dbm",
+)
+
+
+# Raw columns the flags need as read (analyzer input plane), never re-referred.
+RAW_ARRAYS = (
+    "atten_db", "raw_f1_dbm", "raw_f2_dbm", "raw_lower_dbm", "raw_upper_dbm", "raw_noise_lower_dbm",
+    "raw_noise_upper_dbm", "step_atten_db", "raw_lower_step_dbm", "raw_upper_step_dbm",
+)
+
+
+# Kept in Point.extra_json by the sequencer (no columns of their own).
+EXTRA_ARRAYS = ("raw_noise_lower_step_dbm", "raw_noise_upper_step_dbm", "raw_noise_diff_dbm", "raw_noise_sum_dbm")
+
+
+# What re-referring a point needs: its source settings, leveling and raw readings.
+_REFERRAL_INPUTS = (
+    "source1_dbm", "source2_dbm", "source1_correction_db", "source2_correction_db", "pin1_dbm", "pin2_dbm",
+    *(raw for raw, _ in OUTPUT_COLUMNS.values()),
+)
+
+
+def _measured_points(session: Session, run_id: int) -> list[Point]:
+    return session.scalars(
+        select(Point)
+        .where(Point.run_id == run_id, Point.status == "measured")
+        .order_by(Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
+    ).all()
+
+
+def rereferred(point: Point, tables: dict[str, LossTable]) -> dict[str, float | None]:
+    """The point's DUT-referred values with another set's path losses, from its raw readings."""
+    offsets = point_offsets(tables, point.f1_hz, point.f2_hz, second_order=point.raw_diff_dbm is not None)
+    return referred_values({name: getattr(point, name) for name in _REFERRAL_INPUTS}, offsets)
+
+
+def _sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | None = None):
+    """Per sweep, the arrays the fit takes: as stored, or re-referred to `tables` when given."""
+    points = _measured_points(session, run_id)
+    for (center_hz, spacing_hz, bias_v), group in groupby(points, key=lambda p: (p.center_hz, p.spacing_hz, p.bias_v)):
+        rows = list(group)
+        values = [rereferred(row, tables) if tables is not None else None for row in rows]
+
+        def column(name: str, rows=rows, values=values):
+            if tables is not None and name in values[0]:
+                return [v[name] for v in values]
+            return [getattr(row, name) for row in rows]
+
+        arrays = {name: _nan_array(column(name)) for name in POINT_ARRAYS if name != "overload"}
+        arrays["overload"] = np.array([bool(v) for v in column("overload")], dtype=bool)
+        yield center_hz, spacing_hz, bias_v, rows, arrays
+
+
+def _nan_array(values) -> np.ndarray:
+    return np.array([np.nan if v is None else float(v) for v in values], dtype=float)
+
+
+def sweep_data(rows: list[Point], arrays: dict[str, np.ndarray]) -> SweepData:
+    """The analysis input of one sweep: its (possibly re-referred) arrays plus the raw readings."""
+    raw = {name: _nan_array(getattr(row, name) for row in rows) for name in RAW_ARRAYS}
+    extra = {name: _nan_array((row.extra_json or {}).get(name) for row in rows) for name in EXTRA_ARRAYS}
+    # A second-order product's noise floor has the same output loss as the product.
+    noise = {side: extra[f"raw_noise_{side}_dbm"] + arrays[f"im2_{side}_dbm"]
+             - _nan_array(getattr(row, f"raw_{side}_dbm") for row in rows) for side in ("diff", "sum")}
+    return SweepData(**arrays, **raw, raw_noise_lower_step_dbm=extra["raw_noise_lower_step_dbm"],
+                     raw_noise_upper_step_dbm=extra["raw_noise_upper_step_dbm"],
+                     noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
+
+
+def _residual_shares(cal: CalibrationSet | None, center_hz: float, spacing_hz: float) -> tuple[dict, str | None]:
+    """The system residual the source-intermod check charges one sweep with (AnalysisSettings
+    fields), or no fields and why not. The nearest centre measured at this spacing is used.
+
+    The sources' share is what a DUT passes on with its gain; a share the thru could not resolve
+    is charged at its bound, and the analyzer's share with the attenuation of each point
+    (calibration/residual.py check_shares). A set without the split gives the whole system's,
+    which can only overstate the sources'.
+    """
+    if cal is None:
+        return {}, "the run has no calibration set"
+    same = [r for r in cal.residuals if math.isclose(r.spacing_hz, spacing_hz, rel_tol=1e-9)]
+    if not same:
+        return {}, f"calibration set {cal.name} has no system residual at {spacing_hz:.6g} Hz spacing"
+    row = min(same, key=lambda r: abs(r.center_hz - center_hz))
+    extra = row.sweep_json or {}
+    shares = check_shares(row.system_ip3_dbm, row.source_ip3_dbm, row.analyzer_ip3_dbm, row.atten_db,
+                          extra.get("source_ip3_min_dbm"), extra.get("analyzer_ip3_min_dbm"),
+                          split_known=row.source_ip3_dbm is not None or row.analyzer_ip3_dbm is not None
+                          or "source_ip3_min_dbm" in extra)
+    if shares is None:
+        return {}, f"calibration set {cal.name}: the residual at {row.center_hz:.6g} Hz was below its noise"
+    return {"system_ip3_dbm": float(row.system_ip3_dbm), "source_ip3_dbm": shares.source_ip3_dbm,
+            "source_ip3_is_bound": shares.source_is_bound, "analyzer_ip3_dbm": shares.analyzer_ip3_dbm,
+            "residual_atten_db": float(shares.atten_db)}, None
+
+
+def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, spacing_hz: float) -> AnalysisSettings:
+    """What the analysis knows of this run's test system: the analyzer's figures kept with the run,
+    and the system residual of the calibration set the results are referred with."""
+    figures = (run.metadata_json or {}).get("analyzer", {})
+    shares, note = _residual_shares(cal, center_hz, spacing_hz)
+    return AnalysisSettings(
+        level_accuracy_db=figures.get("level_accuracy_db", DEFAULT_LEVEL_ACCURACY_DB),
+        mixer_toi_dbm=figures.get("mixer_toi_dbm"),
+        max_mixer_dbm=figures.get("max_mixer_dbm"),
+        system_note=note,
+        **shares,
+    )
+
+
+def assessed_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None):
+    """(center, spacing, bias, rows, arrays, assessment) for each sweep of the run."""
+    cal = session.get(CalibrationSet, set_id) if set_id is not None else None
+    for center_hz, spacing_hz, bias_v, rows, arrays in _sweeps(session, run.id, tables):
+        assessment = assess_sweep(sweep_data(rows, arrays), analysis_settings(run, cal, center_hz, spacing_hz))
+        yield center_hz, spacing_hz, bias_v, rows, arrays, assessment
+
+
+def referral_tables(session: Session, run: Run, cal_name: str | None) -> tuple[int | None, dict | None]:
+    """(calibration set id, tables to re-refer with or None to use the points as stored)."""
+    if cal_name is None:
+        return run.calibration_set_id, None
+    view = load_set(session, cal_name)
+    pairs = sorted({(p.f1_hz, p.f2_hz) for p in _measured_points(session, run.id)})
+    check_coverage(view.tables, pairs, f"run {run.guid[:8]}: {view.label}")
+    if view.id == run.calibration_set_id:
+        return view.id, None
+    return view.id, view.tables
