@@ -21,7 +21,7 @@ from tonebench.analysis.attenuation import (
 from tonebench.analysis.compression import p1db
 from tonebench.analysis.fit import SweepResult, fit_sweep, noise_corrected_dbm
 from tonebench.analysis.flags import Flag, judge_step
-from tonebench.analysis.intercepts import PointIntercepts, point_intercepts
+from tonebench.analysis.intercepts import PointIntercepts, input_intercepts_dbm, point_intercepts
 from tonebench.analysis.phasor import (
     intercept_error_db,
     phasor_bounds_db,
@@ -46,6 +46,7 @@ __all__ = [
     "assess_sweep",
     "fit_second_order",
     "fit_sweep",
+    "input_intercepts_dbm",
     "intercept_error_db",
     "judge_step",
     "noise_corrected_dbm",
