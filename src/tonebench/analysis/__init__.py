@@ -1,10 +1,14 @@
-"""Analysis: pure functions over numpy arrays (no database, no instruments).
+"""Analysis: pure functions over numpy arrays (no database, no instruments); imports only numpy,
+scipy and tonebench.errors/units.
 
-intercepts: per-point gain and third-order intercepts; fit: one sweep's valid region and fits;
-compression: the 1 dB compression point; phasor: coherent-sum error bounds; attenuation: the
-analyzer's own IM3 and noise versus attenuation, and the optimum; flags: the flag vocabulary and
-the attenuation-step judgement; uncertainty: the intercept bound; second_order: IIP2;
-assess: one sweep from readings to flags, fits and bound.
+intercepts: the per-point gain and third-order intercepts (the one formula); fit: one sweep's valid
+region and fits; compression: the 1 dB compression point; phasor: coherent-sum error bounds;
+attenuation: the analyzer's own IM3 and noise versus attenuation, and the optimum; flags: the flag
+vocabulary and the attenuation-step judgement; uncertainty: combining bound terms; second_order:
+IIP2; settings: what the analysis knows of the test system. assess runs one sweep from readings to
+flags, fits and bound through named steps: point_checks (noise, overload, tone imbalance),
+system_checks (the analyzer's own distortion, the sources' intermod), region (the fit over the
+valid region, compression), bound (the IIP3 bound and lower bound), result_flags.
 """
 
 from tonebench.analysis.assess import (
