@@ -29,6 +29,13 @@ class RegionFit:
     flags: PointFlags
 
 
+def fit_excluding(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray]) -> SweepResult:
+    """fit_sweep over the sweep's arrays, leaving out the overloaded and the excluded points."""
+    return fit_sweep(a["tone_dbm"], a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
+                     a["im3_lower_dbm"], a["im3_upper_dbm"], a["noise_lower_dbm"], a["noise_upper_dbm"],
+                     over, exclude=exclude)
+
+
 def fit_region(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray],
                noise_err) -> tuple[SweepResult, np.ndarray]:
     """The fit over the valid region, its top trimmed where higher-order terms bias the IM3.
@@ -36,17 +43,12 @@ def fit_region(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray],
     Returns the fit and the points left out for that (fit.high_order_top; each point's scatter is
     taken as its noise error).
     """
-    def fit(extra: dict[str, np.ndarray]) -> SweepResult:
-        return fit_sweep(a["tone_dbm"], a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
-                         a["im3_lower_dbm"], a["im3_upper_dbm"], a["noise_lower_dbm"], a["noise_upper_dbm"],
-                         over, exclude={**exclude, **extra})
-
-    first = fit({})
+    first = fit_excluding(a, over, {**exclude})
     pin_mean = mean_pair(a["pin1_dbm"], a["pin2_dbm"])
     trimmed = high_order_top(pin_mean, first.point_iip3_dbm, noise_err, first.valid_mask)
     if first.iip3_dbm is None or not trimmed.any():
         return first, np.zeros_like(trimmed)
-    return fit({HIGH_ORDER: trimmed}), trimmed
+    return fit_excluding(a, over, {**exclude, HIGH_ORDER: trimmed}), trimmed
 
 
 def fit_valid_region(a: dict[str, np.ndarray], over, analyzer_made, noise_err) -> RegionFit:
