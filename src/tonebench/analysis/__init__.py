@@ -1,10 +1,14 @@
-"""Analysis: pure functions over numpy arrays (no database, no instruments).
+"""Analysis: pure functions over numpy arrays (no database, no instruments); imports only numpy,
+scipy and tonebench.errors/units.
 
-intercepts: per-point gain and third-order intercepts; fit: one sweep's valid region and fits;
-compression: the 1 dB compression point; phasor: coherent-sum error bounds; attenuation: the
-analyzer's own IM3 and noise versus attenuation, and the optimum; flags: the flag vocabulary and
-the attenuation-step judgement; uncertainty: the intercept bound; second_order: IIP2;
-assess: one sweep from readings to flags, fits and bound.
+intercepts: the per-point gain and third-order intercepts (the one formula); fit: one sweep's valid
+region and fits; compression: the 1 dB compression point; phasor: coherent-sum error bounds;
+attenuation: the analyzer's own IM3 and noise versus attenuation, and the optimum; flags: the flag
+vocabulary and the attenuation-step judgement; uncertainty: combining bound terms; second_order:
+IIP2; settings: what the analysis knows of the test system. assess runs one sweep from readings to
+flags, fits and bound through named steps: point_checks (noise, overload, tone imbalance),
+system_checks (the analyzer's own distortion, the sources' intermod), region (the fit over the
+valid region, compression), bound (the IIP3 bound and lower bound), result_flags.
 """
 
 from tonebench.analysis.assess import (
@@ -21,7 +25,7 @@ from tonebench.analysis.attenuation import (
 from tonebench.analysis.compression import p1db
 from tonebench.analysis.fit import SweepResult, fit_sweep, noise_corrected_dbm
 from tonebench.analysis.flags import Flag, judge_step
-from tonebench.analysis.intercepts import PointIntercepts, point_intercepts
+from tonebench.analysis.intercepts import PointIntercepts, input_intercepts_dbm, point_intercepts
 from tonebench.analysis.phasor import (
     intercept_error_db,
     phasor_bounds_db,
@@ -46,6 +50,7 @@ __all__ = [
     "assess_sweep",
     "fit_second_order",
     "fit_sweep",
+    "input_intercepts_dbm",
     "intercept_error_db",
     "judge_step",
     "noise_corrected_dbm",

@@ -124,6 +124,101 @@ def high_order_top(pin_dbm, point_iip3_dbm, point_sigma_db, valid) -> np.ndarray
     return out
 
 
+_FIT_INPUTS = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
+               "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm")
+
+
+def _checked_arrays(values: tuple, overload) -> dict[str, np.ndarray]:
+    """The inputs as float arrays by name (overload as bool), each 1-D with one value per point."""
+    arrays = {name: np.asarray(v, dtype=float) for name, v in zip(_FIT_INPUTS, values)}
+    arrays["overload"] = np.asarray(overload, dtype=bool)
+    n_points = arrays["tone_dbm"].size
+    for name, arr in arrays.items():
+        if arr.ndim != 1 or arr.size != n_points:
+            raise InputError(f"fit_sweep: {name} has shape {arr.shape}; every array must be 1-D "
+                             f"with one value per point ({n_points}, like tone_dbm)")
+    return arrays
+
+
+def _excluded_mask(exclude: dict[str, np.ndarray] | None, n_points: int) -> np.ndarray:
+    """The union of the caller's further exclusions (bool, per point)."""
+    excluded = np.zeros(n_points, bool)
+    for label, mask in (exclude or {}).items():
+        mask = np.asarray(mask, dtype=bool)
+        if mask.shape != (n_points,):
+            raise InputError(f"fit_sweep: exclude[{label!r}] has shape {mask.shape}; needs ({n_points},)")
+        excluded |= mask
+    return excluded
+
+
+def _refusal_reason(n_valid: int, n_points: int, causes: dict[str, np.ndarray], no_small_signal: bool) -> str:
+    """Why too few points are valid: the count, then each cause with its own count."""
+    parts = [f"{int(m.sum())} {label}" for label, m in causes.items() if m.any()]
+    reason = (f"only {n_valid} of {n_points} points {'meets' if n_valid == 1 else 'meet'} "
+              f"the valid-region rules (need {MIN_VALID_POINTS})")
+    if parts:
+        reason += ": " + ", ".join(parts)
+    if no_small_signal and n_points:
+        reason += "; no point free of overload and missing readings sets the small-signal gain"
+    return reason
+
+
+def _line(x, y, valid, spread: bool) -> tuple[float, float] | None:
+    """Least-squares line (slope, offset) of y over the valid points; None without a spread in x."""
+    return tuple(float(c) for c in np.polyfit(x, y[valid], 1)) if spread else None
+
+
+def _slope(x, y, valid, spread: bool) -> float | None:
+    fitted = _line(x, y, valid, spread)
+    return None if fitted is None else fitted[0]
+
+
+def free_iip3_dbm(x, valid, pout_mean, im3_lower, im3_upper, spread: bool) -> float | None:
+    """Where the free-slope fundamental line meets the free IM3 lines (mean of both; dBm).
+
+    The fundamental s1 x + c1 meets each IM3 line s3 x + c3 at x = (c1 - c3)/(s3 - s1); None
+    unless both IM3 lines are steeper than the fundamental.
+    """
+    free = []
+    fundamental = _line(x, pout_mean, valid, spread)
+    for im3 in (im3_lower, im3_upper):
+        third = _line(x, im3, valid, spread)
+        if fundamental is not None and third is not None and third[0] - fundamental[0] > 0:
+            free.append((fundamental[1] - third[1]) / (third[0] - fundamental[0]))
+    return float(np.mean(free)) if len(free) == 2 else None
+
+
+@dataclass(frozen=True)
+class _Region:
+    """The valid region and what each rule left out (bool per point), with the small-signal gain."""
+
+    valid: np.ndarray
+    finite: np.ndarray
+    noisy: np.ndarray
+    compressed: np.ndarray
+    expanded: np.ndarray
+    gain_db: float | None
+
+
+def _valid_region(a: dict[str, np.ndarray], point_gain_db, excluded) -> _Region:
+    """The small-signal gain, then the points with every reading, IM3 clear of the noise, gain within
+    GAIN_TOLERANCE_DB of it, no overload and not excluded. Each cause is counted on its own."""
+    n_points = a["tone_dbm"].size
+    over = a["overload"]
+    finite = np.all([np.isfinite(a[n]) for n in _FIT_INPUTS[:7]], axis=0)
+    gss = small_signal_gain_db(a["tone_dbm"], point_gain_db, finite & ~over)
+    noisy = ~((a["im3_lower_dbm"] - a["noise_lower_dbm"] >= IM3_OVER_NOISE_MIN_DB)
+              & (a["im3_upper_dbm"] - a["noise_upper_dbm"] >= IM3_OVER_NOISE_MIN_DB))
+    if gss is None:
+        compressed = expanded = gain_ok = np.zeros(n_points, bool)
+    else:
+        compressed = point_gain_db < gss - GAIN_TOLERANCE_DB
+        expanded = point_gain_db > gss + GAIN_TOLERANCE_DB
+        gain_ok = np.abs(point_gain_db - gss) <= GAIN_TOLERANCE_DB
+    valid = finite & ~noisy & gain_ok & ~over & ~excluded
+    return _Region(valid, finite, noisy, compressed, expanded, gss)
+
+
 def fit_sweep(
     tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm, im3_upper_dbm,
     noise_lower_dbm, noise_upper_dbm, overload, exclude: dict[str, np.ndarray] | None = None,
@@ -141,52 +236,23 @@ def fit_sweep(
     exclude maps a reason (e.g. "analyzer-made") to a bool array of further points to leave out of
     the valid region; they are counted under that reason when the fit is refused.
     """
-    names = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
-             "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm")
-    values = (tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm,
-              im3_upper_dbm, noise_lower_dbm, noise_upper_dbm)
-    arrays = {name: np.asarray(v, dtype=float) for name, v in zip(names, values)}
-    arrays["overload"] = np.asarray(overload, dtype=bool)
-    n_points = arrays["tone_dbm"].size
-    for name, arr in arrays.items():
-        if arr.ndim != 1 or arr.size != n_points:
-            raise InputError(f"fit_sweep: {name} has shape {arr.shape}; every array must be 1-D "
-                             f"with one value per point ({n_points}, like tone_dbm)")
-    a = arrays
+    a = _checked_arrays((tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm,
+                         im3_upper_dbm, noise_lower_dbm, noise_upper_dbm), overload)
+    n_points = a["tone_dbm"].size
     over = a["overload"]
-
     im3_lower, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
     im3_upper, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
     pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
                            im3_lower, im3_upper)
     pin_mean = (a["pin1_dbm"] + a["pin2_dbm"]) / 2.0
     pout_mean = (a["pout_f1_dbm"] + a["pout_f2_dbm"]) / 2.0
-
-    finite = np.all([np.isfinite(a[n]) for n in names[:7]], axis=0)
-    gss = small_signal_gain_db(a["tone_dbm"], pts.gain_db, finite & ~over)
-
-    # Each cause is counted on its own; one point may have several.
-    noisy = ~((a["im3_lower_dbm"] - a["noise_lower_dbm"] >= IM3_OVER_NOISE_MIN_DB)
-              & (a["im3_upper_dbm"] - a["noise_upper_dbm"] >= IM3_OVER_NOISE_MIN_DB))
-    if gss is None:
-        compressed = expanded = gain_ok = np.zeros(n_points, bool)
-    else:
-        compressed = pts.gain_db < gss - GAIN_TOLERANCE_DB
-        expanded = pts.gain_db > gss + GAIN_TOLERANCE_DB
-        gain_ok = np.abs(pts.gain_db - gss) <= GAIN_TOLERANCE_DB
-    excluded = np.zeros(n_points, bool)
-    for label, mask in (exclude or {}).items():
-        mask = np.asarray(mask, dtype=bool)
-        if mask.shape != (n_points,):
-            raise InputError(f"fit_sweep: exclude[{label!r}] has shape {mask.shape}; needs ({n_points},)")
-        excluded |= mask
-    valid = finite & ~noisy & gain_ok & ~over & ~excluded
+    region = _valid_region(a, pts.gain_db, _excluded_mask(exclude, n_points))
+    valid, gss = region.valid, region.gain_db
     n_valid = int(valid.sum())
 
     p1db_in = p1db_out = None
     if gss is not None:
         p1db_in, p1db_out = p1db(np.where(over, np.nan, pin_mean), pts.gain_db, gss)
-
     valid_tone = a["tone_dbm"][valid]
     common = dict(n_points=n_points, n_valid=n_valid, valid_mask=valid, gain_db=gss,
                   point_gain_db=pts.gain_db, point_iip3_dbm=(pts.iip3_lower_dbm + pts.iip3_upper_dbm) / 2.0,
@@ -196,47 +262,24 @@ def fit_sweep(
 
     if n_valid < MIN_VALID_POINTS:
         causes = {
-            "with missing readings": ~finite,
-            f"IM3 within {IM3_OVER_NOISE_MIN_DB:g} dB of the noise floor": noisy & finite,
-            "compressed": compressed,
-            "expanded": expanded,
+            "with missing readings": ~region.finite,
+            f"IM3 within {IM3_OVER_NOISE_MIN_DB:g} dB of the noise floor": region.noisy & region.finite,
+            "compressed": region.compressed,
+            "expanded": region.expanded,
             "overloaded": over,
             **{label: np.asarray(mask, dtype=bool) for label, mask in (exclude or {}).items()},
         }
-        parts = [f"{int(m.sum())} {label}" for label, m in causes.items() if m.any()]
-        reason = (f"only {n_valid} of {n_points} points {'meets' if n_valid == 1 else 'meet'} "
-                  f"the valid-region rules (need {MIN_VALID_POINTS})")
-        if parts:
-            reason += ": " + ", ".join(parts)
-        if gss is None and n_points:
-            reason += "; no point free of overload and missing readings sets the small-signal gain"
         return SweepResult(iip3_lower_dbm=None, iip3_upper_dbm=None, iip3_dbm=None,
                            oip3_lower_dbm=None, oip3_upper_dbm=None, oip3_dbm=None,
                            slope_fundamental=None, slope_im3_lower=None, slope_im3_upper=None,
-                           reason=reason, **common)
+                           reason=_refusal_reason(n_valid, n_points, causes, gss is None), **common)
 
     iip3_lower = float(pts.iip3_lower_dbm[valid].mean())
     iip3_upper = float(pts.iip3_upper_dbm[valid].mean())
     oip3_lower = float(pts.oip3_lower_dbm[valid].mean())
     oip3_upper = float(pts.oip3_upper_dbm[valid].mean())
     x = pin_mean[valid]
-    spread = np.ptp(x) > 0  # a slope needs at least two distinct input powers
-
-    def line(y) -> tuple[float, float] | None:
-        return tuple(float(c) for c in np.polyfit(x, y[valid], 1)) if spread else None
-
-    def slope(y) -> float | None:
-        fitted = line(y)
-        return None if fitted is None else fitted[0]
-
-    # Free slopes: the fundamental s1 x + c1 meets each IM3 line s3 x + c3 at x = (c1 - c3)/(s3 - s1).
-    free = []
-    fundamental = line(pout_mean)
-    for im3 in (im3_lower, im3_upper):
-        third = line(im3)
-        if fundamental is not None and third is not None and third[0] - fundamental[0] > 0:
-            free.append((fundamental[1] - third[1]) / (third[0] - fundamental[0]))
-
+    spread = bool(np.ptp(x) > 0)  # a slope needs at least two distinct input powers
     return SweepResult(
         iip3_lower_dbm=iip3_lower,
         iip3_upper_dbm=iip3_upper,
@@ -244,10 +287,10 @@ def fit_sweep(
         oip3_lower_dbm=oip3_lower,
         oip3_upper_dbm=oip3_upper,
         oip3_dbm=(oip3_lower + oip3_upper) / 2.0,
-        slope_fundamental=slope(pout_mean),
-        slope_im3_lower=slope(im3_lower),
-        slope_im3_upper=slope(im3_upper),
-        iip3_free_dbm=float(np.mean(free)) if len(free) == 2 else None,
+        slope_fundamental=_slope(x, pout_mean, valid, spread),
+        slope_im3_lower=_slope(x, im3_lower, valid, spread),
+        slope_im3_upper=_slope(x, im3_upper, valid, spread),
+        iip3_free_dbm=free_iip3_dbm(x, valid, pout_mean, im3_lower, im3_upper, spread),
         reason=None,
         **common,
     )

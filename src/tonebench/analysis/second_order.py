@@ -17,6 +17,7 @@ from tonebench.analysis.fit import (
     MIN_VALID_POINTS,
     noise_corrected_dbm,
 )
+from tonebench.analysis.region import small_signal_usable
 from tonebench.analysis.uncertainty import scatter_half_width_db
 
 PRODUCTS = ("diff", "sum")
@@ -97,3 +98,16 @@ def fit_second_order(pin1_dbm, pin2_dbm, gain_db, usable, products: dict[str, tu
         per_product=per_product,
         reason=None,
     )
+
+
+def sweep_second_order(a: dict[str, np.ndarray], point_gain_db, over, small_signal_gain_db: float | None,
+                       level_accuracy_db: float, compression_db) -> SecondOrderResult | None:
+    """IIP2 of one sweep (SweepData.arrays()) over the tones' small-signal, non-overloaded points;
+    None when no second-order product was read."""
+    if not (np.isfinite(a["im2_diff_dbm"]).any() or np.isfinite(a["im2_sum_dbm"]).any()):
+        return None
+    usable = small_signal_usable(point_gain_db, small_signal_gain_db, np.isfinite(point_gain_db) & ~over)
+    return fit_second_order(
+        a["pin1_dbm"], a["pin2_dbm"], point_gain_db, usable,
+        {"diff": (a["im2_diff_dbm"], a["noise_diff_dbm"]), "sum": (a["im2_sum_dbm"], a["noise_sum_dbm"])},
+        level_accuracy_db, compression_db, small_signal_gain_db)

@@ -20,6 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tonebench.analysis.fit import noise_corrected_dbm
+from tonebench.analysis.intercepts import input_intercepts_dbm
 
 MIN_SNR_DB = 10.0  # a residual reading is used only this far above its noise marker (design section 3)
 # A share below 1 % of the whole amplitude (its intercept 20 dB above the system's) is within the
@@ -37,14 +38,6 @@ class InterceptEstimate:
     n_valid: int
 
 
-def point_intercepts_dbm(p1_dbm, p2_dbm, im3_lower_dbm, im3_upper_dbm) -> tuple[np.ndarray, np.ndarray]:
-    """Per point, slope 3: lower product ~ 2 P1 + P2 - 2 IP3, upper ~ P1 + 2 P2 - 2 IP3 (design sec. 3)."""
-    p1, p2 = np.asarray(p1_dbm, dtype=float), np.asarray(p2_dbm, dtype=float)
-    lower = (2.0 * p1 + p2 - np.asarray(im3_lower_dbm, dtype=float)) / 2.0
-    upper = (p1 + 2.0 * p2 - np.asarray(im3_upper_dbm, dtype=float)) / 2.0
-    return lower, upper
-
-
 def system_intercept(p1_dbm, p2_dbm, im3_lower_dbm, im3_upper_dbm, noise_lower_dbm, noise_upper_dbm,
                      overload) -> InterceptEstimate:
     """Intercept from one thru sweep; all powers at the DUT input plane (dBm), arrays per point."""
@@ -57,12 +50,12 @@ def system_intercept(p1_dbm, p2_dbm, im3_lower_dbm, im3_upper_dbm, noise_lower_d
         values.append(np.where(valid, corrected, np.nan))
         # Not readable: the product is less than MIN_SNR_DB over the noise, so the intercept is above this.
         bounds.append(np.where(~overload, noise + MIN_SNR_DB, np.nan))
-    lower, upper = point_intercepts_dbm(p1_dbm, p2_dbm, values[0], values[1])
+    lower, upper = input_intercepts_dbm(p1_dbm, p2_dbm, values[0], values[1])
     readable = np.concatenate([lower, upper])
     readable = readable[np.isfinite(readable)]
     if readable.size:
         return InterceptEstimate(float(np.mean(readable)), None, int(readable.size))
-    lower_b, upper_b = point_intercepts_dbm(p1_dbm, p2_dbm, bounds[0], bounds[1])
+    lower_b, upper_b = input_intercepts_dbm(p1_dbm, p2_dbm, bounds[0], bounds[1])
     floor = np.concatenate([lower_b, upper_b])
     floor = floor[np.isfinite(floor)]
     # Each point bounds the intercept on its own; the strongest point gives the tightest bound.

@@ -1,7 +1,9 @@
-"""Generic SCPI layer of the simulated bench: header matching, ';' chains, common commands, error queue.
+"""Generic SCPI layer of the simulated bench: parameters, ';' chains, common commands, error queue.
 
 A simulated instrument subclasses ScpiDevice and registers its setting commands and queries with
 SCPI header patterns; handle_line() then takes one received line and returns the reply text.
+The error codes (scpi_errors) and the header patterns (scpi_headers) live beside it; the codes are
+re-exported here, so an instrument imports this module only.
 Rules follow SCPI-1999 volume 1 (syntax) and volume 2 ch. 21 (error codes) and IEEE 488.2
 (common commands, status bits), all cited from memory.
 """
@@ -13,85 +15,16 @@ import re
 from dataclasses import dataclass
 from typing import Callable
 
-# Error codes, SCPI-1999 vol 2 ch. 21 (from memory).
-NO_ERROR = 0
-COMMAND_ERROR = -100
-INVALID_CHARACTER = -101
-SYNTAX_ERROR = -102
-INVALID_SEPARATOR = -103
-DATA_TYPE_ERROR = -104
-PARAMETER_NOT_ALLOWED = -108
-MISSING_PARAMETER = -109
-COMMAND_HEADER_ERROR = -110
-UNDEFINED_HEADER = -113
-HEADER_SUFFIX_OUT_OF_RANGE = -114
-NUMERIC_DATA_ERROR = -120
-INVALID_SUFFIX = -131
-SUFFIX_NOT_ALLOWED = -138
-INVALID_STRING_DATA = -151
-EXECUTION_ERROR = -200
-SETTINGS_CONFLICT = -221
-DATA_OUT_OF_RANGE = -222
-ILLEGAL_PARAMETER_VALUE = -224
-HARDWARE_ERROR = -240
-DEVICE_SPECIFIC_ERROR = -300
-SYSTEM_ERROR = -310
-QUEUE_OVERFLOW = -350
-QUERY_ERROR = -400
-QUERY_INTERRUPTED = -410
-QUERY_UNTERMINATED = -420
-
-STANDARD_MESSAGES: dict[int, str] = {
-    NO_ERROR: "No error",
-    COMMAND_ERROR: "Command error",
-    INVALID_CHARACTER: "Invalid character",
-    SYNTAX_ERROR: "Syntax error",
-    INVALID_SEPARATOR: "Invalid separator",
-    DATA_TYPE_ERROR: "Data type error",
-    PARAMETER_NOT_ALLOWED: "Parameter not allowed",
-    MISSING_PARAMETER: "Missing parameter",
-    COMMAND_HEADER_ERROR: "Command header error",
-    UNDEFINED_HEADER: "Undefined header",
-    HEADER_SUFFIX_OUT_OF_RANGE: "Header suffix out of range",
-    NUMERIC_DATA_ERROR: "Numeric data error",
-    INVALID_SUFFIX: "Invalid suffix",
-    SUFFIX_NOT_ALLOWED: "Suffix not allowed",
-    INVALID_STRING_DATA: "Invalid string data",
-    EXECUTION_ERROR: "Execution error",
-    SETTINGS_CONFLICT: "Settings conflict",
-    DATA_OUT_OF_RANGE: "Data out of range",
-    ILLEGAL_PARAMETER_VALUE: "Illegal parameter value",
-    HARDWARE_ERROR: "Hardware error",
-    DEVICE_SPECIFIC_ERROR: "Device-specific error",
-    SYSTEM_ERROR: "System error",
-    QUEUE_OVERFLOW: "Queue overflow",
-    QUERY_ERROR: "Query error",
-    QUERY_INTERRUPTED: "Query INTERRUPTED",
-    QUERY_UNTERMINATED: "Query UNTERMINATED",
-}
-
-# Standard Event Status Register bits, IEEE 488.2 11.5.1.1 (from memory).
-ESR_OPERATION_COMPLETE = 1 << 0
-ESR_QUERY_ERROR = 1 << 2
-ESR_DEVICE_ERROR = 1 << 3
-ESR_EXECUTION_ERROR = 1 << 4
-ESR_COMMAND_ERROR = 1 << 5
-ESR_POWER_ON = 1 << 7
-
-
-class ScpiError(Exception):
-    """An SCPI error: `code` as in SCPI-1999 vol 2 ch. 21, `message` the text put in the error queue."""
-
-    def __init__(self, code: int, message: str = ""):
-        self.code = code
-        self.message = message or STANDARD_MESSAGES.get(code, "Error")
-        super().__init__(f"{code},{self.message}")
-
-
-def _error(code: int, detail: str) -> ScpiError:
-    # SCPI-1999 vol 2 21.8 (from memory): device info follows the standard text after ';'.
-    return ScpiError(code, f"{STANDARD_MESSAGES[code]};{detail}")
-
+from tonebench.sim.scpi_errors import (  # noqa: F401  (the error codes are part of this module's face)
+    COMMAND_ERROR, COMMAND_HEADER_ERROR, DATA_OUT_OF_RANGE, DATA_TYPE_ERROR, DEVICE_SPECIFIC_ERROR,
+    ESR_COMMAND_ERROR, ESR_DEVICE_ERROR, ESR_EXECUTION_ERROR, ESR_OPERATION_COMPLETE, ESR_POWER_ON,
+    ESR_QUERY_ERROR, EXECUTION_ERROR, HARDWARE_ERROR, HEADER_SUFFIX_OUT_OF_RANGE, ILLEGAL_PARAMETER_VALUE,
+    INVALID_CHARACTER, INVALID_SEPARATOR, INVALID_STRING_DATA, INVALID_SUFFIX, MISSING_PARAMETER, NO_ERROR,
+    NUMERIC_DATA_ERROR, PARAMETER_NOT_ALLOWED, QUERY_ERROR, QUERY_INTERRUPTED, QUERY_UNTERMINATED,
+    QUEUE_OVERFLOW, SETTINGS_CONFLICT, STANDARD_MESSAGES, SUFFIX_NOT_ALLOWED, SYNTAX_ERROR, SYSTEM_ERROR,
+    UNDEFINED_HEADER, ScpiError, esr_bit, scpi_error,
+)
+from tonebench.sim.scpi_headers import HeaderNode, compile_pattern, match_header, parse_received_node
 
 # Suffix units and multipliers. SCPI-1999 vol 1 7.7.3 (from memory): the prefix M means milli,
 # except in MHZ (and MOHM) where it means mega; MA is the general mega prefix, so MAHZ is also 1e6.
@@ -119,19 +52,19 @@ def parse_number(token: str, unit: str | None = None) -> float:
         raise ValueError(f"parse_number: unknown unit {unit!r}; allowed: {sorted(_UNIT_SUFFIXES)}")
     match = _NUMBER.match(token)
     if match is None:
-        raise _error(DATA_TYPE_ERROR, f"not a number: {token.strip()!r}")
+        raise scpi_error(DATA_TYPE_ERROR, f"not a number: {token.strip()!r}")
     mantissa, suffix = match.group(1), match.group(2).upper()
     multiplier = 1.0
     if suffix:
         if unit is None:
-            raise _error(SUFFIX_NOT_ALLOWED, f"{suffix} on a plain number")
+            raise scpi_error(SUFFIX_NOT_ALLOWED, f"{suffix} on a plain number")
         allowed = _UNIT_SUFFIXES[unit.upper()]
         if suffix not in allowed:
-            raise _error(INVALID_SUFFIX, f"{suffix} where {unit.upper()} is expected")
+            raise scpi_error(INVALID_SUFFIX, f"{suffix} where {unit.upper()} is expected")
         multiplier = allowed[suffix]
     value = float(mantissa) * multiplier
     if not math.isfinite(value):
-        raise _error(DATA_OUT_OF_RANGE, f"{token.strip()!r} is not finite")
+        raise scpi_error(DATA_OUT_OF_RANGE, f"{token.strip()!r} is not finite")
     return value
 
 
@@ -142,7 +75,7 @@ def parse_bool(token: str) -> bool:
         return True
     if word in ("OFF", "0"):
         return False
-    raise _error(DATA_TYPE_ERROR, f"not a boolean: {token.strip()!r}")
+    raise scpi_error(DATA_TYPE_ERROR, f"not a boolean: {token.strip()!r}")
 
 
 def _split_outside_quotes(text: str, separator: str) -> list[str]:
@@ -162,92 +95,21 @@ def _split_outside_quotes(text: str, separator: str) -> list[str]:
             continue
         current.append(char)
     if quote:
-        raise _error(INVALID_STRING_DATA, "unterminated string")
+        raise scpi_error(INVALID_STRING_DATA, "unterminated string")
     parts.append("".join(current))
     return parts
 
 
-@dataclass(frozen=True)
-class _Node:
-    """One node of a registered header pattern."""
-
-    short: str
-    long: str
-    optional: bool
-    takes_suffix: bool
-
-    def suffix_state(self, suffix: int | None) -> int:
-        """2: accepted, 1: node matches but suffix out of range, 0: node does not take a suffix."""
-        if suffix is None:
-            return 2
-        if not self.takes_suffix:
-            return 0
-        return 2 if suffix == 1 else 1
-
-
-_PATTERN_TOKEN = re.compile(r"\[|\]|:|([A-Za-z]+)(#?)")
-_RECEIVED_NODE = re.compile(r"([A-Za-z][A-Za-z_]*?)(\d*)")
 _COMMON_HEADER = re.compile(r"\*[A-Za-z]+")
 # A program header, then white space, then the parameters (IEEE 488.2 7.4.3, from memory).
 _UNIT = re.compile(r"(\S+)(?:\s+(.*))?", re.S)
 
 
-def _compile_pattern(pattern: str) -> tuple[_Node, ...]:
-    """Turn "[SENSe]:FREQuency:CENTer" style notation into nodes; bad patterns are programming errors."""
-    nodes: list[_Node] = []
-    depth = 0
-    pos = 0
-    while pos < len(pattern):
-        match = _PATTERN_TOKEN.match(pattern, pos)
-        if match is None:
-            raise ValueError(f"SCPI pattern {pattern!r}: unexpected {pattern[pos]!r} at {pos}")
-        token = match.group(0)
-        if token == "[":
-            depth += 1
-        elif token == "]":
-            depth -= 1
-            if depth < 0:
-                raise ValueError(f"SCPI pattern {pattern!r}: unbalanced ']'")
-        elif token != ":":
-            word = match.group(1)
-            short = "".join(c for c in word if c.isupper())
-            if not short or not word.upper().startswith(short):
-                raise ValueError(f"SCPI pattern {pattern!r}: node {word!r} needs a leading uppercase short form")
-            nodes.append(_Node(short, word.upper(), depth > 0, match.group(2) == "#"))
-        pos = match.end()
-    if depth != 0 or not nodes:
-        raise ValueError(f"SCPI pattern {pattern!r}: unbalanced '[' or no node")
-    return tuple(nodes)
-
-
-def _match(pattern: tuple[_Node, ...], received: tuple[tuple[str, int | None], ...]) -> int:
-    """2: match, 1: match except a numeric suffix out of range, 0: no match."""
-    if not pattern:
-        return 2 if not received else 0
-    node, rest = pattern[0], pattern[1:]
-    best = _match(rest, received) if node.optional else 0
-    if best < 2 and received:
-        word, suffix = received[0]
-        # SCPI-1999 vol 1 6.2.1 (from memory): only the exact short or long form is accepted.
-        if word in (node.short, node.long):
-            state = node.suffix_state(suffix)
-            if state:
-                best = max(best, min(state, _match(rest, received[1:])))
-    return best
-
-
-def _parse_received_node(text: str) -> tuple[str, int | None]:
-    match = _RECEIVED_NODE.fullmatch(text)
-    if match is None:
-        raise _error(SYNTAX_ERROR, f"bad header node {text!r}")
-    digits = match.group(2)
-    return match.group(1).upper(), (int(digits) if digits else None)
-
 
 @dataclass(frozen=True)
 class _Entry:
     pattern: str
-    nodes: tuple[_Node, ...]
+    nodes: tuple[HeaderNode, ...]
     handler: Callable
     nparams: int | None
 
@@ -293,7 +155,7 @@ class ScpiDevice:
             if not _COMMON_HEADER.fullmatch(pattern):
                 raise ValueError(f"SCPI pattern {pattern!r}: a common command is '*' and letters")
             return _Entry(pattern.upper(), (), handler, nparams)
-        return _Entry(pattern, _compile_pattern(pattern), handler, nparams)
+        return _Entry(pattern, compile_pattern(pattern), handler, nparams)
 
     # --- hooks for subclasses -----------------------------------------------------------------
 
@@ -323,7 +185,7 @@ class ScpiDevice:
             self._errors[-1] = (QUEUE_OVERFLOW, STANDARD_MESSAGES[QUEUE_OVERFLOW])
         else:
             self._errors.append((code, message))
-        self._esr |= _esr_bit(code)
+        self._esr |= esr_bit(code)
 
     def _next_error(self) -> str:
         code, message = self._errors.pop(0) if self._errors else (NO_ERROR, STANDARD_MESSAGES[NO_ERROR])
@@ -374,50 +236,37 @@ class ScpiDevice:
         is_query = header.endswith("?")
         name = header[:-1] if is_query else header
         if "?" in name or not name:
-            raise _error(SYNTAX_ERROR, f"bad header {header!r}")
+            raise scpi_error(SYNTAX_ERROR, f"bad header {header!r}")
         table = self._queries if is_query else self._commands
         if name.startswith("*"):
             # Common commands do not change the current path (SCPI-1999 vol 1 6.2.4, from memory).
             entry = table.get(name.upper())
             if entry is None:
-                raise _error(UNDEFINED_HEADER, header)
+                raise scpi_error(UNDEFINED_HEADER, header)
             return self._call(entry, params, is_query), path
         # A leading ':' starts at the root; otherwise continue at the previous path.
         nodes_text = name[1:].split(":") if name.startswith(":") else list(path) + name.split(":")
         if any(not n for n in nodes_text):
-            raise _error(SYNTAX_ERROR, f"empty node in {header!r}")
-        received = tuple(_parse_received_node(n) for n in nodes_text)
+            raise scpi_error(SYNTAX_ERROR, f"empty node in {header!r}")
+        received = tuple(parse_received_node(n) for n in nodes_text)
         best_state = 0
         for entry in table.values():
             if not entry.nodes:
                 continue
-            state = _match(entry.nodes, received)
+            state = match_header(entry.nodes, received)
             if state == 2:
                 return self._call(entry, params, is_query), tuple(nodes_text[:-1])
             best_state = max(best_state, state)
         if best_state == 1:
-            raise _error(HEADER_SUFFIX_OUT_OF_RANGE, header)
-        raise _error(UNDEFINED_HEADER, ":".join(nodes_text) + ("?" if is_query else ""))
+            raise scpi_error(HEADER_SUFFIX_OUT_OF_RANGE, header)
+        raise scpi_error(UNDEFINED_HEADER, ":".join(nodes_text) + ("?" if is_query else ""))
 
     @staticmethod
     def _call(entry: _Entry, params: list[str], is_query: bool) -> str | None:
         if entry.nparams is not None:
             if len(params) < entry.nparams:
-                raise _error(MISSING_PARAMETER, f"{entry.pattern} takes {entry.nparams}")
+                raise scpi_error(MISSING_PARAMETER, f"{entry.pattern} takes {entry.nparams}")
             if len(params) > entry.nparams:
-                raise _error(PARAMETER_NOT_ALLOWED, f"{entry.pattern} takes {entry.nparams}")
+                raise scpi_error(PARAMETER_NOT_ALLOWED, f"{entry.pattern} takes {entry.nparams}")
         reply = entry.handler(params)
         return reply if is_query else None
-
-
-def _esr_bit(code: int) -> int:
-    """Event status bit for an error code class (IEEE 488.2 11.5.1.1 and SCPI-1999 vol 2 21.8, from memory)."""
-    if -199 <= code <= -100:
-        return ESR_COMMAND_ERROR
-    if -299 <= code <= -200:
-        return ESR_EXECUTION_ERROR
-    if -499 <= code <= -400:
-        return ESR_QUERY_ERROR
-    if code != NO_ERROR:
-        return ESR_DEVICE_ERROR
-    return 0
