@@ -8,7 +8,15 @@ from types import SimpleNamespace
 
 from tonebench.config.plan_file import load_plan
 from tonebench.plan import axes
-from tonebench.plan.axes import AXES, GROUP_AXES, SWEEP_AXIS, Axis, axis_values, point_key_of, sweep_key_of
+from tonebench.plan.axes import (
+    AXES,
+    GROUP_AXES,
+    SWEEP_AXIS,
+    Axis,
+    axis_values,
+    point_key_of,
+    sweep_key_of,
+)
 from tonebench.plan.points import PlannedPoint, expand
 
 PRE_LAYOUT = Path(__file__).resolve().parents[1] / "data" / "pre_layout"
@@ -82,7 +90,7 @@ def test_a_new_axis_is_one_declaration(monkeypatch):
 
 def test_an_axis_the_plan_does_not_name_leaves_no_trace():
     sweep = _sweep(center_freqs_hz=[1.0e9], spacings_hz=[1.0e6], levels=[0.0])
-    assert dict((axis.name, list(values)) for axis, values in axis_values(sweep))["bias"] == [None]
+    assert {axis.name: list(values) for axis, values in axis_values(sweep)}["bias"] == [None]
 
 
 def test_the_sample_plans_expand_to_the_keys_the_old_code_gave():
