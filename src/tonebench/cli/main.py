@@ -155,7 +155,7 @@ def resume(
     report: Annotated[Path | None, typer.Option(help="Write the HTML report here (default: report-<run>.html beside the database).")] = None,
 ) -> None:
     """Continue an interrupted run: points already stored are kept, failed ones measured again."""
-    from tonebench.run.start import resume_run
+    from tonebench.run.resume import resume_run
 
     with one_line_errors():
         db_url = db or default_db()
