@@ -118,11 +118,11 @@ def measured(run: PreparedRun, report: RfOffReport | None, failed_keys: list[str
     else:
         status, reason = "failed", f"{measured_count} of {total} points measured, {failed_count} failed ({again})"
     reason = _finish(run, status, reason, report)
-    outcome = RunOutcome(run.recorder.guid, status, run.db_url, None, [], run.calibration, reason=reason,
-                         rf_off=report.line(), rf_confirmed=report.ok, points_measured=measured_count,
-                         points_failed=failed_count)
+    results, report_path = [], None
     if measured_count:
-        outcome.results = analyze_run(run.sessions, run.recorder.guid)
-        outcome.report_path = write_run_report(run.sessions, run.recorder.guid,
-                                               run.report_path or default_report_path(run.db_url, run.recorder.guid))
-    return outcome
+        results = analyze_run(run.sessions, run.recorder.guid)
+        report_path = write_run_report(run.sessions, run.recorder.guid,
+                                       run.report_path or default_report_path(run.db_url, run.recorder.guid))
+    return RunOutcome(run.recorder.guid, status, run.db_url, report_path, results, run.calibration, reason=reason,
+                      rf_off=report.line(), rf_confirmed=report.ok, points_measured=measured_count,
+                      points_failed=failed_count)
