@@ -22,11 +22,11 @@ from tonebench.errors import InputError
 from tonebench.instruments import SignalSource, load_dialect, open_resource
 from tonebench.instruments.scpi import LimitError, ScpiInstrument
 from tonebench.instruments.supervision import RetryPolicy, Supervision
-from tonebench.sim.launch import start_sim_bench
 from tonebench.run.start import execute_run
+from tonebench.run.watchdog import Watchdog, WatchdogTripped
+from tonebench.sim.launch import start_sim_bench
 from tonebench.sim.scenario import Scenario
 from tonebench.store.models import Run
-from tonebench.run.watchdog import Watchdog, WatchdogTripped
 
 
 @pytest.fixture

@@ -21,7 +21,13 @@ from typing import Protocol, TypeVar
 
 from tonebench.errors import InstrumentError
 from tonebench.instruments.dialect import Dialect
-from tonebench.instruments.scpi_errors import COMMAND_ERROR_CODES, CommandRefused, ConnectionFault, ScpiError, ScpiErrors
+from tonebench.instruments.scpi_errors import (
+    COMMAND_ERROR_CODES,
+    CommandRefused,
+    ConnectionFault,
+    ScpiError,
+    ScpiErrors,
+)
 from tonebench.instruments.transport import Unreachable
 
 _log = logging.getLogger(__name__)
