@@ -17,16 +17,11 @@ from typer.testing import CliRunner
 
 from tonebench.cli import app
 from tonebench.errors import InputError
+from tonebench.queue.jobs import add_job, cancel_job, claim_next, list_jobs
+from tonebench.queue.worker import Worker
+from tonebench.queue.worker_lock import SqliteWorkerLock
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Job, Point, Run
-from tonebench.queue.worker import (
-    SqliteWorkerLock,
-    Worker,
-    add_job,
-    cancel_job,
-    claim_next,
-    list_jobs,
-)
 
 BENCH = SAMPLE_RUNS / "sim_bench.toml"
 SMALL_PLAN = """
@@ -157,7 +152,7 @@ def test_cancelling_a_running_job_stops_its_run(tmp_path, sqlite_url):
 CLAIMER = """
 import json, sys
 from tonebench.store.database import open_database, session_factory
-from tonebench.queue.worker import claim_next
+from tonebench.queue.jobs import claim_next
 sessions = session_factory(open_database(sys.argv[1]))
 claimed = []
 while True:

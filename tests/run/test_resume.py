@@ -11,17 +11,18 @@ import time
 from pathlib import Path
 
 import pytest
+from conftest import SAMPLE_RUNS
 from sqlalchemy import create_engine, func, select
 from sqlalchemy.orm import Session
 from test_faults_in_runs import stored, write_bench, write_plan
 from typer.testing import CliRunner
 
-from conftest import SAMPLE_RUNS
 from tonebench.cli import app
 from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError
 from tonebench.plan.points import expand
-from tonebench.run.start import execute_run, resume_run
+from tonebench.run.resume import resume_run
+from tonebench.run.start import execute_run
 from tonebench.store.models import Point, Run
 
 # A shorter plan than the demo: two centres, 9 powers each.

@@ -280,7 +280,7 @@ def test_watchdog_trip_with_a_stalled_instrument(tmp_path, stalled):
 def test_sigterm_three_times_to_a_queue_worker(lab):
     from tonebench.store.database import open_database, session_factory
     from tonebench.store.models import Job
-    from tonebench.queue.worker import add_job
+    from tonebench.queue.jobs import add_job
 
     engine = open_database(lab.db_url)
     add_job(session_factory(engine), write_plan(lab.folder), lab.bench_path)

@@ -22,11 +22,11 @@ from tonebench.errors import InputError
 from tonebench.instruments import SignalSource, load_dialect, open_resource
 from tonebench.instruments.scpi import LimitError, ScpiInstrument
 from tonebench.instruments.supervision import RetryPolicy, Supervision
-from tonebench.sim.launch import start_sim_bench
 from tonebench.run.start import execute_run
+from tonebench.run.watchdog import Watchdog, WatchdogTripped
+from tonebench.sim.launch import start_sim_bench
 from tonebench.sim.scenario import Scenario
 from tonebench.store.models import Run
-from tonebench.run.watchdog import Watchdog, WatchdogTripped
 
 
 @pytest.fixture
@@ -114,8 +114,10 @@ def test_power_guard_refuses_before_anything_is_sent(sim):
 
 def test_sigterm_to_a_run_process_leaves_rf_off_on_the_instruments(tmp_path):
     """The simulator runs in a process of its own, like hardware, so its state outlives the run."""
+    # Started as a shell starts a background job, with SIGINT ignored: it must still stop on SIGTERM.
     server = subprocess.Popen([sys.executable, "-m", "tonebench", "sim", "serve", "--bench", str(SAMPLE_RUNS / "sim_bench.toml")],
-                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                              stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                              preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_IGN))
     try:
         resources = {}
         while "analyzer" not in resources or "source2" not in resources or "source1" not in resources:
@@ -149,8 +151,15 @@ def test_sigterm_to_a_run_process_leaves_rf_off_on_the_instruments(tmp_path):
         status, end_reason, _points, keys, _events = stored(db_path)
         assert status == "aborted" and "SIGTERM" in end_reason and len(keys) >= 4
     finally:
-        server.send_signal(signal.SIGINT)
-        server.wait(30)
+        # SIGTERM, not SIGINT: a process started in the background ignores SIGINT.
+        server.terminate()
+        try:
+            server.wait(30)
+        except subprocess.TimeoutExpired:
+            server.kill()
+            server.wait(30)
+            raise AssertionError("the simulator server did not stop on SIGTERM within 30 s") from None
+    assert server.returncode == 0, server.stderr.read()  # it stopped cleanly, by its own handler
 
 
 def test_watchdog_switches_rf_off_while_the_run_is_stuck(tmp_path):

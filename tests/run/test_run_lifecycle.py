@@ -9,7 +9,8 @@ from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
 
 from tonebench.errors import InstrumentError
-from tonebench.run.start import Terminated, execute_run
+from tonebench.instruments.rf_guard import Terminated
+from tonebench.run.start import execute_run
 from tonebench.store.models import Point, Run
 
 PLAN = SAMPLE_RUNS / "demo_plan.toml"

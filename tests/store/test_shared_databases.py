@@ -18,8 +18,8 @@ import pytest
 import sqlalchemy as sa
 from conftest import SAMPLE_RUNS
 
+from tonebench.queue.worker_lock import SqliteWorkerLock
 from tonebench.store.database import schema_head
-from tonebench.queue.worker import SqliteWorkerLock
 
 SIM_BENCH = SAMPLE_RUNS / "sim_bench.toml"
 PLAN = textwrap.dedent(

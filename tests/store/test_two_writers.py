@@ -1,6 +1,10 @@
 """Two benches writing to one database at once: two processes record runs point by point through
 the run recorder (one commit per point) at the same time; afterwards every row is there, once.
 
+The overlap is forced, not hoped for: every BARRIER_EVERY points each writer, having committed,
+reports to the test and waits until the other has reached the same place too, so each stretch
+between two such meetings holds points of both writers, whatever the machine's load.
+
 PostgreSQL is the case that matters (several benches, one server); SQLite in WAL mode with a busy
 timeout is checked too, for two processes on one machine.
 """
@@ -12,6 +16,7 @@ import os
 import subprocess
 import sys
 import textwrap
+import threading
 from pathlib import Path
 
 import sqlalchemy as sa
@@ -23,6 +28,8 @@ from tonebench.store.models import Bench, Device, Event, Plan, Point, Run, utc_n
 SRC_DIR = Path(tonebench.__file__).resolve().parent.parent
 RUNS_PER_WRITER = 4
 POINTS_PER_RUN = 30
+BARRIER_EVERY = 10  # points per writer between two meetings
+BARRIERS = RUNS_PER_WRITER * POINTS_PER_RUN // BARRIER_EVERY
 PLAN_TEXT = "[plan]\nname = 'shared'\n"
 PLAN_SHA = hashlib.sha256(PLAN_TEXT.encode()).hexdigest()
 
@@ -31,7 +38,7 @@ WRITER = textwrap.dedent("""
     from tonebench.store import open_database, session_factory
     from tonebench.store.records import RunRecorder
 
-    url, name, n_runs, n_points, plan_text, plan_sha = sys.argv[1:7]
+    url, name, n_runs, n_points, plan_text, plan_sha, every = sys.argv[1:8]
     sessions = session_factory(open_database(url))
     print("ready", flush=True)
     sys.stdin.readline()  # both writers start together
@@ -47,6 +54,9 @@ WRITER = textwrap.dedent("""
             recorder.add_point(dict(point_key=f"p{k:03d}", seq=k, status="measured", bench_clock_s=k * 0.5,
                                     center_hz=2.45e9, spacing_hz=1e6, f1_hz=2.4495e9, f2_hz=2.4505e9,
                                     tone_dbm=tone_dbm, raw_f1_dbm=tone_dbm + 14.0, raw_lower_dbm=3 * tone_dbm - 20.0))
+            if k % int(every) == 0:  # committed: meet the other writer before going on
+                print(f"at {r}-{k}", flush=True)
+                sys.stdin.readline()
         recorder.event("info", "note", f"{name} run {r} measured")
         recorder.finish("complete", f"all {n_points} points measured")
     print("done", flush=True)
@@ -62,19 +72,25 @@ def test_two_processes_write_runs_and_points_at_once(db_url):
     pythonpath = os.pathsep.join(filter(None, [str(SRC_DIR), os.environ.get("PYTHONPATH")]))
     env = dict(os.environ, PYTHONPATH=pythonpath)
     writers = [subprocess.Popen([sys.executable, "-c", WRITER, db_url, name, str(RUNS_PER_WRITER),
-                                 str(POINTS_PER_RUN), PLAN_TEXT, PLAN_SHA],
+                                 str(POINTS_PER_RUN), PLAN_TEXT, PLAN_SHA, str(BARRIER_EVERY)],
                                 stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
                for name in ("A", "B")]
+    # A writer that hangs must not hang the test: both are killed after this long.
+    deadline = threading.Timer(300, lambda: [w.kill() for w in writers if w.poll() is None])
+    deadline.start()
     try:
         for writer in writers:
             assert writer.stdout.readline().strip() == "ready", writer.stderr.read()
-        for writer in writers:
-            writer.stdin.write("go\n")
-            writer.stdin.flush()
+        release_all(writers)  # both writers start together
+        for meeting in range(BARRIERS):
+            places = [writer.stdout.readline().strip() for writer in writers]
+            assert places[0] == places[1] and places[0].startswith("at "), (meeting, places)
+            release_all(writers)
         for writer in writers:
             out, err = writer.communicate(timeout=300)
             assert writer.returncode == 0 and out.strip() == "done", err
     finally:
+        deadline.cancel()
         for writer in writers:
             if writer.poll() is None:
                 writer.kill()
@@ -95,9 +111,16 @@ def test_two_processes_write_runs_and_points_at_once(db_url):
         notes = session.scalars(sa.select(Event.message).where(Event.kind == "note")).all()
         assert len(notes) == 2 * RUNS_PER_WRITER
 
-        # The writes really overlapped: in commit-time order, the two benches' points interleave.
+        # The writes really overlapped: in commit-time order, the two benches' points interleave,
+        # at least once in each stretch between two meetings (each holds points of both).
         order = session.execute(sa.select(Bench.name).select_from(Point).join(Run, Run.id == Point.run_id)
                                 .join(Bench, Bench.id == Run.bench_id).order_by(Point.measured_at, Point.id)).scalars().all()
         switches = sum(1 for a, b in zip(order, order[1:]) if a != b)
-        assert switches >= 2, "the two writers ran one after the other, not at the same time"
+        assert switches >= BARRIERS, "the two writers ran one after the other, not at the same time"
     engine.dispose()
+
+
+def release_all(writers) -> None:
+    for writer in writers:
+        writer.stdin.write("go\n")
+        writer.stdin.flush()

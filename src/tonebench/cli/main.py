@@ -155,7 +155,7 @@ def resume(
     report: Annotated[Path | None, typer.Option(help="Write the HTML report here (default: report-<run>.html beside the database).")] = None,
 ) -> None:
     """Continue an interrupted run: points already stored are kept, failed ones measured again."""
-    from tonebench.run.start import resume_run
+    from tonebench.run.resume import resume_run
 
     with one_line_errors():
         db_url = db or default_db()
@@ -241,6 +241,7 @@ def sim_serve(
     bench: Annotated[Path, typer.Option("--bench", "-b", help="Simulated bench file (TOML with a [simulation] table).")],
 ) -> None:
     """Serve the simulated instruments as raw-SCPI sockets on loopback until Ctrl-C."""
+    import signal
     import threading
 
     from tonebench.config.bench_file import load_bench
@@ -255,10 +256,15 @@ def sim_serve(
                 out.print(f"{role}: {resource}", highlight=False)
             out.print("serving; Ctrl-C stops", highlight=False)
             out.file.flush()
+            # SIGTERM stops it as cleanly as Ctrl-C: a server started in the background ignores SIGINT.
+            stop = threading.Event()
+            previous = signal.signal(signal.SIGTERM, lambda signum, frame: stop.set())
             try:
-                threading.Event().wait()
+                stop.wait()
             except KeyboardInterrupt:
                 pass
+            finally:
+                signal.signal(signal.SIGTERM, previous)
 
 
 @db_app.command("upgrade")

@@ -22,7 +22,11 @@ def register_queue_commands(app: typer.Typer) -> None:
     """Add the queue and worker commands to the main app."""
     queue_app = typer.Typer(help="Plans waiting for a bench: add, list, cancel.", no_args_is_help=True)
     app.add_typer(queue_app, name="queue")
+    _register_job_commands(queue_app)
+    _register_worker_command(app)
 
+
+def _register_job_commands(queue_app: typer.Typer) -> None:
     @queue_app.command("add")
     def queue_add(
         plan: Annotated[Path, typer.Argument(help="Plan file (TOML).")],
@@ -31,7 +35,7 @@ def register_queue_commands(app: typer.Typer) -> None:
         db: DbOption = None,
     ) -> None:
         """Check a plan against a bench's limits and queue it for that bench's worker."""
-        from tonebench.queue.worker import add_job
+        from tonebench.queue.jobs import add_job
 
         with one_line_errors():
             job = add_job(_sessions(db), plan, bench, priority)
@@ -44,7 +48,7 @@ def register_queue_commands(app: typer.Typer) -> None:
         db: DbOption = None,
     ) -> None:
         """List jobs in the order workers take them."""
-        from tonebench.queue.worker import list_jobs
+        from tonebench.queue.jobs import list_jobs
 
         with one_line_errors():
             table = Table(title="Jobs", box=box.SIMPLE_HEAD)
@@ -62,12 +66,14 @@ def register_queue_commands(app: typer.Typer) -> None:
         db: DbOption = None,
     ) -> None:
         """Cancel a queued job; a running one is stopped after its current point (RF off)."""
-        from tonebench.queue.worker import cancel_job
+        from tonebench.queue.jobs import cancel_job
 
         with one_line_errors():
             cancelled = cancel_job(_sessions(db), job)
             out.print(f"job {cancelled.guid}: {cancelled.message}", highlight=False)
 
+
+def _register_worker_command(app: typer.Typer) -> None:
     @app.command("worker")
     def worker(
         bench: Annotated[Path, typer.Option("--bench", "-b", help="Bench file (TOML) of the bench this worker drives.")],
@@ -77,39 +83,51 @@ def register_queue_commands(app: typer.Typer) -> None:
         report_dir: Annotated[Path | None, typer.Option("--reports", help="Folder for the HTML reports (default: beside the database).")] = None,
     ) -> None:
         """Run the queued jobs of one bench, one after another, unattended (Ctrl-C or SIGTERM stops)."""
-        import signal
-
-        from tonebench.run.start import Terminated
         from tonebench.queue.worker import Worker
 
-        def said(what: str, job, detail: str) -> None:
-            line = f"job {job.guid[:8]} ({job.plan_name}): {what}" + (f": {detail}" if detail else "")
-            err.print(line, markup=False, highlight=False)
-
         with one_line_errors():
-            unit = Worker(db or default_db(), bench, on_job=said, poll_s=poll_s, report_dir=report_dir)
-            # Between runs SIGTERM just ends the loop; during a run the runner turns it into an
-            # exception so RF goes off first.
-            termed = []
-
-            def stop_between_runs(signum, frame) -> None:
-                termed.append(signum)
-                unit.stop.set()
-
-            previous = signal.signal(signal.SIGTERM, stop_between_runs)
-            try:
-                count = unit.run(until_empty=until_empty)
-            except (KeyboardInterrupt, Terminated) as exc:
-                from tonebench.instruments.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, note_of
-
-                note = note_of(exc)
-                code = SIGTERM_EXIT if isinstance(exc, Terminated) else SIGINT_EXIT
-                line = f"worker stopped; {note.line}" if note else "worker stopped"
-                err.print(line, markup=False, highlight=False)
-                raise typer.Exit(note.exit_code if note else code) from None
-            finally:
-                signal.signal(signal.SIGTERM, previous)
+            unit = Worker(db or default_db(), bench, on_job=_say_job, poll_s=poll_s, report_dir=report_dir)
+            count, termed = _work(unit, until_empty)
             out.print(f"worker for bench {unit.bench_name}: {count} job(s) run", highlight=False)
             if termed:  # SIGTERM between runs: a clean stop, with SIGTERM's exit code all the same
                 err.print("worker stopped by SIGTERM between runs", markup=False, highlight=False)
                 raise typer.Exit(143)
+
+
+def _say_job(what: str, job, detail: str) -> None:
+    line = f"job {job.guid[:8]} ({job.plan_name}): {what}" + (f": {detail}" if detail else "")
+    err.print(line, markup=False, highlight=False)
+
+
+def _work(unit, until_empty: bool) -> tuple[int, bool]:
+    """Run the worker: (jobs run, whether SIGTERM stopped it between runs); a signal during a
+    run ends the command with the run's note and exit code."""
+    import signal
+
+    from tonebench.instruments.rf_guard import (
+        SIGINT_EXIT,
+        SIGTERM_EXIT,
+        Terminated,
+        note_of,
+    )
+
+    # Between runs SIGTERM just ends the loop; during a run the runner turns it into an
+    # exception so RF goes off first.
+    termed = []
+
+    def stop_between_runs(signum, frame) -> None:
+        termed.append(signum)
+        unit.stop.set()
+
+    previous = signal.signal(signal.SIGTERM, stop_between_runs)
+    try:
+        count = unit.run(until_empty=until_empty)
+    except (KeyboardInterrupt, Terminated) as exc:
+        note = note_of(exc)
+        code = SIGTERM_EXIT if isinstance(exc, Terminated) else SIGINT_EXIT
+        line = f"worker stopped; {note.line}" if note else "worker stopped"
+        err.print(line, markup=False, highlight=False)
+        raise typer.Exit(note.exit_code if note else code) from None
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    return count, bool(termed)

@@ -2,130 +2,34 @@
 
 from __future__ import annotations
 
-import math
 import threading
 from collections.abc import Callable
-from typing import TYPE_CHECKING, NamedTuple
 
 import pyvisa
 
-from tonebench.errors import InstrumentError, LimitError  # noqa: F401 - LimitError re-exported where it was
+from tonebench.errors import InstrumentError
 from tonebench.instruments.dialect import Dialect
-
-if TYPE_CHECKING:
-    from tonebench.instruments.supervision import Supervision
+from tonebench.instruments.scpi_errors import (  # re-exported: the role drivers and the run name them here
+    COMMAND_ERROR_CODES,
+    EXPECTED_REPLIES,
+    CommandRefused,
+    ConnectionFault,
+    IdentityChanged,
+    ImpossibleReading,
+    LimitError,
+    NotANumber,
+    ScpiError,
+    ScpiErrors,
+    parse_reply,
+)
+from tonebench.instruments.supervision import Supervision
+from tonebench.instruments.transport import connect
 
 # Bounded so an instrument that never reports "no error" cannot hang the drain.
 MAX_ERROR_READS = 50
-
-# SCPI-99 vol. 1, 7.2.1.5 (from memory): 9.91E37 is the value an instrument returns for
-# "not a number", e.g. a marker with nothing to read.
-SCPI_NAN = 9.91e37
-
-
 # How long the error queue is given to answer after a query got no reply. An instrument that is
 # up answers SYST:ERR? in milliseconds; a stalled one must not cost a second full timeout.
 ERROR_QUERY_TIMEOUT_S = 1.0
-# SCPI-1999 vol 2 ch. 21 (from memory): -100..-199 are command errors (the instrument could not
-# parse the header or its parameters): the dialect's string does not fit this instrument, and
-# sending it again cannot help.
-COMMAND_ERROR_CODES = range(-199, -99)
-
-
-class NotANumber(ValueError):
-    """A float reply that is the instrument's "not a number" (9.91E37), NaN or infinite."""
-
-
-class ScpiError(NamedTuple):
-    """One entry of an instrument's error queue (code 0 means the queue is empty)."""
-
-    code: int
-    message: str
-
-
-_EXPECTED = {
-    "text": "a line of text",
-    "float": "a number",
-    "int": "an integer",
-    "bool": "1, 0, ON or OFF",
-    "error": 'an error entry like 0,"No error"',
-}
-
-
-def parse_reply(kind: str, text: str):
-    """Parse one reply line by its kind; raise ValueError if it does not fit."""
-    text = text.strip()
-    if kind == "text":
-        return text
-    if kind == "float":
-        value = float(text)
-        if not math.isfinite(value) or value == SCPI_NAN:
-            raise NotANumber("not a number")
-        return value
-    if kind == "int":
-        try:
-            return int(text)
-        except ValueError:
-            value = float(text)  # some instruments answer an integer as +8.00000E+00
-            if not value.is_integer():
-                raise
-            return int(value)
-    if kind == "bool":
-        word = text.upper()
-        if word in ("1", "ON"):
-            return True
-        if word in ("0", "OFF"):
-            return False
-        raise ValueError("not a boolean")
-    if kind == "error":
-        code_text, sep, message = text.partition(",")
-        if not sep:
-            raise ValueError("no comma")
-        return ScpiError(int(code_text), message.strip().strip('"'))
-    raise ValueError(f"unknown reply kind {kind!r}")
-
-
-class ConnectionFault(InstrumentError):
-    """No reply in time, a dropped connection, or a reply showing the replies are out of step.
-
-    `timed_out` tells whether the connection may still be usable (after a resynchronisation)
-    or is gone (it must be reopened).
-    """
-
-    def __init__(self, message: str, *, timed_out: bool, operation: str | None = None, sent: str | None = None):
-        super().__init__(message)
-        self.timed_out = timed_out
-        # Set when a query got no reply at all: worth asking the error queue why (supervision).
-        self.operation = operation
-        self.sent = sent
-
-
-class ImpossibleReading(InstrumentError):
-    """A reply no instrument can give as a reading: not a number (SCPI 9.91E37, NaN, inf), or a
-    level outside what is physically possible (analyzer.judge_marker_dbm). Not a connection fault:
-    the point fails at once and is stored as failed with this reason (recovery.PointGuard)."""
-
-
-class CommandRefused(InstrumentError):
-    """The instrument refused a dialect operation with a command error (-100..-199, e.g. -113
-    undefined header): the dialect does not fit the instrument. Never retried; the run stops."""
-
-    def __init__(self, message: str, entries: list[ScpiError]):
-        super().__init__(message)
-        self.entries = entries
-
-
-class ScpiErrors(InstrumentError):
-    """The instrument's error queue held entries (`entries`) after an operation."""
-
-    def __init__(self, message: str, entries: list[ScpiError]):
-        super().__init__(message)
-        self.entries = entries
-
-
-class IdentityChanged(InstrumentError):
-    """After reopening a connection, a different instrument (maker, model or serial) answered."""
-
 
 # Operations remembered since the error queue was last read, to name the one it refused.
 MAX_SENT_REMEMBERED = 20
@@ -248,7 +152,7 @@ class ScpiInstrument:
             # A reply of the wrong shape is most often another query's reply arriving late:
             # worth a resynchronisation, like a timeout.
             raise ConnectionFault(
-                f"{where} replied {reply!r}; expected {_EXPECTED[op.reply]}", timed_out=True
+                f"{where} replied {reply!r}; expected {EXPECTED_REPLIES[op.reply]}", timed_out=True
             ) from None
 
     def check_errors(self) -> None:
@@ -358,8 +262,6 @@ class ScpiInstrument:
     def reopen(self) -> str:
         """Close and open the connection again, check it is the same instrument, run the restore
         hooks. Returns the identify reply; raises Unreachable, IdentityChanged or ConnectionFault."""
-        from tonebench.instruments.transport import connect
-
         if self._resource_name is None:
             raise InstrumentError(f"{self.label}: cannot reopen: its resource string is unknown")
         with self.io_lock:
@@ -402,3 +304,10 @@ class RoleDriver:
     @property
     def idn(self) -> str:
         return self.instrument.idn
+
+
+__all__ = [
+    "COMMAND_ERROR_CODES", "CommandRefused", "ConnectionFault", "EXPECTED_REPLIES", "IdentityChanged",
+    "ImpossibleReading", "LimitError", "NotANumber", "RoleDriver", "ScpiError", "ScpiErrors", "ScpiInstrument",
+    "identity", "parse_reply",
+]

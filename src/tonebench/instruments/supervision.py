@@ -17,15 +17,16 @@ import logging
 import threading
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import TypeVar
+from typing import Protocol, TypeVar
 
 from tonebench.errors import InstrumentError
-from tonebench.instruments.scpi import (
+from tonebench.instruments.dialect import Dialect
+from tonebench.instruments.scpi_errors import (
     COMMAND_ERROR_CODES,
     CommandRefused,
     ConnectionFault,
+    ScpiError,
     ScpiErrors,
-    ScpiInstrument,
 )
 from tonebench.instruments.transport import Unreachable
 
@@ -72,16 +73,34 @@ class GaveUp(InstrumentError):
     """Every retry and reconnect the policy allows failed."""
 
 
-class Supervision:
-    """Shared by the instruments of one bench: the retry policy, the event callback, a stop flag."""
+class Recoverable(Protocol):
+    """What supervision needs of an instrument (tonebench.instruments.scpi.ScpiInstrument has it);
+    named here so that this module does not import the instrument that imports it."""
 
-    def __init__(self, policy: RetryPolicy | None = None, on_event: EventCallback | None = None):
+    label: str
+    dialect: Dialect
+    epoch: int
+
+    def resync(self) -> list[str] | None: ...
+
+    def reopen(self) -> str: ...
+
+    def errors_after_no_reply(self) -> list[ScpiError] | None: ...
+
+    def refused_operations(self, entries: list[ScpiError]) -> str: ...
+
+
+class Supervision:
+    """Shared by the instruments of one bench: the retry policy, the event callback, a stop flag.
+    on_activity is called after every exchange an instrument answered: progress, for a watchdog."""
+
+    def __init__(self, policy: RetryPolicy | None = None, on_event: EventCallback | None = None,
+                 on_activity: Callable[[], None] | None = None):
         self.policy = policy or RetryPolicy()
         self.on_event = on_event
+        self.on_activity = on_activity
         # Set by the watchdog or a shutdown: no further retries, backoff waits end at once.
         self.stop = threading.Event()
-        # Called after every exchange an instrument answered: progress, for the watchdog.
-        self.on_activity: Callable[[], None] | None = None
 
     def activity(self) -> None:
         if self.on_activity is not None:
@@ -95,7 +114,7 @@ class Supervision:
         except Exception:  # noqa: BLE001 - losing an event line must not break the measurement
             _log.exception("event callback failed for %s", message)
 
-    def run(self, instrument: ScpiInstrument, attempt: Callable[[], T]) -> T:
+    def run(self, instrument: Recoverable, attempt: Callable[[], T]) -> T:
         """Return attempt(); after a ConnectionFault recover per the policy and try again."""
         policy, label = self.policy, instrument.label
         retries = reconnects = waits = 0
@@ -146,7 +165,7 @@ class Supervision:
                 self.emit(label, "gave-up", "error", message)
                 raise GaveUp(message) from None
 
-    def _ask_why_no_reply(self, instrument: ScpiInstrument, fault: ConnectionFault) -> None:
+    def _ask_why_no_reply(self, instrument: Recoverable, fault: ConnectionFault) -> None:
         """Before the first retry of a query that got no reply, read the error queue on the same
         connection: an instrument that rejected the query says so there and sends nothing, and
         retrying or reconnecting would only repeat that for minutes with RF on.

@@ -1,0 +1,61 @@
+"""Connecting a run's bench: the simulator for a simulated bench, every instrument under
+supervision, RF off at every source, and the check that a resumed run has its own instruments."""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Callable
+from contextlib import ExitStack
+
+from tonebench.config.bench_file import LoadedBench
+from tonebench.errors import InputError
+from tonebench.instruments.open_bench import OpenBench, open_bench
+from tonebench.instruments.scpi import identity
+from tonebench.instruments.supervision import InstrumentEvent, RetryPolicy, Supervision
+from tonebench.run.events import EventRelay
+from tonebench.sim.launch import start_sim_bench
+
+
+def print_warning(message: str) -> None:
+    print(f"warning: {message}", file=sys.stderr, flush=True)
+
+
+def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started,
+                  warn: Callable[[str], None] | None = None) -> tuple[OpenBench, EventRelay, Supervision]:
+    """Start the simulator for a simulated bench, then open every instrument under supervision
+    and switch RF off at every source (an earlier command killed with RF on is said in an event
+    and a warning); both are closed when `stack` unwinds."""
+    if bench.settings.simulated:
+        sim = stack.enter_context(start_sim_bench(bench.scenario))
+        resources = dict(sim.resources)
+        if on_sim_started:
+            on_sim_started(sim)
+    else:
+        resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
+    relay = EventRelay()
+    supervision = supervision_for(bench, relay)
+    open_instruments = open_bench(bench.settings, resources, supervision)
+    stack.callback(open_instruments.close)
+    for line in open_instruments.switch_off_at_connect():
+        relay(InstrumentEvent(line.split(" ", 1)[0], "rf-found-on", "warning", line))
+        (warn or print_warning)(line)
+    return open_instruments, relay, supervision
+
+
+def supervision_for(bench: LoadedBench, relay: EventRelay) -> Supervision:
+    settings = bench.settings.unattended
+    policy = RetryPolicy(retries=settings.retries, reconnects=settings.reconnects, backoff_s=settings.backoff_s,
+                         max_backoff_s=max(5.0, settings.backoff_s))
+    return Supervision(policy, relay, relay.activity)
+
+
+def check_same_instruments(guid: str, stored_ids: dict[str, str], bench: OpenBench) -> None:
+    """A resumed run must be measured with the instruments it started with (maker, model, serial)."""
+    now = {info.role: info.idn for info in bench.instruments}
+    if set(now) != set(stored_ids):
+        raise InputError(
+            f"run {guid} was measured with {', '.join(sorted(stored_ids))}; the bench now has {', '.join(sorted(now))}"
+        )
+    for role, idn in stored_ids.items():
+        if identity(now[role]) != identity(idn):
+            raise InputError(f"run {guid}: {role} was {idn!r}; the bench now has {now[role]!r}")
