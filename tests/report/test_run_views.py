@@ -1,5 +1,5 @@
 """The run list and the run detail only read: a run whose process is gone is shown as stored,
-and the database file is not touched (closing such runs is the command's job, before the view)."""
+and nothing in the store changes (closing such runs is the command's job, before the view)."""
 
 from __future__ import annotations
 

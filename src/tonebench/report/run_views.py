@@ -17,7 +17,6 @@ from tonebench.store.database import open_database, session_factory
 from tonebench.store.lookups import find_run
 from tonebench.store.models import CalibrationSet, Point, PointFlag, Run
 
-
 MAX_FAILED_SHOWN = 10  # failed points listed by `show`; the rest are counted
 
 
