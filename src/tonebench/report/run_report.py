@@ -38,9 +38,10 @@ class SweepPlotData:
     im3_upper_dbm: np.ndarray
     noise_dbm: np.ndarray
     valid_mask: np.ndarray
+    # The fit and its assessment, live (analysis) or as stored (report/stored_sweeps.py: the
+    # same fields). With an assessment, flagged points are drawn as diamonds outlined in red,
+    # their flags in the hover text.
     result: SweepResult
-    # With an assessment, flagged points are drawn as diamonds outlined in red, their flags in
-    # the hover text.
     assessment: SweepAssessment | None = None
 
     def hover_notes(self) -> list[str]:
@@ -51,7 +52,7 @@ class SweepPlotData:
             for i, flags in enumerate(self.assessment.point_flags):
                 for f in flags:
                     err = "" if f.error_db is None else f" (IIP3 error up to {f.error_db:.2f} dB)"
-                    notes[i] += f"<br><b>{html.escape(f.label)}</b>: {html.escape(f.detail)}{err}"
+                    notes[i] += f"<br><b>{html.escape(flag_label(f))}</b>: {html.escape(f.detail)}{err}"
         return notes
 
     def flagged_mask(self) -> np.ndarray:
@@ -76,10 +77,15 @@ def sweep_title(center_freq_hz: float, spacing_hz: float) -> str:
     return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}"
 
 
+def flag_label(flag) -> str:
+    """'name (cause)' of an analysis Flag or a stored PointFlag/ResultFlag, or just 'name'."""
+    return flag.flag if flag.cause is None else f"{flag.flag} ({flag.cause})"
+
+
 def flag_text(flag) -> str:
     """One flag (an analysis Flag or a stored PointFlag/ResultFlag) for a table cell:
     'name (cause): detail (IIP3 error up to x dB)'."""
-    label = flag.flag if flag.cause is None else f"{flag.flag} ({flag.cause})"
+    label = flag_label(flag)
     err = "" if flag.error_db is None else f" (IIP3 error up to {flag.error_db:.2f} dB)"
     return f"{label}: {flag.detail}{err}"
 
