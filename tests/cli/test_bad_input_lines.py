@@ -377,3 +377,27 @@ def test_full_disk_leaves_the_run_resumable_and_says_so(work, tiny_disk, monkeyp
     engine.dispose()
     assert status == "complete"
     assert len(keys) == len(set(keys)) == 101, "every point stored once after the resume"
+
+
+def test_plan_bench_and_dialect_files_share_one_wording(work):
+    """An unknown key names the file, the field and the keys allowed; bad TOML says where, in
+    the same words for a plan, a bench file and a dialect file (config/loading.py)."""
+    (work / "typo.toml").write_text(PLAN.replace("[sweep]\n", "[sweep]\ntone_stepp_dbm = 2.0\n"))
+    proc = tonebench("run", "typo.toml", "--bench", SIM_BENCH, "--db", f"sqlite:///{work / 't.db'}", cwd=work)
+    error_line(proc, "plan typo.toml: field 'sweep.tone_stepp_dbm' is not a known setting; allowed: ",
+               "tone_step_dbm")
+    dialect = (SAMPLE_RUNS.parent / "drivers" / "generic-analyzer.toml").read_text()
+    (work / "odd-analyzer.toml").write_text(dialect.replace("[io]\n", "[io]\nbaud = 9600\n"))
+    (work / "bench.toml").write_text(SIM_BENCH.read_text().replace('dialect = "generic-analyzer"',
+                                                                   f'dialect = "{work / "odd-analyzer.toml"}"'))
+    proc = tonebench("run", "plan.toml", "--bench", "bench.toml", "--db", f"sqlite:///{work / 't.db'}", cwd=work)
+    error_line(proc, f"dialect file {work / 'odd-analyzer.toml'}: field 'io.baud' is not a known setting; allowed: ",
+               "query_timeout_s")
+    (work / "plan.toml").write_text("[plan]\nname = unquoted\n")
+    proc = tonebench("run", "plan.toml", "--bench", SIM_BENCH, "--db", f"sqlite:///{work / 't.db'}", cwd=work)
+    error_line(proc, "plan plan.toml: not valid TOML (", "line 2")
+    (work / "bench.toml").write_text("[bench]\nname = unquoted\n")
+    (work / "good.toml").write_text(PLAN)
+    proc = tonebench("run", "good.toml", "--bench", "bench.toml", "--db", f"sqlite:///{work / 't.db'}", cwd=work)
+    error_line(proc, "bench file bench.toml: not valid TOML (", "line 2")
+    assert "t.db" not in folder_listing(work)

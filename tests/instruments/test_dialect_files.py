@@ -88,12 +88,12 @@ def test_minimal_source_loads(tmp_path):
 
 def test_missing_required_operation(tmp_path):
     path = write(tmp_path, SOURCE.replace('rf_off        = { command = "OUTP 0" }\n', ""))
-    assert "operations.rf_off: missing" in load_error(path)
+    assert "field 'operations.rf_off' is missing" in load_error(path)
 
 
 def test_missing_required_limit(tmp_path):
     path = write(tmp_path, SOURCE.replace("max_power_dbm = 10.0\n", ""))
-    assert "limits.max_power_dbm: missing" in load_error(path)
+    assert "field 'limits.max_power_dbm' is missing" in load_error(path)
 
 
 def test_unknown_template_field(tmp_path):
@@ -106,12 +106,12 @@ def test_unknown_template_field(tmp_path):
 
 def test_field_in_an_operation_that_takes_none(tmp_path):
     path = write(tmp_path, SOURCE.replace('"OUTP 1"', '"OUTP {freq_hz}"'))
-    assert "operations.rf_on: unknown template field {freq_hz}; allowed: none" in load_error(path)
+    assert "field 'operations.rf_on': unknown template field {freq_hz}; allowed: none" in load_error(path)
 
 
 def test_bad_format_spec(tmp_path):
     path = write(tmp_path, SOURCE.replace("{freq_hz:.0f}", "{freq_hz:.0q}"))
-    assert "operations.set_frequency: bad template" in load_error(path)
+    assert "field 'operations.set_frequency': bad template" in load_error(path)
 
 
 def test_query_without_reply_kind(tmp_path):
@@ -132,7 +132,7 @@ def test_unknown_reply_kind(tmp_path):
 def test_command_and_query_both(tmp_path):
     text = SOURCE.replace('{ command = "*CLS" }', '{ command = "*CLS", query = "*CLS?" }')
     path = write(tmp_path, text)
-    assert "operations.clear_status: needs exactly one of 'command' or 'query'" in load_error(path)
+    assert "field 'operations.clear_status': needs exactly one of 'command' or 'query'" in load_error(path)
 
 
 def test_unknown_role(tmp_path):
@@ -146,19 +146,19 @@ def test_unknown_key(tmp_path):
     text = SOURCE.replace("query_timeout_s = 2.0", "query_timeout_s = 2.0\nbaud = 9600")
     message = load_error(write(tmp_path, text))
     allowed = "read_termination, write_termination, query_timeout_s"
-    assert f"io.baud: unknown key; allowed: {allowed}" in message
+    assert f"field 'io.baud' is not a known setting; allowed: {allowed}" in message
 
 
 def test_bad_toml(tmp_path):
     path = write(tmp_path, SOURCE.replace('name = "test-source"', "name = test-source"))
     message = load_error(path)
-    assert "invalid TOML" in message
+    assert "not valid TOML" in message
     assert "line 2" in message
 
 
 def test_missing_dialect_table(tmp_path):
     path = write(tmp_path, SOURCE.replace("[dialect]\n", "[header]\n"))
-    assert "[dialect] table missing" in load_error(path)
+    assert "table [dialect] is missing" in load_error(path)
 
 
 def test_missing_file(tmp_path):

@@ -64,41 +64,41 @@ def workdir(tmp_path, monkeypatch):
 
 def test_misspelled_damage_limit_is_named_with_the_allowed_keys(workdir):
     line = refused(workdir, ANALYZER.replace("damage_dbm = 30.0", "damage_dBm = 30.0"))
-    assert "limits.damage_dBm: unknown key for an analyzer dialect" in line
+    assert "field 'limits.damage_dBm' is not a known setting for an analyzer dialect" in line
     assert line.endswith(f"allowed: {LIMITS_ALLOWED} (did you mean damage_dbm?)")
 
 
 def test_unknown_status_key(workdir):
     line = refused(workdir, ANALYZER.replace("overload_bit = 3", "overload_bit = 3\nover_range_bit = 4"))
-    assert "status.over_range_bit: unknown key for an analyzer dialect" in line
+    assert "field 'status.over_range_bit' is not a known setting for an analyzer dialect" in line
     assert "allowed: overload_bit" in line
 
 
 def test_non_finite_performance_value(workdir):
     line = refused(workdir, ANALYZER.replace("mixer_toi_dbm = 15.0", "mixer_toi_dbm = nan"))
-    assert "performance.mixer_toi_dbm: nan is not a finite number" in line
+    assert "field 'performance.mixer_toi_dbm': nan is not a finite number" in line
     assert "mixer_toi_dbm, danl_dbm_per_hz, sweep_time_factor, level_accuracy_db" in line
 
 
 def test_infinite_limit(workdir):
     line = refused(workdir, ANALYZER.replace("max_mixer_dbm = -10.0", "max_mixer_dbm = inf"))
-    assert "limits.max_mixer_dbm: inf is not a finite number" in line
+    assert "field 'limits.max_mixer_dbm': inf is not a finite number" in line
 
 
 def test_infinite_query_timeout(workdir):
     line = refused(workdir, ANALYZER.replace("query_timeout_s = 5.0", "query_timeout_s = inf"))
-    assert "io.query_timeout_s: inf s; allowed: a finite number of seconds, 0 < t <= 600" in line
+    assert "field 'io.query_timeout_s': inf s; allowed: a finite number of seconds, 0 < t <= 600" in line
 
 
 def test_nested_template_field(workdir):
     line = refused(workdir, ANALYZER.replace("FREQ:CENT {freq_hz:.3f}", "FREQ:CENT {freq_hz:{span_hz}}"))
-    assert "operations.set_center: nested field in {freq_hz:{span_hz}}" in line
+    assert "field 'operations.set_center': nested field in {freq_hz:{span_hz}}" in line
     assert "allowed fields: freq_hz" in line
 
 
 def test_missing_damage_limit_is_refused(workdir):
     line = refused(workdir, ANALYZER.replace("damage_dbm = 30.0", ""))
-    assert "limits.damage_dbm: missing; an analyzer dialect needs" in line
+    assert "field 'limits.damage_dbm' is missing; an analyzer dialect needs" in line
     assert "min_freq_hz, max_freq_hz, min_atten_db, max_atten_db, damage_dbm" in line
 
 

@@ -12,7 +12,6 @@ from __future__ import annotations
 import difflib
 import math
 import string
-import tomllib
 from pathlib import Path
 from typing import Literal
 
@@ -24,6 +23,7 @@ from pydantic import (
     model_validator,
 )
 
+from tonebench.config.loading import describe_validation_error, read_toml
 from tonebench.errors import InputError
 from tonebench.packaged import data_dir
 
@@ -186,7 +186,7 @@ class Dialect(BaseModel):
         required = REQUIRED_OPERATIONS[self.role]
         missing = [key for key in required if key not in present]
         if missing:
-            raise ValueError(f"operations.{missing[0]}: missing; {_article(self.role)} dialect needs {', '.join(required)}")
+            raise ValueError(f"field 'operations.{missing[0]}' is missing; {_article(self.role)} dialect needs {', '.join(required)}")
         for op_name, op in self.operations.items():
             _check_template(op_name, op.template)
         return self
@@ -206,14 +206,14 @@ def _check_numbers(table: str, values: dict[str, float], role: str,
         if key not in allowed:
             close = difflib.get_close_matches(key.lower(), allowed, n=1)
             hint = f" (did you mean {close[0]}?)" if close else ""
-            raise ValueError(f"{table}.{key}: unknown key for {_article(role)} dialect; allowed: {allowed_text}{hint}")
+            raise ValueError(f"field '{table}.{key}' is not a known setting for {_article(role)} dialect; allowed: {allowed_text}{hint}")
         if not math.isfinite(value):
-            raise ValueError(f"{table}.{key}: {value!r} is not a finite number; allowed keys: {allowed_text}")
+            raise ValueError(f"field '{table}.{key}': {value!r} is not a finite number; allowed keys: {allowed_text}")
         if table == "status" and value not in STATUS_BITS:
-            raise ValueError(f"{table}.{key}: bit {value} outside 0..15 (a 16-bit status register)")
+            raise ValueError(f"field '{table}.{key}': bit {value} outside 0..15 (a 16-bit status register)")
     missing = [key for key in required if key not in values]
     if missing:
-        raise ValueError(f"{table}.{missing[0]}: missing; {_article(role)} dialect needs {', '.join(required)}"
+        raise ValueError(f"field '{table}.{missing[0]}' is missing; {_article(role)} dialect needs {', '.join(required)}"
                          + (f" (optional: {', '.join(optional)})" if optional else ""))
 
 
@@ -225,18 +225,18 @@ def _check_template(op_name: str, template: str) -> None:
         used = template_fields(template)
         nested = _nested_field(template)
     except ValueError as exc:
-        raise ValueError(f"operations.{op_name}: bad template {template!r}: {exc}") from None
+        raise ValueError(f"field 'operations.{op_name}': bad template {template!r}: {exc}") from None
     if nested is not None:
-        raise ValueError(f"operations.{op_name}: nested field in {nested}: a format spec takes no "
+        raise ValueError(f"field 'operations.{op_name}': nested field in {nested}: a format spec takes no "
                          f"fields of its own; allowed fields: {allowed_text}")
     unknown = sorted(used - allowed)
     if unknown:
-        raise ValueError(f"operations.{op_name}: unknown template field {{{unknown[0]}}}; allowed: {allowed_text}")
+        raise ValueError(f"field 'operations.{op_name}': unknown template field {{{unknown[0]}}}; allowed: {allowed_text}")
     # Catch a bad format spec (e.g. {freq_hz:.3q}) now rather than mid-run.
     try:
         template.format(**{field: 1.0 for field in used})
     except (ValueError, IndexError, KeyError, TypeError, AttributeError) as exc:
-        raise ValueError(f"operations.{op_name}: bad template {template!r}: {exc}") from None
+        raise ValueError(f"field 'operations.{op_name}': bad template {template!r}: {exc}") from None
 
 
 def drivers_dirs() -> list[Path]:
@@ -271,54 +271,33 @@ def load_dialect(name_or_path: str) -> Dialect:
 
 
 def _parse_file(path: Path) -> Dialect:
-    try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{path}: invalid TOML: {exc}") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path}: cannot read: {exc}") from None
+    data = read_toml(path, "dialect file")[1]
 
     header = data.pop("dialect", None)
     if not isinstance(header, dict):
-        raise InputError(f"{path}: [dialect] table missing; it needs name, role, description")
+        raise InputError(f"dialect file {path}: table [dialect] is missing; it needs name, role, description")
     extra = sorted(set(header) - set(_HEADER_KEYS))
     if extra:
         raise InputError(
-            f"{path}: dialect.{extra[0]}: unknown key; allowed: {', '.join(_HEADER_KEYS)}"
+            f"dialect file {path}: field 'dialect.{extra[0]}' is not a known setting; allowed: {', '.join(_HEADER_KEYS)}"
         )
     for key in _HEADER_KEYS:
         if key in data:
-            raise InputError(f"{path}: {key}: belongs in the [dialect] table")
+            raise InputError(f"dialect file {path}: field '{key}' belongs in the [dialect] table")
     try:
         return Dialect.model_validate({**header, **data})
     except ValidationError as exc:
-        raise InputError(f"{path}: {_first_error(exc)}") from None
+        raise InputError(describe_validation_error(exc, f"dialect file {path}", _allowed_keys, _header_in_table)) from None
 
 
-def _allowed_keys(loc: list[str]) -> str:
+def _allowed_keys(loc: list[str]) -> list[str]:
     if loc[0] == "operations":
-        return ", ".join(Operation.model_fields)
+        return list(Operation.model_fields)
     if loc[0] == "io":
-        return ", ".join(IoSettings.model_fields)
-    tables = [key for key in Dialect.model_fields if key not in _HEADER_KEYS]
-    return ", ".join(["dialect", *tables])
+        return list(IoSettings.model_fields)
+    return ["dialect", *(key for key in Dialect.model_fields if key not in _HEADER_KEYS)]
 
 
-def _first_error(exc: ValidationError) -> str:
-    """One line for the first validation error, prefixed by its dotted field path."""
-    errors = exc.errors()
-    first = errors[0]
-    loc = [str(part) for part in first["loc"]]
-    if loc and loc[0] in _HEADER_KEYS:
-        loc.insert(0, "dialect")
-    message = first["msg"].removeprefix("Value error, ")
-    if first["type"] == "missing":
-        message = "missing"
-    elif first["type"] == "extra_forbidden":
-        message = f"unknown key; allowed: {_allowed_keys(loc)}"
-    elif first["type"] == "literal_error":
-        message = f"{message}, got {first['input']!r}"
-    line = f"{'.'.join(loc)}: {message}" if loc else message
-    if len(errors) > 1:
-        line += f" (and {len(errors) - 1} more)"
-    return line
+def _header_in_table(loc: list[str]) -> list[str]:
+    """name, role and description are validated with the tables but written in [dialect]."""
+    return ["dialect", *loc] if loc and loc[0] in _HEADER_KEYS else loc

@@ -7,9 +7,10 @@ import html
 from pathlib import Path
 
 import plotly.graph_objects as go
+import plotly.io as pio
 
 from tonebench.calibration.sets import CalibrationView
-from tonebench.report.run_report import check_report_path, write_html_file
+from tonebench.report.html import check_report_path, page_html, write_html_file
 
 PATH_LABELS = {"in1": "in1 (source 1 to DUT input)", "in2": "in2 (source 2 to DUT input)", "out": "out (DUT output to analyzer)"}
 
@@ -57,15 +58,12 @@ def write_calibration_page(view: CalibrationView, path: Path) -> Path:
          _fmt(r["source_ip3_dbm"]), _fmt(r["analyzer_ip3_dbm"])]
         for r in view.residuals
     ]
-    figure_html = offsets_figure(view).to_html(full_html=False, include_plotlyjs=True)
+    figure_html = pio.to_html(offsets_figure(view), full_html=False, include_plotlyjs=False, div_id="offsets",
+                              config={"displaylogo": False})
     parts = [
-        "<!DOCTYPE html><html><head><meta charset='utf-8'>",
-        f"<title>Calibration set {html.escape(view.name)}</title>",
-        "<style>body{font-family:sans-serif;margin:2em;}table{border-collapse:collapse;margin:1em 0;}"
-        "td,th{border:1px solid #ccc;padding:4px 8px;text-align:left;}</style></head><body>",
         f"<h1>Calibration set {html.escape(view.name)}</h1>",
         _table(["", ""], provenance),
-        figure_html,
+        f'<div class="figure">{figure_html}</div>',
     ]
     if instruments:
         parts += ["<h2>Instruments</h2>", _table(["Step", "Role", "Resource", "*IDN?"], instruments)]
@@ -76,5 +74,5 @@ def write_calibration_page(view: CalibrationView, path: Path) -> Path:
             "<h2>System residual (intercepts at the DUT input plane, dBm)</h2>",
             _table(["Center (GHz)", "Spacing (MHz)", "Atten (dB)", "System", "Sources", "Analyzer"], residuals),
         ]
-    parts.append("</body></html>")
-    return write_html_file(path, "\n".join(parts), "calibration page")
+    page = page_html(f"Calibration set {view.name}", "\n".join(parts))
+    return write_html_file(path, page, "calibration page")

@@ -3,7 +3,7 @@
 Plots IIP3 and OIP3 against center frequency, tone spacing and bias (one trace per device), the
 IIP3 distribution per lot with the spec limits, and lower against upper IM3 intercepts. Results
 flagged as limited by the test system are drawn apart (grey, their own trace) and listed in their
-own table. plotly.js is embedded once in the page head: the page needs no network.
+own table. Page shell, stylesheet and the file write are report/html.py's.
 """
 
 from __future__ import annotations
@@ -15,34 +15,18 @@ from pathlib import Path
 
 import plotly.graph_objects as go
 import plotly.io as pio
-from plotly.offline import get_plotlyjs
 from plotly.subplots import make_subplots
 from sqlalchemy.orm import Session
 
 from tonebench.catalog.limits import LimitRule, list_limits
 from tonebench.catalog.query import ResultFilter, ResultRow, find_results
 from tonebench.errors import InputError
-from tonebench.report.run_report import check_report_path, format_freq, write_html_file
+from tonebench.report.html import check_report_path, page_html, write_html_file
+from tonebench.report.run_report import format_freq
 
 MAX_DEVICE_TRACES = 60  # above this many devices, traces are per lot (a legend of hundreds helps no one)
 FLAGGED_COLOR = "#9a9a9a"
 LIMIT_COLOR = "#b22222"
-
-_STYLE = """
-body { font-family: system-ui, sans-serif; margin: 1.5rem auto; max-width: 76rem; color: #222; }
-h1 { font-size: 1.4rem; margin-bottom: 0.5rem; }
-h2 { font-size: 1.1rem; margin-top: 2rem; border-bottom: 1px solid #ccc; }
-p.note { color: #555; font-size: 0.9rem; }
-dl.summary { display: grid; grid-template-columns: max-content auto; gap: 0.2rem 1rem; }
-dl.summary dt { font-weight: 600; }
-dl.summary dd { margin: 0; font-family: ui-monospace, monospace; }
-.figure { margin: 1rem 0; border: 1px solid #e2e2e2; }
-table { border-collapse: collapse; font-size: 0.85rem; width: 100%; }
-th, td { border: 1px solid #d0d0d0; padding: 0.25rem 0.45rem; }
-th { background: #f2f2f2; text-align: left; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; }
-"""
-
 
 def _device_label(row: ResultRow) -> str:
     return f"{row.part_number} {row.serial}"
@@ -249,32 +233,19 @@ def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]
     sections.append(("Flagged results (may be limited by the test system)", _flagged_table(rows)))
     summary_html = "\n".join(f"<dt>{html.escape(k)}</dt><dd>{html.escape(v)}</dd>" for k, v in summary.items())
     body = "\n".join(f"<h2>{html.escape(title)}</h2>\n{content}" for title, content in sections)
-    return f"""<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<title>Device comparison</title>
-<style>{_STYLE}</style>
-<script type="text/javascript">{get_plotlyjs()}</script>
-</head>
-<body>
-<header>
+    return page_html("Device comparison", f"""<header>
 <h1>Device comparison</h1>
 <dl class="summary">
 {summary_html}
 </dl>
 </header>
-{body}
-</body>
-</html>
-"""
+{body}""", body_class="wide")
 
 
 def write_compare_report(session: Session, flt: ResultFilter, path: Path, limit: int | None = None) -> tuple[Path, int]:
     """Query, render and write the page atomically; returns (path, number of results)."""
-    path = check_report_path(path, "compare report")
+    check_report_path(path, "compare report")  # before the query: a bad path costs nothing
     rows = find_results(session, flt, limit)
     limits = {part: [LimitRule.of(l) for l in list_limits(session, part)] for part in {r.part_number for r in rows}}
     page = render_compare_page(rows, limits, flt.describe())
-    write_html_file(path, page, "compare report")
-    return path, len(rows)
+    return write_html_file(path, page, "compare report"), len(rows)

@@ -1,4 +1,4 @@
-"""The HTML report of one stored run."""
+"""The HTML report of one stored run, built from its stored results (report/stored_sweeps.py)."""
 
 from __future__ import annotations
 
@@ -6,15 +6,15 @@ from pathlib import Path
 
 from sqlalchemy.orm import sessionmaker
 
-from tonebench.results.sweeps import assessed_sweeps
-from tonebench.store.lookups import find_run
 from tonebench.calibration.sets import load_set_by_id
 from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
 from tonebench.report.run_report import result_row as report_result_row
+from tonebench.report.stored_sweeps import report_sweeps
+from tonebench.store.lookups import find_run
 
 
 def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
-    """Write the run's self-contained HTML report, fitted from its stored points."""
+    """Write the run's self-contained HTML report: its stored points and stored results."""
     with sessions() as session:
         run = find_run(session, run_guid)
         # The report shows what the stored results were fitted from: re-referred if they were.
@@ -26,7 +26,7 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             tables = referred_to.tables
         sweeps, rows = [], []
         set_id = referred_to.id if referred_to is not None else run.calibration_set_id
-        for center_hz, spacing_hz, _bias_v, _points, arrays, assessment in assessed_sweeps(session, run, set_id, tables):
+        for center_hz, spacing_hz, arrays, assessment in report_sweeps(session, run, set_id, tables):
             fit = assessment.fit
             sweeps.append(
                 SweepPlotData(

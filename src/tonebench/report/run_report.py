@@ -1,43 +1,26 @@
 """Self-contained HTML report of fitted sweeps: one plotly figure per sweep and a results table.
 
-plotly.js is embedded once in the page head, so the report opens on an offline lab PC.
+The page shell, stylesheet and file write are report/html.py's (run/start.py imports
+check_report_path from here to check --report before measuring).
 """
 
 from __future__ import annotations
 
 import html
-import os
-import stat
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import plotly.graph_objects as go
 import plotly.io as pio
-from plotly.offline import get_plotlyjs
 
 from tonebench.analysis.assess import SweepAssessment
 from tonebench.analysis.fit import SweepResult
-from tonebench.errors import InputError, TonebenchError
+from tonebench.report.html import check_report_path, page_html, write_html_file
 
 _COLORS = {"fundamental": "#1f5fa8", "im3_lower": "#c0561b", "im3_upper": "#2a8a4a",
            "noise": "#888888", "invalid": "#9a9a9a", "flag": "#c00000"}
 _INVALID_NOTE = "outside the valid region (see the reason column)"
-
-_STYLE = """
-body { font-family: system-ui, sans-serif; margin: 1.5rem auto; max-width: 72rem; color: #222; }
-h1 { font-size: 1.4rem; margin-bottom: 0.5rem; }
-h2 { font-size: 1.1rem; margin-top: 2rem; border-bottom: 1px solid #ccc; }
-dl.summary { display: grid; grid-template-columns: max-content auto; gap: 0.2rem 1rem; }
-dl.summary dt { font-weight: 600; }
-dl.summary dd { margin: 0; font-family: ui-monospace, monospace; }
-.sweep { margin: 1rem 0; border: 1px solid #e2e2e2; }
-table.results { border-collapse: collapse; font-size: 0.85rem; width: 100%; }
-table.results th, table.results td { border: 1px solid #d0d0d0; padding: 0.25rem 0.45rem; }
-table.results th { background: #f2f2f2; text-align: left; }
-table.results td.num { text-align: right; font-variant-numeric: tabular-nums; }
-"""
 
 
 @dataclass
@@ -55,9 +38,10 @@ class SweepPlotData:
     im3_upper_dbm: np.ndarray
     noise_dbm: np.ndarray
     valid_mask: np.ndarray
+    # The fit and its assessment, live (analysis) or as stored (report/stored_sweeps.py: the
+    # same fields). With an assessment, flagged points are drawn as diamonds outlined in red,
+    # their flags in the hover text.
     result: SweepResult
-    # With an assessment, flagged points are drawn as diamonds outlined in red, their flags in
-    # the hover text.
     assessment: SweepAssessment | None = None
 
     def hover_notes(self) -> list[str]:
@@ -68,7 +52,7 @@ class SweepPlotData:
             for i, flags in enumerate(self.assessment.point_flags):
                 for f in flags:
                     err = "" if f.error_db is None else f" (IIP3 error up to {f.error_db:.2f} dB)"
-                    notes[i] += f"<br><b>{html.escape(f.label)}</b>: {html.escape(f.detail)}{err}"
+                    notes[i] += f"<br><b>{html.escape(flag_label(f))}</b>: {html.escape(f.detail)}{err}"
         return notes
 
     def flagged_mask(self) -> np.ndarray:
@@ -93,10 +77,15 @@ def sweep_title(center_freq_hz: float, spacing_hz: float) -> str:
     return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}"
 
 
+def flag_label(flag) -> str:
+    """'name (cause)' of an analysis Flag or a stored PointFlag/ResultFlag, or just 'name'."""
+    return flag.flag if flag.cause is None else f"{flag.flag} ({flag.cause})"
+
+
 def flag_text(flag) -> str:
     """One flag (an analysis Flag or a stored PointFlag/ResultFlag) for a table cell:
     'name (cause): detail (IIP3 error up to x dB)'."""
-    label = flag.flag if flag.cause is None else f"{flag.flag} ({flag.cause})"
+    label = flag_label(flag)
     err = "" if flag.error_db is None else f" (IIP3 error up to {flag.error_db:.2f} dB)"
     return f"{label}: {flag.detail}{err}"
 
@@ -245,16 +234,7 @@ def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list
                       div_id=f"sweep-{i}", config={"displaylogo": False})
         + "</div>"
         for i, s in enumerate(sweeps, start=1))
-    return f"""<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<title>{html.escape(heading)}</title>
-<style>{_STYLE}</style>
-<script type="text/javascript">{get_plotlyjs()}</script>
-</head>
-<body>
-<header>
+    body = f"""<header>
 <h1>{html.escape(heading)}</h1>
 <dl class="summary">
 {summary}
@@ -263,73 +243,13 @@ def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list
 <h2>Sweeps</h2>
 {figures}
 <h2>Results</h2>
-{_results_table(result_rows)}
-</body>
-</html>
-"""
-
-
-def check_report_path(path: Path, what: str = "report path") -> Path:
-    """The file an HTML page may be written to, checked before anything is measured or written.
-
-    A page is never written over a directory, a device, a FIFO or any other non-regular file
-    (os.replace would swap /dev/null for a regular file); the folder must exist and take a new
-    file (probed with a temporary file, which also catches read-only mounts and, for root,
-    what permission bits alone would not show). A symlink is followed to the file it names.
-    """
-    path = Path(path)
-    if path.is_symlink():
-        path = path.resolve()
-    try:
-        mode = path.stat().st_mode
-    except FileNotFoundError:
-        mode = None
-    except OSError as exc:
-        raise InputError(f"{what} {path}: cannot be checked ({exc.strerror or exc}); give an HTML file path") from None
-    if mode is not None and stat.S_ISDIR(mode):
-        raise InputError(f"{what} {path} is a directory; give a file path such as {path / 'report.html'}")
-    if mode is not None and not stat.S_ISREG(mode):
-        raise InputError(f"{what} {path} is not a regular file (a device, FIFO or socket); it is never "
-                         "replaced: give a file path in a folder")
-    folder = path.parent
-    if not folder.is_dir():
-        raise InputError(f"{what} {path}: directory {folder} does not exist; give a file in an existing directory")
-    try:
-        probe_fd, probe_name = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=".probe")
-    except OSError as exc:
-        raise InputError(f"{what} {path}: cannot create a file in {folder} ({exc.strerror or exc}); "
-                         "give a file in a writable directory") from None
-    os.close(probe_fd)
-    os.unlink(probe_name)
-    return path
-
-
-def write_html_file(path: Path, page: str, what: str = "report path") -> Path:
-    """Write `page` to `path` the one way every HTML page is written: checked (check_report_path),
-    into a temporary file in the same folder, fsynced, then renamed over the old file, so a
-    reader never sees half a page and a crash leaves the old page or the new one."""
-    path = check_report_path(path, what)
-    fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        os.fchmod(fd, 0o644)  # mkstemp makes it private; a report is meant to be shared
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(page)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp_name, path)
-    except OSError as exc:
-        Path(tmp_name).unlink(missing_ok=True)
-        # Checked beforehand, so this is the disk (full, failing), not the path given: exit 1.
-        raise TonebenchError(f"{what} {path}: cannot be written ({exc.strerror or exc}); nothing was replaced") from None
-    except BaseException:
-        Path(tmp_name).unlink(missing_ok=True)
-        raise
-    return path
+{_results_table(result_rows)}"""
+    return page_html(heading, body)
 
 
 def write_report(path: Path, heading: str, summary_rows: list[dict[str, str]],
                  sweeps: list[SweepPlotData], result_rows: list[dict[str, object]]) -> Path:
-    """Write the report to path atomically (write_html_file); returns the path."""
+    """Write the report to path atomically (report/html.py write_html_file); returns the path."""
     check_report_path(path)
     page = render_report(heading, summary_rows, sweeps, result_rows)  # fails before touching disk
     return write_html_file(path, page)

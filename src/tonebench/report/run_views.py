@@ -1,4 +1,8 @@
-"""Read-only views of the store for the CLI: the run list and one run in detail."""
+"""Read-only views of the store for the CLI: the run list and one run in detail.
+
+They never write. A run left 'running' by a process that is gone shows as stored until the
+command closes such runs first (store/ownership.close_dead_runs), before it shows the view.
+"""
 
 from __future__ import annotations
 
@@ -8,12 +12,10 @@ from rich.table import Table
 from sqlalchemy import func, select
 
 from tonebench.report.run_report import flag_text
-from tonebench.store.ownership import close_dead_runs
 from tonebench.report.terminal import terminal_row
-from tonebench.store.lookups import find_run
 from tonebench.store.database import open_database, session_factory
+from tonebench.store.lookups import find_run
 from tonebench.store.models import CalibrationSet, Point, PointFlag, Run
-
 
 MAX_FAILED_SHOWN = 10  # failed points listed by `show`; the rest are counted
 
@@ -35,7 +37,6 @@ def results_table(results) -> Table:
 
 def list_runs(db_url: str, limit: int) -> list[tuple[str, ...]]:
     sessions = session_factory(open_database(db_url, read_only=True))
-    close_dead_runs(sessions)  # a run whose process is gone is not shown as running
     with sessions() as session:
         counts = dict(session.execute(select(Point.run_id, func.count()).group_by(Point.run_id)).all())
         runs = session.scalars(select(Run).order_by(Run.started_at.desc()).limit(limit)).all()
@@ -54,7 +55,6 @@ def list_runs(db_url: str, limit: int) -> list[tuple[str, ...]]:
 
 def describe_run(db_url: str, ident: str, console: Console) -> None:
     sessions = session_factory(open_database(db_url, read_only=True))
-    close_dead_runs(sessions)
     with sessions() as session:
         run = find_run(session, ident)
         device = run.device

@@ -1,0 +1,118 @@
+"""The run report's sweeps from what `analyze` stored, not assessed again.
+
+Per sweep: the stored points' arrays (results/sweeps.py, as stored or re-referred), and the
+stored result read back into the fields the page shows: the fit's numbers (Result columns), its
+valid mask and IIP3 lower bound (details_json), the result's and the points' flags (rows, in the
+order they were stored). Only when the stored results are not those of the stored points (never
+analysed, or points measured after the analysis) is the run assessed again, as `analyze` would.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from sqlalchemy.orm import Session
+
+from tonebench.results.sweeps import _sweeps, assessed_sweeps
+from tonebench.store.models import Point, Result, Run
+
+
+@dataclass(frozen=True)
+class StoredFit:
+    """The fields of analysis.fit.SweepResult the page shows, read back from a Result."""
+
+    n_points: int
+    n_valid: int
+    valid_mask: np.ndarray
+    gain_db: float | None
+    iip3_lower_dbm: float | None
+    iip3_upper_dbm: float | None
+    iip3_dbm: float | None
+    oip3_lower_dbm: float | None
+    oip3_upper_dbm: float | None
+    oip3_dbm: float | None
+    iip3_free_dbm: float | None
+    slope_fundamental: float | None
+    slope_im3_lower: float | None
+    slope_im3_upper: float | None
+    p1db_in_dbm: float | None
+    p1db_out_dbm: float | None
+    reason: str | None
+
+
+@dataclass(frozen=True)
+class StoredSecondOrder:
+    iip2_dbm: float | None
+    bound_db: float | None
+    slope_im2: float | None
+
+
+@dataclass(frozen=True)
+class StoredAssessment:
+    """The fields of analysis.assess.SweepAssessment the page shows; flags are the stored rows
+    (PointFlag per point, ResultFlag), which carry the same flag, cause, detail and error_db."""
+
+    fit: StoredFit
+    point_flags: list[list]
+    result_flags: list
+    iip3_bound_db: float | None
+    iip3_at_least_dbm: float | None
+    second_order: StoredSecondOrder | None
+    notes: list[str]
+
+    @property
+    def flagged_mask(self) -> np.ndarray:
+        return np.array([bool(f) for f in self.point_flags], dtype=bool)
+
+
+def _by_id(rows) -> list:
+    return sorted(rows, key=lambda row: row.id)
+
+
+def stored_assessment(result: Result | None, points: list[Point]) -> StoredAssessment | None:
+    """The stored assessment of one sweep, or None when `result` is not that of these points."""
+    details = (result.details_json or {}) if result is not None else {}
+    mask = details.get("valid_mask")
+    if result is None or mask is None or len(mask) != len(points) or result.n_points != len(points):
+        return None
+    fit = StoredFit(
+        n_points=result.n_points, n_valid=result.n_valid, valid_mask=np.array(mask, dtype=bool),
+        gain_db=result.gain_db, iip3_lower_dbm=result.iip3_lower_dbm, iip3_upper_dbm=result.iip3_upper_dbm,
+        iip3_dbm=result.iip3_dbm, oip3_lower_dbm=result.oip3_lower_dbm, oip3_upper_dbm=result.oip3_upper_dbm,
+        oip3_dbm=result.oip3_dbm, iip3_free_dbm=details.get("iip3_free_slopes_dbm"),
+        slope_fundamental=result.slope_fundamental, slope_im3_lower=result.slope_im3_lower,
+        slope_im3_upper=result.slope_im3_upper, p1db_in_dbm=result.p1db_in_dbm, p1db_out_dbm=result.p1db_out_dbm,
+        reason=result.reason,
+    )
+    second = details.get("second_order")
+    return StoredAssessment(
+        fit=fit,
+        point_flags=[_by_id(point.flags) for point in points],
+        result_flags=_by_id(result.flags),
+        iip3_bound_db=result.iip3_bound_db,
+        iip3_at_least_dbm=details.get("iip3_at_least_dbm"),
+        second_order=None if second is None else StoredSecondOrder(result.iip2_dbm, second.get("bound_db"),
+                                                                    result.slope_im2),
+        notes=list(details.get("notes") or []),
+    )
+
+
+def _analysed_after_points(results: list[Result], points: list[Point]) -> bool:
+    latest = max((p.measured_at for p in points if p.measured_at is not None), default=None)
+    return latest is None or all(r.created_at is not None and r.created_at >= latest for r in results)
+
+
+def report_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None):
+    """(center_hz, spacing_hz, arrays, assessment) per sweep: the stored assessment when the
+    run's stored results are those of its stored points, else the run assessed again."""
+    sweeps = list(_sweeps(session, run.id, tables))
+    results = {(r.center_hz, r.spacing_hz, r.bias_v): r for r in run.results}
+    stored = [stored_assessment(results.get((c, s, b)), rows) for c, s, b, rows, _ in sweeps]
+    points = [p for *_, rows, _ in sweeps for p in rows]
+    if len(results) == len(sweeps) and None not in stored and _analysed_after_points(list(results.values()), points):
+        for (center_hz, spacing_hz, _, _, arrays), assessment in zip(sweeps, stored):
+            yield center_hz, spacing_hz, arrays, assessment
+        return
+    for center_hz, spacing_hz, _, _, arrays, assessment in assessed_sweeps(session, run, set_id, tables):
+        yield center_hz, spacing_hz, arrays, assessment
