@@ -48,3 +48,21 @@ def _stored(path) -> tuple:
                 connection.execute("SELECT count(*) FROM events").fetchone())
     finally:
         connection.close()
+
+
+def test_the_commands_close_a_dead_run_before_showing_it(tmp_path):
+    from typer.testing import CliRunner
+
+    from tonebench.cli import app
+
+    path = tmp_path / "tonebench.db"
+    shutil.copy(FIXTURE_DB, path)
+    with sqlite3.connect(path) as connection:
+        connection.execute("UPDATE runs SET status = 'running', end_reason = NULL, owner = ?", (_dead_owner(),))
+    connection.close()
+
+    listed = CliRunner(env={"COLUMNS": "200"}).invoke(app, ["runs", "--db", f"sqlite:///{path}"])
+
+    assert listed.exit_code == 0, listed.output
+    assert "aborted" in listed.output and "running" not in listed.output
+    assert _stored(path)[0][0][0] == "aborted"

@@ -175,6 +175,14 @@ def demo(
         run_demo(out_dir, _run_with_progress, out)
 
 
+def _close_dead_runs(db_url: str) -> None:
+    """Runs whose process is gone are closed as aborted before a view shows them (views never write)."""
+    from tonebench.store.database import open_database, session_factory
+    from tonebench.store.ownership import close_dead_runs
+
+    close_dead_runs(session_factory(open_database(db_url, read_only=True)))
+
+
 @app.command()
 def runs(
     db: DbOption = None,
@@ -184,6 +192,7 @@ def runs(
     from tonebench.report.run_views import list_runs
 
     with one_line_errors():
+        _close_dead_runs(db or default_db())
         table = Table(title="Runs")
         for column in ("GUID", "Started (UTC)", "Status", "Device", "Bench", "Points"):
             table.add_column(column)
@@ -201,6 +210,7 @@ def show(
     from tonebench.report.run_views import describe_run
 
     with one_line_errors():
+        _close_dead_runs(db or default_db())
         describe_run(db or default_db(), run_id, out)
 
 
