@@ -32,6 +32,7 @@ from tonebench.store.models import (
     Run,
     result_group_key,
 )
+from tonebench.store.point_record import PointRecord, point_columns
 
 # Invented parts: (part number, serial prefix, IIP3 at 2.45 GHz in dBm, gain in dB, P1dB per tone in dBm).
 PARTS = (
@@ -261,12 +262,10 @@ def _fill_batch(connection, rng, summary, layout, bench_id, plan_id, first, coun
 
 
 def _point_row(run_id, key, seq, center_hz, spacing_hz, tone_dbm, bias_v, s: dict, started_at) -> dict:
-    # Columns left out (second-order products, attenuation step, leveling) stay NULL; fewer
-    # keys per row keep the batched insert fast.
+    # Fields left out (second-order products, attenuation step, leveling) stay NULL.
     out_loss = OUT_LOSS_DB
-    return dict(
-        run_id=run_id, point_key=key, seq=seq, status="measured",
-        measured_at=started_at + dt.timedelta(seconds=seq * 2.5), bench_clock_s=seq * 2.5,
+    record = PointRecord(
+        point_key=key, seq=seq, status="measured", bench_clock_s=seq * 2.5,
         center_hz=center_hz, spacing_hz=spacing_hz, f1_hz=center_hz - spacing_hz / 2,
         f2_hz=center_hz + spacing_hz / 2, tone_dbm=tone_dbm, bias_v=bias_v,
         source1_dbm=tone_dbm + IN_LOSS_DB, source2_dbm=tone_dbm + IN_LOSS_DB,
@@ -281,6 +280,8 @@ def _point_row(run_id, key, seq, center_hz, spacing_hz, tone_dbm, bias_v, s: dic
         im3_lower_dbm=s["im3_lower"], im3_upper_dbm=s["im3_upper"],
         noise_lower_dbm=s["noise_lower"], noise_upper_dbm=s["noise_upper"],
     )
+    # Batched inserts, not the point writer: the same columns, without a transaction per point.
+    return dict(run_id=run_id, measured_at=started_at + dt.timedelta(seconds=seq * 2.5), **point_columns(record))
 
 
 def _result_row(rng, run_id, center_hz, spacing_hz, bias_v, sweep, tones, behaviour, random_verdicts) -> dict:

@@ -36,7 +36,8 @@ from tonebench.planes.loss_table import LossTable
 from tonebench.config.bench_file import UnattendedSettings
 from tonebench.plan.points import PlannedPoint
 from tonebench.run.point_guard import BenchFault, PointFailed, PointGuard, settle_check
-from tonebench.store.ownership import store_point
+from tonebench.store.point_record import PointRecord
+from tonebench.store.point_writer import store_point
 from tonebench.instruments.rf_guard import RfOffReport, raise_if_stopping, shielded
 from tonebench.plan.limits import check_source_power, predict_levels
 from tonebench.store.records import RunRecorder
@@ -196,7 +197,7 @@ class Sequencer:
                     row.update(self._extra_columns(point, measured.choice, measured.step, measured.second, row))
                     if drift := self.drift.observe(point, readings.f1_dbm, readings.f2_dbm):
                         row["extra_json"] = {**row["extra_json"], "source_drift": drift}
-                    store_point(self.recorder.sessions, self.recorder.run_id, row)
+                    store_point(self.recorder.sessions, self.recorder.run_id, PointRecord(**row))
                 done += 1
                 self._kick()
                 if on_progress:
@@ -275,7 +276,7 @@ class Sequencer:
 
     def _fail(self, point: PlannedPoint, reason: str, elapsed_s: float) -> None:
         """Store the point as failed with its reason, then apply the on_point_failure policy."""
-        store_point(self.recorder.sessions, self.recorder.run_id, dict(
+        store_point(self.recorder.sessions, self.recorder.run_id, PointRecord(
             point_key=point.key, seq=point.seq, status="failed", fail_reason=reason, bench_clock_s=elapsed_s,
             center_hz=point.center_hz, spacing_hz=point.spacing_hz, f1_hz=point.f1_hz, f2_hz=point.f2_hz,
             tone_dbm=point.tone_dbm, bias_v=point.bias_v,
