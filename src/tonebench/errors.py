@@ -3,6 +3,8 @@
 InputError is for anything a person typed or a file held (plan, bench file, resource string,
 database URL): the CLI prints its one-line message and exits with code 2.
 InstrumentError is for an instrument that answered wrongly, reported an SCPI error or did not answer.
+LimitError is for a setting that would break a limit (a dialect's range, the bench's power limits);
+it lives here so the plan's run-time power check and the instrument drivers raise the same class.
 """
 
 
@@ -20,3 +22,8 @@ class InstrumentError(TonebenchError):
 
 class DatabaseError(TonebenchError):
     """The database cannot be used as it is (newer than the code, unreachable, wrong URL)."""
+
+
+class LimitError(TonebenchError):
+    """A setting outside the limits its dialect file declares for the instrument, or one the bench
+    file's power limits refuse."""

@@ -20,12 +20,12 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from tonebench.instruments.open_bench import OpenBench
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import AnalyzerSetup
-from tonebench.planes.loss_table import LossTable
+from tonebench.instruments.open_bench import OpenBench
 from tonebench.instruments.rf_guard import raise_if_stopping
 from tonebench.plan.limits import check_source_power
+from tonebench.planes.loss_table import LossTable
 
 # An output-path reading must clear its noise marker by this much to be a loss, not noise.
 MIN_TONE_SNR_DB = 30.0

@@ -19,10 +19,15 @@ from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from tonebench.planes.referral import PATHS
 from tonebench.errors import InputError
 from tonebench.planes.loss_table import LossTable
-from tonebench.store.models import CalibrationOffset, CalibrationSet, SystemResidual, utc_now
+from tonebench.planes.referral import PATHS
+from tonebench.store.models import (
+    CalibrationOffset,
+    CalibrationSet,
+    SystemResidual,
+    utc_now,
+)
 
 DEFAULT_VALID_DAYS = 30.0
 MAX_VALID_DAYS = 3650.0

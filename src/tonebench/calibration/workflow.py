@@ -16,10 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from tonebench.instruments.open_bench import OpenBench, open_bench
-from tonebench.store.bench_lock import check_free as check_bench_free
 from tonebench.calibration import importers, measure, residual
-from tonebench.planes.referral import check_coverage
 from tonebench.calibration.sets import (
     DEFAULT_VALID_DAYS,
     CalibrationView,
@@ -35,10 +32,24 @@ from tonebench.calibration.sets import (
 from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
 from tonebench.errors import InputError, InstrumentError
-from tonebench.instruments.rf_guard import SIGINT_EXIT, SIGTERM_EXIT, Terminated, attach_note, stop_signals
 from tonebench.instruments.analyzer import AnalyzerSetup
+from tonebench.instruments.open_bench import OpenBench, bench_freq_ranges, open_bench
+from tonebench.instruments.rf_guard import (
+    SIGINT_EXIT,
+    SIGTERM_EXIT,
+    Terminated,
+    attach_note,
+    stop_signals,
+)
+from tonebench.plan.limits import (
+    TWO_EQUAL_TONES_DB,
+    FreqNeed,
+    check_frequency_needs,
+    read_need,
+)
 from tonebench.plan.points import expand
-from tonebench.plan.limits import TWO_EQUAL_TONES_DB, FreqNeed, bench_freq_ranges, check_frequency_needs, read_need
+from tonebench.planes.referral import check_coverage
+from tonebench.store.bench_lock import check_free as check_bench_free
 from tonebench.store.database import open_database, session_factory
 
 RESIDUAL_LEVELS_BELOW_TOP_DB = (15.0, 10.0, 5.0, 0.0)  # default thru sweep, per tone, under the top level

@@ -9,12 +9,22 @@ from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import SpectrumAnalyzer
 from tonebench.instruments.dialect import load_dialect
 from tonebench.instruments.power_meter import PowerMeter
+from tonebench.instruments.rf_guard import (
+    RF_OFF_BUDGET_S,
+    RfOffReport,
+    shielded,
+    switch_rf_off,
+)
+from tonebench.instruments.role_check import (
+    check_distinct_identities,
+    check_distinct_resources,
+    check_role,
+)
 from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.source import SignalSource
 from tonebench.instruments.supervision import Supervision
 from tonebench.instruments.transport import open_resource
-from tonebench.instruments.rf_guard import RF_OFF_BUDGET_S, RfOffReport, shielded, switch_rf_off
-from tonebench.plan.limits import SourceRange
+from tonebench.plan.limits import FreqRange, SourceRange
 
 # Which kind of dialect each bench role takes.
 ROLE_KINDS = {"source1": "source", "source2": "source", "analyzer": "analyzer", "power_meter": "power_meter"}
@@ -144,6 +154,18 @@ class _Forced:
             lock.release()
 
 
+def bench_freq_ranges(settings: BenchFile) -> dict[str, FreqRange]:
+    """role -> frequency range of every instrument a bench file names, from its dialect file; what
+    the plan's pre-flight frequency checks (plan/limits.py) are given, before anything is connected."""
+    ranges = {}
+    for role, entry in settings.instruments.items():
+        dialect = load_dialect(entry.dialect)
+        limits = dialect.limits
+        if "min_freq_hz" in limits and "max_freq_hz" in limits:
+            ranges[role] = FreqRange(f"{role} (dialect {dialect.name})", limits["min_freq_hz"], limits["max_freq_hz"])
+    return ranges
+
+
 def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:
     """Connect to source1, source2, analyzer and (if the bench file has one) the power meter;
     `resources` maps each role to a VISA resource. With `supervision`, timeouts and dropped
@@ -152,8 +174,6 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
     Refused (InputError) before anything else is sent: two roles on one resource or one
     instrument (*IDN? maker, model, serial), and an instrument that does not answer its role's
     probe (tonebench.instruments.role_check)."""
-    from tonebench.instruments.role_check import check_distinct_identities, check_distinct_resources, check_role
-
     opened: list[ScpiInstrument] = []
     roles = ["source1", "source2", "analyzer"] + [r for r in OPTIONAL_ROLES if r in settings.instruments]
     try:

@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, NamedTuple
 
 import pyvisa
 
-from tonebench.errors import InstrumentError, TonebenchError
+from tonebench.errors import InstrumentError, LimitError  # noqa: F401 - LimitError re-exported where it was
 from tonebench.instruments.dialect import Dialect
 
 if TYPE_CHECKING:
@@ -34,10 +34,6 @@ COMMAND_ERROR_CODES = range(-199, -99)
 
 class NotANumber(ValueError):
     """A float reply that is the instrument's "not a number" (9.91E37), NaN or infinite."""
-
-
-class LimitError(TonebenchError):
-    """A setting outside the limits its dialect file declares for the instrument."""
 
 
 class ScpiError(NamedTuple):

@@ -1,14 +1,17 @@
 """Power limits and frequency ranges, checked for the whole plan before RF goes on; power again
 for every source command.
 
-Predictions use the bench file's expected DUT gain and path losses: the tone power at the DUT
-input plane comes from the plan, the source setting adds the input loss, and the analyzer sees
-both tones amplified by the expected gain less the output loss.
+Predictions use the bench file's expected DUT gain and path losses through the one plane
+arithmetic (planes/arithmetic.py): the tone power at the DUT input plane comes from the plan, the
+source setting adds the input loss, and the analyzer sees the DUT output less the output loss at
+each tone's own frequency (`predicted_analyzer_input_dbm` below is the one definition of that limit).
 
 Frequency ranges come from the dialect files' [limits] (min_freq_hz, max_freq_hz), so a run, a
 resume and `queue add` (which has no bench connection) check the same figures before anything
 is connected: each source must reach its tone at every frequency it is stepped to, the analyzer
 each read's whole span (centre +/- span/2), the power meter each tone it levels or calibrates.
+The ranges are read from the dialect files by instruments/open_bench.py (plan/ never imports
+the instruments) and handed in.
 """
 
 from __future__ import annotations
@@ -16,14 +19,12 @@ from __future__ import annotations
 from collections.abc import Iterable
 from dataclasses import dataclass
 
-import numpy as np
-
 from tonebench.config.bench_file import BenchLimits
-from tonebench.errors import InputError
-from tonebench.planes.loss_table import LossTable
+from tonebench.errors import InputError, LimitError
 from tonebench.plan.points import PlannedPoint
-
-TWO_EQUAL_TONES_DB = 10.0 * np.log10(2.0)  # total power of two equal tones over one of them
+from tonebench.planes import arithmetic
+from tonebench.planes.arithmetic import TWO_EQUAL_TONES_DB
+from tonebench.planes.loss_table import LossTable
 
 
 @dataclass(frozen=True)
@@ -59,12 +60,35 @@ class PointLevels:
     analyzer_input_dbm: float
 
 
+def analyzer_limit_dbm(limits: BenchLimits, damage_dbm: float | None) -> float:
+    """The most the analyzer input may see: the bench file's max_analyzer_input_dbm, or the
+    analyzer's own damage level (its dialect's damage_dbm) where that is lower."""
+    limit_dbm = limits.max_analyzer_input_dbm
+    return limit_dbm if damage_dbm is None else min(limit_dbm, damage_dbm)
+
+
+def predicted_analyzer_input_dbm(tones: Iterable[tuple[float, float]], gain_db: float, out: LossTable) -> float:
+    """The power predicted at the analyzer input, the figure checked against analyzer_limit_dbm.
+
+    tones: (tone power at the DUT input plane dBm, its frequency Hz) for each tone known. Each tone
+    arrives at the analyzer as its DUT output (tone + gain_db) less the output loss at that tone's
+    own frequency; the check takes the highest of those arrivals and adds TWO_EQUAL_TONES_DB for the
+    two tones present together, an upper bound on their total power (a lossier tone only arrives
+    weaker). The plan check gives both tones of a point; the run-time guard the one tone it is
+    commanding. Evaluated in the order (tone + 3.01 dB + gain) - loss, as the limits always were.
+    """
+    return max(
+        arithmetic.analyzer_input_dbm(tone_dbm + TWO_EQUAL_TONES_DB + gain_db, out.loss_db(freq_hz))
+        for tone_dbm, freq_hz in tones
+    )
+
+
 def predict_levels(point: PlannedPoint, offsets: dict[str, LossTable], limits: BenchLimits) -> PointLevels:
-    source1_dbm = point.tone_dbm + offsets["in1"].loss_db(point.f1_hz)
-    source2_dbm = point.tone_dbm + offsets["in2"].loss_db(point.f2_hz)
-    out_loss_db = min(offsets["out"].loss_db(point.f1_hz), offsets["out"].loss_db(point.f2_hz))
-    analyzer_input_dbm = point.tone_dbm + TWO_EQUAL_TONES_DB + limits.expected_gain_db - out_loss_db
-    return PointLevels(source1_dbm, source2_dbm, analyzer_input_dbm)
+    """Both source settings of a point (open loop) and the power predicted at the analyzer input."""
+    source1_dbm = arithmetic.source_setting_dbm(point.tone_dbm, offsets["in1"].loss_db(point.f1_hz))
+    source2_dbm = arithmetic.source_setting_dbm(point.tone_dbm, offsets["in2"].loss_db(point.f2_hz))
+    tones = ((point.tone_dbm, point.f1_hz), (point.tone_dbm, point.f2_hz))
+    return PointLevels(source1_dbm, source2_dbm, predicted_analyzer_input_dbm(tones, limits.expected_gain_db, offsets["out"]))
 
 
 def check_plan(
@@ -76,9 +100,7 @@ def check_plan(
     origin: str,
 ) -> None:
     """Refuse the whole plan (InputError, one line) if any point would break a limit."""
-    analyzer_limit_dbm = limits.max_analyzer_input_dbm
-    if analyzer_damage_dbm is not None:
-        analyzer_limit_dbm = min(analyzer_limit_dbm, analyzer_damage_dbm)
+    limit_dbm = analyzer_limit_dbm(limits, analyzer_damage_dbm)
     for point in points:
         if point.tone_dbm > limits.max_tone_dbm:
             raise InputError(
@@ -88,10 +110,10 @@ def check_plan(
         levels = predict_levels(point, offsets, limits)
         for source, setting_dbm in zip(sources, (levels.source1_dbm, levels.source2_dbm)):
             check_source_power(source, setting_dbm, point.key)
-        if levels.analyzer_input_dbm > analyzer_limit_dbm:
+        if levels.analyzer_input_dbm > limit_dbm:
             raise InputError(
                 f"{origin}: point {point.key} would put {levels.analyzer_input_dbm:.2f} dBm into the "
-                f"analyzer (expected gain {limits.expected_gain_db:.1f} dB); the limit is {analyzer_limit_dbm:.2f} dBm"
+                f"analyzer (expected gain {limits.expected_gain_db:.1f} dB); the limit is {limit_dbm:.2f} dBm"
             )
 
 
@@ -108,47 +130,31 @@ def power_guard(offsets: dict[str, LossTable], limits: BenchLimits, analyzer_dam
 
     The pre-flight check covers the plan; this one covers each command actually sent (leveling
     corrections included), through the same offsets: the tone at the DUT input plane must stay
-    within max_tone_dbm, and two such tones through the expected gain within the analyzer limit.
-    Raises LimitError naming the source, the command and the limit.
+    within max_tone_dbm, and the analyzer input predicted from it (predicted_analyzer_input_dbm, this tone
+    at its own frequency) within the analyzer limit. Raises LimitError naming the source, the
+    command and the limit.
     """
-    from tonebench.instruments.scpi import LimitError
-
-    analyzer_limit_dbm = limits.max_analyzer_input_dbm
-    if analyzer_damage_dbm is not None:
-        analyzer_limit_dbm = min(analyzer_limit_dbm, analyzer_damage_dbm)
+    limit_dbm = analyzer_limit_dbm(limits, analyzer_damage_dbm)
     paths = {"source1": "in1", "source2": "in2"}
 
     def guard(label: str, freq_hz: float, power_dbm: float) -> None:
-        tone_dbm = power_dbm - offsets[paths[label]].loss_db(freq_hz)
+        tone_dbm = arithmetic.tone_at_plane_dbm(power_dbm, offsets[paths[label]].loss_db(freq_hz))
         if tone_dbm > limits.max_tone_dbm + 1e-9:
             raise LimitError(
                 f"{label}: {power_dbm:.2f} dBm at {freq_hz:.6g} Hz would put {tone_dbm:.2f} dBm at the DUT input; "
                 f"the bench limit max_tone_dbm is {limits.max_tone_dbm:.2f} dBm"
             )
-        analyzer_dbm = tone_dbm + TWO_EQUAL_TONES_DB + limits.expected_gain_db - offsets["out"].loss_db(freq_hz)
-        if analyzer_dbm > analyzer_limit_dbm + 1e-9:
+        analyzer_dbm = predicted_analyzer_input_dbm(((tone_dbm, freq_hz),), limits.expected_gain_db, offsets["out"])
+        if analyzer_dbm > limit_dbm + 1e-9:
             raise LimitError(
                 f"{label}: {power_dbm:.2f} dBm at {freq_hz:.6g} Hz would put {analyzer_dbm:.2f} dBm into the analyzer "
-                f"(expected gain {limits.expected_gain_db:.1f} dB); the limit is {analyzer_limit_dbm:.2f} dBm"
+                f"(expected gain {limits.expected_gain_db:.1f} dB); the limit is {limit_dbm:.2f} dBm"
             )
 
     return guard
 
 
 # --- frequency ranges -----------------------------------------------------------------------------
-
-
-def bench_freq_ranges(bench_settings) -> dict[str, FreqRange]:
-    """role -> frequency range of every instrument a bench file names, from its dialect file."""
-    from tonebench.instruments.dialect import load_dialect
-
-    ranges = {}
-    for role, entry in bench_settings.instruments.items():
-        dialect = load_dialect(entry.dialect)
-        limits = dialect.limits
-        if "min_freq_hz" in limits and "max_freq_hz" in limits:
-            ranges[role] = FreqRange(f"{role} (dialect {dialect.name})", limits["min_freq_hz"], limits["max_freq_hz"])
-    return ranges
 
 
 def check_frequency_needs(needs: Iterable[FreqNeed], ranges: dict[str, FreqRange], origin: str) -> None:
@@ -194,8 +200,10 @@ def plan_freq_needs(points: Iterable[PlannedPoint], span_hz: float, leveling: bo
     return needs
 
 
-def check_plan_frequencies(points: list[PlannedPoint], plan_settings, bench_settings, origin: str) -> None:
-    """The pre-flight frequency check of a run, a resume or `queue add`, from the dialect files."""
+def check_plan_frequencies(points: list[PlannedPoint], plan_settings, bench_settings, ranges: dict[str, FreqRange],
+                           origin: str) -> None:
+    """The pre-flight frequency check of a run, a resume or `queue add`, against the ranges of the
+    bench's instruments (instruments/open_bench.py bench_freq_ranges reads them from the dialects)."""
     leveling = bench_settings.has_power_meter and bench_settings.leveling.enabled
     needs = plan_freq_needs(points, plan_settings.analyzer.effective_span_hz, leveling)
-    check_frequency_needs(needs, bench_freq_ranges(bench_settings), origin)
+    check_frequency_needs(needs, ranges, origin)

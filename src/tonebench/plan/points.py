@@ -1,14 +1,17 @@
 """Expand a plan into the ordered list of points, each with a stable key.
 
 The same list drives dry runs, limit checks, progress and (later) resume, so the key depends only
-on what the point measures, never on when or where it ran.
+on what the point measures, never on when or where it ran. The axes, their key parts and their
+order are declared once, in plan/axes.py.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from itertools import product
 
 from tonebench.config.plan_file import PlanFile
+from tonebench.plan.axes import AXES, SweepKey, axis_values, point_key_of, sweep_key_of
 
 
 @dataclass(frozen=True)
@@ -39,15 +42,20 @@ class PlannedPoint:
 
     @property
     def key(self) -> str:
-        bias = "" if self.bias_v is None else f"/b{self.bias_v:+.4f}V"
-        return f"c{self.center_hz:.0f}/d{self.spacing_hz:.0f}/p{self.tone_dbm:+.2f}{bias}"
+        return point_key_of({axis.point_field: getattr(self, axis.point_field) for axis in AXES})
+
+    @property
+    def sweep_key(self) -> SweepKey:
+        """The sweep this point belongs to: every axis but tone power (plan/axes.py)."""
+        return sweep_key_of(self)
 
 
 def expand(plan: PlanFile) -> list[PlannedPoint]:
-    """Points ordered by frequency, then spacing, then rising tone power (a sweep per group)."""
+    """Points over every axis in plan/axes.py order (today frequency, then spacing), the tone
+    power rising innermost: one sweep per group."""
+    pairs = axis_values(plan.sweep)
+    fields = [axis.point_field for axis, _ in pairs]
     points = []
-    for center_hz in plan.sweep.center_freqs_hz:
-        for spacing_hz in plan.sweep.spacings_hz:
-            for tone_dbm in plan.sweep.tone_levels_dbm():
-                points.append(PlannedPoint(len(points), center_hz, spacing_hz, tone_dbm))
+    for values in product(*(values for _, values in pairs)):
+        points.append(PlannedPoint(len(points), **dict(zip(fields, values))))
     return points

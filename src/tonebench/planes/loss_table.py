@@ -19,7 +19,7 @@ class LossTable:
     origin: str
 
     @classmethod
-    def from_rows(cls, path: str, rows, origin: str) -> "LossTable":
+    def from_rows(cls, path: str, rows, origin: str) -> LossTable:
         table = np.asarray(rows, dtype=float).reshape(-1, 2)
         return cls(path, table[:, 0], table[:, 1], origin)
 

@@ -101,6 +101,7 @@ def _check_limits(plan, bench, sessions: sessionmaker) -> None:
     from tonebench.instruments.dialect import load_dialect
     from tonebench.plan.points import expand
     from tonebench.run.start import choose_calibration
+    from tonebench.instruments.open_bench import bench_freq_ranges
     from tonebench.plan.limits import SourceRange, check_plan, check_plan_frequencies
 
     dialects = {role: load_dialect(entry.dialect) for role, entry in bench.settings.instruments.items()}
@@ -110,7 +111,7 @@ def _check_limits(plan, bench, sessions: sessionmaker) -> None:
     )
     points = expand(plan.settings)
     origin = f"plan {plan.path}"
-    check_plan_frequencies(points, plan.settings, bench.settings, origin)
+    check_plan_frequencies(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings), origin)
     chosen = choose_calibration(bench, bench.settings.bench.calibration, sessions, points, origin)
     check_plan(points, chosen.tables, bench.settings.limits, ranges, dialects["analyzer"].limits.get("damage_dbm"), origin)
 

@@ -11,7 +11,7 @@ from pathlib import Path
 
 from sqlalchemy.orm import sessionmaker
 
-from tonebench.instruments.open_bench import OpenBench, open_bench
+from tonebench.instruments.open_bench import OpenBench, bench_freq_ranges, open_bench
 from tonebench.store.bench_lock import check_free as check_bench_free
 from tonebench.store.bench_lock import check_free_at as check_bench_free_at
 from tonebench.store.bench_lock import hold_bench
@@ -233,7 +233,7 @@ def execute_run(
             warn(chosen.stale_message)
 
         # Everything that can refuse the plan happens before the database is written and RF goes on.
-        check_plan_frequencies(points, plan.settings, bench.settings, plan_origin)
+        check_plan_frequencies(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings), plan_origin)
         check_bench_free_at(db_url, sessions, bench.settings.bench.name)  # before talking to its instruments
         open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, warn)
         check_plan(
@@ -351,7 +351,8 @@ def resume_run(
         done_keys = frozenset(key for key, status in states.items() if status == "measured")
         remaining = [point for point in points if point.key not in done_keys]
         plan_origin = f"run {guid} plan"
-        check_plan_frequencies(remaining, plan.settings, bench.settings, plan_origin)
+        check_plan_frequencies(remaining, plan.settings, bench.settings, bench_freq_ranges(bench.settings),
+                               plan_origin)
         check_bench_free(sessions, bench_name, except_run_id=run_id)  # before talking to its instruments
 
         open_instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, on_warning)

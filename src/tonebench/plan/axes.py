@@ -1,0 +1,86 @@
+"""The axes a plan expands over, each declared once: what it is called, its unit, the plan field
+its values come from, the point field that holds its value, its part of the point key, and how a
+run sets it on the bench.
+
+Today's axes: centre frequency, tone spacing, tone power, and gate bias (in every key and sweep
+key, but not in any plan file yet, so it is always None and leaves no trace in a key).
+
+A sweep (what one fit runs over) is every point that differs only in the SWEEP_AXIS, tone power.
+`sweep_key_of` gives its key from a planned point or a stored point row, so the sequencer, the store and the results
+group points with one definition.
+
+Adding an axis (gate bias from a plan, temperature, LO frequency, device position):
+1. the plan field in config/plan_file.py (SweepSettings), e.g. `temperatures_c: list[float] | None`;
+2. a field with its unit on PlannedPoint (plan/points.py), defaulting to None so older callers and
+   stored points without it keep their keys, and the column of the same name on the point record;
+3. one Axis in AXES below: `Axis("temperature", "degC", "temperature_c", _plan_field("temperatures_c"),
+   "/t{:+.1f}C", "set_temperature")`. Its place in AXES is its place in the key; every axis other
+   than tone power is iterated outside the tone-power ramp in AXES order, and becomes part of the
+   sweep key;
+4. the run dispatches on `bench_setting` ("set_temperature") to whatever sets it.
+An axis whose value is None (not in the plan) adds nothing to the key, so existing plans keep
+their points and keys.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+SweepKey = tuple  # the point's value on every axis but the sweep axis, in AXES order
+
+
+@dataclass(frozen=True)
+class Axis:
+    """One axis. plan_values gives its values from the plan's [sweep] (None: not in this plan);
+    key_format renders its value into the point key; bench_setting names how the run sets it."""
+
+    name: str
+    unit: str
+    point_field: str
+    plan_values: Callable[[object], Sequence[float] | None]
+    key_format: str
+    bench_setting: str
+
+    def key_part(self, value: float | None) -> str:
+        return "" if value is None else self.key_format.format(value)
+
+
+def _plan_field(name: str) -> Callable[[object], Sequence[float] | None]:
+    return lambda sweep: getattr(sweep, name, None)
+
+
+def _tone_levels(sweep) -> Sequence[float]:
+    return sweep.tone_levels_dbm()
+
+
+CENTER = Axis("center", "Hz", "center_hz", _plan_field("center_freqs_hz"), "c{:.0f}", "tone_frequencies")
+SPACING = Axis("spacing", "Hz", "spacing_hz", _plan_field("spacings_hz"), "/d{:.0f}", "tone_frequencies")
+TONE = Axis("tone", "dBm", "tone_dbm", _tone_levels, "/p{:+.2f}", "tone_power")
+BIAS = Axis("bias", "V", "bias_v", _plan_field("bias_v"), "/b{:+.4f}V", "gate_bias")
+
+AXES: tuple[Axis, ...] = (CENTER, SPACING, TONE, BIAS)  # key order
+SWEEP_AXIS = TONE  # a fit runs over this axis; it is iterated innermost, rising
+GROUP_AXES: tuple[Axis, ...] = tuple(axis for axis in AXES if axis is not SWEEP_AXIS)
+
+
+def point_key_of(values: dict[str, float | None]) -> str:
+    """The stable key of a point from its value on every axis (by point field)."""
+    return "".join(axis.key_part(values.get(axis.point_field)) for axis in AXES)
+
+
+def sweep_key_of(record) -> SweepKey:
+    """The key of the sweep a point belongs to: its value on every axis but tone power, read by
+    point field from a planned point or a stored point row (a missing field is None)."""
+    return tuple(getattr(record, axis.point_field, None) for axis in GROUP_AXES)
+
+
+def axis_values(plan_sweep) -> list[tuple[Axis, Sequence[float | None]]]:
+    """Each axis with the values the plan gives it, in iteration order (the sweep axis last);
+    an axis the plan does not name has the single value None."""
+    ordered = [*GROUP_AXES, SWEEP_AXIS]
+    pairs = []
+    for axis in ordered:
+        values = axis.plan_values(plan_sweep)
+        pairs.append((axis, (None,) if values is None else values))
+    return pairs
