@@ -25,6 +25,7 @@ from tonebench.planes.referral import (
 )
 from tonebench.calibration.residual import check_shares
 from tonebench.calibration.sets import load_set
+from tonebench.plan.axes import sweep_key_of
 from tonebench.planes.loss_table import LossTable
 from tonebench.store.models import CalibrationSet, Point, Run
 from tonebench.store.point_record import PointRecord, record_of
@@ -81,7 +82,7 @@ def rereferred(point: PointRecord | Point, tables: dict[str, LossTable]) -> dict
 def _sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | None = None):
     """Per sweep, the arrays the fit takes: as stored, or re-referred to `tables` when given."""
     points = stored_points(session, run_id)
-    for (center_hz, spacing_hz, bias_v), group in groupby(points, key=lambda p: _sweep_of(p.record)):
+    for (center_hz, spacing_hz, bias_v), group in groupby(points, key=lambda p: sweep_key_of(p.record)):
         stored = list(group)
         records = [p.record for p in stored]
         values = [rereferred(record, tables) if tables is not None else None for record in records]
@@ -94,10 +95,6 @@ def _sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | None =
         arrays = {name: _nan_array(column(name)) for name in POINT_ARRAYS if name != "overload"}
         arrays["overload"] = np.array([bool(v) for v in column("overload")], dtype=bool)
         yield center_hz, spacing_hz, bias_v, stored, arrays
-
-
-def _sweep_of(record: PointRecord) -> tuple:
-    return (record.center_hz, record.spacing_hz, record.bias_v)
 
 
 def _nan_array(values) -> np.ndarray:
