@@ -90,7 +90,7 @@ def point_columns(record: PointRecord) -> dict[str, Any]:
     A missing extra_json is left out rather than given as None: SQLAlchemy stores a JSON None as
     the JSON text 'null', and a point without extras has always been SQL NULL.
     """
-    values = {name: getattr(record, name) for name in RECORD_FIELDS}
+    values = dict(vars(record))  # the fields, in their order
     if values["extra_json"] is None:
         del values["extra_json"]
     return values
