@@ -51,8 +51,9 @@ class Leveler:
               open_loop_dbm: float, correction_db: float = 0.0) -> LevelResult:
         """Bring one tone to target_dbm (dBm at the DUT input plane); its source must be the only one on.
 
-        open_loop_dbm: the setting the calibration predicts (target + input loss). Returns the
-        correction whose reading was last taken, converged or not.
+        open_loop_dbm: the setting the calibration predicts (planes.arithmetic.source_setting_dbm of
+        the target and the input loss). Returns the correction whose reading was last taken,
+        converged or not.
         """
         if not self._prepared:
             self.meter.prepare()

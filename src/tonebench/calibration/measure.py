@@ -25,6 +25,7 @@ from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.instruments.open_bench import OpenBench
 from tonebench.instruments.rf_guard import raise_if_stopping
 from tonebench.plan.limits import check_source_power
+from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
 
 # An output-path reading must clear its noise marker by this much to be a loss, not noise.
@@ -95,7 +96,7 @@ def measure_output_path(bench: OpenBench, in1: LossTable, freqs_hz: Sequence[flo
         for i, freq_hz in enumerate(freqs_hz):
             raise_if_stopping()
             freq_hz = float(freq_hz)
-            plane_dbm = source_dbm - in1.loss_db(freq_hz)
+            plane_dbm = arithmetic.tone_at_plane_dbm(source_dbm, in1.loss_db(freq_hz))
             bench.source1.set_tone(freq_hz, source_dbm)
             if i == 0:
                 bench.source1.rf_on()
@@ -155,7 +156,7 @@ def measure_residual_sweeps(bench: OpenBench, tables: dict[str, LossTable], cent
             columns: dict[str, list] = {k: [] for k in ("p1", "p2", "lower", "upper", "noise_lower", "noise_upper", "overload")}
             for level_dbm in tone_levels_dbm:
                 raise_if_stopping()
-                settings = (level_dbm + in1_db, level_dbm + in2_db)
+                settings = (arithmetic.source_setting_dbm(level_dbm, in1_db), arithmetic.source_setting_dbm(level_dbm, in2_db))
                 for source, source_range, setting_dbm in zip(bench.sources(), bench.source_ranges, settings):
                     check_source_power(source_range, setting_dbm, f"system residual at {level_dbm:.2f} dBm")
                 bench.source1.set_tone(f1_hz, settings[0])
@@ -165,12 +166,12 @@ def measure_residual_sweeps(bench: OpenBench, tables: dict[str, LossTable], cent
                     rf_on = True
                 lower = analyzer.read_markers(lower_hz, [lower_hz, lower_hz - noise_offset_hz])
                 upper = analyzer.read_markers(upper_hz, [upper_hz, upper_hz + noise_offset_hz])
-                columns["p1"].append(settings[0] - in1_db)
-                columns["p2"].append(settings[1] - in2_db)
-                columns["lower"].append(lower.powers_dbm[0] + out_lower_db)
-                columns["noise_lower"].append(lower.powers_dbm[1] + out_lower_db)
-                columns["upper"].append(upper.powers_dbm[0] + out_upper_db)
-                columns["noise_upper"].append(upper.powers_dbm[1] + out_upper_db)
+                columns["p1"].append(arithmetic.tone_at_plane_dbm(settings[0], in1_db))
+                columns["p2"].append(arithmetic.tone_at_plane_dbm(settings[1], in2_db))
+                columns["lower"].append(arithmetic.dut_output_dbm(lower.powers_dbm[0], out_lower_db))
+                columns["noise_lower"].append(arithmetic.dut_output_dbm(lower.powers_dbm[1], out_lower_db))
+                columns["upper"].append(arithmetic.dut_output_dbm(upper.powers_dbm[0], out_upper_db))
+                columns["noise_upper"].append(arithmetic.dut_output_dbm(upper.powers_dbm[1], out_upper_db))
                 columns["overload"].append(lower.overload or upper.overload)
             sweeps.append(ResidualSweep(
                 atten_db, *(np.array(columns[k], dtype=float) for k in ("p1", "p2", "lower", "upper", "noise_lower", "noise_upper")),

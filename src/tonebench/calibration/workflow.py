@@ -9,14 +9,12 @@ from __future__ import annotations
 
 import dataclasses
 import getpass
-import sys
-from collections.abc import Callable, Iterator
-from contextlib import ExitStack, contextmanager
 from pathlib import Path
 
 import numpy as np
 
 from tonebench.calibration import importers, measure, residual
+from tonebench.calibration.bench_session import calibration_bench, provenance
 from tonebench.calibration.sets import (
     DEFAULT_VALID_DAYS,
     CalibrationView,
@@ -31,19 +29,13 @@ from tonebench.calibration.sets import (
 )
 from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
-from tonebench.errors import InputError, InstrumentError
+from tonebench.errors import InputError
 from tonebench.instruments.analyzer import AnalyzerSetup
-from tonebench.instruments.open_bench import OpenBench, bench_freq_ranges, open_bench
-from tonebench.instruments.rf_guard import (
-    SIGINT_EXIT,
-    SIGTERM_EXIT,
-    Terminated,
-    attach_note,
-    stop_signals,
-)
+from tonebench.instruments.open_bench import OpenBench, bench_freq_ranges
 from tonebench.plan.limits import (
     TWO_EQUAL_TONES_DB,
     FreqNeed,
+    analyzer_limit_dbm,
     check_frequency_needs,
     read_need,
 )
@@ -79,77 +71,16 @@ def _load(sessions, name: str) -> CalibrationView:
         return load_set(session, name)
 
 
-@contextmanager
-def calibration_bench(bench: LoadedBench, thru: bool, thru_in_place: bool,
-                      on_sim_started: Callable[[object], None] | None = None,
-                      on_warning: Callable[[str], None] | None = None) -> Iterator[OpenBench]:
-    """Open the bench (starting the simulator for a simulated one) with the DUT or a thru in place.
-
-    Like a run: RF off at every source on connecting (a command killed with RF on is warned
-    about) and on every way out, confirmed by read-back; Ctrl-C and SIGTERM raise once."""
-    if thru and not bench.settings.simulated and not thru_in_place:
-        raise InputError(
-            f"bench file {bench.path}: this measurement needs a thru in place of the DUT; connect one and "
-            "confirm with --thru-in-place"
-        )
-    with stop_signals(), ExitStack() as stack:
-        if bench.settings.simulated:
-            from tonebench.sim.launch import start_sim_bench
-
-            sim = stack.enter_context(start_sim_bench(bench.scenario))
-            with sim.bench.lock:
-                sim.bench.set_thru(thru)
-            resources = dict(sim.resources)
-            if on_sim_started:
-                on_sim_started(sim)
-        else:
-            resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
-        opened = open_bench(bench.settings, resources)
-        stack.callback(opened.close)
-        opened.rf_off_budget_s = bench.settings.unattended.rf_off_s
-        for line in opened.switch_off_at_connect():
-            (on_warning or _print_warning)(line)
-        with _rf_off_on_the_way_out(opened):
-            yield opened
-
-
-def _print_warning(message: str) -> None:
-    print(f"warning: {message}", file=sys.stderr, flush=True)
-
-
-@contextmanager
-def _rf_off_on_the_way_out(opened: OpenBench) -> Iterator[None]:
-    """RF off (read back, retried) however the block ends; a signal or a source left on gets
-    the one line the command line prints. Nothing is stored before the block ends."""
-    try:
-        yield
-    except BaseException as exc:
-        report = opened.switch_rf_off()
-        if isinstance(exc, (KeyboardInterrupt, Terminated)):
-            what = "terminated by SIGTERM" if isinstance(exc, Terminated) else "interrupted by Ctrl-C"
-            code = (SIGTERM_EXIT if isinstance(exc, Terminated) else SIGINT_EXIT) if report.ok else 1
-            attach_note(exc, f"{what}: {report.line()}; calibration not stored", code)
-        elif not report.ok:
-            attach_note(exc, f"error: {exc}; {report.line()}", 1)
-        raise
-    report = opened.switch_rf_off()
-    if not report.ok:
-        raise InstrumentError(f"calibration: {report.line()}; nothing stored")
-
-
-def _provenance(opened: OpenBench, roles: tuple[str, ...], step: str) -> list[dict]:
-    return [{"step": step, "role": i.role, "resource": i.resource, "idn": i.idn}
-            for i in opened.instruments if i.role in roles]
-
-
 def _analyzer_limit_dbm(bench: LoadedBench, opened: OpenBench) -> float:
-    damage_dbm = opened.analyzer.limits.get("damage_dbm")
-    limit_dbm = bench.settings.limits.max_analyzer_input_dbm
-    return limit_dbm if damage_dbm is None else min(limit_dbm, damage_dbm)
+    return analyzer_limit_dbm(bench.settings.limits, opened.analyzer.limits.get("damage_dbm"))
 
 
 def _check_level(bench: LoadedBench, level_dbm: float, gain_db: float, analyzer_limit_dbm: float, what: str) -> None:
-    """The source setting is an upper bound on the power at the DUT input plane (paths are lossy)."""
+    """The source setting is an upper bound on the power at the DUT input plane (paths are lossy).
+
+    One source is on at a time here, so one tone reaches the analyzer: not the two-tone figure of
+    plan/limits.py predicted_analyzer_input_dbm, and the output loss is taken as 0 dB (the out path
+    may not be measured yet), which can only overstate the analyzer input."""
     limits = bench.settings.limits
     if level_dbm > limits.max_tone_dbm:
         raise InputError(f"{what}: level {level_dbm:.2f} dBm is above the bench limit max_tone_dbm {limits.max_tone_dbm:.2f} dBm")
@@ -218,7 +149,7 @@ def measure_input(db_url: str, name: str, bench_path: Path, plan_path: Path, *, 
         level = _default_level(bench, gain_db, analyzer_limit_dbm) if level_dbm is None else level_dbm
         _check_level(bench, level, gain_db, analyzer_limit_dbm, f"input calibration {name}")
         paths = measure.measure_input_paths(opened, freqs_hz, level)
-        instruments = _provenance(opened, ("source1", "source2", "power_meter"), "input paths")
+        instruments = provenance(opened, ("source1", "source2", "power_meter"), "input paths")
     origin = f"calibration set {name}"
     tables = {
         "in1": table_from_arrays("in1", paths.freqs_hz, paths.in1_loss_db, origin),
@@ -260,7 +191,7 @@ def measure_output(db_url: str, name: str, bench_path: Path, plan_path: Path, *,
         _check_level(bench, level, 0.0, analyzer_limit_dbm, f"output calibration {name}")
         losses_db = measure.measure_output_path(opened, in1, freqs_hz, level, _setup(plan),
                                                 plan.settings.analyzer.noise_offset_hz)
-        instruments = _provenance(opened, ("analyzer",), "output path")
+        instruments = provenance(opened, ("analyzer",), "output path")
     table = table_from_arrays("out", freqs_hz, losses_db, view.label)
     importers.check_losses("measured out (is the thru in place?)", table.freqs_hz, table.losses_db)
     with sessions.begin() as session:
@@ -333,7 +264,7 @@ def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, 
             base, stepped = measure.measure_residual_sweeps(
                 opened, view.tables, center_hz, spacing_hz, levels, setup, noise_offset_hz, (base_db, step_atten_db))
             rows.append(_residual_row(center_hz, spacing_hz, levels, base, stepped, setup))
-        instruments = _provenance(opened, ("source1", "source2", "analyzer"), "system residual")
+        instruments = provenance(opened, ("source1", "source2", "analyzer"), "system residual")
     with sessions.begin() as session:
         replace_residuals(session, name, rows)
         add_paths(session, name, {}, instruments, f"system residual at {len(groups)} (center, spacing) pairs")

@@ -204,7 +204,8 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
         analyzer = SpectrumAnalyzer(scpi_analyzer)
         # The bench file knows this unit; its figures win over the dialect's typical ones.
         analyzer.performance = {**analyzer.performance, **settings.instruments["analyzer"].performance}
-        return OpenBench(source1, source2, analyzer, ranges, infos, opened, meter)
+        return OpenBench(source1, source2, analyzer, ranges, infos, opened, meter,
+                         rf_off_budget_s=settings.unattended.rf_off_s)
     except BaseException:
         for instrument in opened:
             instrument.close()

@@ -1,5 +1,8 @@
 """The plan as points: a plan file expanded over its axes into points with stable keys, and the
 limits every point is checked against before RF goes on.
 
+axes.py declares each axis once (unit, plan field, key part, how it is set on the bench) and the
+sweep key; points.py expands a plan over them; limits.py holds the power limits, the one
+prediction of the analyzer input, and the frequency needs of a plan.
 May import config/, planes/ and the top-level errors and units; never instruments, the store or a run.
 """

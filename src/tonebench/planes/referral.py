@@ -3,7 +3,8 @@ measurement time) and for re-referring a stored run to another calibration set.
 
 Inputs: a tone's power at the DUT input plane is the source setting less the input loss, unless
 the point was leveled with the power meter; then the meter measured it at the plane and no path
-loss enters. Outputs: the analyzer reading plus the output loss at that frequency.
+loss enters. Outputs: the analyzer reading plus the output loss at that frequency. The
+arithmetic itself is planes/arithmetic.py.
 """
 
 from __future__ import annotations
@@ -11,6 +12,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 
 from tonebench.errors import InputError
+from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
 
 PATHS = ("in1", "in2", "out")
@@ -69,11 +71,11 @@ def referred_values(row: Mapping[str, object], offsets: Mapping[str, float | Non
         if row.get(f"source{index}_correction_db") is not None:
             values[f"pin{index}_dbm"] = row[f"pin{index}_dbm"]  # measured at the plane by the meter
         else:
-            values[f"pin{index}_dbm"] = row[f"source{index}_dbm"] - offsets[f"in{index}_loss_db"]
+            values[f"pin{index}_dbm"] = arithmetic.tone_at_plane_dbm(row[f"source{index}_dbm"], offsets[f"in{index}_loss_db"])
     for column, (raw_column, loss_column) in OUTPUT_COLUMNS.items():
         raw = row.get(raw_column)
         loss = offsets.get(loss_column)
-        values[column] = None if raw is None or loss is None else raw + loss
+        values[column] = None if raw is None or loss is None else arithmetic.dut_output_dbm(raw, loss)
     return values
 
 
