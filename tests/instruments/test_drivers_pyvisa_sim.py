@@ -6,7 +6,6 @@ from __future__ import annotations
 
 import shutil
 import socket
-from pathlib import Path
 
 import pytest
 import pyvisa

@@ -4,7 +4,6 @@ hand, and the same driver against the simulated bench's power meter over TCP."""
 from __future__ import annotations
 
 import shutil
-from pathlib import Path
 
 import pytest
 import pyvisa

@@ -27,7 +27,7 @@ def _pages(tmp_path, db: str, guid: str, monkeypatch) -> tuple[str, str]:
         patch.setattr(results_sweeps, "assess_sweep", _no_assessment)
         stored = write_run_report(sessions, guid, tmp_path / "stored.html").read_text(encoding="utf-8")
     with monkeypatch.context() as patch:
-        patch.setattr(stored_sweeps, "stored_assessment", lambda result, points: None)
+        patch.setattr(stored_sweeps, "stored_assessment", lambda result, points, flags_by_point: None)
         live = write_run_report(sessions, guid, tmp_path / "live.html").read_text(encoding="utf-8")
     return stored, live
 

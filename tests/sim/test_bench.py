@@ -2,7 +2,6 @@
 
 import math
 import tomllib
-from pathlib import Path
 
 import numpy as np
 import pydantic

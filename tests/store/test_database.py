@@ -1,4 +1,5 @@
-"""The store: migrations match the models, URLs are checked, points survive a crash.
+"""The store: migrations match the models, URLs are checked, points survive a crash, the point
+record is the points table and comes back as written.
 
 Engines come from the `db_url` fixture, parameterised over backends (SQLite and a real
 PostgreSQL server started by the tests), so both pass the same suite; SQLite-only checks say so.
@@ -6,6 +7,7 @@ PostgreSQL server started by the tests), so both pass the same suite; SQLite-onl
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import os
 import subprocess
@@ -34,7 +36,10 @@ from tonebench.store import (
     session_factory,
     upgrade_database,
 )
+from tonebench.results.sweeps import stored_points
 from tonebench.store.database import database_revision, default_db_url
+from tonebench.store.point_record import RECORD_FIELDS, PointRecord
+from tonebench.store.point_writer import store_point
 
 SRC_DIR = Path(tonebench.__file__).resolve().parent.parent
 
@@ -280,3 +285,48 @@ def test_default_url_is_a_file_in_the_working_directory(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     url = default_db_url()
     assert sa.engine.make_url(url).database == str(tmp_path / "tonebench.db")
+
+
+def test_the_point_record_has_exactly_the_points_columns():
+    # Adding a measured quantity means a record field and a column; forgetting either fails here.
+    columns = {column.name: column for column in Point.__table__.columns}
+    assert set(RECORD_FIELDS) == set(columns) - {"id", "run_id", "measured_at"}
+    defaults = {f.name for f in dataclasses.fields(PointRecord) if f.default is None}
+    assert defaults == {name for name in RECORD_FIELDS if columns[name].nullable}
+
+
+def every_field_set(key: str) -> PointRecord:
+    # Distinct values per field, so a field written to or read from the wrong column shows.
+    values = {}
+    for index, field in enumerate(dataclasses.fields(PointRecord)):
+        values[field.name] = -100.0 + 1.25 * index
+    values.update(point_key=key, seq=3, status="measured", overload=True, fail_reason="none",
+                  extra_json={"atten_choice": "fixed", "step_reason": "top"})
+    return PointRecord(**values)
+
+
+def test_a_record_comes_back_from_the_store_as_written(db_url):
+    engine = open_database(db_url)
+    sessions = session_factory(engine)
+    with sessions() as session:
+        run_id = make_run(session).id
+    written = every_field_set("all")
+    store_point(sessions, run_id, written)
+    with sessions() as session:
+        (stored,) = stored_points(session, run_id)
+    assert stored.record == written
+    engine.dispose()
+
+
+def test_a_failed_point_without_extras_stores_sql_null(db_url):
+    # Not the JSON text 'null': points written before the record had SQL NULL there.
+    engine = open_database(db_url)
+    sessions = session_factory(engine)
+    with sessions() as session:
+        run_id = make_run(session).id
+    store_point(sessions, run_id, PointRecord(point_key="f", seq=0, status="failed", bench_clock_s=0.0,
+                                              center_hz=1e9, spacing_hz=1e6, f1_hz=0.9995e9, f2_hz=1.0005e9,
+                                              tone_dbm=-30.0, fail_reason="analyzer: no reply"))
+    with engine.connect() as connection:
+        assert connection.execute(sa.text("SELECT extra_json IS NULL FROM points")).scalar_one()
+    engine.dispose()

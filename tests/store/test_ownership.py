@@ -19,13 +19,14 @@ from tonebench.store.ownership import (
     close_dead_runs,
     owner_is_alive,
     process_owner,
-    store_point,
     stored_points,
     take_ownership,
 )
 from tonebench.run.event_log import RunLog, log_path_for
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Event, Point, Run, utc_now
+from tonebench.store.point_record import PointRecord
+from tonebench.store.point_writer import store_point
 from tonebench.store.records import RunRecorder
 
 
@@ -49,8 +50,8 @@ def dead_pid() -> int:
     return child.pid
 
 
-def point_row(key: str, status: str = "measured", reason: str | None = None) -> dict:
-    return dict(point_key=key, seq=0, status=status, fail_reason=reason, bench_clock_s=0.0, center_hz=2.4e9,
+def point_row(key: str, status: str = "measured", reason: str | None = None) -> PointRecord:
+    return PointRecord(point_key=key, seq=0, status=status, fail_reason=reason, bench_clock_s=0.0, center_hz=2.4e9,
                 spacing_hz=1e6, f1_hz=2.3995e9, f2_hz=2.4005e9, tone_dbm=-20.0)
 
 

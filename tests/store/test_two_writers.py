@@ -1,5 +1,5 @@
 """Two benches writing to one database at once: two processes record runs point by point through
-the run recorder (one commit per point) at the same time; afterwards every row is there, once.
+the point writer (one commit per point) at the same time; afterwards every row is there, once.
 
 The overlap is forced, not hoped for: every BARRIER_EVERY points each writer, having committed,
 reports to the test and waits until the other has reached the same place too, so each stretch
@@ -36,6 +36,8 @@ PLAN_SHA = hashlib.sha256(PLAN_TEXT.encode()).hexdigest()
 WRITER = textwrap.dedent("""
     import sys
     from tonebench.store import open_database, session_factory
+    from tonebench.store.point_record import PointRecord
+    from tonebench.store.point_writer import store_point
     from tonebench.store.records import RunRecorder
 
     url, name, n_runs, n_points, plan_text, plan_sha, every = sys.argv[1:8]
@@ -51,9 +53,10 @@ WRITER = textwrap.dedent("""
             offsets=[], metadata={"writer": name})
         for k in range(int(n_points)):
             tone_dbm = -40.0 + k
-            recorder.add_point(dict(point_key=f"p{k:03d}", seq=k, status="measured", bench_clock_s=k * 0.5,
-                                    center_hz=2.45e9, spacing_hz=1e6, f1_hz=2.4495e9, f2_hz=2.4505e9,
-                                    tone_dbm=tone_dbm, raw_f1_dbm=tone_dbm + 14.0, raw_lower_dbm=3 * tone_dbm - 20.0))
+            store_point(sessions, recorder.run_id, PointRecord(
+                point_key=f"p{k:03d}", seq=k, status="measured", bench_clock_s=k * 0.5, center_hz=2.45e9,
+                spacing_hz=1e6, f1_hz=2.4495e9, f2_hz=2.4505e9, tone_dbm=tone_dbm, raw_f1_dbm=tone_dbm + 14.0,
+                raw_lower_dbm=3 * tone_dbm - 20.0))
             if k % int(every) == 0:  # committed: meet the other writer before going on
                 print(f"at {r}-{k}", flush=True)
                 sys.stdin.readline()

@@ -9,13 +9,15 @@ analysed, or points measured after the analysis) is the run assessed again, as `
 
 from __future__ import annotations
 
+from collections import defaultdict
 from dataclasses import dataclass
 
 import numpy as np
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from tonebench.results.sweeps import _sweeps, assessed_sweeps
-from tonebench.store.models import Point, Result, Run
+from tonebench.results.sweeps import StoredPoint, assessed_sweeps, point_sweeps
+from tonebench.store.models import Point, PointFlag, Result, Run
 
 
 @dataclass(frozen=True)
@@ -70,7 +72,8 @@ def _by_id(rows) -> list:
     return sorted(rows, key=lambda row: row.id)
 
 
-def stored_assessment(result: Result | None, points: list[Point]) -> StoredAssessment | None:
+def stored_assessment(result: Result | None, points: list[StoredPoint],
+                      flags_by_point: dict[int, list[PointFlag]]) -> StoredAssessment | None:
     """The stored assessment of one sweep, or None when `result` is not that of these points."""
     details = (result.details_json or {}) if result is not None else {}
     mask = details.get("valid_mask")
@@ -88,7 +91,7 @@ def stored_assessment(result: Result | None, points: list[Point]) -> StoredAsses
     second = details.get("second_order")
     return StoredAssessment(
         fit=fit,
-        point_flags=[_by_id(point.flags) for point in points],
+        point_flags=[_by_id(flags_by_point.get(point.id, [])) for point in points],
         result_flags=_by_id(result.flags),
         iip3_bound_db=result.iip3_bound_db,
         iip3_at_least_dbm=details.get("iip3_at_least_dbm"),
@@ -98,19 +101,26 @@ def stored_assessment(result: Result | None, points: list[Point]) -> StoredAsses
     )
 
 
-def _analysed_after_points(results: list[Result], points: list[Point]) -> bool:
-    latest = max((p.measured_at for p in points if p.measured_at is not None), default=None)
+def _analysed_after_points(session: Session, run: Run, results: list[Result]) -> bool:
+    latest = session.scalar(select(func.max(Point.measured_at)).where(Point.run_id == run.id, Point.status == "measured"))
     return latest is None or all(r.created_at is not None and r.created_at >= latest for r in results)
+
+
+def _point_flags(session: Session, run: Run) -> dict[int, list[PointFlag]]:
+    flags: dict[int, list[PointFlag]] = defaultdict(list)
+    for flag in session.scalars(select(PointFlag).join(Point, PointFlag.point_id == Point.id).where(Point.run_id == run.id)):
+        flags[flag.point_id].append(flag)
+    return flags
 
 
 def report_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None):
     """(center_hz, spacing_hz, arrays, assessment) per sweep: the stored assessment when the
     run's stored results are those of its stored points, else the run assessed again."""
-    sweeps = list(_sweeps(session, run.id, tables))
+    sweeps = list(point_sweeps(session, run.id, tables))
     results = {(r.center_hz, r.spacing_hz, r.bias_v): r for r in run.results}
-    stored = [stored_assessment(results.get((c, s, b)), rows) for c, s, b, rows, _ in sweeps]
-    points = [p for *_, rows, _ in sweeps for p in rows]
-    if len(results) == len(sweeps) and None not in stored and _analysed_after_points(list(results.values()), points):
+    flags_by_point = _point_flags(session, run)
+    stored = [stored_assessment(results.get((c, s, b)), rows, flags_by_point) for c, s, b, rows, _ in sweeps]
+    if len(results) == len(sweeps) and None not in stored and _analysed_after_points(session, run, list(results.values())):
         for (center_hz, spacing_hz, _, _, arrays), assessment in zip(sweeps, stored):
             yield center_hz, spacing_hz, arrays, assessment
         return

@@ -4,6 +4,7 @@ to another calibration set from the raw readings) and what the analysis knows of
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from itertools import groupby
 
 import numpy as np
@@ -24,12 +25,10 @@ from tonebench.planes.referral import (
 )
 from tonebench.calibration.residual import check_shares
 from tonebench.calibration.sets import load_set
+from tonebench.plan.axes import sweep_key_of
 from tonebench.planes.loss_table import LossTable
-from tonebench.store.models import (
-    CalibrationSet,
-    Point,
-    Run,
-)
+from tonebench.store.models import CalibrationSet, Point, Run
+from tonebench.store.point_record import PointRecord, record_of
 
 
 POINT_ARRAYS = (
@@ -56,48 +55,59 @@ _REFERRAL_INPUTS = (
 )
 
 
-def _measured_points(session: Session, run_id: int) -> list[Point]:
-    return session.scalars(
+@dataclass(frozen=True)
+class StoredPoint:
+    """A measured point read back: its row id (which point flags refer to) and its record."""
+
+    id: int
+    record: PointRecord
+
+
+def stored_points(session: Session, run_id: int) -> list[StoredPoint]:
+    """The run's measured points, sweep by sweep, tone power up: the one way results read points."""
+    rows = session.scalars(
         select(Point)
         .where(Point.run_id == run_id, Point.status == "measured")
         .order_by(Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
     ).all()
+    return [StoredPoint(row.id, record_of(row)) for row in rows]
 
 
-def rereferred(point: Point, tables: dict[str, LossTable]) -> dict[str, float | None]:
+def rereferred(point: PointRecord | Point, tables: dict[str, LossTable]) -> dict[str, float | None]:
     """The point's DUT-referred values with another set's path losses, from its raw readings."""
     offsets = point_offsets(tables, point.f1_hz, point.f2_hz, second_order=point.raw_diff_dbm is not None)
     return referred_values({name: getattr(point, name) for name in _REFERRAL_INPUTS}, offsets)
 
 
-def _sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | None = None):
+def point_sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | None = None):
     """Per sweep, the arrays the fit takes: as stored, or re-referred to `tables` when given."""
-    points = _measured_points(session, run_id)
-    for (center_hz, spacing_hz, bias_v), group in groupby(points, key=lambda p: (p.center_hz, p.spacing_hz, p.bias_v)):
-        rows = list(group)
-        values = [rereferred(row, tables) if tables is not None else None for row in rows]
+    points = stored_points(session, run_id)
+    for (center_hz, spacing_hz, bias_v), group in groupby(points, key=lambda p: sweep_key_of(p.record)):
+        stored = list(group)
+        records = [p.record for p in stored]
+        values = [rereferred(record, tables) if tables is not None else None for record in records]
 
-        def column(name: str, rows=rows, values=values):
+        def column(name: str, records=records, values=values):
             if tables is not None and name in values[0]:
                 return [v[name] for v in values]
-            return [getattr(row, name) for row in rows]
+            return [getattr(record, name) for record in records]
 
         arrays = {name: _nan_array(column(name)) for name in POINT_ARRAYS if name != "overload"}
         arrays["overload"] = np.array([bool(v) for v in column("overload")], dtype=bool)
-        yield center_hz, spacing_hz, bias_v, rows, arrays
+        yield center_hz, spacing_hz, bias_v, stored, arrays
 
 
 def _nan_array(values) -> np.ndarray:
     return np.array([np.nan if v is None else float(v) for v in values], dtype=float)
 
 
-def sweep_data(rows: list[Point], arrays: dict[str, np.ndarray]) -> SweepData:
+def sweep_data(records: list[PointRecord], arrays: dict[str, np.ndarray]) -> SweepData:
     """The analysis input of one sweep: its (possibly re-referred) arrays plus the raw readings."""
-    raw = {name: _nan_array(getattr(row, name) for row in rows) for name in RAW_ARRAYS}
-    extra = {name: _nan_array((row.extra_json or {}).get(name) for row in rows) for name in EXTRA_ARRAYS}
+    raw = {name: _nan_array(getattr(record, name) for record in records) for name in RAW_ARRAYS}
+    extra = {name: _nan_array((record.extra_json or {}).get(name) for record in records) for name in EXTRA_ARRAYS}
     # A second-order product's noise floor has the same output loss as the product.
     noise = {side: extra[f"raw_noise_{side}_dbm"] + arrays[f"im2_{side}_dbm"]
-             - _nan_array(getattr(row, f"raw_{side}_dbm") for row in rows) for side in ("diff", "sum")}
+             - _nan_array(getattr(record, f"raw_{side}_dbm") for record in records) for side in ("diff", "sum")}
     return SweepData(**arrays, **raw, raw_noise_lower_step_dbm=extra["raw_noise_lower_step_dbm"],
                      raw_noise_upper_step_dbm=extra["raw_noise_upper_step_dbm"],
                      noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
@@ -145,11 +155,12 @@ def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, sp
 
 
 def assessed_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None):
-    """(center, spacing, bias, rows, arrays, assessment) for each sweep of the run."""
+    """(center, spacing, bias, stored points, arrays, assessment) for each sweep of the run."""
     cal = session.get(CalibrationSet, set_id) if set_id is not None else None
-    for center_hz, spacing_hz, bias_v, rows, arrays in _sweeps(session, run.id, tables):
-        assessment = assess_sweep(sweep_data(rows, arrays), analysis_settings(run, cal, center_hz, spacing_hz))
-        yield center_hz, spacing_hz, bias_v, rows, arrays, assessment
+    for center_hz, spacing_hz, bias_v, stored, arrays in point_sweeps(session, run.id, tables):
+        data = sweep_data([p.record for p in stored], arrays)
+        assessment = assess_sweep(data, analysis_settings(run, cal, center_hz, spacing_hz))
+        yield center_hz, spacing_hz, bias_v, stored, arrays, assessment
 
 
 def referral_tables(session: Session, run: Run, cal_name: str | None) -> tuple[int | None, dict | None]:
@@ -157,7 +168,7 @@ def referral_tables(session: Session, run: Run, cal_name: str | None) -> tuple[i
     if cal_name is None:
         return run.calibration_set_id, None
     view = load_set(session, cal_name)
-    pairs = sorted({(p.f1_hz, p.f2_hz) for p in _measured_points(session, run.id)})
+    pairs = sorted({(p.record.f1_hz, p.record.f2_hz) for p in stored_points(session, run.id)})
     check_coverage(view.tables, pairs, f"run {run.guid[:8]}: {view.label}")
     if view.id == run.calibration_set_id:
         return view.id, None

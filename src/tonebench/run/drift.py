@@ -1,4 +1,4 @@
-"""Slow level drift of a source across the points of a run (not within one point: recovery.py's
+"""Slow level drift of a source across the points of a run (not within one point: point_guard.py's
 settle check covers that).
 
 What is watched: the difference between the two tones' analyzer readings, f1 minus f2 (dB). Both
@@ -24,6 +24,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from tonebench.plan.axes import SweepKey
+
 # Consecutive points of a sweep on the same side of its first point before a move counts as drift.
 ONE_SIDED_POINTS = 3
 
@@ -45,8 +47,8 @@ class DriftTracker:
     def __init__(self, tolerance_db: float, log):
         self.tolerance_db = tolerance_db
         self.log = log
-        self._sweeps: dict[tuple, _Sweep] = {}
-        self._first_seen: dict[tuple[float, float, float], tuple[tuple, float]] = {}
+        self._sweeps: dict[SweepKey, _Sweep] = {}
+        self._first_seen: dict[tuple[float, float, float], tuple[SweepKey, float]] = {}
         self.events = 0
 
     def observe(self, point, f1_dbm: float, f2_dbm: float) -> str | None:
@@ -54,7 +56,7 @@ class DriftTracker:
         if self.tolerance_db <= 0:
             return None
         diff_db = f1_dbm - f2_dbm
-        sweep_key = (point.center_hz, point.spacing_hz, point.bias_v)
+        sweep_key = point.sweep_key
         sweep = self._sweeps.setdefault(sweep_key, _Sweep())
         sweep.diffs_db.append(diff_db)
         reasons = [reason for reason in (self._in_sweep(point, sweep), self._revisited(point, sweep_key, diff_db))
@@ -77,7 +79,7 @@ class DriftTracker:
             self._say(point, reason, {"moved_db": moved_db, "excursions_db": [round(e, 4) for e in excursions]})
         return reason
 
-    def _revisited(self, point, sweep_key: tuple, diff_db: float) -> str | None:
+    def _revisited(self, point, sweep_key: SweepKey, diff_db: float) -> str | None:
         tones = (point.f1_hz, point.f2_hz, point.tone_dbm)
         first_sweep, first_db = self._first_seen.setdefault(tones, (sweep_key, diff_db))
         moved_db = diff_db - first_db

@@ -1,4 +1,11 @@
-"""The measurement store: tables (models) and opening/migrating a database (database)."""
+"""The measurement store: the tables (models/, one module per table family), opening and migrating
+a database (database), the point record (point_record) and its one writer (point_writer), a run's
+lifecycle rows (records), run ownership and resuming (ownership), the bench lock (bench_lock) and
+finding a run (lookups).
+
+Imports only tonebench.errors and the package version: never the instruments, the analysis or
+any layer above (calibration, catalog, results, report, run, queue, cli).
+"""
 
 from tonebench.store.database import (
     DEFAULT_DB_URL,

@@ -3,8 +3,8 @@
 A run records its owner ("host:pid") and a heartbeat. A run left 'running' whose owner is gone
 (killed, crashed, the machine lost power) is closed as aborted with that reason, so its status is
 truthful, and `tonebench resume` can continue it: points already committed are skipped by their
-key, failed points are measured again (their row replaced), and the unique (run, point_key)
-constraint makes a duplicate impossible even if two resumes raced.
+key, failed points are measured again (their row replaced by store/point_writer.py), and the
+unique (run, point_key) constraint makes a duplicate impossible even if two resumes raced.
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ import os
 import platform
 import time
 
-from sqlalchemy import delete, or_, select, update
+from sqlalchemy import or_, select, update
 from sqlalchemy.orm import Session, sessionmaker
 
 from tonebench.errors import InputError
@@ -133,15 +133,3 @@ def stored_points(session: Session, run_id: int) -> dict[str, str]:
     """point_key -> status of every point committed for the run."""
     return dict(session.execute(select(Point.point_key, Point.status).where(Point.run_id == run_id)).all())
 
-
-def store_point(sessions: sessionmaker, run_id: int, row: dict) -> None:
-    """Commit one point; a failed row with the same key is replaced, a measured one never is."""
-    with sessions.begin() as session:
-        existing = session.scalars(
-            select(Point).where(Point.run_id == run_id, Point.point_key == row["point_key"])
-        ).first()
-        if existing is not None:
-            if existing.status == "measured":
-                raise InputError(f"point {row['point_key']} of run {run_id} is already measured; not stored twice")
-            session.execute(delete(Point).where(Point.id == existing.id))
-        session.add(Point(run_id=run_id, measured_at=utc_now(), **row))

@@ -1,4 +1,5 @@
-"""Write one run's lifecycle to the store: its identity, its points as measured, its end."""
+"""Write one run's lifecycle to the store: its identity, its events, its end (its points go
+through store/point_writer.py)."""
 
 from __future__ import annotations
 
@@ -20,7 +21,6 @@ from tonebench.store.models import (
     Instrument,
     Offset,
     Plan,
-    Point,
     Run,
     utc_now,
 )
@@ -101,10 +101,6 @@ class RunRecorder:
             session.add(Event(run_id=run.id, at=utc_now(), level="info", kind="run-start", message=f"run {guid} started"))
             run_id = run.id
         return cls(sessions, run_id, guid)
-
-    def add_point(self, row: dict) -> None:
-        with self.sessions.begin() as session:
-            session.add(Point(run_id=self.run_id, measured_at=utc_now(), **row))
 
     def event(self, level: str, kind: str, message: str, details: dict | None = None) -> None:
         with self.sessions.begin() as session:
