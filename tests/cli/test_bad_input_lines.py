@@ -22,7 +22,7 @@ import sqlalchemy as sa
 from conftest import SAMPLE_RUNS
 from typer.testing import CliRunner
 
-import tonebench.sim.launch as launch
+import tonebench.run.bench_connection as bench_connection
 from tonebench.cli import app
 
 SIM_BENCH = SAMPLE_RUNS / "sim_bench.toml"
@@ -342,7 +342,7 @@ def test_full_disk_leaves_the_run_resumable_and_says_so(work, tiny_disk, monkeyp
     filler = fill_disk(tiny_disk, leave_kib=300)
     # In this process, so the simulated sources can be read back after the refusal.
     sims = []
-    real_start = launch.start_sim_bench
+    real_start = bench_connection.start_sim_bench
 
     @contextmanager
     def start_and_keep(scenario):
@@ -350,7 +350,7 @@ def test_full_disk_leaves_the_run_resumable_and_says_so(work, tiny_disk, monkeyp
             sims.append(sim)
             yield sim
 
-    monkeypatch.setattr(launch, "start_sim_bench", start_and_keep)
+    monkeypatch.setattr(bench_connection, "start_sim_bench", start_and_keep)  # where a run starts it
     monkeypatch.chdir(work)
     result = CliRunner().invoke(app, ["run", "plan.toml", "--bench", str(SIM_BENCH), "--db", url,
                                       "--report", str(work / "r.html")])

@@ -11,7 +11,9 @@ from pydantic import BaseModel, ConfigDict, Field, field_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
 from tonebench.errors import InputError
-from tonebench.instruments.dialect import ANALYZER_PERFORMANCE_KEYS
+from tonebench.config.instrument_keys import ANALYZER_PERFORMANCE_KEYS
+from tonebench.config.resource_names import check_resource_name
+from tonebench.sim.scenario import Scenario
 
 REQUIRED_ROLES = ("source1", "source2", "analyzer")
 # A power meter at the DUT input plane: measured input calibration and closed-loop leveling.
@@ -156,7 +158,7 @@ class LoadedBench(BaseModel):
 
     path: Path
     settings: BenchFile
-    scenario: Any = None  # tonebench.sim.scenario.Scenario on a simulated bench
+    scenario: Scenario | None = None  # on a simulated bench
 
 
 def load_bench(path: Path) -> LoadedBench:
@@ -164,8 +166,6 @@ def load_bench(path: Path) -> LoadedBench:
     settings = validate(BenchFile, data, f"bench file {path}")
     scenario = None
     if settings.simulated:
-        from tonebench.sim.scenario import Scenario
-
         scenario = validate(Scenario, settings.simulation, f"bench file {path} [simulation]")
     else:
         for role, entry in settings.instruments.items():
@@ -181,8 +181,6 @@ def load_bench(path: Path) -> LoadedBench:
 def check_resources(settings: BenchFile, path: Path) -> None:
     """Every role's resource string, when the file is read: a bad one is refused before any
     connection is tried, naming the role and the allowed forms."""
-    from tonebench.instruments.transport import check_resource_name
-
     for role, entry in settings.instruments.items():
         if entry.resource:
             check_resource_name(entry.resource, f"bench file {path}: instruments.{role}")

@@ -23,6 +23,7 @@ from pydantic import (
     model_validator,
 )
 
+from tonebench.config.instrument_keys import KNOWN_LIMITS, KNOWN_PERFORMANCE, KNOWN_STATUS
 from tonebench.config.loading import describe_validation_error, read_toml
 from tonebench.errors import InputError
 from tonebench.packaged import data_dir
@@ -57,25 +58,6 @@ REQUIRED_OPERATIONS: dict[str, tuple[str, ...]] = {
     "supply": _COMMON_OPERATIONS,
 }
 
-# The numbers of [limits], [performance] and [status] per role: (required, optional) keys. These
-# are the keys the role drivers, the safety checks and the planning read (instruments/*.py,
-# safety.py, sequencer.py, runner.py); any other key is refused, so a misspelled one cannot
-# silently remove a limit. The analyzer's damage level is required: the safety checks and the
-# reply judging (an impossible reading) need it.
-KNOWN_LIMITS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
-    "source": (("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"), ()),
-    "analyzer": (("min_freq_hz", "max_freq_hz", "min_atten_db", "max_atten_db", "damage_dbm"),
-                 ("max_mixer_dbm", "atten_step_db")),
-    "power_meter": (("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"), ()),
-    "supply": ((), ()),
-}
-# level_accuracy_db is optional here and may also come from the bench file, which takes the same
-# keys (config/bench_file.py imports ANALYZER_PERFORMANCE_KEYS).
-KNOWN_PERFORMANCE: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
-    "analyzer": (("mixer_toi_dbm", "danl_dbm_per_hz", "sweep_time_factor"), ("level_accuracy_db",)),
-}
-ANALYZER_PERFORMANCE_KEYS: tuple[str, ...] = sum(KNOWN_PERFORMANCE["analyzer"], ())
-KNOWN_STATUS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {"analyzer": (("overload_bit",), ())}
 _NUMBER_TABLES = {"limits": KNOWN_LIMITS, "performance": KNOWN_PERFORMANCE, "status": KNOWN_STATUS}
 # Status bits are bits of a 16-bit SCPI status register (SCPI-1999 vol 1 ch. 9, from memory).
 STATUS_BITS = range(0, 16)
