@@ -1,4 +1,11 @@
-"""Instrument layer: role drivers (source, analyzer) over SCPI dialect files, through pyvisa."""
+"""Instrument layer: transport (pyvisa), the SCPI exchange (scpi, scpi_errors) and its supervision
+(retries, reconnects), dialect files, role drivers (source, analyzer, power meter), the right
+instrument behind each role (role_check), opening a bench real or simulated (open_bench) and RF
+off confirmed on every way out (rf_guard).
+
+May import config/, plan/ (source ranges), planes/, sim/ and the top-level errors and units; never the
+store, the analysis or a run.
+"""
 
 from tonebench.errors import LimitError
 from tonebench.instruments.analyzer import (
