@@ -1,9 +1,10 @@
 """Instrument layer: transport (pyvisa), the SCPI exchange (scpi, scpi_errors) and its supervision
 (retries, reconnects), dialect files, role drivers (source, analyzer, power meter), the right
 instrument behind each role (role_check), opening a bench real or simulated (open_bench) and RF
-off confirmed on every way out (rf_guard).
+off confirmed on every way out (rf_guard). A simulated bench is started by the run (run/bench_connection)
+and opened here like any other, by its resource strings.
 
-May import config/, plan/ (source ranges), planes/, sim/ and the top-level errors and units; never the
+May import config/, plan/ (source ranges) and the top-level errors, units and packaged; never the
 store, the analysis or a run.
 """
 
