@@ -21,7 +21,7 @@ from tonebench.instruments.role_check import (
     check_role,
 )
 from tonebench.instruments.scpi import ScpiInstrument
-from tonebench.instruments.source import SignalSource
+from tonebench.instruments.source import PowerGuard, SignalSource
 from tonebench.instruments.supervision import Supervision
 from tonebench.instruments.transport import open_resource
 from tonebench.plan.limits import FreqRange, SourceRange
@@ -166,7 +166,8 @@ def bench_freq_ranges(settings: BenchFile) -> dict[str, FreqRange]:
     return ranges
 
 
-def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None) -> OpenBench:
+def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None,
+               power_guard: PowerGuard | None = None) -> OpenBench:
     """Connect to source1, source2, analyzer and (if the bench file has one) the power meter;
     `resources` maps each role to a VISA resource. With `supervision`, timeouts and dropped
     connections are retried and reconnected per its policy.
@@ -194,7 +195,7 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
         if meter is not None:
             # After a reopened connection the meter may have lost its mode and frequency.
             opened[3].add_restore_hook(meter.prepare)
-        source1, source2 = SignalSource(scpi1), SignalSource(scpi2)
+        source1, source2 = SignalSource(scpi1, power_guard), SignalSource(scpi2, power_guard)
         ranges = tuple(
             SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)
         )

@@ -27,7 +27,7 @@ class SourceState:
 class SignalSource(RoleDriver):
     """A signal generator reached through a source dialect. Frequencies in Hz, powers in dBm."""
 
-    def __init__(self, instrument: ScpiInstrument):
+    def __init__(self, instrument: ScpiInstrument, power_guard: PowerGuard | None = None):
         super().__init__(instrument)
         limits = instrument.dialect.limits
         self.min_power_dbm = limits["min_power_dbm"]
@@ -37,7 +37,8 @@ class SignalSource(RoleDriver):
         # What this driver last asked for, recorded before it is sent: a reopened connection or
         # an instrument that lost its state gets exactly this again (restore).
         self.wanted = SourceState(rf_on=False)
-        self.power_guard: PowerGuard | None = None
+        # A run's limits on the power into the DUT and the analyzer, in force from the first command.
+        self.power_guard = power_guard
         instrument.add_restore_hook(self.restore)
 
     def _wait_s(self) -> float:

@@ -9,9 +9,12 @@ from contextlib import ExitStack
 
 from tonebench.config.bench_file import LoadedBench
 from tonebench.errors import InputError
+from tonebench.instruments.dialect import load_dialect
 from tonebench.instruments.open_bench import OpenBench, open_bench
 from tonebench.instruments.scpi import identity
 from tonebench.instruments.supervision import InstrumentEvent, RetryPolicy, Supervision
+from tonebench.plan.limits import power_guard
+from tonebench.planes.loss_table import LossTable
 from tonebench.run.events import EventRelay
 from tonebench.sim.launch import start_sim_bench
 
@@ -20,11 +23,19 @@ def print_warning(message: str) -> None:
     print(f"warning: {message}", file=sys.stderr, flush=True)
 
 
-def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started,
-                  warn: Callable[[str], None] | None = None) -> tuple[OpenBench, EventRelay, Supervision]:
+def run_power_guard(bench: LoadedBench, offsets: dict[str, LossTable]):
+    """The run-time check of every source power command: the bench file's limits on the power
+    into the DUT and the analyzer (its dialect's damage level), with the run's path losses."""
+    damage_dbm = load_dialect(bench.settings.instruments["analyzer"].dialect).limits.get("damage_dbm")
+    return power_guard(offsets, bench.settings.limits, damage_dbm)
+
+
+def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started, warn: Callable[[str], None] | None = None,
+                  offsets: dict[str, LossTable] | None = None) -> tuple[OpenBench, EventRelay, Supervision]:
     """Start the simulator for a simulated bench, then open every instrument under supervision
     and switch RF off at every source (an earlier command killed with RF on is said in an event
-    and a warning); both are closed when `stack` unwinds."""
+    and a warning); both are closed when `stack` unwinds. With the run's `offsets`, every source
+    power command is checked against the bench limits from the sources' first command on."""
     if bench.settings.simulated:
         sim = stack.enter_context(start_sim_bench(bench.scenario))
         resources = dict(sim.resources)
@@ -34,7 +45,8 @@ def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started,
         resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
     relay = EventRelay()
     supervision = supervision_for(bench, relay)
-    open_instruments = open_bench(bench.settings, resources, supervision)
+    guard = None if offsets is None else run_power_guard(bench, offsets)
+    open_instruments = open_bench(bench.settings, resources, supervision, guard)
     stack.callback(open_instruments.close)
     for line in open_instruments.switch_off_at_connect():
         relay(InstrumentEvent(line.split(" ", 1)[0], "rf-found-on", "warning", line))

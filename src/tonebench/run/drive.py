@@ -1,4 +1,4 @@
-"""Measuring a prepared run: ownership, the run-time power guard, supervision and the watchdog
+"""Measuring a prepared run: ownership, supervision and the watchdog
 around the sequencer, then the end stored truthfully (tonebench.run.ending)."""
 
 from __future__ import annotations
@@ -10,7 +10,6 @@ from tonebench.errors import InstrumentError
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.instruments.rf_guard import Terminated, stop_signals
 from tonebench.instruments.supervision import RecoveryStopped
-from tonebench.plan.limits import power_guard
 from tonebench.run import ending
 from tonebench.run.ending import RunOutcome
 from tonebench.run.prepared import PreparedRun
@@ -71,7 +70,7 @@ def drive(run: PreparedRun, on_progress: ProgressCallback | None,
 
 def _take_over(run: PreparedRun, on_run_started: Callable[[str], None] | None) -> Watchdog:
     """Make the run ours (said in a 'resume' event when resuming), route the instruments' events
-    and activity to it, arm the power guard; returns the watchdog, not yet started."""
+    and activity to it; returns the watchdog, not yet started."""
     take_ownership(run.sessions, run.recorder.run_id, resuming=run.resume_note is not None)
     if run.resume_note is not None:
         run.log.event("info", "resume", run.resume_note, {"done": len(run.done_keys),
@@ -80,10 +79,6 @@ def _take_over(run: PreparedRun, on_run_started: Callable[[str], None] | None) -
     run.relay.attach(run.log, watchdog.kick)
     if on_run_started:
         on_run_started(run.recorder.guid)
-    guard = power_guard(run.offsets, run.bench.settings.limits, run.instruments.analyzer.limits.get("damage_dbm"))
-    for source in run.instruments.sources():
-        # The sources are built when the bench opens, before the run's losses are chosen.
-        source.power_guard = guard
     return watchdog
 
 

@@ -135,7 +135,7 @@ def _check_and_hold(stack: ExitStack, sessions: sessionmaker, stored: _StoredRun
     plan_origin = f"run {stored.guid} plan"
     check_plan_frequencies(remaining, plan.settings, bench.settings, bench_freq_ranges(bench.settings), plan_origin)
     check_bench_free(sessions, stored.bench_name, except_run_id=stored.run_id)  # before talking to its instruments
-    instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, on_warning)
+    instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, on_warning, stored.offsets)
     check_same_instruments(stored.guid, stored.instrument_ids, instruments)
     check_plan(remaining, stored.offsets, bench.settings.limits, instruments.source_ranges,
                instruments.analyzer.limits.get("damage_dbm"), plan_origin)

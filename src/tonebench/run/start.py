@@ -107,7 +107,7 @@ def _check_and_connect(stack: ExitStack, files: _RunFiles, db_url: str, cal_name
         warn(chosen.stale_message)
     check_plan_frequencies(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings), files.origin)
     check_bench_free_at(db_url, sessions, bench.settings.bench.name)  # before talking to its instruments
-    instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, warn)
+    instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, warn, chosen.tables)
     check_plan(points, chosen.tables, bench.settings.limits, instruments.source_ranges,
                instruments.analyzer.limits.get("damage_dbm"), files.origin)
     leveler = make_leveler(bench, instruments, points, files.origin)
