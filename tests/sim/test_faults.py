@@ -12,7 +12,8 @@ import pytest
 from tonebench.errors import InputError
 from tonebench.sim import scpi_parser as scpi
 from tonebench.sim.signal_chain import SimBench
-from tonebench.sim.faults import FaultSchedule, FaultSpec, faults_from_rows
+from tonebench.config.loading import validate
+from tonebench.sim.faults import FaultSchedule, FaultSpec
 from tonebench.sim.instruments import SimSource
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.server import InstrumentServer
@@ -81,16 +82,17 @@ def test_empty_prefix_counts_every_line():
     "row, field",
     [
         ({"instrument": "source1", "kind": "melt"}, "kind"),
-        ({"instrument": "source1", "kind": "stall"}, "(top level)"),  # a stall needs duration_s
+        ({"instrument": "source1", "kind": "stall"}, "field 'faults.1': a stall fault needs duration_s"),
         ({"instrument": "source1", "kind": "drop", "nth": 0}, "nth"),
         ({"instrument": "source1", "kind": "drop", "when": 3}, "when"),
     ],
 )
 def test_bad_fault_rows_are_one_line_input_errors(row, field):
+    # As a bench file's [[simulation.faults]] rows are read: through its [simulation] table.
     with pytest.raises(InputError) as caught:
-        faults_from_rows([{"instrument": "analyzer", "kind": "drop"}, row], "bench file b.toml")
+        validate(Scenario, {"faults": [{"instrument": "analyzer", "kind": "drop"}, row]}, "bench file b.toml [simulation]")
     message = str(caught.value)
-    assert "\n" not in message and "bench file b.toml faults[1]" in message and field in message
+    assert "\n" not in message and "bench file b.toml [simulation]: field 'faults.1" in message and field in message
 
 
 # --- each fault at the connection ---------------------------------------------------------------

@@ -33,10 +33,8 @@ import time
 from dataclasses import dataclass
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from tonebench.config.loading import describe_validation_error
-from tonebench.errors import InputError
 
 FaultKind = Literal["stall", "drop", "error", "reboot", "unsettled", "reading", "drift"]
 FAULT_KINDS: tuple[str, ...] = ("stall", "drop", "error", "reboot", "unsettled", "reading", "drift")
@@ -121,14 +119,3 @@ class FaultSchedule:
         """Faults that have not fired as often as scheduled."""
         with self._lock:
             return [spec for spec, count in zip(self.specs, self._fired_count) if count < spec.repeat]
-
-
-def faults_from_rows(rows: list[dict], origin: str) -> FaultSchedule:
-    """Schedule from `[[simulation.faults]]` rows; bad rows raise InputError naming `origin`."""
-    specs = []
-    for index, row in enumerate(rows):
-        try:
-            specs.append(FaultSpec.model_validate(row))
-        except ValidationError as exc:
-            raise InputError(describe_validation_error(exc, f"{origin} faults[{index}]")) from None
-    return FaultSchedule(specs)
