@@ -20,9 +20,11 @@ import pytest
 import pyvisa
 import sqlalchemy as sa
 from conftest import SAMPLE_RUNS
+from hardware_benches import hardware_bench, one_error_line
+from sim_runs import rf_never_on, write_plan
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
-from test_preflight import count_rows, hardware_bench, one_error_line, rf_never_on, write_plan
+from stored_rows import count_rows
 from typer.testing import CliRunner
 
 from tonebench.cli import app

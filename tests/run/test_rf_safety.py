@@ -13,10 +13,10 @@ import time
 import pytest
 import pyvisa
 from conftest import SAMPLE_RUNS
+from sim_runs import rf_is_off, write_bench, write_plan
 from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
-from test_faults_in_runs import rf_is_off, stored, write_bench, write_plan
-from test_resume import count_points
+from stored_rows import count_points, stored
 
 from tonebench.errors import InputError
 from tonebench.instruments import SignalSource, load_dialect, open_resource
