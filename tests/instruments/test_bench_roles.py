@@ -16,7 +16,6 @@ import threading
 import time
 from pathlib import Path
 
-import pytest
 import pyvisa
 import sqlalchemy as sa
 from conftest import SAMPLE_RUNS
@@ -36,12 +35,6 @@ SMALL_PLAN = (SAMPLE_RUNS / "demo_plan.toml").read_text().replace("[2.40e9, 2.45
     "tone_start_dbm = -40.0", "tone_start_dbm = -30.0").replace("tone_stop_dbm = -8.0", "tone_stop_dbm = -26.0")
 ANALYZER_IDN = "tonebench,simulated spectrum analyzer,SIM-SA-0001,0.1"
 SOURCE_IDN = "tonebench,simulated two-tone source,SIM-SRC-0001,0.1"
-
-
-@pytest.fixture
-def sim():
-    with start_sim_bench(Scenario()) as running:
-        yield running
 
 
 def run_cli(tmp_path: Path, bench: Path):

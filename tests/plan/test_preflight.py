@@ -19,19 +19,11 @@ from tonebench.cli import app
 from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError
 from tonebench.plan.points import expand
-from tonebench.sim.launch import start_sim_bench
-from tonebench.sim.scenario import Scenario
 from tonebench.store.models import CalibrationSet, Job, Run
 
 # The demo plan's highest read: the upper IM3 product 2f2-f1 of 2.48 GHz +/- 0.5 MHz, over a
 # 10 kHz span (10 RBW); the noise marker sits 4 kHz above it.
 TOP_PRODUCT_HZ = 2.4815e9
-
-
-@pytest.fixture
-def sim():
-    with start_sim_bench(Scenario()) as running:
-        yield running
 
 
 # --- the point count -----------------------------------------------------------------------------

@@ -24,15 +24,7 @@ from tonebench.instruments.scpi import LimitError, ScpiInstrument
 from tonebench.instruments.supervision import RetryPolicy, Supervision
 from tonebench.run.start import execute_run
 from tonebench.run.watchdog import Watchdog, WatchdogTripped
-from tonebench.sim.launch import start_sim_bench
-from tonebench.sim.scenario import Scenario
 from tonebench.store.models import Run
-
-
-@pytest.fixture
-def sim():
-    with start_sim_bench(Scenario()) as running:
-        yield running
 
 
 def open_source(sim, role: str) -> SignalSource:
