@@ -2,6 +2,9 @@ from pathlib import Path
 
 import pytest
 
+from tonebench.sim.launch import start_sim_bench
+from tonebench.sim.scenario import Scenario
+
 PROJECT_ROOT = Path(__file__).resolve().parent.parent
 SAMPLE_RUNS = PROJECT_ROOT / "sample_runs"
 
@@ -14,6 +17,13 @@ def demo_plan_text() -> str:
 @pytest.fixture
 def sim_bench_text() -> str:
     return (SAMPLE_RUNS / "sim_bench.toml").read_text()
+
+
+@pytest.fixture
+def sim():
+    """A default simulated bench served from this process, for hardware bench files to point at."""
+    with start_sim_bench(Scenario()) as running:
+        yield running
 
 
 # --- A real PostgreSQL server for the tests that need one ---------------------------------------

@@ -5,22 +5,12 @@ Reference data are built here from closed forms with numpy, never from the code 
 
 import numpy as np
 import pytest
+from fifty_ohm import dbm_to_volts, volts_to_dbm
 from hypothesis import given
 from hypothesis import strategies as st
 
 from tonebench.analysis import fit_sweep, noise_corrected_dbm, p1db, point_intercepts
 from tonebench.errors import InputError
-
-R_OHM = 50.0
-
-
-def volts_to_dbm(vpeak):
-    """P = Vpeak^2 / (2 R) in 50 ohm, to dBm (SI definitions, computed here independently)."""
-    return 10.0 * np.log10(np.abs(vpeak) ** 2 / (2.0 * R_OHM) / 1e-3)
-
-
-def dbm_to_volts(p_dbm):
-    return np.sqrt(2.0 * R_OHM * 1e-3 * 10.0 ** (np.asarray(p_dbm, dtype=float) / 10.0))
 
 
 def true_iip3_dbm(a1, a3):

@@ -8,6 +8,7 @@ cos((w1+w2) t)], so each second-order product has amplitude a2 A1 A2, and the cu
 
 import numpy as np
 import pytest
+from fifty_ohm import dbm_to_volts, volts_to_dbm
 from simsweep import measure_sweep
 
 from tonebench.analysis import (
@@ -18,16 +19,6 @@ from tonebench.analysis import (
 )
 from tonebench.sim import physics
 from tonebench.sim.scenario import Scenario
-
-R_OHM = 50.0
-
-
-def dbm_to_volts(p_dbm):
-    return np.sqrt(2.0 * R_OHM * 1e-3 * 10.0 ** (np.asarray(p_dbm, dtype=float) / 10.0))
-
-
-def volts_to_dbm(v):
-    return 10.0 * np.log10(np.abs(v) ** 2 / (2.0 * R_OHM) / 1e-3)
 
 
 @pytest.mark.parametrize("p1_dbm, p2_dbm", [(-40.0, -40.0), (-30.0, -33.0), (-55.0, -50.0)])

@@ -9,10 +9,9 @@ import numpy as np
 import pytest
 from sqlalchemy import create_engine, func, select
 from sqlalchemy.orm import Session
-from typer.testing import CliRunner
+from cli_invoke import invoke
 
 from tonebench.calibration.importers import read_touchstone
-from tonebench.cli import app
 from tonebench.errors import InputError
 from tonebench.store.models import CalibrationOffset, CalibrationSet
 
@@ -23,12 +22,6 @@ SKRF_DATA = Path(skrf.__file__).parent / "data"
 MEASURED_2PORT = SKRF_DATA / "ind.s2p"
 # Another 2-port shipped with scikit-rf (1 to 10 GHz in 100 MHz steps), for cascading.
 SECOND_2PORT = SKRF_DATA / "ntwk1.s2p"
-
-runner = CliRunner(env={"COLUMNS": "220"})
-
-
-def invoke(*args):
-    return runner.invoke(app, [str(a) for a in args])
 
 
 def stored_sets(db: str) -> int:

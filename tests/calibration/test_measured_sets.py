@@ -13,22 +13,15 @@ import pytest
 from sqlalchemy import create_engine, func, select, update
 from sqlalchemy.orm import Session
 from calibration_benches import PATH_NAMES, simulation_table, truth, write_bench, write_plan
-from typer.testing import CliRunner
+from cli_invoke import invoke
 
 from tonebench.calibration import workflow
-from tonebench.cli import app
 from tonebench.planes.loss_table import LossTable
 from tonebench.results.stored_results import analyze_run
 from tonebench.results.sweeps import rereferred
 from tonebench.run.start import execute_run
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import CalibrationSet, Event, Point, Result, Run
-
-runner = CliRunner(env={"COLUMNS": "220"})
-
-
-def invoke(*args):
-    return runner.invoke(app, [str(a) for a in args])
 
 
 def results_by_center(outcome) -> dict[float, object]:

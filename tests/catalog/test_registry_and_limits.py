@@ -13,25 +13,19 @@ import numpy as np
 import pytest
 import sqlalchemy as sa
 from conftest import SAMPLE_RUNS
-from typer.testing import CliRunner
+from cli_invoke import invoke
 
 from tonebench.catalog.devices import add_device, get_device, list_devices
 from tonebench.catalog.limits import LimitRule, add_limit, apply_verdicts, judge, list_limits, remove_limit
 from tonebench.catalog.query import ResultFilter, find_results
 from tonebench.catalog.synthetic import Layout, fill
-from tonebench.cli import app
 from tonebench.errors import InputError
 from tonebench.store import open_database, session_factory
 from tonebench.store.models import Device, Result, Run
 
-runner = CliRunner(env={"COLUMNS": "220"})
 
 SMALL = Layout(centers_hz=(2.40e9, 2.45e9, 2.50e9), spacings_hz=(1.0e6, 10.0e6), biases_v=(None, 3.3),
                tones_dbm=(-30.0, -20.0, -10.0))
-
-
-def invoke(*args):
-    return runner.invoke(app, [str(a) for a in args])
 
 
 # --- devices ------------------------------------------------------------------------------------

@@ -8,11 +8,8 @@ import textwrap
 
 import pytest
 from conftest import SAMPLE_RUNS
-from typer.testing import CliRunner
+from cli_invoke import invoke
 
-from tonebench.cli import app
-
-runner = CliRunner(env={"COLUMNS": "220"})  # wide enough for the results table
 
 SHORT_PLAN = textwrap.dedent(
     """
@@ -53,10 +50,6 @@ def hardware_bench(resources: dict[str, str], dialect_analyzer: str = "generic-a
 def workdir(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     return tmp_path
-
-
-def invoke(*args):
-    return runner.invoke(app, [str(a) for a in args])
 
 
 def assert_refused(result, expected: str, workdir):

@@ -16,13 +16,14 @@ import threading
 import time
 from pathlib import Path
 
-import pytest
 import pyvisa
 import sqlalchemy as sa
 from conftest import SAMPLE_RUNS
+from hardware_benches import hardware_bench, one_error_line
+from sim_runs import rf_never_on, write_plan
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
-from test_preflight import count_rows, hardware_bench, one_error_line, rf_never_on, write_plan
+from stored_rows import count_rows
 from typer.testing import CliRunner
 
 from tonebench.cli import app
@@ -34,12 +35,6 @@ SMALL_PLAN = (SAMPLE_RUNS / "demo_plan.toml").read_text().replace("[2.40e9, 2.45
     "tone_start_dbm = -40.0", "tone_start_dbm = -30.0").replace("tone_stop_dbm = -8.0", "tone_stop_dbm = -26.0")
 ANALYZER_IDN = "tonebench,simulated spectrum analyzer,SIM-SA-0001,0.1"
 SOURCE_IDN = "tonebench,simulated two-tone source,SIM-SRC-0001,0.1"
-
-
-@pytest.fixture
-def sim():
-    with start_sim_bench(Scenario()) as running:
-        yield running
 
 
 def run_cli(tmp_path: Path, bench: Path):

@@ -14,6 +14,7 @@ from pathlib import Path
 
 import pytest
 from conftest import PROJECT_ROOT, SAMPLE_RUNS
+from sim_runs import toml_value
 from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
 from typer.testing import CliRunner
@@ -46,14 +47,6 @@ SHORT_PLAN = textwrap.dedent(
     atten_db = 20.0
     """
 )
-
-
-def toml_value(value) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, str):
-        return f'"{value}"'
-    return repr(value)
 
 
 def sim_bench_file(folder: Path, faults: list[dict] = (), seed: int = 7, unattended: dict | None = None) -> Path:

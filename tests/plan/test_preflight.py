@@ -9,93 +9,21 @@ went on, whatever the run believed.
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import pytest
-from conftest import SAMPLE_RUNS
-from sqlalchemy import create_engine, func, select
-from sqlalchemy.orm import Session
+from hardware_benches import dialect_copy, hardware_bench, one_error_line
+from sim_runs import PLAN_TEXT, rf_never_on, write_plan
+from stored_rows import count_rows
 from typer.testing import CliRunner
 
 from tonebench.cli import app
 from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError
 from tonebench.plan.points import expand
-from tonebench.sim.launch import start_sim_bench
-from tonebench.sim.scenario import Scenario
 from tonebench.store.models import CalibrationSet, Job, Run
 
-PLAN_TEXT = (SAMPLE_RUNS / "demo_plan.toml").read_text()
-BENCH_TEXT = (SAMPLE_RUNS / "sim_bench.toml").read_text()
 # The demo plan's highest read: the upper IM3 product 2f2-f1 of 2.48 GHz +/- 0.5 MHz, over a
 # 10 kHz span (10 RBW); the noise marker sits 4 kHz above it.
 TOP_PRODUCT_HZ = 2.4815e9
-
-
-@pytest.fixture
-def sim():
-    with start_sim_bench(Scenario()) as running:
-        yield running
-
-
-def dialect_copy(folder: Path, name: str, **limits: float) -> Path:
-    """A packaged dialect with some [limits] replaced."""
-    from tonebench.packaged import data_dir
-
-    lines = []
-    for line in (data_dir("drivers") / f"{name}.toml").read_text().splitlines():
-        key = line.split("=")[0].strip()
-        lines.append(f"{key} = {limits[key]!r}" if key in limits else line)
-    path = folder / f"{name}-narrow.toml"
-    path.write_text("\n".join(lines) + "\n")
-    return path
-
-
-def hardware_bench(folder: Path, sim, *, dialects: dict[str, Path] | None = None, power_meter: bool = False) -> Path:
-    """The sample bench as a hardware bench file whose resources are the simulator's."""
-    text = BENCH_TEXT.split("[simulation]")[0]
-    if power_meter:
-        text = text.replace("[offsets]", '[instruments.power_meter]\ndialect = "generic-power-meter"\n\n[offsets]')
-    for role, resource in sim.resources.items():
-        text = text.replace(f"[instruments.{role}]\n", f'[instruments.{role}]\nresource = "{resource}"\n')
-    for role, path in (dialects or {}).items():
-        head, _, rest = text.partition(f"[instruments.{role}]\n")
-        before, _, after = rest.partition("\n\n")
-        before = "\n".join(f'dialect = "{path}"' if line.startswith("dialect") else line for line in before.splitlines())
-        text = f"{head}[instruments.{role}]\n{before}\n\n{after}"
-    path = folder / "bench.toml"
-    path.write_text(text)
-    return path
-
-
-def write_plan(folder: Path, text: str = PLAN_TEXT, name: str = "plan.toml") -> Path:
-    path = folder / name
-    path.write_text(text)
-    return path
-
-
-def rf_never_on(sim) -> bool:
-    """From the simulator itself: no RF-on line ever arrived and both sources are off."""
-    lines = [line for _, _, line in sim.bench.command_log]
-    return not any(line.upper().startswith("OUTP ON") for line in lines) and not any(
-        sim.bench.source(i).commanded.rf_on for i in (1, 2))
-
-
-def count_rows(db_path: Path, model) -> int:
-    if not db_path.exists():
-        return 0
-    engine = create_engine(f"sqlite:///{db_path}")
-    try:
-        with Session(engine) as session:
-            return session.scalar(select(func.count()).select_from(model))
-    finally:
-        engine.dispose()
-
-
-def one_error_line(result) -> str:
-    lines = result.output.strip().splitlines()
-    assert len(lines) == 1 and lines[0].startswith("error: "), result.output
-    return lines[0]
 
 
 # --- the point count -----------------------------------------------------------------------------

@@ -7,8 +7,9 @@ from __future__ import annotations
 import sqlite3
 
 import pytest
+from cleanruns import PATHS, loss_db
+from flag_benches import run, write_bench, write_plan
 from sqlalchemy import create_engine
-from test_flags_end_to_end import PATHS, loss_db, run, write_bench, write_plan
 
 from tonebench.report import stored_sweeps
 from tonebench.report.run_page import write_run_report

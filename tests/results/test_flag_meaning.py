@@ -10,6 +10,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from cleanruns import PATHS, loss_db
+from flag_benches import run, write_bench, write_plan
+from flag_sweeps import GAIN_DB, IIP3_DBM, power_sum, sweep
 from simsweep import measure_sweep
 from sqlalchemy import create_engine, func, select
 from sqlalchemy.orm import Session
@@ -18,8 +21,8 @@ from typer.testing import CliRunner
 from tonebench.analysis import AnalysisSettings, assess_sweep
 from tonebench.cli import app
 from tonebench.sim import physics
-from tonebench.sim.signal_chain import SimBench
 from tonebench.sim.scenario import Scenario
+from tonebench.sim.signal_chain import SimBench
 from tonebench.store.models import PointFlag, Result, ResultFlag
 from tonebench.units import dbm_to_vpeak
 
@@ -125,8 +128,6 @@ def test_sweep_from_the_noise_to_compression_reads_iip3_within_0p2_db():
 def test_a_noisy_step_comparison_does_not_condemn_the_analyzer():
     """A product 12 dB over the noise at the stepped attenuation moves 1.18 dB (noise, not the
     analyzer): before, it implied a mixer TOI 14 dB under the declared one and threw out the sweep."""
-    from test_flags import GAIN_DB, IIP3_DBM, power_sum, sweep
-
     tones = np.arange(-39.0, -22.0, 2.0)  # IM3 -98 dBm at the lowest tone, 22 dB over the noise
     data = sweep(tones=tones, noise_dbm=-120.0, true_toi_dbm=15.0, step_points=(0, len(tones) - 2, len(tones) - 1))
     step_noise_dbm = data.raw_noise_lower_step_dbm[0]
@@ -156,7 +157,6 @@ def test_a_clear_analyzer_product_at_low_snr_is_still_found():
     assert 1.18 < limit < 6.0
     j = judge_step(-98.0, -120.0, -104.0, -110.0, 10.0)
     assert bool(j.conclusive) and bool(j.analyzer_made)
-    from test_flags import power_sum
     j = judge_step(-98.0, -120.0, power_sum(-98.0 + 1.18, -110.0), -110.0, 10.0)
     assert not bool(j.conclusive) and not bool(j.analyzer_made)
 
@@ -167,8 +167,6 @@ def test_a_clear_analyzer_product_at_low_snr_is_still_found():
 def residual_calibrated_run(tmp_path, dut_iip3_dbm: float, residual_atten_db: float):
     """A clean bench (sources' residual intercept +45 dBm); the thru run at residual_atten_db, where
     the analyzer's own IM3 dominates it; then a run of a DUT of that IIP3 with automatic attenuation."""
-    from test_flags_end_to_end import PATHS, loss_db, run, write_bench, write_plan
-
     from tonebench.calibration import workflow
 
     bench = write_bench(tmp_path, system_ip3_dbm=45.0)

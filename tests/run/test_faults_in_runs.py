@@ -10,75 +10,15 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import SAMPLE_RUNS
-from sqlalchemy import create_engine, select
-from sqlalchemy.orm import Session
+from sim_runs import SETTLE_TOLERANCE_DB, rf_is_off, write_bench, write_plan
+from stored_rows import stored
 
 from tonebench.config.bench_file import load_bench
 from tonebench.config.plan_file import load_plan
-from tonebench.planes.loss_table import LossTable
-from tonebench.plan.points import expand
-from tonebench.run.start import execute_run
 from tonebench.plan.limits import TWO_EQUAL_TONES_DB
-from tonebench.store.models import Event, Point, Run
-
-PLAN_TEXT = (SAMPLE_RUNS / "demo_plan.toml").read_text()
-BENCH_TEXT = (SAMPLE_RUNS / "sim_bench.toml").read_text()
-FAST_TIMEOUT_S = 0.5
-SETTLE_TOLERANCE_DB = 0.05
-
-
-def fast_dialects(folder: Path) -> dict[str, Path]:
-    """The packaged dialects with a short query timeout, so a stall costs a second, not ten."""
-    from tonebench.packaged import data_dir
-
-    paths = {}
-    for name in ("generic-source", "generic-analyzer"):
-        text = (data_dir("drivers") / f"{name}.toml").read_text()
-        path = folder / f"{name}-fast.toml"
-        path.write_text(text.replace("query_timeout_s = 5.0", f"query_timeout_s = {FAST_TIMEOUT_S}"))
-        paths[name] = path
-    return paths
-
-
-def toml_value(value) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, str):
-        return f'"{value}"'
-    return repr(value)
-
-
-def write_bench(folder: Path, *, faults: list[dict] = (), unattended: dict | None = None, fast: bool = True) -> Path:
-    text = BENCH_TEXT
-    if fast:
-        for name, path in fast_dialects(folder).items():
-            text = text.replace(f'dialect = "{name}"', f'dialect = "{path}"')
-    settings = {"backoff_s": 0.01, "settle_tolerance_db": SETTLE_TOLERANCE_DB, **(unattended or {})}
-    text += "\n[unattended]\n" + "".join(f"{key} = {toml_value(value)}\n" for key, value in settings.items())
-    for fault in faults:
-        text += "\n[[simulation.faults]]\n" + "".join(f"{key} = {toml_value(value)}\n" for key, value in fault.items())
-    path = folder / "bench.toml"
-    path.write_text(text)
-    return path
-
-
-def write_plan(folder: Path, text: str = PLAN_TEXT) -> Path:
-    path = folder / "plan.toml"
-    path.write_text(text)
-    return path
-
-
-def stored(db_path: Path):
-    engine = create_engine(f"sqlite:///{db_path}")
-    with Session(engine) as session:
-        run = session.scalars(select(Run)).one()
-        points = session.scalars(select(Point).where(Point.run_id == run.id)).all()
-        events = session.scalars(select(Event).where(Event.run_id == run.id)).all()
-        result = (run.status, run.end_reason, {p.point_key: p for p in points}, [p.point_key for p in points],
-                  [(e.kind, e.message) for e in events])
-    engine.dispose()
-    return result
+from tonebench.plan.points import expand
+from tonebench.planes.loss_table import LossTable
+from tonebench.run.start import execute_run
 
 
 def run_once(folder: Path, bench_path: Path, plan_path: Path | None = None):
@@ -141,10 +81,6 @@ def assert_power_commands_within_limits(sim, bench_path: Path) -> None:
             assert analyzer_dbm <= bench.limits.max_analyzer_input_dbm + 1e-6, line
             checked += 1
     assert checked >= 2 * 51
-
-
-def rf_is_off(sim) -> bool:
-    return not any(sim.bench.source(i).commanded.rf_on or sim.bench.source(i).effective.rf_on for i in (1, 2))
 
 
 STALL = [{"instrument": "analyzer", "kind": "stall", "on": "CALC:MARK1:Y?", "nth": 20, "duration_s": 1.2},

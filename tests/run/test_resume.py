@@ -12,9 +12,10 @@ from pathlib import Path
 
 import pytest
 from conftest import SAMPLE_RUNS
-from sqlalchemy import create_engine, func, select
+from sim_runs import write_bench, write_plan
+from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
-from test_faults_in_runs import stored, write_bench, write_plan
+from stored_rows import count_points, stored
 from typer.testing import CliRunner
 
 from tonebench.cli import app
@@ -29,19 +30,6 @@ from tonebench.store.models import Point, Run
 PLAN_TEXT = (SAMPLE_RUNS / "demo_plan.toml").read_text().replace(
     "center_freqs_hz = [2.40e9, 2.45e9, 2.48e9]", "center_freqs_hz = [2.40e9, 2.48e9]"
 ).replace("tone_start_dbm = -40.0", "tone_start_dbm = -24.0")
-
-
-def count_points(db_path: Path, table=Point) -> int:
-    if not db_path.exists():
-        return 0
-    engine = create_engine(f"sqlite:///{db_path}")
-    try:
-        with Session(engine) as session:
-            return session.scalar(select(func.count()).select_from(table)) or 0
-    except Exception:  # noqa: BLE001 - the schema may not exist yet
-        return 0
-    finally:
-        engine.dispose()
 
 
 def kill_run_after(tmp_path: Path, points_before_kill: int) -> tuple[Path, Path, Path]:

@@ -24,6 +24,7 @@ from pathlib import Path
 import pytest
 import pyvisa
 from conftest import SAMPLE_RUNS
+from sim_runs import BENCH_TEXT, PLAN_TEXT, fast_dialects, write_bench, write_plan
 from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
 
@@ -32,11 +33,8 @@ from tonebench.sim.faults import FaultSpec
 from tonebench.sim.launch import start_sim_bench
 from tonebench.store.models import CalibrationSet, Event, Point, Run
 
-BENCH_TEXT = (SAMPLE_RUNS / "sim_bench.toml").read_text()
-PLAN_TEXT = (SAMPLE_RUNS / "demo_plan.toml").read_text()
 SHORT_PLAN = PLAN_TEXT.replace("center_freqs_hz = [2.40e9, 2.45e9, 2.48e9]", "center_freqs_hz = [2.45e9]")
 WAIT_S = 120.0  # generous bound for anything awaited (2 shared cores)
-FAST_TIMEOUT_S = 0.5
 
 
 @dataclass
@@ -59,12 +57,7 @@ def hardware_bench(folder: Path, resources: dict[str, str], *, power_meter: bool
     """The sample bench without its [simulation] table, its instruments at the given resources."""
     text = BENCH_TEXT.split("[simulation]")[0]
     if fast:
-        from tonebench.packaged import data_dir
-
-        for name in ("generic-source", "generic-analyzer"):
-            dialect = (data_dir("drivers") / f"{name}.toml").read_text()
-            path = folder / f"{name}-fast.toml"
-            path.write_text(dialect.replace("query_timeout_s = 5.0", f"query_timeout_s = {FAST_TIMEOUT_S}"))
+        for name, path in fast_dialects(folder).items():
             text = text.replace(f'dialect = "{name}"', f'dialect = "{path}"')
     if power_meter:
         text += '\n[instruments.power_meter]\ndialect = "generic-power-meter"\n'
@@ -148,12 +141,6 @@ def stored_run(db_url: str):
         result = run.guid, run.status, run.end_reason, events, points
     engine.dispose()
     return result
-
-
-def write_plan(folder: Path, text: str = PLAN_TEXT) -> Path:
-    path = folder / "plan.toml"
-    path.write_text(text)
-    return path
 
 
 # --- runs ----------------------------------------------------------------------------------------
@@ -278,9 +265,9 @@ def test_watchdog_trip_with_a_stalled_instrument(tmp_path, stalled):
 
 
 def test_sigterm_three_times_to_a_queue_worker(lab):
+    from tonebench.queue.jobs import add_job
     from tonebench.store.database import open_database, session_factory
     from tonebench.store.models import Job
-    from tonebench.queue.jobs import add_job
 
     engine = open_database(lab.db_url)
     add_job(session_factory(engine), write_plan(lab.folder), lab.bench_path)
@@ -408,8 +395,6 @@ def _cli(*args: str):
 
 
 def test_a_run_whose_every_point_failed_is_failed_with_exit_1(tmp_path):
-    from test_faults_in_runs import write_bench
-
     bench = write_bench(tmp_path, unattended={"point_attempts": 1}, faults=[
         {"instrument": "analyzer", "kind": "error", "on": "CALC:MARK1:Y?", "repeat": 1000000, "code": -222}])
     db_url = f"sqlite:///{tmp_path / 't.db'}"
@@ -424,8 +409,6 @@ def test_a_run_whose_every_point_failed_is_failed_with_exit_1(tmp_path):
 
 
 def test_a_run_with_failed_points_is_failed_with_exit_4_and_resume_measures_them(tmp_path):
-    from test_faults_in_runs import write_bench
-
     attempts = 2
     bench = write_bench(tmp_path, unattended={"point_attempts": attempts}, faults=[
         {"instrument": "analyzer", "kind": "error", "on": "CALC:MARK1:Y?", "nth": 1, "repeat": attempts, "code": -222}])

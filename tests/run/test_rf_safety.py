@@ -13,10 +13,10 @@ import time
 import pytest
 import pyvisa
 from conftest import SAMPLE_RUNS
+from sim_runs import rf_is_off, write_bench, write_plan
 from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
-from test_faults_in_runs import rf_is_off, stored, write_bench, write_plan
-from test_resume import count_points
+from stored_rows import count_points, stored
 
 from tonebench.errors import InputError
 from tonebench.instruments import SignalSource, load_dialect, open_resource
@@ -24,15 +24,7 @@ from tonebench.instruments.scpi import LimitError, ScpiInstrument
 from tonebench.instruments.supervision import RetryPolicy, Supervision
 from tonebench.run.start import execute_run
 from tonebench.run.watchdog import Watchdog, WatchdogTripped
-from tonebench.sim.launch import start_sim_bench
-from tonebench.sim.scenario import Scenario
 from tonebench.store.models import Run
-
-
-@pytest.fixture
-def sim():
-    with start_sim_bench(Scenario()) as running:
-        yield running
 
 
 def open_source(sim, role: str) -> SignalSource:
