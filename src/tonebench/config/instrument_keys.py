@@ -14,7 +14,8 @@ KNOWN_LIMITS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "analyzer": (("min_freq_hz", "max_freq_hz", "min_atten_db", "max_atten_db", "damage_dbm"),
                  ("max_mixer_dbm", "atten_step_db")),
     "power_meter": (("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"), ()),
-    "supply": ((), ()),
+    # Voltage may be negative (a depletion-mode gate); the current limit is a magnitude.
+    "supply": (("min_voltage_v", "max_voltage_v", "min_current_a", "max_current_a"), ()),
 }
 # level_accuracy_db is optional here and may also come from the bench file, which takes the same
 # keys (config/bench_file.py reads ANALYZER_PERFORMANCE_KEYS).

@@ -54,8 +54,11 @@ REQUIRED_OPERATIONS: dict[str, tuple[str, ...]] = {
     # configure: single measurements on INITiate; the reading is fetched after *OPC?.
     "power_meter": _COMMON_OPERATIONS
     + ("configure", "set_unit_dbm", "set_frequency", "start_measurement", "fetch_power"),
-    # No role driver exists yet for this one; it shares the common operations only.
-    "supply": _COMMON_OPERATIONS,
+    # One output of a DC supply or SMU; read_tripped and enable_protection are optional (not
+    # every instrument latches an over-current trip). Every template names the {channel}.
+    "supply": _COMMON_OPERATIONS
+    + ("set_voltage", "set_current_limit", "output_on", "output_off", "read_output",
+       "measure_voltage", "measure_current"),
 }
 
 _NUMBER_TABLES = {"limits": KNOWN_LIMITS, "performance": KNOWN_PERFORMANCE, "status": KNOWN_STATUS}
@@ -78,6 +81,11 @@ TEMPLATE_FIELDS: dict[str, frozenset[str]] = {
     "set_vbw": frozenset({"vbw_hz"}),
     "set_attenuation": frozenset({"atten_db"}),
     "set_ref_level": frozenset({"ref_dbm"}),
+    "set_voltage": frozenset({"channel", "voltage_v"}),
+    "set_current_limit": frozenset({"channel", "current_a"}),
+    **{op: frozenset({"channel"}) for op in (
+        "enable_protection", "output_on", "output_off", "read_output", "measure_voltage",
+        "measure_current", "read_tripped")},
 }
 
 # Keys of the [dialect] table; they are flattened into the model's top level.
