@@ -131,7 +131,8 @@ class SimSupplyPanel(ScpiDevice):
 
 def _unsuffixed(line: str) -> str:
     """Rewrite each ';'-separated unit whose first node carries a channel suffix (SMU tree) into
-    'INST:NSEL n;:node...'. SMU templates carry no quoted strings, so a plain split is enough."""
+    ':INST:NSEL n;:node...' (from the root: the previous unit's path must not apply). SMU
+    templates carry no quoted strings, so a plain split is enough."""
     units = []
     for unit in line.split(";"):
         stripped = unit.strip()
@@ -140,5 +141,5 @@ def _unsuffixed(line: str) -> str:
             units.append(unit)
             continue
         rest = stripped[match.end():]
-        units.append(f"INST:NSEL {match.group(2)};:{match.group(1)}{rest}")
+        units.append(f":INST:NSEL {match.group(2)};:{match.group(1)}{rest}")
     return ";".join(units)
