@@ -194,3 +194,33 @@ def test_a_wrong_supply_dialect_is_refused_in_one_line(tmp_path, old, new, messa
     with pytest.raises(InputError) as caught:
         load_dialect(str(path))
     assert message in str(caught.value) and "\n" not in str(caught.value)
+
+
+def test_generic_dialect_strings_against_a_dialogue(tmp_path):
+    """The exact strings, against a pyvisa-sim dialogue written by hand from the dialect file."""
+    pyvisa = pytest.importorskip("pyvisa")
+    from pyvisa_recorder import Recorder
+
+    from conftest import PROJECT_ROOT
+    from tonebench.instruments import open_resource
+
+    yaml_path = tmp_path / "generic-supply.yaml"
+    yaml_path.write_text((PROJECT_ROOT / "tests" / "dialogues" / "generic-supply.yaml").read_text())
+    rm = pyvisa.ResourceManager(f"{yaml_path}@sim")
+    try:
+        dialect = load_dialect("generic-supply")
+        inst = ScpiInstrument(Recorder(open_resource("TCPIP0::localhost::5030::SOCKET", dialect, rm)),
+                              dialect, "drain")
+        drain = DcSupply(inst, channel=2)
+        assert drain.idn == "Example Co,Dialogue Supply,SN0301,1.0"
+        drain.prepare()
+        drain.set_current_limit(0.25)
+        drain.set_voltage(4.5)
+        drain.output_on()
+        assert drain.measure_current_a() == 0.0421
+        assert drain.measure_voltage_v() == 4.4998
+        assert inst.resource.sent[-6:] == ["INST:NSEL 2;:MEAS:CURR?", "INST:NSEL 2;:CURR:PROT:TRIP?",
+                                           "INST:NSEL 2;:OUTP?", "INST:NSEL 2;:MEAS:VOLT?",
+                                           "INST:NSEL 2;:CURR:PROT:TRIP?", "INST:NSEL 2;:OUTP?"]
+    finally:
+        rm.close()
