@@ -105,3 +105,19 @@ def test_reset_keeps_loads():
     channel = supply.channel(1)
     assert (channel.set_voltage_v, channel.output_on, channel.protection_on) == (0.0, False, False)
     assert channel.load(5.0) == 0.05
+
+
+def test_constant_current_with_a_callable_square_law_load():
+    # A square-law load I = k V^2 (the textbook saturated-FET form) held at the limit I_lim sits
+    # at V = sqrt(I_lim / k): k = 0.05 A/V^2, I_lim = 0.2 A -> V = 2 V.
+    channel = SupplyChannel(set_voltage_v=5.0, current_limit_a=0.2, output_on=True,
+                            load=lambda voltage_v: 0.05 * voltage_v * abs(voltage_v))
+    voltage_v, current_a = channel.operating_point()
+    assert math.isclose(voltage_v, 2.0, rel_tol=1e-9) and math.isclose(current_a, 0.2, rel_tol=1e-9)
+
+
+def test_constant_current_at_a_negative_voltage():
+    # -10 V across 10 ohm would draw -1 A; held at 0.2 A the voltage is -I*R = -2 V.
+    channel = SupplyChannel(set_voltage_v=-10.0, current_limit_a=0.2, output_on=True, load=resistor(10.0))
+    voltage_v, current_a = channel.operating_point()
+    assert math.isclose(voltage_v, -2.0, rel_tol=1e-9) and math.isclose(current_a, -0.2, rel_tol=1e-9)
