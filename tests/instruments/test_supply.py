@@ -13,7 +13,7 @@ import pytest
 
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.dialect import load_dialect
-from tonebench.instruments.scpi import LimitError, ScpiErrors, ScpiInstrument
+from tonebench.instruments.scpi import LimitError, ScpiInstrument
 from tonebench.instruments.supply import DcSupply, SupplyTripped
 from tonebench.instruments.transport import connect
 from tonebench.sim.server import InstrumentServer
@@ -95,9 +95,11 @@ def test_trip_is_a_fault_not_zero_bias(bench, opened):
         drain.measure_current_a()
     assert isinstance(SupplyTripped("x"), InstrumentError)
     assert drain.tripped() is True
-    # The panel refuses output on while tripped; the driver reports the refusal.
-    with pytest.raises(ScpiErrors, match="Settings conflict"):
+    # Output on while tripped is refused by the driver before it is sent (the panel would refuse too).
+    sent_before = list(supply.command_log)
+    with pytest.raises(SupplyTripped, match="still tripped; output on refused"):
         drain.output_on()
+    assert [line for line in supply.command_log[len(sent_before):] if "OUTP ON" in line] == []
 
 
 def test_trip_at_switch_on(bench, opened):

@@ -89,6 +89,8 @@ class DcSupply(RoleDriver):
             raise InstrumentError(f"{self.label}: output on refused: the run is stopping")
         if self.wanted.voltage_v is None or self.wanted.current_limit_a is None:
             raise InstrumentError(f"{self.label}: output on refused: set the voltage and current limit first")
+        if self.tripped():
+            raise SupplyTripped(f"{self.label}: channel {self.channel} is still tripped; output on refused")
         self.wanted = replace(self.wanted, output_on=True)
         self._configure(("output_on", {}))
         self.check_output()
