@@ -165,3 +165,73 @@ def test_unequal_steps_are_refused():
     gate_v = np.array([0.0, 0.1, 0.25, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9, 1.0, 1.1])
     with pytest.raises(InputError):
         transconductance(gate_v, gate_v**2, sigma_a=0.0)
+
+
+# --- degeneration what-if (analysis/degeneration), against a direct numerical series inversion ---
+
+from tonebench.analysis.degeneration import (  # noqa: E402
+    degenerate,
+    degenerated_coefficients,
+    inductor_ohm,
+)
+
+
+def _inverted_by_solving(g1, g2, g3, r_ohm):
+    # solve i = g1 u + g2 u^2 + g3 u^3, u = v - R i, by Newton at small v; fit a polynomial in v
+    from numpy.polynomial import polynomial as P
+
+    v = np.linspace(-2e-3, 2e-3, 41)
+    i = g1 * v / (1 + g1 * r_ohm)
+    for _ in range(50):
+        u = v - r_ohm * i
+        resid = g1 * u + g2 * u**2 + g3 * u**3 - i
+        i = i - resid / (-(g1 + 2 * g2 * u + 3 * g3 * u**2) * r_ohm - 1)
+    return P.polyfit(v, i, 7)[1:4]
+
+
+def _inverted_by_fixed_point(g1, g2, g3, z):
+    # truncated power series (degree 3, complex coefficients): solve i = f(v - z i) for the
+    # coefficients of i numerically (|g1 z| > 1 here, so plain iteration would diverge)
+    from numpy.polynomial import polynomial as P
+    from scipy.optimize import root
+
+    def trunc(poly):  # keep the coefficients of v^0..v^3 (polymul may trim trailing zeros)
+        return np.pad(poly, (0, 4))[:4]
+
+    def residual(x):
+        i = np.concatenate([[0.0], x[:3] + 1j * x[3:]])
+        u = np.array([0, 1, 0, 0], dtype=complex) - z * i
+        u2 = trunc(P.polymul(u, u))
+        r = (g1 * u + g2 * u2 + g3 * trunc(P.polymul(u2, u)) - i)[1:]
+        return np.concatenate([r.real, r.imag])
+
+    x = root(residual, np.zeros(6), method="lm", options={"xtol": 1e-15, "ftol": 1e-15}).x
+    return x[:3] + 1j * x[3:]
+
+
+def test_resistor_degeneration_matches_solving_the_circuit():
+    g1, g2, g3 = 0.08, 0.3, -0.5
+    got = np.array(degenerated_coefficients(g1, g2, g3, 10.0)).real
+    assert got == pytest.approx(_inverted_by_solving(g1, g2, g3, 10.0), rel=1e-5)
+
+
+def test_complex_degeneration_matches_series_inversion():
+    g1, g2, g3 = 0.08, 0.3, -0.5
+    z = inductor_ohm(1e-9, 2.4e9) + 2.0  # about 15 ohm reactance plus 2 ohm
+    got = np.array(degenerated_coefficients(g1, g2, g3, z))
+    assert got == pytest.approx(_inverted_by_fixed_point(g1, g2, g3, z), rel=1e-9)
+
+
+def test_degenerated_sweet_spot_moves_to_where_the_exact_g3_prime_is_zero():
+    r_ohm = 5.0
+    r = transconductance(GATE_V, _ekv(0)(GATE_V), sigma_a=0.0)
+    pred = degenerate(r, r_ohm)
+    # sympy reference: zero of g3 (1 + g1 R) - 2 g2^2 R from exact derivatives
+    g1e, g2e, g3e = (sp.diff(EKV_ID, V, k) / sp.factorial(k) for k in (1, 2, 3))
+    expr = (g3e * (1 + g1e * r_ohm) - 2 * g2e**2 * r_ohm) / I0_A
+    sample = sp.lambdify(V, expr, "numpy")(r.gate_v)
+    k = int(np.nonzero(sample[:-1] * sample[1:] < 0)[0][0])
+    exact = float(sp.nsolve(expr, V, (r.gate_v[k], r.gate_v[k + 1]), solver="bisect"))
+    assert pred.sweet_spot_v[0] == pytest.approx(exact, abs=1e-3)
+    assert pred.shift_v[0] == pytest.approx(exact - sweet_spots(r)[0].gate_v, abs=1e-3)
+    assert np.all(np.isfinite(pred.iip3_dbm[np.abs(pred.g3) > 0]))
