@@ -152,7 +152,7 @@ class InstrumentServer:
                 with self._lock:
                     self._device.power_cycle()
                 if not spec.keep_connection:
-                    self._abort_all()
+                    self._abort_all(last=conn)
                     return False
             elif spec.kind == "error":
                 with self._lock:
@@ -199,11 +199,12 @@ class InstrumentServer:
             else:
                 hook(spec.drift_db_per_s)
 
-    def _abort_all(self) -> None:
-        """Reset every connection of this instrument (a power cycle)."""
+    def _abort_all(self, last: socket.socket | None = None) -> None:
+        """Reset every connection of this instrument (a power cycle). The connection whose line
+        caused it goes last: once its client sees the reset, no other connection is served again."""
         with self._clients_lock:
-            clients = list(self._clients)
-        for conn in clients:
+            clients = [conn for conn in self._clients if conn is not last]
+        for conn in clients + ([last] if last is not None else []):
             _abort(conn)
 
     def _reply_for(self, line: str) -> str | None:
