@@ -15,7 +15,7 @@ from tonebench.errors import InputError, TonebenchError
 
 # Pages differ in width only (body class "wide": the comparison's many-column tables).
 STYLE = """
-body { font-family: system-ui, sans-serif; margin: 1.5rem auto; max-width: 72rem; color: #222; }
+body { font-family: system-ui, sans-serif; margin: 1.5rem auto; padding: 0 1rem; max-width: 72rem; color: #222; }
 body.wide { max-width: 76rem; }
 h1 { font-size: 1.4rem; margin-bottom: 0.5rem; }
 h2 { font-size: 1.1rem; margin-top: 2rem; border-bottom: 1px solid #ccc; }
