@@ -1,4 +1,5 @@
-"""Start a simulated bench in-process: four raw-SCPI instruments on free loopback ports."""
+"""Start a simulated bench in-process: four raw-SCPI instruments on free loopback ports, and the
+gate and drain supplies when the scenario has a FET."""
 
 from __future__ import annotations
 
@@ -7,6 +8,7 @@ from tonebench.sim.faults import FaultSchedule
 from tonebench.sim.instruments import SimAnalyzer, SimPowerMeter, SimSource
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.server import InstrumentServer
+from tonebench.sim.supply_panel import SimSupplyPanel
 
 
 class RunningSimBench:
@@ -34,11 +36,14 @@ class RunningSimBench:
 
 
 def start_sim_bench(scenario: Scenario, faults: FaultSchedule | None = None) -> RunningSimBench:
-    """Build the bench and serve source1, source2, analyzer and power_meter on free ports of 127.0.0.1."""
+    """Build the bench and serve source1, source2, analyzer, power_meter (and gate, drain with a
+    FET scenario) on free ports of 127.0.0.1."""
     bench = SimBench(scenario)
     schedule = faults if faults is not None else FaultSchedule(scenario.faults)
     devices = {"source1": SimSource(bench, 1), "source2": SimSource(bench, 2), "analyzer": SimAnalyzer(bench),
                "power_meter": SimPowerMeter(bench)}
+    for number, (role, supply) in enumerate(bench.supplies.items(), start=1):
+        devices[role] = SimSupplyPanel(supply, name=role, idn=f"tonebench,simulated DC supply,SIM-PS-{number:04d},0.1")
     servers: dict[str, InstrumentServer] = {}
     try:
         for role, device in devices.items():

@@ -107,6 +107,33 @@ class PowerMeterScenario(_Strict):
     measure_time_s: float = Field(0.02, ge=0.0, le=10.0)
 
 
+class FetScenario(_Strict):
+    """A FET stage in place of the memoryless DUT (`[simulation.fet]`): its drain current
+    (sim/fet.py) at the gate bias the simulated gate supply holds sets the gain and the
+    distortion. The bench then serves two simulated DC supplies, roles "gate" and "drain"
+    (one output each, channel 1). Model defaults: the invented TBF-77 test FET (sim/fet.py)."""
+
+    vt0_v: float = Field(0.45, ge=-5.0, le=5.0)
+    dvt_dt_v_per_k: float = Field(-1.5e-3, ge=-0.02, le=0.02)
+    n: float = Field(1.3, ge=1.0, le=3.0)
+    is_a: float = Field(2e-3, gt=0.0, le=10.0)
+    theta_per_v: float = Field(1.0, ge=0.0, le=20.0)
+    ref_temp_k: float = Field(300.0, ge=150.0, le=500.0)
+    mobility_exponent: float = Field(-1.5, ge=-3.0, le=0.0)
+    # Device temperature when no chamber is on the bench.
+    temp_k: float = Field(300.0, ge=150.0, le=500.0)
+    # Gate voltage per volt at the DUT input plane (the input match's voltage gain): the gate-plane
+    # prediction and the DUT-input measurement differ by 20 log10 of it.
+    input_voltage_gain: float = Field(1.0, gt=0.0, le=20.0)
+    # Drain load the signal current flows in, seen as the output voltage into the 50-ohm output path.
+    load_ohm: float = Field(50.0, gt=0.0, le=10_000.0)
+    # Below about this drain voltage the drain current falls (Id * tanh(Vd / knee_v)); 0 V: no current.
+    knee_v: float = Field(0.3, gt=0.0, le=10.0)
+    gate_leakage_ohm: float = Field(1e9, gt=0.0)
+    # Standard deviation of each current reading of the simulated supplies (A), seeded.
+    current_noise_a: float = Field(2e-7, ge=0.0, le=1e-2)
+
+
 class Scenario(_Strict):
     """The whole `[simulation]` table."""
 
@@ -119,6 +146,8 @@ class Scenario(_Strict):
     sources: SourcesScenario = Field(default_factory=SourcesScenario)
     analyzer: AnalyzerScenario = Field(default_factory=AnalyzerScenario)
     power_meter: PowerMeterScenario = Field(default_factory=PowerMeterScenario)
+    # A FET stage as the DUT, biased by simulated gate and drain supplies; None: the memoryless DUT above.
+    fet: FetScenario | None = None
     # A thru (0 dB, perfectly linear, noiseless) in place of the DUT; SimBench.set_thru switches it.
     thru: bool = False
     # Faults to inject ([[simulation.faults]] rows; see sim/faults.py), counted from the start.

@@ -16,6 +16,7 @@ import numpy as np
 
 from tonebench.sim import physics
 from tonebench.sim.scenario import Scenario
+from tonebench.sim.supply import SimSupply
 from tonebench.units import dbm_to_vpeak, dbm_to_watt, vpeak_to_dbm, watt_to_dbm
 
 PATHS = ("in1", "in2", "out")
@@ -217,6 +218,10 @@ class SimBench:
         self.power_meter = PowerMeterState()
         # Its own stream, so power meter reads do not shift the analyzer's noise sequence.
         self._meter_rng = np.random.default_rng((scenario.seed, 2))
+        # Gate and drain supplies (one output each) of a FET scenario, by bench role.
+        self.supplies: dict[str, SimSupply] = {}
+        if scenario.fet is not None:
+            self.supplies = {role: SimSupply(channel_count=1) for role in ("gate", "drain")}
 
     def set_thru(self, thru: bool) -> None:
         """Put a 0 dB thru in place of the DUT (True) or the DUT back (False): the operator's job on a real bench."""
