@@ -123,6 +123,10 @@ def _flagged_sweep():
     return plot, assessment
 
 
+def _trace(fig, name: str):
+    return next(trace for trace in fig.data if trace.name == name)
+
+
 def test_flagged_points_drawn_distinctly_with_reasons():
     from tonebench.report.run_report import sweep_figure
 
@@ -130,15 +134,48 @@ def test_flagged_points_drawn_distinctly_with_reasons():
     noisy = np.array(["analyzer-limited (noise)" in [f.label for f in p] for p in assessment.point_flags])
     assert noisy[:3].all() and not noisy[-3:].any()
     fig = sweep_figure(plot)
-    trace = fig.data[1]  # IM3 lower
-    symbols = list(trace.marker.symbol)
-    hover = list(trace.hovertext)
+    valid = assessment.fit.valid_mask
+    in_fit = _trace(fig, "IM3 lower (2f1-f2), in the fit")
+    assert list(in_fit.x) == list(plot.pin_dbm[valid]) and in_fit.marker.symbol == "triangle-down"
+    left_out = [t for t in fig.data if t.name.startswith("left out") and t.marker.symbol == "triangle-down-open"]
+    assert sorted(x for t in left_out for x in t.x) == sorted(plot.pin_dbm[~valid])
+    # Every point carries the source-intermod flag here: a red ring around both IM3 points of each.
+    rings = _trace(fig, "flagged (reason on hover)")
+    assert rings.marker.symbol == "circle-open" and rings.marker.color == "#c00000"
+    assert len(rings.x) == 2 * len(plot.pin_dbm)
+    hover = list(rings.hovertext)
     for i, flags in enumerate(assessment.point_flags):
-        assert flags  # every point carries the source-intermod flag here
-        assert symbols[i] == ("diamond" if assessment.fit.valid_mask[i] else "diamond-open")
+        assert flags
         for f in flags:
             assert f.label in hover[i] and html.escape(f.detail) in hover[i]
-    assert "IM3 only" in hover[-1] and "residual" in hover[-1]
+    assert "IM3 only" in hover[len(plot.pin_dbm) - 1] and "residual" in hover[len(plot.pin_dbm) - 1]
+
+
+def test_left_out_points_say_why_in_legend_and_hover():
+    from tonebench.analysis.fit import IM3_OVER_NOISE_MIN_DB, exclusion_reasons
+    from tonebench.report.run_report import sweep_figure
+
+    plot, assessment = _flagged_sweep()
+    arrays = dict(tone_dbm=plot.pin_dbm, pin1_dbm=plot.pin_dbm, pin2_dbm=plot.pin_dbm, pout_f1_dbm=plot.pout_dbm,
+                  pout_f2_dbm=plot.pout_dbm, im3_lower_dbm=plot.im3_lower_dbm, im3_upper_dbm=plot.im3_upper_dbm,
+                  noise_lower_dbm=plot.noise_dbm, noise_upper_dbm=plot.noise_dbm,
+                  overload=np.zeros(plot.pin_dbm.size, bool))
+    reasons = exclusion_reasons(arrays, assessment.fit.valid_mask)
+    # The rule itself, outside the code under test: IM3 less than the margin above the floor.
+    near_floor = plot.im3_lower_dbm - plot.noise_dbm < IM3_OVER_NOISE_MIN_DB
+    assert near_floor.any()
+    for i, why in enumerate(reasons):
+        if near_floor[i]:
+            assert why == f"IM3 within {IM3_OVER_NOISE_MIN_DB:g} dB of the noise floor"
+        elif assessment.fit.valid_mask[i]:
+            assert why is None
+    plot.exclusions = reasons
+    fig = sweep_figure(plot)
+    entry = _trace(fig, f"left out: IM3 within {IM3_OVER_NOISE_MIN_DB:g} dB of the noise floor")
+    assert entry.showlegend in (None, True) and "left out: IM3 within" in entry.hovertext[0]
+    shaded = [shape for shape in fig.layout.shapes if shape.type == "rect"]
+    valid_pin = plot.pin_dbm[assessment.fit.valid_mask]
+    assert [(s.x0, s.x1) for s in shaded] == [(valid_pin.min(), valid_pin.max())]
 
 
 def test_results_table_has_bound_and_flags(tmp_path):

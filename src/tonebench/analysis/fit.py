@@ -219,6 +219,36 @@ def _valid_region(a: dict[str, np.ndarray], point_gain_db, excluded) -> _Region:
     return _Region(valid, finite, noisy, compressed, expanded, gss)
 
 
+LATER_CHECK = "by a later check (see its flags)"
+
+
+def exclusion_reasons(arrays: dict[str, np.ndarray], valid_mask) -> list[str | None]:
+    """Per point, why it is outside the valid region (None for a point in it), by the rules of
+    _valid_region in their order; a point those rules keep but the fit still left out was
+    excluded by a later step (the analyzer's own IM3, higher-order terms: see its flags).
+
+    arrays: the fit's inputs by name (tone_dbm ... noise_upper_dbm, overload), as fit_sweep takes them."""
+    a = _checked_arrays(tuple(arrays[name] for name in _FIT_INPUTS), arrays["overload"])
+    im3_lower, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
+    im3_upper, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
+    pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"], im3_lower, im3_upper)
+    region = _valid_region(a, pts.gain_db, np.zeros(a["tone_dbm"].size, bool))
+    rules = (
+        (~region.finite, "a reading is missing"),
+        (a["overload"], "the analyzer was overloaded"),
+        (region.noisy & region.finite, f"IM3 within {IM3_OVER_NOISE_MIN_DB:g} dB of the noise floor"),
+        (region.compressed, f"compressed: gain more than {GAIN_TOLERANCE_DB:g} dB below the small-signal gain"),
+        (region.expanded, f"expanded: gain more than {GAIN_TOLERANCE_DB:g} dB above the small-signal gain"),
+    )
+    reasons: list[str | None] = []
+    for i, valid in enumerate(np.asarray(valid_mask, dtype=bool)):
+        if valid:
+            reasons.append(None)
+            continue
+        reasons.append(next((why for mask, why in rules if mask[i]), LATER_CHECK))
+    return reasons
+
+
 def fit_sweep(
     tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm, im3_upper_dbm,
     noise_lower_dbm, noise_upper_dbm, overload, exclude: dict[str, np.ndarray] | None = None,

@@ -6,6 +6,7 @@ from pathlib import Path
 
 from sqlalchemy.orm import sessionmaker
 
+from tonebench.analysis.fit import exclusion_reasons
 from tonebench.calibration.sets import load_set_by_id
 from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
 from tonebench.report.run_report import result_row as report_result_row
@@ -39,6 +40,7 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
                     valid_mask=fit.valid_mask,
                     result=fit,
                     assessment=assessment,
+                    exclusions=exclusion_reasons(arrays, fit.valid_mask),
                 )
             )
             rows.append(report_result_row(center_hz, spacing_hz, fit, assessment))

@@ -15,12 +15,12 @@ import plotly.graph_objects as go
 import plotly.io as pio
 
 from tonebench.analysis.assess import SweepAssessment
-from tonebench.analysis.fit import SweepResult
+from tonebench.analysis.fit import LATER_CHECK, SweepResult
 from tonebench.report.html import check_report_path, page_html, write_html_file
 
 _COLORS = {"fundamental": "#1f5fa8", "im3_lower": "#c0561b", "im3_upper": "#2a8a4a",
            "noise": "#888888", "invalid": "#9a9a9a", "flag": "#c00000"}
-_INVALID_NOTE = "outside the valid region (see the reason column)"
+_INVALID_NOTE = "outside the valid region"
 
 
 @dataclass
@@ -39,15 +39,24 @@ class SweepPlotData:
     noise_dbm: np.ndarray
     valid_mask: np.ndarray
     # The fit and its assessment, live (analysis) or as stored (report/stored_sweeps.py: the
-    # same fields). With an assessment, flagged points are drawn as diamonds outlined in red,
-    # their flags in the hover text.
+    # same fields). With an assessment, flagged points get a red ring, their flags in the hover text.
     result: SweepResult
     assessment: SweepAssessment | None = None
+    # Per point why it was left out of the fit (None: in it), from analysis.fit.exclusion_reasons.
+    exclusions: list[str | None] | None = None
+
+    def left_out_reasons(self) -> list[str | None]:
+        """Per point why it is not in the fit (None: in it); a point a later check left out is
+        named by its first flag."""
+        if self.exclusions is None:
+            return [None if v else _INVALID_NOTE for v in np.asarray(self.valid_mask, dtype=bool)]
+        flags = self.assessment.point_flags if self.assessment is not None else [[] for _ in self.exclusions]
+        return [f"flagged {flag_label(point_flags[0])}" if why == LATER_CHECK and point_flags else why
+                for why, point_flags in zip(self.exclusions, flags)]
 
     def hover_notes(self) -> list[str]:
-        """Per point: 'valid' or why not, then each flag with its reason and IIP3 error."""
-        valid = np.asarray(self.valid_mask, dtype=bool)
-        notes = ["valid" if v else _INVALID_NOTE for v in valid]
+        """Per point: 'in the fit' or why not, then each flag with its reason and IIP3 error."""
+        notes = ["in the fit" if why is None else f"left out: {html.escape(why)}" for why in self.left_out_reasons()]
         if self.assessment is not None:
             for i, flags in enumerate(self.assessment.point_flags):
                 for f in flags:
@@ -132,22 +141,48 @@ def result_row(center_freq_hz: float, spacing_hz: float, result: SweepResult,
     return row
 
 
-def _measured_trace(name: str, color: str, x, y, sweep: SweepPlotData) -> go.Scatter:
-    valid = np.asarray(sweep.valid_mask, dtype=bool)
-    flagged = sweep.flagged_mask()
-    # Filled: in the fit; open: left out; diamond with a red outline: flagged (reason on hover).
-    symbol = np.where(flagged, "diamond", "circle")
-    symbol = np.where(valid, symbol, np.char.add(symbol, "-open"))
-    line_color = np.where(flagged, _COLORS["flag"], np.where(valid, color, _COLORS["invalid"]))
-    return go.Scatter(
-        x=np.asarray(x, dtype=float), y=np.asarray(y, dtype=float), name=name, mode="markers",
-        marker=dict(size=np.where(flagged, 10, 8).tolist(),
-                    color=np.where(valid, color, _COLORS["invalid"]).tolist(),
-                    symbol=symbol.tolist(),
-                    line=dict(width=np.where(flagged, 2.0, 1.5).tolist(), color=line_color.tolist())),
-        hovertext=sweep.hover_notes(),
-        hovertemplate="%{x:.2f} dBm in, %{y:.2f} dBm out<br>%{hovertext}<extra>" + name + "</extra>",
-    )
+# Each product its own colour and symbol; filled: in the fit, open: left out (one legend entry
+# per reason), a red ring: flagged (its flags on hover).
+_SERIES = {"fundamental": ("fundamental", "circle"), "im3_lower": ("IM3 lower (2f1-f2)", "triangle-down"),
+           "im3_upper": ("IM3 upper (2f2-f1)", "triangle-up")}
+
+
+def _point_traces(series: str, x, y, sweep: SweepPlotData) -> list[go.Scatter]:
+    """One product's points: those in the fit, then those left out grouped by reason."""
+    name, symbol = _SERIES[series]
+    color = _COLORS[series]
+    x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    notes = np.array(sweep.hover_notes(), dtype=object)
+    reasons = sweep.left_out_reasons()
+    template = "%{x:.2f} dBm in, %{y:.2f} dBm out<br>%{hovertext}<extra>" + name + "</extra>"
+    in_fit = np.array([r is None for r in reasons])
+    traces = [go.Scatter(x=x[in_fit], y=y[in_fit], name=f"{name}, in the fit", mode="markers", legendgroup=series,
+                         marker=dict(size=9, color=color, symbol=symbol), hovertext=notes[in_fit],
+                         hovertemplate=template)]
+    for reason in dict.fromkeys(r for r in reasons if r is not None):
+        keep = np.array([r == reason for r in reasons])
+        traces.append(go.Scatter(x=x[keep], y=y[keep], name=f"left out: {reason}", mode="markers",
+                                 legendgroup=f"left out: {reason}", showlegend=series == "fundamental",
+                                 marker=dict(size=9, color=_COLORS["invalid"], symbol=f"{symbol}-open",
+                                             line=dict(width=1.5)),
+                                 hovertext=notes[keep], hovertemplate=template))
+    return traces
+
+
+def _flag_rings(sweep: SweepPlotData) -> go.Scatter | None:
+    """A red ring around both IM3 points of every flagged point."""
+    flagged = np.asarray(sweep.flagged_mask(), dtype=bool)
+    if not flagged.any():
+        return None
+    pin = np.asarray(sweep.pin_dbm, dtype=float)[flagged]
+    notes = np.array(sweep.hover_notes(), dtype=object)[flagged]
+    return go.Scatter(x=np.concatenate([pin, pin]),
+                      y=np.concatenate([np.asarray(sweep.im3_lower_dbm, dtype=float)[flagged],
+                                        np.asarray(sweep.im3_upper_dbm, dtype=float)[flagged]]),
+                      name="flagged (reason on hover)", mode="markers",
+                      marker=dict(size=17, color=_COLORS["flag"], symbol="circle-open", line=dict(width=2)),
+                      hovertext=np.concatenate([notes, notes]),
+                      hovertemplate="%{x:.2f} dBm in<br>%{hovertext}<extra>flagged</extra>")
 
 
 def _line(name: str, color: str, x0: float, x1: float, slope: float, x_ref: float, y_ref: float):
@@ -160,12 +195,13 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
     """Output versus input power: measured points, fitted slope-1 and slope-3 lines, intercepts."""
     r = sweep.result
     fig = go.Figure()
-    fig.add_trace(_measured_trace("fundamental", _COLORS["fundamental"], sweep.pin_dbm,
-                                  sweep.pout_dbm, sweep))
-    fig.add_trace(_measured_trace("IM3 lower", _COLORS["im3_lower"], sweep.pin_dbm,
-                                  sweep.im3_lower_dbm, sweep))
-    fig.add_trace(_measured_trace("IM3 upper", _COLORS["im3_upper"], sweep.pin_dbm,
-                                  sweep.im3_upper_dbm, sweep))
+    for series, y in (("fundamental", sweep.pout_dbm), ("im3_lower", sweep.im3_lower_dbm),
+                      ("im3_upper", sweep.im3_upper_dbm)):
+        for trace in _point_traces(series, sweep.pin_dbm, y, sweep):
+            fig.add_trace(trace)
+    rings = _flag_rings(sweep)
+    if rings is not None:
+        fig.add_trace(rings)
     fig.add_trace(go.Scatter(x=np.asarray(sweep.pin_dbm, dtype=float),
                              y=np.asarray(sweep.noise_dbm, dtype=float), name="noise floor",
                              mode="markers", marker=dict(symbol="x-thin-open", size=8,
@@ -188,12 +224,18 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
         for label, color, iip3, oip3 in intercepts:
             fig.add_trace(_line(f"slope 3, {label}", color, x0_fit, iip3, 3.0, iip3, oip3))
             fig.add_trace(go.Scatter(
-                x=[iip3], y=[oip3], mode="markers+text", name=f"intercept {label}",
+                x=[iip3], y=[oip3], mode="markers", name=f"intercept {label}",
                 marker=dict(symbol="star", size=12, color=color),
                 error_x=None if bound_db is None else dict(type="constant", value=bound_db, color=color),
-                text=[f"IIP3 {iip3:.2f} dBm / OIP3 {oip3:.2f} dBm ({label})"],
-                textposition="top left" if label == "lower" else "bottom right",
-                hoverinfo="text"))
+                hovertext=[_intercept_text(label, iip3, oip3)], hoverinfo="text"))
+            # Lower above, upper below the stars (they often coincide), both to the right.
+            fig.add_annotation(x=iip3, y=oip3, text=_intercept_text(label, iip3, oip3), showarrow=False,
+                               xanchor="left", xshift=10, yshift=12 if label == "lower" else -12,
+                               font=dict(color=color, size=11))
+        if valid.any():
+            fig.add_vrect(x0=float(pin[valid].min()), x1=float(pin[valid].max()), fillcolor="rgba(90, 90, 90, 0.07)",
+                          line_width=0, layer="below", annotation_text="fitted region",
+                          annotation_position="top left", annotation_font=dict(size=10, color="#666"))
     fig.update_layout(
         title=sweep.title, template="plotly_white", height=480,
         xaxis_title="input power per tone at the DUT (dBm)",
@@ -201,9 +243,15 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
         legend=dict(orientation="h", y=-0.2),
     )
     if x0 is not None and intercepts:
-        # Room to the right of the farthest intercept for its label.
-        fig.update_xaxes(range=[x0 - 2.0, max(iip3 for _, _, iip3, _ in intercepts) + 12.0])
+        # Room to the right of the farthest intercept for its label: about 40 % of the span on a
+        # figure of the page's width (a label is about a quarter of the plot wide).
+        right_dbm = max(iip3 for _, _, iip3, _ in intercepts)
+        fig.update_xaxes(range=[x0 - 2.0, right_dbm + max(12.0, 0.45 * (right_dbm - x0))])
     return fig
+
+
+def _intercept_text(label: str, iip3: float, oip3: float) -> str:
+    return f"{label}: IIP3 {iip3:.2f} dBm, OIP3 {oip3:.2f} dBm"
 
 
 def _cell(value: object) -> str:
