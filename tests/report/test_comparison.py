@@ -241,3 +241,16 @@ def test_many_devices_are_drawn_per_lot_and_an_empty_query_is_refused():
     assert "one trace per lot" not in few
     with pytest.raises(InputError, match="matched no results"):
         render_compare_page([], {}, "lots NOPE")
+
+
+def test_a_device_has_one_colour_in_both_panels():
+    from tonebench.report.comparison import _against
+
+    rows = [row("S1", "L1", 4.0), row("S2", "L1", 4.5), row("S3", "L2", 5.0)]
+    fig = _against(rows, "center_hz", 1e9, "center frequency (GHz)", "Intercepts against frequency")
+    by_device: dict[str, set[str]] = {}
+    for trace in fig.data:
+        by_device.setdefault(trace.legendgroup, set()).add(trace.marker.color)
+    assert len(by_device) == 3
+    assert all(len(colors) == 1 for colors in by_device.values())  # IIP3 and OIP3 drawn alike
+    assert len({next(iter(colors)) for colors in by_device.values()}) == 3  # and devices apart

@@ -26,6 +26,9 @@ from tonebench.report.run_report import format_freq
 
 MAX_DEVICE_TRACES = 60  # above this many devices, traces are per lot (a legend of hundreds helps no one)
 FLAGGED_COLOR = "#9a9a9a"
+# Ten distinguishable hues (our own order), cycled when there are more devices.
+SERIES_COLORS = ("#1f5fa8", "#c0561b", "#2a8a4a", "#7a4f9a", "#8a6d1f", "#b03a6a", "#3b8f9e", "#5c5c5c",
+                 "#a0522d", "#4a6fd0")
 LIMIT_COLOR = "#b22222"
 
 def _device_label(row: ResultRow) -> str:
@@ -60,14 +63,16 @@ def _against(rows: list[ResultRow], x_name: str, x_scale: float, x_title: str, t
     clean = [r for r in rows if not r.flags]
     flagged = [r for r in rows if r.flags]
     kind, series = _series(clean)
-    for label, members in sorted(series.items()):
+    for index, (label, members) in enumerate(sorted(series.items())):
+        color = SERIES_COLORS[index % len(SERIES_COLORS)]  # one colour per device in both panels
         members = sorted(members, key=lambda r: (getattr(r, x_name), r.spacing_hz, r.bias_v or 0.0))
         xs = [getattr(r, x_name) / x_scale for r in members]
         mode = "lines+markers" if len(set(xs)) == len(xs) and kind == "device" else "markers"
         for col, value in ((1, "iip3_dbm"), (2, "oip3_dbm")):
             fig.add_trace(go.Scatter(
                 x=xs, y=[getattr(r, value) for r in members], mode=mode, name=html.escape(label), legendgroup=label,
-                showlegend=col == 1, hovertext=[_hover(r) for r in members],
+                showlegend=col == 1, hovertext=[_hover(r) for r in members], line={"color": color},
+                marker={"color": color},
                 hovertemplate="%{y:.2f} dBm<br>%{hovertext}<extra></extra>"), row=1, col=col)
     if flagged:
         for col, value in ((1, "iip3_dbm"), (2, "oip3_dbm")):
