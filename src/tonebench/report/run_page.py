@@ -10,6 +10,7 @@ from tonebench.analysis.fit import exclusion_reasons
 from tonebench.calibration.sets import load_set_by_id
 from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
 from tonebench.report.run_report import result_row as report_result_row
+from tonebench.report.run_summary import SweepSummary
 from tonebench.report.stored_sweeps import report_sweeps
 from tonebench.store.lookups import find_run
 
@@ -27,11 +28,15 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             tables = referred_to.tables
         sweeps, rows = [], []
         set_id = referred_to.id if referred_to is not None else run.calibration_set_id
-        for center_hz, spacing_hz, arrays, assessment in report_sweeps(session, run, set_id, tables):
+        summaries = []
+        for center_hz, spacing_hz, bias_v, arrays, assessment in report_sweeps(session, run, set_id, tables):
             fit = assessment.fit
+            summaries.append(SweepSummary(center_hz, spacing_hz, bias_v, fit.iip3_lower_dbm, fit.iip3_upper_dbm,
+                                          fit.iip3_dbm, fit.oip3_lower_dbm, fit.oip3_upper_dbm, fit.oip3_dbm,
+                                          assessment.iip3_bound_db))
             sweeps.append(
                 SweepPlotData(
-                    title=sweep_title(center_hz, spacing_hz),
+                    title=sweep_title(center_hz, spacing_hz, bias_v),
                     pin_dbm=(arrays["pin1_dbm"] + arrays["pin2_dbm"]) / 2.0,
                     pout_dbm=(arrays["pout_f1_dbm"] + arrays["pout_f2_dbm"]) / 2.0,
                     im3_lower_dbm=arrays["im3_lower_dbm"],
@@ -43,7 +48,10 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
                     exclusions=exclusion_reasons(arrays, fit.valid_mask),
                 )
             )
-            rows.append(report_result_row(center_hz, spacing_hz, fit, assessment))
+            row = report_result_row(center_hz, spacing_hz, fit, assessment)
+            if bias_v is not None:
+                row = {"bias (V)": f"{bias_v:.4f}", **row}
+            rows.append(row)
         device = run.device
         summary = [
             {"label": "Run", "value": run.guid},
@@ -56,4 +64,4 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             summary.append({"label": "Calibration", "value": f"{run.calibration_set.name} ({run.calibration_set.method})"})
         if referred_to is not None:
             summary.append({"label": "Re-referred to", "value": f"{referred_to.name} ({referred_to.method})"})
-        return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows)
+        return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows, summaries)

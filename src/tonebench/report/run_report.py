@@ -17,6 +17,7 @@ import plotly.io as pio
 from tonebench.analysis.assess import SweepAssessment
 from tonebench.analysis.fit import LATER_CHECK, SweepResult
 from tonebench.report.html import check_report_path, page_html, write_html_file
+from tonebench.report.run_summary import SweepSummary, summary_figure
 
 _COLORS = {"fundamental": "#1f5fa8", "im3_lower": "#c0561b", "im3_upper": "#2a8a4a",
            "noise": "#888888", "invalid": "#9a9a9a", "flag": "#c00000"}
@@ -81,9 +82,10 @@ def format_freq(freq_hz: float, decimals: int | None = None) -> str:
     return f"{value:.{decimals}f} {unit}" if decimals is not None else f"{value:g} {unit}"
 
 
-def sweep_title(center_freq_hz: float, spacing_hz: float) -> str:
-    """Figure title for one sweep, e.g. '2.450 GHz, spacing 1 MHz'."""
-    return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}"
+def sweep_title(center_freq_hz: float, spacing_hz: float, bias_v: float | None = None) -> str:
+    """Figure title for one sweep, e.g. '2.450 GHz, spacing 1 MHz' (', gate 0.5500 V' when biased)."""
+    bias = "" if bias_v is None else f", gate {bias_v:.4f} V"
+    return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}{bias}"
 
 
 def flag_label(flag) -> str:
@@ -262,32 +264,69 @@ def _cell(value: object) -> str:
     return f"<td>{html.escape(str(value))}</td>"
 
 
-def _results_table(rows: list[dict[str, object]]) -> str:
+# The results table holds what a reader compares; the rest of a row goes in the diagnostics table.
+_DIAGNOSTIC_COLUMNS = ("IIP3 free slopes (dBm)", "slope fundamental", "slope IM3 lower", "slope IM3 upper",
+                       "slope IM2", "reason", "checks not made")
+
+
+def _table(rows: list[dict[str, object]], css_class: str) -> str:
     columns: list[str] = []
     for row in rows:
         columns += [key for key in row if key not in columns]
     head = "".join(f"<th>{html.escape(str(c))}</th>" for c in columns)
     body = "\n".join("<tr>" + "".join(_cell(row.get(c)) for c in columns) + "</tr>" for row in rows)
-    return f'<table class="results">\n<thead><tr>{head}</tr></thead>\n<tbody>\n{body}\n</tbody>\n</table>'
+    return f'<table class="{css_class}">\n<thead><tr>{head}</tr></thead>\n<tbody>\n{body}\n</tbody>\n</table>'
+
+
+def _results_table(rows: list[dict[str, object]]) -> str:
+    """The results, then (under its own heading) the fit diagnostics of the same sweeps, each
+    diagnostics row led by the sweep's conditions so the two tables read side by side."""
+    conditions = ("bias (V)", "center", "spacing")
+    main = [{k: v for k, v in row.items() if k not in _DIAGNOSTIC_COLUMNS} for row in rows]
+    diagnostics = [{**{k: row[k] for k in conditions if k in row},
+                    **{k: row[k] for k in _DIAGNOSTIC_COLUMNS if k in row}} for row in rows]
+    html_text = _table(main, "results")
+    if any(len(d) > len(conditions) for d in diagnostics):
+        html_text += "\n<h2>Fit diagnostics</h2>\n" + _table(diagnostics, "diagnostics")
+    return html_text
+
+
+# Above this many sweeps the per-sweep figures sit behind the summary, folded.
+FOLD_SWEEPS_ABOVE = 6
+# A figure drawn while folded has no width: redraw each when its fold opens.
+_RESIZE_ON_OPEN = """<script>
+document.querySelectorAll("details.sweeps").forEach(function (fold) {
+  fold.addEventListener("toggle", function () {
+    fold.querySelectorAll(".plotly-graph-div").forEach(function (div) { Plotly.Plots.resize(div); });
+  });
+});
+</script>"""
+
+
+def _figure_div(fig: go.Figure, div_id: str, css_class: str) -> str:
+    return (f'<div class="{css_class}">' + pio.to_html(fig, full_html=False, include_plotlyjs=False, div_id=div_id,
+                                                     config={"displaylogo": False}) + "</div>")
 
 
 def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list[SweepPlotData],
-                  result_rows: list[dict[str, object]]) -> str:
-    """The whole page as one string. Each summary row is {"label": ..., "value": ...}."""
+                  result_rows: list[dict[str, object]], summaries: list[SweepSummary] | None = None) -> str:
+    """The whole page as one string. Each summary row is {"label": ..., "value": ...}; with
+    `summaries` (one per sweep) a figure of every sweep's intercepts comes first."""
     summary = "\n".join(f"<dt>{html.escape(str(row['label']))}</dt>"
                         f"<dd>{html.escape(str(row['value']))}</dd>" for row in summary_rows)
-    figures = "\n".join(
-        '<div class="sweep">'
-        + pio.to_html(sweep_figure(s), full_html=False, include_plotlyjs=False,
-                      div_id=f"sweep-{i}", config={"displaylogo": False})
-        + "</div>"
-        for i, s in enumerate(sweeps, start=1))
+    overview = summary_figure(summaries or [])
+    overview_html = "" if overview is None else "<h2>Summary</h2>\n" + _figure_div(overview, "summary", "figure")
+    figures = "\n".join(_figure_div(sweep_figure(s), f"sweep-{i}", "sweep") for i, s in enumerate(sweeps, start=1))
+    if len(sweeps) > FOLD_SWEEPS_ABOVE:
+        figures = (f'<details class="sweeps"><summary>{len(sweeps)} sweeps, one figure each (open to show)</summary>\n'
+                   f"{figures}\n</details>\n{_RESIZE_ON_OPEN}")
     body = f"""<header>
 <h1>{html.escape(heading)}</h1>
 <dl class="summary">
 {summary}
 </dl>
 </header>
+{overview_html}
 <h2>Sweeps</h2>
 {figures}
 <h2>Results</h2>
@@ -296,8 +335,9 @@ def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list
 
 
 def write_report(path: Path, heading: str, summary_rows: list[dict[str, str]],
-                 sweeps: list[SweepPlotData], result_rows: list[dict[str, object]]) -> Path:
+                 sweeps: list[SweepPlotData], result_rows: list[dict[str, object]],
+                 summaries: list[SweepSummary] | None = None) -> Path:
     """Write the report to path atomically (report/html.py write_html_file); returns the path."""
     check_report_path(path)
-    page = render_report(heading, summary_rows, sweeps, result_rows)  # fails before touching disk
+    page = render_report(heading, summary_rows, sweeps, result_rows, summaries)  # fails before touching disk
     return write_html_file(path, page)
