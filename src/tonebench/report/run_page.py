@@ -8,6 +8,7 @@ from sqlalchemy.orm import sessionmaker
 
 from tonebench.analysis.fit import exclusion_reasons
 from tonebench.calibration.sets import load_set_by_id
+from tonebench.report.run_archive import archive_html
 from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
 from tonebench.report.run_report import result_row as report_result_row
 from tonebench.report.run_summary import SweepSummary
@@ -28,12 +29,14 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             tables = referred_to.tables
         sweeps, rows = [], []
         set_id = referred_to.id if referred_to is not None else run.calibration_set_id
-        summaries = []
+        summaries, bounds = [], []
         for center_hz, spacing_hz, bias_v, arrays, assessment in report_sweeps(session, run, set_id, tables):
             fit = assessment.fit
             summaries.append(SweepSummary(center_hz, spacing_hz, bias_v, fit.iip3_lower_dbm, fit.iip3_upper_dbm,
                                           fit.iip3_dbm, fit.oip3_lower_dbm, fit.oip3_upper_dbm, fit.oip3_dbm,
                                           assessment.iip3_bound_db))
+            bounds.append((sweep_title(center_hz, spacing_hz, bias_v), assessment.iip3_bound_db,
+                           assessment.bound_terms_db))
             sweeps.append(
                 SweepPlotData(
                     title=sweep_title(center_hz, spacing_hz, bias_v),
@@ -64,4 +67,5 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             summary.append({"label": "Calibration", "value": f"{run.calibration_set.name} ({run.calibration_set.method})"})
         if referred_to is not None:
             summary.append({"label": "Re-referred to", "value": f"{referred_to.name} ({referred_to.method})"})
-        return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows, summaries)
+        return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows, summaries,
+                            archive_html(run, bounds))

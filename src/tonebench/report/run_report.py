@@ -309,9 +309,11 @@ def _figure_div(fig: go.Figure, div_id: str, css_class: str) -> str:
 
 
 def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list[SweepPlotData],
-                  result_rows: list[dict[str, object]], summaries: list[SweepSummary] | None = None) -> str:
+                  result_rows: list[dict[str, object]], summaries: list[SweepSummary] | None = None,
+                  archive: str = "") -> str:
     """The whole page as one string. Each summary row is {"label": ..., "value": ...}; with
-    `summaries` (one per sweep) a figure of every sweep's intercepts comes first."""
+    `summaries` (one per sweep) a figure of every sweep's intercepts comes first; `archive` (HTML,
+    report/run_archive.py) closes the page."""
     summary = "\n".join(f"<dt>{html.escape(str(row['label']))}</dt>"
                         f"<dd>{html.escape(str(row['value']))}</dd>" for row in summary_rows)
     overview = summary_figure(summaries or [])
@@ -330,14 +332,15 @@ def render_report(heading: str, summary_rows: list[dict[str, str]], sweeps: list
 <h2>Sweeps</h2>
 {figures}
 <h2>Results</h2>
-{_results_table(result_rows)}"""
+{_results_table(result_rows)}
+{archive}"""
     return page_html(heading, body)
 
 
 def write_report(path: Path, heading: str, summary_rows: list[dict[str, str]],
                  sweeps: list[SweepPlotData], result_rows: list[dict[str, object]],
-                 summaries: list[SweepSummary] | None = None) -> Path:
+                 summaries: list[SweepSummary] | None = None, archive: str = "") -> Path:
     """Write the report to path atomically (report/html.py write_html_file); returns the path."""
     check_report_path(path)
-    page = render_report(heading, summary_rows, sweeps, result_rows, summaries)  # fails before touching disk
+    page = render_report(heading, summary_rows, sweeps, result_rows, summaries, archive)  # fails before touching disk
     return write_html_file(path, page)

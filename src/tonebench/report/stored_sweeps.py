@@ -62,6 +62,7 @@ class StoredAssessment:
     iip3_at_least_dbm: float | None
     second_order: StoredSecondOrder | None
     notes: list[str]
+    bound_terms_db: dict[str, float]
 
     @property
     def flagged_mask(self) -> np.ndarray:
@@ -98,6 +99,7 @@ def stored_assessment(result: Result | None, points: list[StoredPoint],
         second_order=None if second is None else StoredSecondOrder(result.iip2_dbm, second.get("bound_db"),
                                                                     result.slope_im2),
         notes=list(details.get("notes") or []),
+        bound_terms_db=dict(details.get("bound_terms_db") or {}),
     )
 
 
