@@ -9,6 +9,13 @@ PROJECT_ROOT = Path(__file__).resolve().parent.parent
 SAMPLE_RUNS = PROJECT_ROOT / "sample_runs"
 
 
+@pytest.fixture(autouse=True)
+def _no_user_database_settings(monkeypatch, tmp_path_factory):
+    """Tests never pick up the machine's TONEBENCH_DB or per-user config file."""
+    monkeypatch.delenv("TONEBENCH_DB", raising=False)
+    monkeypatch.setenv("TONEBENCH_CONFIG", str(tmp_path_factory.getbasetemp() / "no-user-config.toml"))
+
+
 @pytest.fixture
 def demo_plan_text() -> str:
     return (SAMPLE_RUNS / "demo_plan.toml").read_text()

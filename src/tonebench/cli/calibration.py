@@ -9,7 +9,7 @@ import typer
 from rich import box
 from rich.table import Table
 
-from tonebench.cli.common import DbOption, default_db, one_line_errors, out
+from tonebench.cli.common import DbOption, database, one_line_errors, out
 
 cal_app = typer.Typer(help="Calibration sets: path losses and the system residual.", no_args_is_help=True)
 
@@ -25,7 +25,7 @@ ThruOpt = Annotated[bool, typer.Option("--thru-in-place", help="Confirm a thru i
 
 
 def _db(db: str | None) -> str:
-    return db or default_db()
+    return database(db)
 
 
 def _summary(view) -> None:

@@ -15,7 +15,7 @@ import typer
 from rich import box
 from rich.table import Table
 
-from tonebench.cli.common import DbOption, default_db, one_line_errors, out
+from tonebench.cli.common import DbOption, database, one_line_errors, out
 from tonebench.errors import InputError
 
 device_app = typer.Typer(help="The device registry: part number, serial, lot, wafer, position, tags.", no_args_is_help=True)
@@ -26,7 +26,7 @@ limit_app = typer.Typer(help="Spec limits per part number; they give each result
 def _session(db: str | None, write: bool = False) -> Iterator:
     from tonebench.store.database import open_database, session_factory
 
-    engine = open_database(db or default_db(), read_only=not write)  # reading never creates one
+    engine = open_database(database(db), read_only=not write)  # reading never creates one
     try:
         sessions = session_factory(engine)
         with (sessions.begin() if write else sessions()) as session:
@@ -347,7 +347,7 @@ def import_file(
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        engine = open_database(db or default_db())
+        engine = open_database(database(db))
         try:
             summary = import_runs(session_factory(engine), in_path)
         finally:

@@ -15,15 +15,20 @@ out = Console(soft_wrap=True)
 err = Console(stderr=True, soft_wrap=True)
 
 
-def default_db() -> str:
-    from tonebench.store.database import default_db_url
+def database(option: str | None) -> str:
+    """The URL of the database a command uses: --db (a URL, or a plain path meaning an SQLite
+    file), else TONEBENCH_DB, the per-user config file, or tonebench.db here
+    (config/database_location.py). Called inside one_line_errors: a bad value is one line."""
+    from tonebench.config.database_location import choose_database
 
-    return default_db_url()
+    return choose_database(option).url
 
 
 DbOption = Annotated[
     str | None,
-    typer.Option("--db", help="SQLAlchemy database URL (default: sqlite file tonebench.db in the current folder)."),
+    typer.Option("--db",
+                 help="Database: a file path (SQLite) or a SQLAlchemy URL. Default: the TONEBENCH_DB environment "
+                      "variable, else `database` in the per-user config.toml, else tonebench.db in the current folder."),
 ]
 
 

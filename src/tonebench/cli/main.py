@@ -18,8 +18,9 @@ from rich.table import Table
 
 from tonebench.cli.calibration import cal_app
 from tonebench.cli.catalog import register_catalog_commands
-from tonebench.cli.common import DbOption, default_db, err, one_line_errors, out
+from tonebench.cli.common import DbOption, database, err, one_line_errors, out
 from tonebench.cli.queue import register_queue_commands
+from tonebench.config.database_location import describe as describe_database
 from tonebench.errors import InputError
 
 app = typer.Typer(
@@ -27,6 +28,22 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
 )
+
+
+def _say_version(value: bool) -> None:
+    if value:
+        from tonebench import __version__
+
+        out.print(f"tonebench {__version__}", highlight=False)
+        raise typer.Exit()
+
+
+@app.callback()
+def _main(
+    version: Annotated[bool, typer.Option("--version", callback=_say_version, is_eager=True,
+                                          help="Print the version and exit.")] = False,
+) -> None:
+    """Two-tone intercept (IIP3/OIP3) measurements on real or simulated benches, with every point logged."""
 sim_app = typer.Typer(help="The simulated bench.", no_args_is_help=True)
 db_app = typer.Typer(help="Database housekeeping.", no_args_is_help=True)
 app.add_typer(sim_app, name="sim")
@@ -110,7 +127,7 @@ def _say_outcome(outcome) -> None:
             out.print(outcome.rf_off, highlight=False)
         else:
             err.print(f"DANGER: {outcome.rf_off}", markup=False, highlight=False)
-    out.print(f"database: {outcome.db_url}")
+    out.print(f"database: {describe_database(outcome.db_url)}", highlight=False)
     if outcome.calibration:
         out.print(f"calibration: {outcome.calibration}", highlight=False)
     if outcome.report_path is not None:
@@ -141,7 +158,7 @@ def run(
 ) -> None:
     """Measure a plan on a bench, store every point, fit intercepts and write a report."""
     with one_line_errors():
-        db_url = db or default_db()
+        db_url = database(db)
         outcome = _run_with_progress(plan, bench, db_url, report, cal_name=cal)
         _say_outcome(outcome)
 
@@ -158,7 +175,7 @@ def resume(
     from tonebench.run.resume import resume_run
 
     with one_line_errors():
-        db_url = db or default_db()
+        db_url = database(db)
         outcome = _with_progress(lambda advance: resume_run(run_id, db_url, bench_path=bench, plan_path=plan,
                                                             report_path=report, on_progress=advance))
         _say_outcome(outcome)
@@ -192,11 +209,11 @@ def runs(
     from tonebench.report.run_views import list_runs
 
     with one_line_errors():
-        _close_dead_runs(db or default_db())
+        _close_dead_runs(database(db))
         table = Table(title="Runs")
         for column in ("GUID", "Started (UTC)", "Status", "Device", "Bench", "Points"):
             table.add_column(column)
-        for row in list_runs(db or default_db(), limit):
+        for row in list_runs(database(db), limit):
             table.add_row(*row)
         out.print(table)
 
@@ -210,8 +227,8 @@ def show(
     from tonebench.report.run_views import describe_run
 
     with one_line_errors():
-        _close_dead_runs(db or default_db())
-        describe_run(db or default_db(), run_id, out)
+        _close_dead_runs(database(db))
+        describe_run(database(db), run_id, out)
 
 
 @app.command()
@@ -225,7 +242,7 @@ def analyze(
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        results = analyze_run(session_factory(open_database(db or default_db())), run_id, cal)
+        results = analyze_run(session_factory(open_database(database(db))), run_id, cal)
         if cal:
             out.print(f"results referred to calibration set {cal}", highlight=False)
         _print_results(results)
@@ -242,7 +259,7 @@ def report(
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        written = write_run_report(session_factory(open_database(db or default_db(), read_only=True)), run_id, out_path)
+        written = write_run_report(session_factory(open_database(database(db), read_only=True)), run_id, out_path)
         out.print(f"report: {written}")
 
 
@@ -283,4 +300,4 @@ def db_upgrade(db: DbOption = None) -> None:
     from tonebench.store.database import upgrade_database
 
     with one_line_errors():
-        out.print(f"database at schema revision {upgrade_database(db or default_db())}")
+        out.print(f"database at schema revision {upgrade_database(database(db))}")

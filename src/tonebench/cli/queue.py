@@ -9,13 +9,13 @@ import typer
 from rich import box
 from rich.table import Table
 
-from tonebench.cli.common import DbOption, default_db, err, one_line_errors, out
+from tonebench.cli.common import DbOption, database, err, one_line_errors, out
 
 
 def _sessions(db: str | None, read_only: bool = False):
     from tonebench.store.database import open_database, session_factory
 
-    return session_factory(open_database(db or default_db(), read_only=read_only))
+    return session_factory(open_database(database(db), read_only=read_only))
 
 
 def register_queue_commands(app: typer.Typer) -> None:
@@ -86,7 +86,7 @@ def _register_worker_command(app: typer.Typer) -> None:
         from tonebench.queue.worker import Worker
 
         with one_line_errors():
-            unit = Worker(db or default_db(), bench, on_job=_say_job, poll_s=poll_s, report_dir=report_dir)
+            unit = Worker(database(db), bench, on_job=_say_job, poll_s=poll_s, report_dir=report_dir)
             count, termed = _work(unit, until_empty)
             out.print(f"worker for bench {unit.bench_name}: {count} job(s) run", highlight=False)
             if termed:  # SIGTERM between runs: a clean stop, with SIGTERM's exit code all the same
