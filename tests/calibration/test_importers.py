@@ -38,7 +38,7 @@ def test_table_import_stores_the_rows_with_provenance(tmp_path):
     for path, table in rows.items():
         file = tmp_path / f"{path}.csv"
         file.write_text("# loss of the " + path + " arm\nfreq_hz,loss_db\n" + "\n".join(f"{f},{l}" for f, l in table) + "\n")
-        args += [f"--{path}", file]
+        args += [f"--loss-{path}", file]
     result = invoke("cal", "import-table", "cables-2024", *args, "--valid-days", "90", "--operator", "pat", "--db", db)
     assert result.exit_code == 0, result.output
     with Session(create_engine(db)) as session:
@@ -82,8 +82,8 @@ def test_cascaded_touchstone_files_follow_the_cascade_formula():
 
 def test_touchstone_import_through_the_cli_cascades_and_records_files(tmp_path):
     db = f"sqlite:///{tmp_path / 'c.db'}"
-    result = invoke("cal", "import-touchstone", "arms", "--in1", MEASURED_2PORT, "--in2", SECOND_2PORT,
-                    "--out", MEASURED_2PORT, "--out", SECOND_2PORT, "--db", db)
+    result = invoke("cal", "import-touchstone", "arms", "--loss-in1", MEASURED_2PORT, "--loss-in2", SECOND_2PORT,
+                    "--loss-out", MEASURED_2PORT, "--loss-out", SECOND_2PORT, "--db", db)
     assert result.exit_code == 0, result.output
     with Session(create_engine(db)) as session:
         cal = session.scalars(select(CalibrationSet)).one()
@@ -108,25 +108,25 @@ def bad_files(folder: Path) -> list[tuple[str, list, str]]:
         return path
 
     return [
-        ("garbage table", ["import-table", "--in1", write("garbage.csv", b"\x89PNG\r\n\x1a\n\x00\xff")], "not a text file"),
-        ("wrong columns", ["import-table", "--in1", write("cols.csv", "frequency,attenuation\n1e9,3\n")],
+        ("garbage table", ["import-table", "--loss-in1", write("garbage.csv", b"\x89PNG\r\n\x1a\n\x00\xff")], "not a text file"),
+        ("wrong columns", ["import-table", "--loss-in1", write("cols.csv", "frequency,attenuation\n1e9,3\n")],
          "expected exactly freq_hz,loss_db"),
-        ("three columns", ["import-table", "--out", write("three.csv", "freq_hz,loss_db\n1e9,3,4\n")], "3 fields"),
-        ("words for numbers", ["import-table", "--out", write("words.csv", "freq_hz,loss_db\n1e9,three\n")], "not two numbers"),
-        ("negative frequency", ["import-table", "--in2", write("neg.csv", "freq_hz,loss_db\n-1e9,3\n1e9,3\n")],
+        ("three columns", ["import-table", "--loss-out", write("three.csv", "freq_hz,loss_db\n1e9,3,4\n")], "3 fields"),
+        ("words for numbers", ["import-table", "--loss-out", write("words.csv", "freq_hz,loss_db\n1e9,three\n")], "not two numbers"),
+        ("negative frequency", ["import-table", "--loss-in2", write("neg.csv", "freq_hz,loss_db\n-1e9,3\n1e9,3\n")],
          "must be > 0 Hz"),
-        ("non-monotonic", ["import-table", "--in1", write("order.csv", "freq_hz,loss_db\n1e9,3\n3e9,3.2\n2e9,3.1\n")],
+        ("non-monotonic", ["import-table", "--loss-in1", write("order.csv", "freq_hz,loss_db\n1e9,3\n3e9,3.2\n2e9,3.1\n")],
          "must increase strictly"),
-        ("gain, not loss", ["import-table", "--in1", write("gain.csv", "freq_hz,loss_db\n1e9,-12\n")], "between -1 and 80 dB"),
-        ("empty table", ["import-table", "--in1", write("empty.csv", "# nothing\n")], "empty"),
-        ("missing file", ["import-table", "--in1", folder / "nowhere.csv"], "file not found"),
-        ("garbage touchstone", ["import-touchstone", "--in1", write("junk.s2p", "hello\nworld\n")], "cannot be read as Touchstone"),
-        ("empty touchstone", ["import-touchstone", "--in1", write("void.s2p", "")], "cannot be read as Touchstone"),
-        ("3-port touchstone", ["import-touchstone", "--out", SKRF_3PORT], "has 3 port(s)"),
-        ("1-port touchstone", ["import-touchstone", "--out", SKRF_1PORT], "has 1 port(s)"),
-        ("negative touchstone frequency", ["import-touchstone", "--in1", write(
+        ("gain, not loss", ["import-table", "--loss-in1", write("gain.csv", "freq_hz,loss_db\n1e9,-12\n")], "between -1 and 80 dB"),
+        ("empty table", ["import-table", "--loss-in1", write("empty.csv", "# nothing\n")], "empty"),
+        ("missing file", ["import-table", "--loss-in1", folder / "nowhere.csv"], "file not found"),
+        ("garbage touchstone", ["import-touchstone", "--loss-in1", write("junk.s2p", "hello\nworld\n")], "cannot be read as Touchstone"),
+        ("empty touchstone", ["import-touchstone", "--loss-in1", write("void.s2p", "")], "cannot be read as Touchstone"),
+        ("3-port touchstone", ["import-touchstone", "--loss-out", SKRF_3PORT], "has 3 port(s)"),
+        ("1-port touchstone", ["import-touchstone", "--loss-out", SKRF_1PORT], "has 1 port(s)"),
+        ("negative touchstone frequency", ["import-touchstone", "--loss-in1", write(
             "negf.s2p", "# GHz S RI R 50\n-1 0 0 0.9 0 0.9 0 0 0\n1 0 0 0.9 0 0.9 0 0 0\n")], "must be > 0 Hz"),
-        ("no overlap to cascade", ["import-touchstone", "--in1", MEASURED_2PORT, "--in1", SKRF_DATA / "line.s2p"],
+        ("no overlap to cascade", ["import-touchstone", "--loss-in1", MEASURED_2PORT, "--loss-in1", SKRF_DATA / "line.s2p"],
          "do not share any frequency range"),
         ("no paths", ["import-table"], "give at least one table"),
     ]
@@ -138,7 +138,7 @@ def test_bad_calibration_input_is_one_line_and_stores_nothing(tmp_path, index):
     # A good set first: a failed import must leave it alone and add nothing.
     good = tmp_path / "good.csv"
     good.write_text("freq_hz,loss_db\n1e9,3\n2e9,3.5\n")
-    assert invoke("cal", "import-table", "good", "--in1", good, "--db", db).exit_code == 0
+    assert invoke("cal", "import-table", "good", "--loss-in1", good, "--db", db).exit_code == 0
     before = stored_sets(db)
     case, args, expected = bad_files(tmp_path)[index]
     result = invoke("cal", args[0], "bad-one", *args[1:], "--db", db)
@@ -152,11 +152,11 @@ def test_bad_set_names_and_duplicates(tmp_path):
     db = f"sqlite:///{tmp_path / 'c.db'}"
     good = tmp_path / "good.csv"
     good.write_text("freq_hz,loss_db\n1e9,3\n2e9,3.5\n")
-    assert invoke("cal", "import-table", "one", "--in1", good, "--db", db).exit_code == 0
-    again = invoke("cal", "import-table", "one", "--in1", good, "--db", db)
+    assert invoke("cal", "import-table", "one", "--loss-in1", good, "--db", db).exit_code == 0
+    again = invoke("cal", "import-table", "one", "--loss-in1", good, "--db", db)
     assert again.exit_code == 2 and "already exists" in again.output
-    spaced = invoke("cal", "import-table", "two words", "--in1", good, "--db", db)
+    spaced = invoke("cal", "import-table", "two words", "--loss-in1", good, "--db", db)
     assert spaced.exit_code == 2 and "letters, digits" in spaced.output
-    never = invoke("cal", "import-table", "short-lived", "--in1", good, "--valid-days", "0", "--db", db)
+    never = invoke("cal", "import-table", "short-lived", "--loss-in1", good, "--valid-days", "0", "--db", db)
     assert never.exit_code == 2 and "more than 0" in never.output
     assert stored_sets(db) == 1 + 2

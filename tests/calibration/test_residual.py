@@ -152,7 +152,7 @@ def test_residual_needs_a_thru_confirmed_on_hardware(tmp_path):
     db = f"sqlite:///{tmp_path / 'h.db'}"
     good = tmp_path / "t.csv"
     good.write_text("freq_hz,loss_db\n2.3e9,3\n2.6e9,3.5\n")
-    assert runner.invoke(app, ["cal", "import-table", "hw", "--in1", str(good), "--in2", str(good), "--out", str(good),
+    assert runner.invoke(app, ["cal", "import-table", "hw", "--loss-in1", str(good), "--loss-in2", str(good), "--loss-out", str(good),
                                "--db", db]).exit_code == 0
     result = runner.invoke(app, ["cal", "measure-output", "hw2", "--bench", str(hardware), "--plan", str(plan), "--db", db])
     assert result.exit_code == 2 and "not in this database" in result.output

@@ -181,7 +181,7 @@ def measured(tmp_path_factory) -> tuple[Path, str, str]:
     done = tonebench("run", "plan.toml", "--bench", SIM_BENCH, "--db", url, "--report", folder / "r.html", cwd=folder)
     assert done.returncode == 0, done.stderr
     (folder / "in1.csv").write_text("freq_hz,loss_db\n2.3e9,6.1\n2.6e9,6.4\n")
-    done = tonebench("cal", "import-table", "cables", "--in1", folder / "in1.csv", "--db", url, cwd=folder)
+    done = tonebench("cal", "import-table", "cables", "--loss-in1", folder / "in1.csv", "--db", url, cwd=folder)
     assert done.returncode == 0, done.stderr
     with sa.create_engine(url).connect() as connection:
         guid = connection.exec_driver_sql("SELECT guid FROM runs").scalar_one()

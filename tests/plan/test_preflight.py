@@ -135,7 +135,7 @@ def test_cal_measure_output_refuses_an_analyzer_span_past_its_range(tmp_path, si
     db = f"sqlite:///{tmp_path / 't.db'}"
     table = tmp_path / "loss.csv"
     table.write_text("freq_hz,loss_db\n2.3e9,6.5\n2.6e9,6.6\n")
-    imported = CliRunner().invoke(app, ["cal", "import-table", "ins", "--in1", str(table), "--in2", str(table), "--db", db])
+    imported = CliRunner().invoke(app, ["cal", "import-table", "ins", "--loss-in1", str(table), "--loss-in2", str(table), "--db", db])
     assert imported.exit_code == 0, imported.output
     result = CliRunner().invoke(app, ["cal", "measure-output", "ins", "--bench", str(bench), "--plan",
                                       str(write_plan(tmp_path)), "--thru-in-place", "--db", db])
@@ -151,8 +151,8 @@ def test_cal_measure_residual_refuses_a_product_read_past_the_analyzer_range(tmp
     db = f"sqlite:///{tmp_path / 't.db'}"
     table = tmp_path / "loss.csv"
     table.write_text("freq_hz,loss_db\n2.3e9,6.5\n2.6e9,6.6\n")
-    imported = CliRunner().invoke(app, ["cal", "import-table", "all", "--in1", str(table), "--in2", str(table),
-                                        "--out", str(table), "--db", db])
+    imported = CliRunner().invoke(app, ["cal", "import-table", "all", "--loss-in1", str(table), "--loss-in2", str(table),
+                                        "--loss-out", str(table), "--db", db])
     assert imported.exit_code == 0, imported.output
     result = CliRunner().invoke(app, ["cal", "measure-residual", "all", "--bench", str(bench), "--plan",
                                       str(write_plan(tmp_path)), "--thru-in-place", "--db", db])

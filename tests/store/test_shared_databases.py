@@ -226,7 +226,7 @@ def import_bench_offsets_as_set(folder: Path, url: str, name: str) -> None:
     for path in ("in1", "in2", "out"):
         csv = folder / f"{path}.csv"
         csv.write_text("freq_hz,loss_db\n" + "".join(f"{f},{loss}\n" for f, loss in offsets[path]))
-        args += [f"--{path}", csv]
+        args += [f"--loss-{path}", csv]
     done = tonebench("cal", "import-table", name, *args, "--db", url, cwd=folder)
     assert done.returncode == 0, done.stderr
 

@@ -327,7 +327,7 @@ def import_tables(db_url: str, name: str, files: dict[str, Path], *, valid_days:
     check_name(name)
     check_valid_days(valid_days)
     if not files:
-        raise InputError("give at least one table: --in1, --in2 or --out")
+        raise InputError("give at least one table: --loss-in1, --loss-in2 or --loss-out")
     tables, provenance = {}, []
     for path, file in files.items():
         tables[path], source = importers.read_table(file, path)
@@ -341,7 +341,7 @@ def import_touchstone(db_url: str, name: str, files: dict[str, list[Path]], *, v
     check_name(name)
     check_valid_days(valid_days)
     if not files:
-        raise InputError("give at least one Touchstone file: --in1, --in2 or --out")
+        raise InputError("give at least one Touchstone file: --loss-in1, --loss-in2 or --loss-out")
     tables, provenance = {}, []
     for path, path_files in files.items():
         tables[path], sources = importers.read_touchstone(path_files, path)

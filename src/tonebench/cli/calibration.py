@@ -11,7 +11,7 @@ from rich.table import Table
 
 from tonebench.cli.common import DbOption, database, one_line_errors, out
 
-cal_app = typer.Typer(help="Calibration sets: path losses and the system residual.", no_args_is_help=True)
+cal_app = typer.Typer(rich_markup_mode=None, help="Calibration sets: path losses and the system residual.", no_args_is_help=True)
 
 NameArg = Annotated[str, typer.Argument(metavar="NAME", help="Calibration set name (letters, digits, '.', '_', '-').")]
 BenchOpt = Annotated[Path, typer.Option("--bench", "-b", help="Bench file (TOML).")]
@@ -51,9 +51,9 @@ def _path_files(in1, in2, out_) -> dict:
 @cal_app.command("import-table")
 def import_table(
     name: NameArg,
-    in1: Annotated[Path | None, typer.Option("--in1", help="CSV table (freq_hz,loss_db) for source 1 to the DUT input.")] = None,
-    in2: Annotated[Path | None, typer.Option("--in2", help="CSV table for source 2 to the DUT input.")] = None,
-    out_: Annotated[Path | None, typer.Option("--out", help="CSV table for the DUT output to the analyzer.")] = None,
+    in1: Annotated[Path | None, typer.Option("--loss-in1", help="CSV table (freq_hz,loss_db) for source 1 to the DUT input.")] = None,
+    in2: Annotated[Path | None, typer.Option("--loss-in2", help="CSV table for source 2 to the DUT input.")] = None,
+    out_: Annotated[Path | None, typer.Option("--loss-out", help="CSV table for the DUT output to the analyzer.")] = None,
     valid_days: ValidOpt = 30.0,
     operator: OperatorOpt = None,
     note: NoteOpt = None,
@@ -71,9 +71,9 @@ def import_table(
 @cal_app.command("import-touchstone")
 def import_touchstone(
     name: NameArg,
-    in1: Annotated[list[Path] | None, typer.Option("--in1", help="Touchstone 2-port file(s) for source 1 to the DUT input; repeat to cascade in order.")] = None,
-    in2: Annotated[list[Path] | None, typer.Option("--in2", help="Touchstone 2-port file(s) for source 2 to the DUT input.")] = None,
-    out_: Annotated[list[Path] | None, typer.Option("--out", help="Touchstone 2-port file(s) for the DUT output to the analyzer.")] = None,
+    in1: Annotated[list[Path] | None, typer.Option("--loss-in1", help="Touchstone 2-port file(s) for source 1 to the DUT input; repeat to cascade in order.")] = None,
+    in2: Annotated[list[Path] | None, typer.Option("--loss-in2", help="Touchstone 2-port file(s) for source 2 to the DUT input.")] = None,
+    out_: Annotated[list[Path] | None, typer.Option("--loss-out", help="Touchstone 2-port file(s) for the DUT output to the analyzer.")] = None,
     valid_days: ValidOpt = 30.0,
     operator: OperatorOpt = None,
     note: NoteOpt = None,

@@ -18,8 +18,8 @@ from rich.table import Table
 from tonebench.cli.common import DbOption, database, one_line_errors, out
 from tonebench.errors import InputError
 
-device_app = typer.Typer(help="The device registry: part number, serial, lot, wafer, position, tags.", no_args_is_help=True)
-limit_app = typer.Typer(help="Spec limits per part number; they give each result a pass/fail verdict.", no_args_is_help=True)
+device_app = typer.Typer(rich_markup_mode=None, help="The device registry: part number, serial, lot, wafer, position, tags.", no_args_is_help=True)
+limit_app = typer.Typer(rich_markup_mode=None, help="Spec limits per part number; they give each result a pass/fail verdict.", no_args_is_help=True)
 
 
 @contextmanager

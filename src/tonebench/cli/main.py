@@ -23,7 +23,7 @@ from tonebench.cli.queue import register_queue_commands
 from tonebench.config.database_location import describe as describe_database
 from tonebench.errors import InputError
 
-app = typer.Typer(
+app = typer.Typer(rich_markup_mode=None, 
     help="Two-tone intercept (IIP3/OIP3) measurements on real or simulated benches, with every point logged.",
     no_args_is_help=True,
     add_completion=False,
@@ -44,8 +44,8 @@ def _main(
                                           help="Print the version and exit.")] = False,
 ) -> None:
     """Two-tone intercept (IIP3/OIP3) measurements on real or simulated benches, with every point logged."""
-sim_app = typer.Typer(help="The simulated bench.", no_args_is_help=True)
-db_app = typer.Typer(help="Database housekeeping.", no_args_is_help=True)
+sim_app = typer.Typer(rich_markup_mode=None, help="The simulated bench.", no_args_is_help=True)
+db_app = typer.Typer(rich_markup_mode=None, help="Database housekeeping.", no_args_is_help=True)
 app.add_typer(sim_app, name="sim")
 app.add_typer(db_app, name="db")
 app.add_typer(cal_app, name="cal")

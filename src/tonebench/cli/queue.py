@@ -20,7 +20,7 @@ def _sessions(db: str | None, read_only: bool = False):
 
 def register_queue_commands(app: typer.Typer) -> None:
     """Add the queue and worker commands to the main app."""
-    queue_app = typer.Typer(help="Plans waiting for a bench: add, list, cancel.", no_args_is_help=True)
+    queue_app = typer.Typer(rich_markup_mode=None, help="Plans waiting for a bench: add, list, cancel.", no_args_is_help=True)
     app.add_typer(queue_app, name="queue")
     _register_job_commands(queue_app)
     _register_worker_command(app)
