@@ -15,6 +15,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from tonebench.sim import physics
+from tonebench.sim.fet_stage import FetBias, FetStage
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.supply import SimSupply
 from tonebench.units import dbm_to_vpeak, dbm_to_watt, vpeak_to_dbm, watt_to_dbm
@@ -147,11 +148,12 @@ def input_plane_tones(truth: BenchTruth, settings: tuple[SourceSetting, SourceSe
 
 
 def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[SourceSetting, SourceSetting],
-                   atten_db: float, thru: bool = False) -> AnalyzerInput:
+                   atten_db: float, thru: bool = False, stage: FetStage | None = None) -> AnalyzerInput:
     """Lines reaching the analyzer for these source settings, its mixer's own IM3 referred to its input included.
 
     thru=True puts a 0 dB thru in place of the DUT: what sits at the DUT input plane (tones and the
-    sources' residual IM3) reaches the output path unchanged.
+    sources' residual IM3) reaches the output path unchanged. stage: a biased FET stage in place of
+    the scenario's memoryless DUT.
     """
     tones = [(freq_hz, float(dbm_to_vpeak(dbm))) for freq_hz, dbm in input_plane_tones(truth, settings)]
     bins = physics.SIM_POINTS // 2 + 1
@@ -175,7 +177,7 @@ def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[Source
         for pq, value_v in (((1, 0), low_v), ((0, 1), high_v), ((2, -1), residual_low_v), ((-1, 2), residual_high_v)):
             amp_v[physics.product_bin(*pq)] += value_v
     else:
-        model = truth.dut_model(0.5 * (f_low_hz + f_high_hz))
+        model = stage if stage is not None else truth.dut_model(0.5 * (f_low_hz + f_high_hz))
         amp_v = physics.dut_output_spectrum_v(model, low_v, high_v, residual_low_v, residual_high_v)
     freq_hz = physics.bin_frequencies_hz(f_low_hz, f_high_hz - f_low_hz)
     keep = freq_hz > 0.0  # products folding through 0 Hz (spacing above f1) are not modelled
@@ -183,8 +185,8 @@ def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[Source
         keep &= np.arange(bins) % physics.TONE_BIN == 0  # harmonics only
     amp_v = np.where(keep, amp_v, 0j)
     amp_v = amp_v * 10.0 ** (-truth.true_loss_db("out", np.where(keep, freq_hz, f_low_hz)) / 20.0)
-    if two_tone:
-        low_v, high_v = amp_v[physics.product_bin(1, 0)], amp_v[physics.product_bin(0, 1)]
+    low_v, high_v = amp_v[physics.product_bin(1, 0)], amp_v[physics.product_bin(0, 1)]
+    if two_tone and abs(low_v) > 0.0 and abs(high_v) > 0.0:  # an unbiased FET passes no tones
         mixer_low_dbm, mixer_high_dbm = physics.mixer_im3_dbm(
             float(vpeak_to_dbm(low_v)), float(vpeak_to_dbm(high_v)), atten_db, scenario.analyzer.mixer_toi_dbm)
         amp_v[physics.product_bin(2, -1)] += physics.im3_phasor_v(mixer_low_dbm, low_v, high_v, True, phase_deg)
@@ -220,8 +222,12 @@ class SimBench:
         self._meter_rng = np.random.default_rng((scenario.seed, 2))
         # Gate and drain supplies (one output each) of a FET scenario, by bench role.
         self.supplies: dict[str, SimSupply] = {}
+        self.fet_bias: FetBias | None = None
         if scenario.fet is not None:
-            self.supplies = {role: SimSupply(channel_count=1) for role in ("gate", "drain")}
+            self.supplies = {role: SimSupply(channel_count=1, current_noise_a=scenario.fet.current_noise_a,
+                                             seed=(scenario.seed, 3 + number))
+                             for number, role in enumerate(("gate", "drain"))}
+            self.fet_bias = FetBias(scenario.fet, self.supplies["gate"], self.supplies["drain"])
 
     def set_thru(self, thru: bool) -> None:
         """Put a 0 dB thru in place of the DUT (True) or the DUT back (False): the operator's job on a real bench."""
@@ -298,8 +304,14 @@ class SimBench:
         """*RST: power-on settings, no trace; damage stays."""
         self.analyzer = AnalyzerState(damaged=self.analyzer.damaged)
 
+    def fet_stage(self) -> FetStage | None:
+        """The FET stage at the bias the supplies hold now (None without a FET scenario); its
+        gain_db and iip3_dbm are the truth tests compare with."""
+        return None if self.fet_bias is None else self.fet_bias.stage()
+
     def _input(self) -> AnalyzerInput:
-        return analyzer_input(self.scenario, self.truth, self._effective_settings(), self.analyzer.atten_db, self.thru)
+        return analyzer_input(self.scenario, self.truth, self._effective_settings(), self.analyzer.atten_db, self.thru,
+                              self.fet_stage())
 
     def input_power_dbm(self) -> float:
         """Total power now at the analyzer input connector (dBm)."""
@@ -315,7 +327,7 @@ class SimBench:
 
     def _check_damage(self) -> None:
         input_dbm = _total_dbm(analyzer_input(self.scenario, self.truth, (self._in_force(1), self._in_force(2)),
-                                              self.analyzer.atten_db, self.thru).amp_v)
+                                              self.analyzer.atten_db, self.thru, self.fet_stage()).amp_v)
         if input_dbm > self.scenario.analyzer.damage_dbm:
             self.analyzer.damaged = True
             self.damage_log.append((self.clock_s, input_dbm))
@@ -337,6 +349,9 @@ class SimBench:
         dut = self.scenario.dut
         # A thru passes the thermal noise at its input: noise figure 0 dB, gain 0 dB.
         nf_db, gain_db = (0.0, 0.0) if self.thru else (dut.nf_db, self.truth.true_gain_db(freq_hz))
+        stage = self.fet_stage()
+        if stage is not None and not self.thru:
+            gain_db = stage.gain_db()
         arriving_dbm_per_hz = (physics.dut_output_noise_dbm_per_hz(nf_db, gain_db)
                                - self.truth.true_loss_db("out", freq_hz))
         noise_dbm_per_hz = physics.analyzer_noise_dbm_per_hz(settings.danl_dbm_per_hz, state.atten_db,

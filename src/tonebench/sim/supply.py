@@ -13,6 +13,8 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
+import numpy as np
+
 # A load: output voltage (V) -> current drawn (A), with the current's sign following the voltage's
 # and its magnitude not falling as |V| grows (every passive load is like that; bisection needs it).
 Load = Callable[[float], float]
@@ -84,12 +86,24 @@ class SimSupply:
     max_current_a: float = 3.0
     channels: list[SupplyChannel] = field(default_factory=list)
     command_log: list[str] = field(default_factory=list)
+    # Standard deviation of each current reading (A): the meter's noise, seeded.
+    current_noise_a: float = 0.0
+    seed: object = 0
 
     def __post_init__(self) -> None:
         if self.channel_count < 1:
             raise ValueError(f"SimSupply: {self.channel_count} channels; needs at least 1")
         if not self.channels:
             self.channels = [SupplyChannel() for _ in range(self.channel_count)]
+        self._rng = np.random.default_rng(self.seed)
+
+    def read_current_a(self, number: int) -> float:
+        """A current reading of channel `number`: its current plus the reading noise (0 while off)."""
+        channel = self.channel(number)
+        current_a = channel.operating_point()[1]
+        if not channel.output_on or self.current_noise_a == 0.0:
+            return current_a
+        return current_a + float(self._rng.normal(0.0, self.current_noise_a))
 
     def channel(self, number: int) -> SupplyChannel:
         if not 1 <= number <= self.channel_count:

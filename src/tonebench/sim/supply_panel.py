@@ -59,7 +59,7 @@ class SimSupplyPanel(ScpiDevice):
         self.query("[SOURce]:CURRent:PROTection:TRIPped", lambda p: self._tripped(), nparams=0)
         self.command("[SOURce]:CURRent:PROTection:CLEar", lambda p: self._change(tripped=False), nparams=0)
         self._setting(("OUTPut[:STATe]",), self._set_output, lambda: "1" if self._channel().output_on else "0")
-        self.query("MEASure[:SCALar]:CURRent[:DC]", lambda p: _fmt(self._point()[1]), nparams=0)
+        self.query("MEASure[:SCALar]:CURRent[:DC]", lambda p: _fmt(self.supply.read_current_a(self.selected)), nparams=0)
         self.query("MEASure[:SCALar]:VOLTage[:DC]", lambda p: _fmt(self._point()[0]), nparams=0)
 
     def _setting(self, patterns: tuple[str, ...], setter: Callable[[list[str]], None],
