@@ -12,8 +12,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import pyvisa
 import pytest
+import pyvisa
 
 from tonebench.sim import physics
 from tonebench.sim.launch import start_sim_bench
