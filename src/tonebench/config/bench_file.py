@@ -7,7 +7,7 @@ import difflib
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
 from tonebench.errors import InputError
@@ -17,7 +17,9 @@ from tonebench.sim.scenario import Scenario
 
 REQUIRED_ROLES = ("source1", "source2", "analyzer")
 # A power meter at the DUT input plane: measured input calibration and closed-loop leveling.
-OPTIONAL_ROLES = ("power_meter",)
+# Gate and drain: one output each of a DC supply or SMU, for a FET's bias (both or neither).
+BIAS_ROLES = ("gate", "drain")
+OPTIONAL_ROLES = ("power_meter", *BIAS_ROLES)
 
 
 class BenchInfo(StrictModel):
@@ -46,6 +48,8 @@ class InstrumentEntry(StrictModel):
     # A VISA resource string; left out on a simulated bench, where the simulator assigns one.
     resource: str | None = None
     performance: dict[str, float] = {}
+    # The output of a multi-output supply this role uses (gate and drain only).
+    channel: int = Field(default=1, ge=1, le=16)
 
     @field_validator("performance")
     @classmethod
@@ -120,6 +124,38 @@ class UnattendedSettings(StrictModel):
     drift_tolerance_db: float = Field(default=0.1, ge=0.0, le=10.0)
 
 
+class BiasLimits(StrictModel):
+    """`[bias]`: limits on the gate and drain supplies, checked before anything is switched on,
+    and how the bias comes up and goes down.
+
+    Sequence (one rule for enhancement and depletion parts): the gate comes on first at
+    gate_idle_v (pinch-off for a depletion part), then the drain ramps up, then the gate ramps to
+    its point; going down the gate ramps back to gate_idle_v, the drain ramps to 0 V and goes off,
+    and the gate goes off last. Every change moves at most ramp_step_v at a time, at ramp_v_per_s."""
+
+    gate_min_v: float = Field(ge=-20.0, le=20.0)
+    gate_max_v: float = Field(ge=-20.0, le=20.0)
+    gate_idle_v: float = Field(default=0.0, ge=-20.0, le=20.0)
+    gate_current_limit_a: float = Field(default=1e-3, gt=0.0, le=1.0)
+    drain_v: float = Field(ge=0.0, le=60.0, description="held unless the plan gives one")
+    drain_max_v: float = Field(ge=0.0, le=60.0)
+    drain_current_limit_a: float = Field(gt=0.0, le=10.0)
+    ramp_v_per_s: float = Field(default=5.0, gt=0.0, le=1000.0)
+    ramp_step_v: float = Field(default=0.1, gt=0.0, le=5.0)
+    settle_s: float = Field(default=0.01, ge=0.0, le=60.0, description="after each bias change, before reading")
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "BiasLimits":
+        if self.gate_min_v > self.gate_max_v:
+            raise ValueError(f"gate_min_v {self.gate_min_v:g} V is above gate_max_v {self.gate_max_v:g} V")
+        if not self.gate_min_v <= self.gate_idle_v <= self.gate_max_v:
+            raise ValueError(f"gate_idle_v {self.gate_idle_v:g} V outside gate_min_v..gate_max_v "
+                             f"({self.gate_min_v:g}..{self.gate_max_v:g} V)")
+        if self.drain_v > self.drain_max_v:
+            raise ValueError(f"drain_v {self.drain_v:g} V is above drain_max_v {self.drain_max_v:g} V")
+        return self
+
+
 class BenchFile(StrictModel):
     bench: BenchInfo
     instruments: dict[str, InstrumentEntry]
@@ -127,6 +163,7 @@ class BenchFile(StrictModel):
     limits: BenchLimits
     leveling: LevelingSettings = LevelingSettings()
     unattended: UnattendedSettings = UnattendedSettings()
+    bias: BiasLimits | None = None
     simulation: dict[str, Any] | None = None
 
     @field_validator("instruments")
@@ -142,7 +179,26 @@ class BenchFile(StrictModel):
         for role, entry in instruments.items():
             if entry.performance and role != "analyzer":
                 raise ValueError(f"instruments.{role}.performance: only the analyzer takes performance figures")
+            if "channel" in entry.model_fields_set and role not in BIAS_ROLES:
+                raise ValueError(f"instruments.{role}.channel: only the {' and '.join(BIAS_ROLES)} roles take a channel")
+        bias_roles = [role for role in BIAS_ROLES if role in instruments]
+        if len(bias_roles) == 1:
+            raise ValueError(f"instruments: {bias_roles[0]} without {(set(BIAS_ROLES) - set(bias_roles)).pop()}; "
+                             "a FET's bias needs both the gate and the drain role")
         return instruments
+
+    @model_validator(mode="after")
+    def _bias_limits(self) -> "BenchFile":
+        if self.has_bias and self.bias is None:
+            raise ValueError("[bias] is missing: a bench with gate and drain supplies needs its limits "
+                             "(gate_min_v, gate_max_v, drain_v, drain_max_v, drain_current_limit_a)")
+        if self.bias is not None and not self.has_bias:
+            raise ValueError("[bias] is given but instruments has no gate and drain roles")
+        return self
+
+    @property
+    def has_bias(self) -> bool:
+        return all(role in self.instruments for role in BIAS_ROLES)
 
     @property
     def has_power_meter(self) -> bool:

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 from tonebench.config.bench_file import OPTIONAL_ROLES, BenchFile
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import SpectrumAnalyzer
+from tonebench.instruments.bias import BiasSupplies
 from tonebench.instruments.dialect import load_dialect
 from tonebench.instruments.power_meter import PowerMeter
 from tonebench.instruments.rf_guard import (
@@ -23,11 +24,13 @@ from tonebench.instruments.role_check import (
 from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.source import PowerGuard, SignalSource
 from tonebench.instruments.supervision import Supervision
+from tonebench.instruments.supply import DcSupply
 from tonebench.instruments.transport import open_resource
 from tonebench.plan.limits import FreqRange, SourceRange
 
 # Which kind of dialect each bench role takes.
-ROLE_KINDS = {"source1": "source", "source2": "source", "analyzer": "analyzer", "power_meter": "power_meter"}
+ROLE_KINDS = {"source1": "source", "source2": "source", "analyzer": "analyzer", "power_meter": "power_meter",
+              "gate": "supply", "drain": "supply"}
 
 
 @dataclass(frozen=True)
@@ -50,6 +53,7 @@ class OpenBench:
     power_meter: PowerMeter | None = None
     last_rf_off: RfOffReport | None = None  # the last switch_rf_off, for the command's last line
     rf_off_budget_s: float = RF_OFF_BUDGET_S  # the bench file's [unattended] rf_off_s
+    bias: BiasSupplies | None = None  # gate and drain, when the bench file names them
 
     def sources(self) -> tuple[SignalSource, SignalSource]:
         return self.source1, self.source2
@@ -83,6 +87,13 @@ class OpenBench:
         self.last_rf_off = report
         return report
 
+    def bias_supplies(self) -> tuple[DcSupply, ...]:
+        return () if self.bias is None else self.bias.supplies()
+
+    def switch_bias_off(self) -> list[str]:
+        """Bias down in its safe order (RF must already be off); a line per step that failed."""
+        return [] if self.bias is None else self.bias.bias_down()
+
     def switch_off_at_connect(self) -> list[str]:
         """RF off at every source as soon as the bench is connected: a run killed (kill -9, power
         lost) may have left one on. Returns a line per source that was found on (or unreadable)."""
@@ -101,7 +112,17 @@ class OpenBench:
         report = self.switch_rf_off()
         if not report.ok:
             raise InstrumentError(f"connecting the bench: {report.line()}")
-        return [f"{line}; switched off (read back)" for line in found]
+        lines = [f"{line}; switched off (read back)" for line in found]
+        for supply in self.bias_supplies():
+            if supply.output_is_on():
+                lines.append(f"{supply.label} was found with its output on (a command before this one ended "
+                             "without switching it off)")
+        if len(lines) > len(found):
+            failures = self.bias.bias_down()
+            if failures:
+                raise InstrumentError(f"connecting the bench: bias off failed: {'; '.join(failures)}")
+            lines[len(found):] = [f"{line}; bias switched off in order" for line in lines[len(found):]]
+        return lines
 
     @property
     def connections(self) -> list[ScpiInstrument]:
@@ -110,7 +131,7 @@ class OpenBench:
 
     def restore_all(self) -> None:
         """Send every driver's last settings again (after a reset or a reopened connection)."""
-        for driver in (self.source1, self.source2, self.analyzer):
+        for driver in (self.source1, self.source2, self.analyzer, *self.bias_supplies()):
             driver.restore()
         if self.power_meter is not None:
             self.power_meter.prepare()
@@ -190,11 +211,17 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
         for inst in opened:
             check_role(inst, ROLE_KINDS[inst.label])
         check_distinct_identities(opened)
+        by_role = {inst.label: inst for inst in opened}
         scpi1, scpi2, scpi_analyzer = opened[:3]
-        meter = PowerMeter(opened[3]) if len(opened) > 3 else None
+        meter = PowerMeter(by_role["power_meter"]) if "power_meter" in by_role else None
         if meter is not None:
             # After a reopened connection the meter may have lost its mode and frequency.
-            opened[3].add_restore_hook(meter.prepare)
+            by_role["power_meter"].add_restore_hook(meter.prepare)
+        bias = None
+        if settings.has_bias:
+            gate, drain = (DcSupply(by_role[role], settings.instruments[role].channel) for role in ("gate", "drain"))
+            bias = BiasSupplies(gate, drain, settings.bias)
+            bias.check_limits()
         source1, source2 = SignalSource(scpi1, power_guard), SignalSource(scpi2, power_guard)
         ranges = tuple(
             SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)
@@ -206,7 +233,7 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
         # The bench file knows this unit; its figures win over the dialect's typical ones.
         analyzer.performance = {**analyzer.performance, **settings.instruments["analyzer"].performance}
         return OpenBench(source1, source2, analyzer, ranges, infos, opened, meter,
-                         rf_off_budget_s=settings.unattended.rf_off_s)
+                         rf_off_budget_s=settings.unattended.rf_off_s, bias=bias)
     except BaseException:
         for instrument in opened:
             instrument.close()

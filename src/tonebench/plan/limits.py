@@ -207,3 +207,32 @@ def check_plan_frequencies(points: list[PlannedPoint], plan_settings, bench_sett
     leveling = bench_settings.has_power_meter and bench_settings.leveling.enabled
     needs = plan_freq_needs(points, plan_settings.analyzer.effective_span_hz, leveling)
     check_frequency_needs(needs, ranges, origin)
+
+
+def check_plan_bias(points: list[PlannedPoint], plan_settings, bench_settings, origin: str) -> None:
+    """The pre-flight bias check of a run, a resume or `queue add`: a plan with gate voltages needs
+    a bench with gate and drain supplies and the other way round, and every gate and drain voltage
+    must lie within the bench file's [bias] limits; all before anything is switched on."""
+    plan_bias = getattr(plan_settings, "bias", None)
+    if plan_bias is None and bench_settings.has_bias:
+        raise InputError(f"{origin}: the bench has gate and drain supplies; the plan needs a [bias] table "
+                         "(gate_v = [...], or gate_start_v, gate_stop_v, gate_step_v) so the device is biased "
+                         "before RF goes on")
+    if plan_bias is None:
+        return
+    if not bench_settings.has_bias:
+        raise InputError(f"{origin}: the plan has a [bias] table but the bench file names no gate and drain "
+                         "supplies (instruments.gate, instruments.drain and a [bias] table of limits)")
+    check_bias_voltages(bench_settings.bias, (p.bias_v for p in points if p.bias_v is not None),
+                        plan_bias.drain_v, origin)
+
+
+def check_bias_voltages(limits, gate_voltages_v: Iterable[float], drain_v: float | None, origin: str) -> None:
+    """Refuse (one line) a gate or drain voltage the bench file's [bias] limits do not allow."""
+    for gate_v in gate_voltages_v:
+        if not limits.gate_min_v <= gate_v <= limits.gate_max_v:
+            raise InputError(f"{origin}: gate voltage {gate_v:g} V outside the bench file's [bias] "
+                             f"gate_min_v..gate_max_v ({limits.gate_min_v:g}..{limits.gate_max_v:g} V)")
+    if drain_v is not None and not 0.0 <= drain_v <= limits.drain_max_v:
+        raise InputError(f"{origin}: drain voltage {drain_v:g} V outside 0..drain_max_v "
+                         f"({limits.drain_max_v:g} V) of the bench file's [bias]")

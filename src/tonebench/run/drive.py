@@ -25,6 +25,12 @@ def sweep_setup(settings: AnalyzerSettings) -> AnalyzerSetup:
                          ref_level_dbm=settings.ref_level_dbm)
 
 
+def plan_drain_v(plan_settings) -> float | None:
+    """The drain voltage the plan's [bias] holds; None leaves the bench file's [bias] drain_v."""
+    bias = getattr(plan_settings, "bias", None)
+    return None if bias is None else bias.drain_v
+
+
 def watchdog_seconds(run: PreparedRun) -> float:
     """The bench file's watchdog_s, raised if one sweep may legitimately take longer (narrow RBW)."""
     analyzer = run.instruments.analyzer
@@ -44,7 +50,8 @@ def drive(run: PreparedRun, on_progress: ProgressCallback | None,
         watchdog = _take_over(run, on_run_started)
         sequencer = Sequencer(run.instruments, run.offsets, run.bench.settings.limits, run.plan.settings.analyzer,
                               run.recorder, run.leveler, second_order=run.plan.settings.sweep.second_order,
-                              unattended=run.bench.settings.unattended, log=run.log, watchdog=watchdog)
+                              unattended=run.bench.settings.unattended, log=run.log, watchdog=watchdog,
+                              drain_v=plan_drain_v(run.plan.settings))
         heartbeat = Heartbeat(run.sessions, run.recorder.run_id)
 
         def progress(done: int, total: int) -> None:

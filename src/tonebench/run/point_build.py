@@ -61,6 +61,8 @@ def measured_record(point: PlannedPoint, measured: Measured, elapsed_s: float, t
     fields.update(referred_values(fields, offsets))
     fields.update(_step_fields(measured.step))
     fields.update(_second_order_fields(point, measured.second, tables["out"]))
+    if measured.bias is not None:
+        fields.update(vars(measured.bias))  # gate_read_v, gate_current_a, drain_read_v, drain_current_a
     extra_time_s = sum(r.sweep_time_s for r in (measured.step, measured.second) if r is not None)
     fields["sweep_time_s"] = readings.sweep_time_s + extra_time_s
     fields["extra_json"] = _extra(measured, drift)

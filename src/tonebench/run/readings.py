@@ -8,6 +8,7 @@ from dataclasses import dataclass
 
 from tonebench.errors import InputError
 from tonebench.instruments.analyzer import AnalyzerSetup, MarkerReading
+from tonebench.instruments.bias import BiasReading
 from tonebench.plan.points import PlannedPoint
 from tonebench.planes.loss_table import LossTable
 
@@ -59,6 +60,7 @@ class Measured:
     choice: str  # how the attenuation was chosen
     step: StepReadings | None
     second: SecondOrderReadings | None
+    bias: BiasReading | None = None  # the gate and drain supplies' read-back, on a bias bench
 
 
 def read_point(analyzer, point: PlannedPoint, noise_offset_hz: float) -> Readings:

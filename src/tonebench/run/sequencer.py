@@ -13,6 +13,7 @@ or the bench file's expected gain for its first.
 
 from __future__ import annotations
 
+import contextlib
 import time
 from collections.abc import Callable
 
@@ -22,6 +23,7 @@ from tonebench.config.plan_file import AnalyzerSettings
 from tonebench.errors import InstrumentError
 from tonebench.instruments.open_bench import OpenBench
 from tonebench.instruments.rf_guard import RfOffReport, raise_if_stopping, shielded
+from tonebench.instruments.supply import SupplyTripped
 from tonebench.plan.axes import SweepKey
 from tonebench.plan.limits import check_source_power, predict_levels
 from tonebench.plan.points import PlannedPoint
@@ -69,8 +71,10 @@ class Sequencer:
         unattended: UnattendedSettings | None = None,
         log=None,
         watchdog: Watchdog | None = None,
+        drain_v: float | None = None,
     ):
         self.bench = bench
+        self.drain_v = drain_v  # the plan's, else the bench file's [bias] drain_v
         self.offsets = offsets
         self.limits = limits
         self.analyzer_settings = analyzer_settings
@@ -108,6 +112,7 @@ class Sequencer:
         try:
             self.bench.analyzer.prepare()
             self.bench.analyzer.apply(self.setup)
+            self._bias_up(todo)
             if self.leveling is not None:
                 self.bench.rf_off_all()  # known state: leveling switches the sources one at a time
             for point in todo:
@@ -129,6 +134,54 @@ class Sequencer:
                 self._stop_recovery()
                 self.rf_report = self.bench.switch_rf_off()
                 self._say_rf_off(self.rf_report)
+                self._bias_down()  # after RF, in its safe order
+
+    def _bias_up(self, todo: list[PlannedPoint]) -> None:
+        """Bias on at the first point's gate voltage, before RF ever goes on."""
+        bias = self.bench.bias
+        first_v = next((point.bias_v for point in todo if point.bias_v is not None), None)
+        if bias is None or first_v is None:
+            return
+        with self._trips_stop_the_run("bias on"):
+            bias.bias_up(first_v, self.drain_v)
+        self.log.event("info", "bias-on", f"bias on: gate {first_v:g} V, drain {bias.drain_v:g} V "
+                                          f"(gate first, drain ramped at {bias.limits.ramp_v_per_s:g} V/s)")
+
+    def _bias_down(self) -> None:
+        bias = self.bench.bias
+        if bias is None or not bias.up:
+            return
+        failures = self.bench.switch_bias_off()
+        try:
+            if failures:
+                self.log.event("error", "bias-not-off", "bias off failed: " + "; ".join(failures))
+            else:
+                self.log.event("info", "bias-off", "bias off (gate to idle, drain down and off, gate off)")
+        except Exception:  # noqa: BLE001 - the run's end is still recorded by the runner
+            pass
+
+    def _set_bias(self, point: PlannedPoint) -> None:
+        bias = self.bench.bias
+        if bias is not None and point.bias_v is not None and bias.gate_v != point.bias_v:
+            with self._trips_stop_the_run(f"point {point.key}"):
+                bias.set_gate(point.bias_v)
+
+    def _read_bias(self, point: PlannedPoint):
+        bias = self.bench.bias
+        if bias is None or not bias.up:
+            return None
+        with self._trips_stop_the_run(f"point {point.key}"):
+            return bias.read()
+
+    @contextlib.contextmanager
+    def _trips_stop_the_run(self, where: str):
+        """A tripped bias supply is a fault that ends the run (aborted, RF and bias off), never a
+        reading of zero bias, and never retried (the device may be damaged)."""
+        try:
+            yield
+        except SupplyTripped as exc:
+            self.log.event("error", "bias-tripped", f"{where}: {exc}")
+            raise RunStopped("aborted", f"bias supply tripped at {where}: {exc}") from None
 
     def _accept(self, point: PlannedPoint, measured: Measured, elapsed_s: float) -> None:
         """Keep the point's tone readings for its sweep and store its record."""
@@ -169,6 +222,7 @@ class Sequencer:
                 if type(exc) is InstrumentError:
                     raise BenchFault(str(exc)) from None
                 raise
+        self._set_bias(point)
         self._set_tones(point)
         if not self.rf.all_on:
             self.rf.set(True, True)
@@ -181,7 +235,7 @@ class Sequencer:
         readings = read_point(analyzer, point, self.analyzer_settings.noise_offset_hz)
         second = self._read_second_order(point) if self.second_order else None
         step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings)
-        return Measured(readings, setup, choice, step, second)
+        return Measured(readings, setup, choice, step, second, self._read_bias(point))
 
     def _settled(self, point: PlannedPoint, measured: Measured) -> str | None:
         """Why the tone levels may still have been moving during the point, or None.
