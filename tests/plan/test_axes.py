@@ -6,7 +6,7 @@ import json
 from pathlib import Path
 from types import SimpleNamespace
 
-from tonebench.config.plan_file import load_plan
+from tonebench.config.plan_file import BiasSettings, load_plan
 from tonebench.plan import axes
 from tonebench.plan.axes import (
     AXES,
@@ -64,9 +64,9 @@ def test_a_sweep_is_every_point_that_differs_only_in_tone_power():
 
 
 def test_an_axis_the_plan_names_is_iterated_outside_the_tone_ramp_and_joins_both_keys():
-    # bias_v is declared in AXES but no plan file has it yet: a plan that gives it expands over it.
-    sweep = _sweep(center_freqs_hz=[1.0e9], spacings_hz=[1.0e6], bias_v=[0.3, 0.5], levels=[-20.0, -10.0])
-    points = expand(SimpleNamespace(sweep=sweep))
+    # Gate bias comes from the plan's [bias] table: the plan expands over it.
+    sweep = _sweep(center_freqs_hz=[1.0e9], spacings_hz=[1.0e6], levels=[-20.0, -10.0])
+    points = expand(SimpleNamespace(sweep=sweep, bias=BiasSettings(gate_v=[0.3, 0.5])))
     assert [p.key for p in points] == [
         "c1000000000/d1000000/p-20.00/b+0.3000V", "c1000000000/d1000000/p-10.00/b+0.3000V",
         "c1000000000/d1000000/p-20.00/b+0.5000V", "c1000000000/d1000000/p-10.00/b+0.5000V",
@@ -75,12 +75,12 @@ def test_an_axis_the_plan_names_is_iterated_outside_the_tone_ramp_and_joins_both
 
 
 def test_a_new_axis_is_one_declaration(monkeypatch):
-    temperature = Axis("temperature", "degC", "temperature_c", lambda sweep: getattr(sweep, "temperatures_c", None),
+    temperature = Axis("temperature", "degC", "temperature_c", lambda plan: getattr(plan.sweep, "temperatures_c", None),
                        "/t{:+.1f}C", "set_temperature")
     monkeypatch.setattr(axes, "AXES", (*AXES, temperature))
     monkeypatch.setattr(axes, "GROUP_AXES", (*GROUP_AXES, temperature))
     sweep = _sweep(center_freqs_hz=[1.0e9], spacings_hz=[1.0e6], temperatures_c=[25.0, 85.0], levels=[-20.0])
-    pairs = axes.axis_values(sweep)
+    pairs = axes.axis_values(SimpleNamespace(sweep=sweep))
     assert [axis.name for axis, _ in pairs] == ["center", "spacing", "bias", "temperature", "tone"]
     assert axes.point_key_of({"center_hz": 1.0e9, "spacing_hz": 1.0e6, "tone_dbm": -20.0, "temperature_c": 85.0}) \
         == "c1000000000/d1000000/p-20.00/t+85.0C"
@@ -90,7 +90,7 @@ def test_a_new_axis_is_one_declaration(monkeypatch):
 
 def test_an_axis_the_plan_does_not_name_leaves_no_trace():
     sweep = _sweep(center_freqs_hz=[1.0e9], spacings_hz=[1.0e6], levels=[0.0])
-    assert {axis.name: list(values) for axis, values in axis_values(sweep)}["bias"] == [None]
+    assert {axis.name: list(values) for axis, values in axis_values(SimpleNamespace(sweep=sweep))}["bias"] == [None]
 
 
 def test_the_sample_plans_expand_to_the_keys_the_old_code_gave():

@@ -6,6 +6,7 @@ A plan says what to measure; the bench file says with what. Both are TOML.
 from __future__ import annotations
 
 import hashlib
+import math
 import tomllib
 import unicodedata
 from pathlib import Path
@@ -110,6 +111,44 @@ class SweepSettings(StrictModel):
         return [round(self.tone_start_dbm + i * self.tone_step_dbm, 6) for i in range(self.tone_level_count())]
 
 
+GATE_LIMIT_V = 20.0  # any plan; the bench file's [bias] narrows it
+
+
+class BiasSettings(StrictModel):
+    """`[bias]`: the gate voltages to measure at (a list, or a range) and the drain voltage held."""
+
+    gate_v: list[float] | None = Field(default=None, min_length=1)
+    gate_start_v: float | None = Field(default=None, ge=-GATE_LIMIT_V, le=GATE_LIMIT_V)
+    gate_stop_v: float | None = Field(default=None, ge=-GATE_LIMIT_V, le=GATE_LIMIT_V)
+    gate_step_v: float | None = Field(default=None, gt=0.0, le=GATE_LIMIT_V)
+    # None: the bench file's [bias] drain_v.
+    drain_v: float | None = Field(default=None, ge=0.0, le=60.0)
+
+    @model_validator(mode="after")
+    def _one_form(self) -> "BiasSettings":
+        range_given = [name for name in ("gate_start_v", "gate_stop_v", "gate_step_v") if getattr(self, name) is not None]
+        forms = "either gate_v = [volts, ...] or gate_start_v, gate_stop_v and gate_step_v"
+        if self.gate_v is not None and range_given:
+            raise ValueError(f"gate_v and {', '.join(range_given)} both given; use {forms}")
+        if self.gate_v is None and len(range_given) != 3:
+            raise ValueError(f"gate voltages missing or incomplete; give {forms}")
+        if self.gate_v is not None and any(abs(v) > GATE_LIMIT_V for v in self.gate_v):
+            raise ValueError(f"gate_v values must lie within +/-{GATE_LIMIT_V:g} V")
+        if self.gate_v is None and self.gate_stop_v < self.gate_start_v:
+            raise ValueError("gate_stop_v must not be below gate_start_v")
+        return self
+
+    def gate_count(self) -> int:
+        if self.gate_v is not None:
+            return len(self.gate_v)
+        return int(math.floor((self.gate_stop_v - self.gate_start_v) / self.gate_step_v + 1e-9)) + 1
+
+    def gate_voltages_v(self) -> list[float]:
+        if self.gate_v is not None:
+            return [round(v, 6) for v in self.gate_v]
+        return [round(self.gate_start_v + i * self.gate_step_v, 6) for i in range(self.gate_count())]
+
+
 class AnalyzerSettings(StrictModel):
     rbw_hz: float = Field(default=1000.0, gt=0.0, le=10e6)
     vbw_hz: float | None = Field(default=None, gt=0.0, le=50e6)
@@ -149,6 +188,7 @@ class PlanFile(StrictModel):
     device: DeviceInfo
     sweep: SweepSettings
     analyzer: AnalyzerSettings = AnalyzerSettings()
+    bias: BiasSettings | None = None
 
     @model_validator(mode="after")
     def _check_span(self) -> "PlanFile":
@@ -168,14 +208,17 @@ class LoadedPlan(BaseModel):
     settings: PlanFile
 
 
-def check_point_count(sweep: SweepSettings, origin: str) -> None:
+def check_point_count(plan: PlanFile, origin: str) -> None:
     """Refuse (one line) a plan that would expand to more than MAX_PLAN_POINTS points."""
-    count = sweep.point_count()
+    sweep = plan.sweep
+    biases = 1 if plan.bias is None else plan.bias.gate_count()
+    count = sweep.point_count() * biases
     if count <= MAX_PLAN_POINTS:
         return
     centers, spacings, levels = len(sweep.center_freqs_hz), len(sweep.spacings_hz), sweep.tone_level_count()
+    gates = "" if plan.bias is None else f" x {biases:,} gate voltages"
     raise InputError(
-        f"{origin}: {count:,} points ({centers} center_freqs_hz x {spacings} spacings_hz x {levels:,} tone levels) "
+        f"{origin}: {count:,} points ({centers} center_freqs_hz x {spacings} spacings_hz x {levels:,} tone levels{gates}) "
         f"exceed the cap of {MAX_PLAN_POINTS:,} points per plan; split it into several plans (fewer "
         "center_freqs_hz or spacings_hz each) or raise tone_step_dbm"
     )
@@ -184,7 +227,7 @@ def check_point_count(sweep: SweepSettings, origin: str) -> None:
 def load_plan(path: Path) -> LoadedPlan:
     text, data = read_toml(path, "plan")
     settings = validate(PlanFile, data, f"plan {path}")
-    check_point_count(settings.sweep, f"plan {path}")
+    check_point_count(settings, f"plan {path}")
     digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
     return LoadedPlan(path=path, text=text, sha256=digest, settings=settings)
 
@@ -196,6 +239,6 @@ def plan_from_text(text: str, path: Path, origin: str) -> LoadedPlan:
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{origin}: not valid TOML ({exc})") from None
     settings = validate(PlanFile, data, origin)
-    check_point_count(settings.sweep, origin)
+    check_point_count(settings, origin)
     digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
     return LoadedPlan(path=path, text=text, sha256=digest, settings=settings)

@@ -2,18 +2,18 @@
 its values come from, the point field that holds its value, its part of the point key, and how a
 run sets it on the bench.
 
-Today's axes: centre frequency, tone spacing, tone power, and gate bias (in every key and sweep
-key, but not in any plan file yet, so it is always None and leaves no trace in a key).
+Today's axes: centre frequency, tone spacing and tone power from the plan's [sweep], and gate
+bias from its [bias] table (None without one, leaving no trace in a key).
 
 A sweep (what one fit runs over) is every point that differs only in the SWEEP_AXIS, tone power.
 `sweep_key_of` gives its key from a planned point or a stored point row, so the sequencer, the store and the results
 group points with one definition.
 
 Adding an axis (gate bias from a plan, temperature, LO frequency, device position):
-1. the plan field in config/plan_file.py (SweepSettings), e.g. `temperatures_c: list[float] | None`;
+1. the plan field in config/plan_file.py (a table's model), e.g. `temperatures_c: list[float] | None`;
 2. a field with its unit on PlannedPoint (plan/points.py), defaulting to None so older callers and
    stored points without it keep their keys, and the column of the same name on the point record;
-3. one Axis in AXES below: `Axis("temperature", "degC", "temperature_c", _plan_field("temperatures_c"),
+3. one Axis in AXES below: `Axis("temperature", "degC", "temperature_c", _plan_field("sweep", "temperatures_c"),
    "/t{:+.1f}C", "set_temperature")`. Its place in AXES is its place in the key; every axis other
    than tone power is iterated outside the tone-power ramp in AXES order, and becomes part of the
    sweep key;
@@ -32,7 +32,7 @@ SweepKey = tuple  # the point's value on every axis but the sweep axis, in AXES 
 
 @dataclass(frozen=True)
 class Axis:
-    """One axis. plan_values gives its values from the plan's [sweep] (None: not in this plan);
+    """One axis. plan_values gives its values from the plan (None: not in this plan);
     key_format renders its value into the point key; bench_setting names how the run sets it."""
 
     name: str
@@ -46,18 +46,23 @@ class Axis:
         return "" if value is None else self.key_format.format(value)
 
 
-def _plan_field(name: str) -> Callable[[object], Sequence[float] | None]:
-    return lambda sweep: getattr(sweep, name, None)
+def _plan_field(table: str, name: str) -> Callable[[object], Sequence[float] | None]:
+    return lambda plan: getattr(getattr(plan, table, None), name, None)
 
 
-def _tone_levels(sweep) -> Sequence[float]:
-    return sweep.tone_levels_dbm()
+def _tone_levels(plan) -> Sequence[float]:
+    return plan.sweep.tone_levels_dbm()
 
 
-CENTER = Axis("center", "Hz", "center_hz", _plan_field("center_freqs_hz"), "c{:.0f}", "tone_frequencies")
-SPACING = Axis("spacing", "Hz", "spacing_hz", _plan_field("spacings_hz"), "/d{:.0f}", "tone_frequencies")
+def _gate_voltages(plan) -> Sequence[float] | None:
+    bias = getattr(plan, "bias", None)
+    return None if bias is None else bias.gate_voltages_v()
+
+
+CENTER = Axis("center", "Hz", "center_hz", _plan_field("sweep", "center_freqs_hz"), "c{:.0f}", "tone_frequencies")
+SPACING = Axis("spacing", "Hz", "spacing_hz", _plan_field("sweep", "spacings_hz"), "/d{:.0f}", "tone_frequencies")
 TONE = Axis("tone", "dBm", "tone_dbm", _tone_levels, "/p{:+.2f}", "tone_power")
-BIAS = Axis("bias", "V", "bias_v", _plan_field("bias_v"), "/b{:+.4f}V", "gate_bias")
+BIAS = Axis("bias", "V", "bias_v", _gate_voltages, "/b{:+.4f}V", "gate_bias")
 
 AXES: tuple[Axis, ...] = (CENTER, SPACING, TONE, BIAS)  # key order
 SWEEP_AXIS = TONE  # a fit runs over this axis; it is iterated innermost, rising
@@ -75,12 +80,12 @@ def sweep_key_of(record) -> SweepKey:
     return tuple(getattr(record, axis.point_field, None) for axis in GROUP_AXES)
 
 
-def axis_values(plan_sweep) -> list[tuple[Axis, Sequence[float | None]]]:
+def axis_values(plan) -> list[tuple[Axis, Sequence[float | None]]]:
     """Each axis with the values the plan gives it, in iteration order (the sweep axis last);
     an axis the plan does not name has the single value None."""
     ordered = [*GROUP_AXES, SWEEP_AXIS]
     pairs = []
     for axis in ordered:
-        values = axis.plan_values(plan_sweep)
+        values = axis.plan_values(plan)
         pairs.append((axis, (None,) if values is None else values))
     return pairs

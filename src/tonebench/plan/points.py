@@ -53,7 +53,7 @@ class PlannedPoint:
 def expand(plan: PlanFile) -> list[PlannedPoint]:
     """Points over every axis in plan/axes.py order (today frequency, then spacing), the tone
     power rising innermost: one sweep per group."""
-    pairs = axis_values(plan.sweep)
+    pairs = axis_values(plan)
     fields = [axis.point_field for axis, _ in pairs]
     points = []
     for values in product(*(values for _, values in pairs)):

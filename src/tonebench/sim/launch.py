@@ -43,7 +43,8 @@ def start_sim_bench(scenario: Scenario, faults: FaultSchedule | None = None) -> 
     devices = {"source1": SimSource(bench, 1), "source2": SimSource(bench, 2), "analyzer": SimAnalyzer(bench),
                "power_meter": SimPowerMeter(bench)}
     for number, (role, supply) in enumerate(bench.supplies.items(), start=1):
-        devices[role] = SimSupplyPanel(supply, name=role, idn=f"tonebench,simulated DC supply,SIM-PS-{number:04d},0.1")
+        devices[role] = SimSupplyPanel(supply, name=role, idn=f"tonebench,simulated DC supply,SIM-PS-{number:04d},0.1",
+                                       bench_log=bench.log)
     servers: dict[str, InstrumentServer] = {}
     try:
         for role, device in devices.items():

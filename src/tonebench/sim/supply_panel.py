@@ -41,10 +41,12 @@ class SimSupplyPanel(ScpiDevice):
     """Front panel of one SimSupply; every received line is logged in supply.command_log."""
 
     def __init__(self, supply: SimSupply, name: str = "supply",
-                 idn: str = "tonebench,simulated DC supply,SIM-PS-0001,0.1"):
+                 idn: str = "tonebench,simulated DC supply,SIM-PS-0001,0.1",
+                 bench_log: Callable[[str, str], None] | None = None):
         super().__init__(idn)
         self.supply = supply
         self.name = name
+        self.bench_log = bench_log  # (name, line): the bench's log, so one log orders every instrument
         self.selected = 1
         self._setting(("INSTrument:NSELect",), self._select, lambda: str(self.selected))
         self._setting(("INSTrument[:SELect]",), self._select_name, lambda: f"OUT{self.selected}")
@@ -71,6 +73,8 @@ class SimSupplyPanel(ScpiDevice):
     def handle_line(self, line: str) -> str | None:
         # The server calls this under the bench's shared lock.
         self.supply.command_log.append(line)
+        if self.bench_log is not None:
+            self.bench_log(self.name, line)
         return super().handle_line(_unsuffixed(line))
 
     # --- channel selection and state ----------------------------------------------------------

@@ -30,6 +30,11 @@ class PointRecord:
     tone_dbm: float
     bias_v: float | None = None
     fail_reason: str | None = None
+    # The gate and drain supplies' read-back at the point (bias benches only).
+    gate_read_v: float | None = None
+    gate_current_a: float | None = None
+    drain_read_v: float | None = None
+    drain_current_a: float | None = None
 
     source1_dbm: float | None = None
     source2_dbm: float | None = None

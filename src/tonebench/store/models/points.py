@@ -49,6 +49,11 @@ class Point(Base):
     f2_hz: Mapped[float]
     tone_dbm: Mapped[float]
     bias_v: Mapped[float | None]
+    # The gate and drain supplies' read-back at the point (bias benches only).
+    gate_read_v: Mapped[float | None]
+    gate_current_a: Mapped[float | None]
+    drain_read_v: Mapped[float | None]
+    drain_current_a: Mapped[float | None]
 
     source1_dbm: Mapped[float | None]
     source2_dbm: Mapped[float | None]
