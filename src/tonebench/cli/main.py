@@ -16,6 +16,7 @@ from rich.progress import (
 )
 from rich.table import Table
 
+from tonebench.cli.bias import register_bias_commands
 from tonebench.cli.calibration import cal_app
 from tonebench.cli.catalog import register_catalog_commands
 from tonebench.cli.common import DbOption, database, err, one_line_errors, out
@@ -301,3 +302,6 @@ def db_upgrade(db: DbOption = None) -> None:
 
     with one_line_errors():
         out.print(f"database at schema revision {upgrade_database(database(db))}")
+
+
+register_bias_commands(app, _run_with_progress)
