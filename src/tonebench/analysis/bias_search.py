@@ -102,7 +102,8 @@ def predicted_sweet_spot(gate_v, drain_a, sigma_a: float, window_points: int, po
         kind="dc-prediction", sweet_spot_v=spot.gate_v, sweet_spot_bound_v=spot.sigma_v, peak_iip3_dbm=peak_dbm,
         window_threshold_dbm=threshold, window_low_v=None if window is None else window.low_v,
         window_high_v=None if window is None else window.high_v,
-        window_bound_v=result.step_v, method=method, drain_current_a=drain_at_a)
+        # An edge moves with g3 as the zero does (g3 is near linear across the window): the same bound.
+        window_bound_v=max(spot.sigma_v, result.step_v), method=method, drain_current_a=drain_at_a)
 
 
 # --- measured from two-tone points ------------------------------------------------------------
