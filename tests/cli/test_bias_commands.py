@@ -13,6 +13,8 @@ from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
 
 from tonebench.sim.fet_stage import fet_of
+from tonebench.store.bias_store import study_of
+from tonebench.store.database import session_factory
 from tonebench.sim.scenario import FetScenario
 from tonebench.store.models import Point, Run
 
@@ -42,6 +44,12 @@ def test_search_finds_the_simulated_sweet_spot_and_window(tmp_path):
     assert [run.status for run in runs] == ["complete", "complete"]
     # The fine steps sit around the measured peak, 2 mV apart, not on the coarse grid.
     assert all(abs(v - 0.57) <= 0.0061 for v in fine_biases) and 0.57 not in fine_biases
+    guid = re.search(r"study ([0-9a-f-]{36}): stored", result.output).group(1)
+    study = study_of(session_factory(create_engine(f"sqlite:///{tmp_path / 'tb.db'}")), guid)
+    two_tone = next(f for f in study.findings if f.kind == "two-tone")
+    assert f"{two_tone.sweet_spot_v:.4f}" == measured.group(1) and len(study.dc_points) == 401
+    assert study.run_guids.split(",") == [run.guid for run in runs] and study.window_points == 81
+    assert {f.kind for f in study.findings} == {"dc-prediction", "two-tone"}
     text = page.read_text()
     assert "Linearity sweet spot: TBF-77 TBF77-0042" in text and "measured less predicted" in text
 

@@ -90,6 +90,7 @@ def register_bias_commands(app: typer.Typer, run_with_progress) -> None:
             study = run_bias_study(plan, bench, db_url, page_path, execute, say)
             for run in study.runs:
                 say(f"run {run.guid[:8]}: {run.status}: {run.reason}")
+            say(f"study {study.guid}: stored with its {study.transfer.gate_v.size} DC points and findings")
             say(finding_line("predicted from DC", study.predicted))
             say(finding_line(f"measured at {study.measured.drive_tone_dbm:g} dBm per tone", study.measured))
             if study.input_offset_db is not None:

@@ -43,6 +43,7 @@ from tonebench.report.bias_page import (
 from tonebench.report.html import check_report_path, write_html_file
 from tonebench.run.dc_transfer import DcTransfer, measure_dc_transfer
 from tonebench.run.ending import RunOutcome
+from tonebench.store.bias_store import add_study
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Point, Run
 
@@ -51,6 +52,7 @@ _TABLE_HEADER = re.compile(r"^\s*\[+\s*([A-Za-z0-9_.\-\" ]+?)\s*\]+\s*(#.*)?$")
 
 @dataclass
 class BiasStudy:
+    guid: str  # the stored study (store/models/bias.py)
     transfer: DcTransfer
     derivatives: TransconductanceResult
     predicted: SweetSpotFinding | None
@@ -134,7 +136,16 @@ def run_bias_study(plan_path: Path, bench_path: Path, db_url: str, page_path: Pa
                                    fit_points=search.fine_points + 2)
     offset_db = input_offset_db(points, derivatives)
     truth = simulated_truth(sims[0], measured.window_threshold_dbm) if sims else []
-    study = BiasStudy(transfer, derivatives, predicted, runs, points, measured, offset_db, page_path, truth)
+    engine = open_database(db_url)
+    try:
+        study_guid = add_study(
+            session_factory(engine), part_number=plan.settings.device.part_number, serial=plan.settings.device.serial,
+            bench_name=bench.settings.bench.name, transfer=transfer, window_points=bias.dc.window_points,
+            polyorder=bias.dc.polyorder, step_v=bias.dc.gate_step_v, run_guids=[run.guid for run in runs],
+            findings=[predicted, measured], input_offset_db=offset_db)
+    finally:
+        engine.dispose()
+    study = BiasStudy(study_guid, transfer, derivatives, predicted, runs, points, measured, offset_db, page_path, truth)
     write_html_file(page_path, render_bias_page(page_data(study, plan, bias)), "bias page path")
     return study
 
@@ -169,6 +180,7 @@ def page_data(study: BiasStudy, plan: LoadedPlan, bias) -> BiasPageData:
     transfer = study.transfer
     summary = {
         "device": f"{device.part_number} {device.serial}" + (f" (lot {device.lot})" if device.lot else ""),
+        "study": study.guid,
         "runs": ", ".join(run.guid[:8] for run in study.runs),
         "drain": f"{transfer.drain_v:g} V",
         "DC sweep": f"{transfer.gate_v.size} points, {bias.dc.gate_step_v * 1e3:g} mV step, "

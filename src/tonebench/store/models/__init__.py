@@ -1,6 +1,7 @@
 """Database tables (SQLAlchemy 2 declarative), portable between SQLite and PostgreSQL, one module
 per family: base (declarative base, types, enumerations), runs (bench, device, plan, run,
-instruments, offsets, events), points, results, calibration, queue (jobs, spec limits).
+instruments, offsets, events), points, results, calibration, queue (jobs, spec limits), bias
+(sweet-spot studies: DC points and findings).
 
 Every name is importable from here (`from tonebench.store.models import Point`); importing this
 package registers every table with Base.metadata, which the migrations compare against.
@@ -22,6 +23,7 @@ from tonebench.store.models.base import (
     UtcDateTime,
     utc_now,
 )
+from tonebench.store.models.bias import BiasFinding, BiasStudy, DcPoint
 from tonebench.store.models.calibration import (
     CalibrationOffset,
     CalibrationSet,
@@ -45,5 +47,5 @@ __all__ = [
     "OFFSET_PATHS", "POINT_STATUSES", "RUN_STATUSES", "SPEC_PARAMETERS", "VERDICTS", "Base", "UtcDateTime",
     "utc_now", "Bench", "Device", "Event", "Instrument", "Offset", "Plan", "Run", "Point", "PointFlag",
     "Result", "ResultFlag", "result_group_key", "CalibrationOffset", "CalibrationSet", "SystemResidual",
-    "Job", "SpecLimit",
+    "Job", "SpecLimit", "BiasStudy", "DcPoint", "BiasFinding",
 ]
