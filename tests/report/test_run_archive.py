@@ -11,11 +11,11 @@ import shutil
 from pathlib import Path
 
 import pytest
-from sqlalchemy import create_engine, select
+from sqlalchemy import select
 
 from tonebench.analysis.uncertainty import RANDOM_TERMS, SYSTEMATIC_TERMS
 from tonebench.report.run_page import write_run_report
-from tonebench.store.database import session_factory
+from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Run
 
 FIXTURE = Path(__file__).resolve().parent.parent / "data" / "pre_layout" / "tonebench.db"
@@ -25,7 +25,7 @@ FIXTURE = Path(__file__).resolve().parent.parent / "data" / "pre_layout" / "tone
 def stored(tmp_path):
     db = tmp_path / "archive.db"
     shutil.copy(FIXTURE, db)
-    sessions = session_factory(create_engine(f"sqlite:///{db}"))
+    sessions = session_factory(open_database(f"sqlite:///{db}"))  # brought to today's schema
     with sessions() as session:
         run = session.scalars(select(Run).where(Run.status == "complete")).first()
         guid = run.guid

@@ -9,10 +9,11 @@ import sqlite3
 import subprocess
 import sys
 
+from conftest import PROJECT_ROOT
 from rich.console import Console
 
-from conftest import PROJECT_ROOT
 from tonebench.report.run_views import describe_run, list_runs
+from tonebench.store.database import upgrade_database
 
 FIXTURE_DB = PROJECT_ROOT / "tests" / "data" / "pre_layout" / "tonebench.db"
 
@@ -26,6 +27,7 @@ def _dead_owner() -> str:
 def test_views_leave_a_dead_running_run_as_stored(tmp_path):
     path = tmp_path / "tonebench.db"
     shutil.copy(FIXTURE_DB, path)
+    upgrade_database(f"sqlite:///{path}")  # written at an older schema revision
     with sqlite3.connect(path) as connection:
         connection.execute("UPDATE runs SET status = 'running', end_reason = NULL, owner = ?", (_dead_owner(),))
         guid = connection.execute("SELECT guid FROM runs").fetchone()[0]
@@ -57,6 +59,7 @@ def test_the_commands_close_a_dead_run_before_showing_it(tmp_path):
 
     path = tmp_path / "tonebench.db"
     shutil.copy(FIXTURE_DB, path)
+    upgrade_database(f"sqlite:///{path}")  # written at an older schema revision
     with sqlite3.connect(path) as connection:
         connection.execute("UPDATE runs SET status = 'running', end_reason = NULL, owner = ?", (_dead_owner(),))
     connection.close()
