@@ -175,13 +175,6 @@ def _finding(found: SweetSpotFinding | None, offset_db: float | None) -> list[Bi
                         gain_db=found.gain_db, input_gain_offset_db=offset_db if found.kind == "two-tone" else None)]
 
 
-def degeneration_choices(freq_hz: float) -> tuple[tuple[str, complex], ...]:
-    """Source degeneration to show: two resistors and an inductor at the measured frequency."""
-    inductor_h = 0.5e-9
-    return (("5 ohm", 5.0), ("10 ohm", 10.0),
-            (f"0.5 nH at {freq_hz / 1e9:g} GHz", complex(0.0, 2 * math.pi * freq_hz * inductor_h)))
-
-
 def page_data(study: BiasStudy, plan: LoadedPlan, bias) -> BiasPageData:
     device = plan.settings.device
     transfer = study.transfer
@@ -206,5 +199,5 @@ def page_data(study: BiasStudy, plan: LoadedPlan, bias) -> BiasPageData:
         measured=[MeasuredIip3(None, points.drive_tone_dbm, points.gate_v, points.iip3_dbm,
                                points.at_floor)],
         findings=_finding(study.predicted, None) + _finding(study.measured, study.input_offset_db),
-        what_if_ohm=degeneration_choices(plan.settings.sweep.center_freqs_hz[0]),
+        what_if_ohm=(("5 ohm", 5.0), ("10 ohm", 10.0)),
     )
