@@ -18,3 +18,10 @@ def test_demo_recovers_the_true_iip3(tmp_path):
     assert len(pairs) == 3, result.output  # one per centre frequency of the demo plan
     for measured, truth in pairs:
         assert abs(float(measured) - float(truth)) <= 0.3, result.output
+    # The next commands it prints work as printed.
+    next_commands = re.findall(r"^  (tonebench .+)$", result.output, re.MULTILINE)
+    assert [c.split()[1] for c in next_commands] == ["show", "find", "analyze"]
+    for command in next_commands:
+        followed = CliRunner(env={"COLUMNS": "220"}).invoke(app, command.split()[1:])
+        assert followed.exit_code == 0, (command, followed.output)
+        assert "KLN-2417A" in followed.output or "IIP3" in followed.output, followed.output

@@ -33,4 +33,8 @@ def run_demo(out_dir: Path, run_with_progress, console: Console):
             f"{result.center_hz / 1e9:.3f} GHz: IIP3 measured {measured}, simulated truth {true_iip3_dbm:+.2f} dBm",
             highlight=False,
         )
+    console.print("next, to look at what was measured:", highlight=False)
+    for command in (f"tonebench show {outcome.guid[:8]} --db {db_path}", f"tonebench find --db {db_path}",
+                    f"tonebench analyze {outcome.guid[:8]} --db {db_path}"):
+        console.print(f"  {command}", highlight=False)
     return outcome
