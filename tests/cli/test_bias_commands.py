@@ -81,3 +81,11 @@ def test_bad_study_plans_are_one_line(tmp_path, edit, message):
 def test_a_bench_without_supplies_is_refused(tmp_path):
     result = invoke("bias", "dc", PLAN, "--bench", SAMPLE_RUNS / "sim_bench.toml")
     assert result.exit_code == 2 and "needs a bench with gate and drain supplies" in result.output
+
+
+def test_a_plain_run_of_the_study_plan_shows_each_gate_voltage(tmp_path):
+    result = invoke("run", PLAN, "--bench", BENCH, "--db", tmp_path / "tb.db")
+    assert result.exit_code == 0, result.output
+    assert "Gate V" in result.output
+    for gate_v in ("0.4500", "0.5700", "0.7300"):
+        assert re.search(rf"2\.4500\s+1 MHz\s+{gate_v}\s", result.output), result.output

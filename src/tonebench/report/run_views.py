@@ -26,7 +26,8 @@ def results_table(results) -> Table:
     table = Table(title="Results (dB, dBm; IIP3 ± its bound; P1dB per tone)", box=box.SIMPLE_HEAD, padding=(0, 1),
                   pad_edge=False, collapse_padding=True)
     # Optional columns only when some sweep has something in them.
-    shown = {"Note": any(row["Note"] for row in rows), "Flags": any(row["Flags"] != "-" for row in rows)}
+    shown = {"Note": any(row["Note"] for row in rows), "Flags": any(row["Flags"] != "-" for row in rows),
+             "Gate V": any(row["Gate V"] for row in rows)}
     columns = [c for c in (rows[0] if rows else ()) if shown.get(c, True)]
     for column in columns:
         table.add_column(column, no_wrap=column not in ("Note", "Flags"))

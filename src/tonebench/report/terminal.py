@@ -28,6 +28,7 @@ def terminal_row(result: Result) -> dict[str, str]:
     return {
         "GHz": f"{result.center_hz / 1e9:.4f}",
         "Spacing": f"{result.spacing_hz / 1e6:.3g} MHz",
+        "Gate V": "" if result.bias_v is None else f"{result.bias_v:.4f}",
         "Gain": _fmt(result.gain_db, ".2f"),
         # Lower and upper intercepts are in the report; the bound is what a reader must see here.
         "IIP3": _fmt(result.iip3_dbm) + ("" if result.iip3_bound_db is None else f" ±{result.iip3_bound_db:.2f}"),
