@@ -227,14 +227,16 @@ def bench_file_set(session: Session, bench_name: str, bench_path: str, tables: M
     if row is None:
         try:
             # Several workers may start runs with the same bench file at once: the loser of the
-            # race on the unique name takes the winner's row.
+            # race on the unique name takes the winner's row, whether it loses at the insert
+            # (IntegrityError) or at create_set's own check of the name (the winner committed
+            # in between: InputError, seen on PostgreSQL).
             with session.begin_nested():
                 row = create_set(
                     session, name=name, method="bench-file", tables=tables, valid_days=BENCH_FILE_VALID_DAYS,
                     source_files=[{"offset_path": "in1,in2,out", "file": bench_path, "sha256": digest}],
                     notes="the [offsets] table of a bench file, as typed there",
                 )
-        except IntegrityError:
+        except (IntegrityError, InputError):
             row = find_set(session, name)
             if row is None:
                 raise
