@@ -6,6 +6,9 @@ read from the simulator's own instruments and its one command log."""
 from __future__ import annotations
 
 import math
+import signal
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
@@ -154,3 +157,37 @@ def test_a_bias_plan_on_a_bench_without_supplies_is_refused(tmp_path):
     result, sim = run(tmp_path, bench_text)
     assert isinstance(result, InputError) and "names no gate and drain supplies" in str(result)
     assert sim is None
+
+
+def bias_lab(folder: Path):
+    """The sample FET bench served in this process, and a bench file reaching it as hardware."""
+    from tonebench.config.bench_file import load_bench
+    from tonebench.sim.launch import start_sim_bench
+
+    sim = start_sim_bench(load_bench(SAMPLE_RUNS / "bias_bench.toml").scenario)
+    text = BIAS_BENCH.split("[simulation]")[0]
+    for role, resource in sim.resources.items():
+        text = text.replace(f"[instruments.{role}]\n", f'[instruments.{role}]\nresource = "{resource}"\n')
+    (folder / "bench.toml").write_text(text)
+    (folder / "plan.toml").write_text(PLAN)
+    return sim
+
+
+@pytest.mark.parametrize("signum, count, code", [
+    (signal.SIGINT, 5, 130), (signal.SIGTERM, 3, 143),
+], ids=["ctrl-c-x5", "sigterm-x3"])
+def test_repeated_signals_leave_rf_and_bias_off_in_order(tmp_path, signum, count, code):
+    from test_rf_off_paths import both_on, finish, send_burst, wait_for
+
+    sim = bias_lab(tmp_path)
+    try:
+        proc = subprocess.Popen([sys.executable, "-m", "tonebench", "run", "plan.toml", "--bench", "bench.toml",
+                                 "--db", "t.db"], cwd=tmp_path, text=True, stdout=subprocess.PIPE,
+                                stderr=subprocess.PIPE)
+        wait_for(lambda: both_on(sim), proc, "RF on")
+        send_burst(proc.pid, signum, count)
+        returncode, _stdout, stderr = finish(proc)
+        assert returncode == code and "Traceback" not in stderr, stderr
+        assert_safe_order(sim)
+    finally:
+        sim.close()
