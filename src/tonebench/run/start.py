@@ -36,7 +36,7 @@ from tonebench.store.bench_lock import check_free_at as check_bench_free_at
 from tonebench.store.bench_lock import hold_bench
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Run
-from tonebench.store.records import RunRecorder
+from tonebench.store.records import RunRecorder, device_differences
 
 
 def execute_run(
@@ -63,7 +63,7 @@ def execute_run(
     files = _RunFiles(plan_path, bench_path, load_plan(plan_path), load_bench(bench_path))
     with ExitStack() as stack:
         checked = _check_and_connect(stack, files, db_url, cal_name, on_sim_started, on_warning or print_warning)
-        prepared = _store_start(stack, files, checked, db_url, report_path)
+        prepared = _store_start(stack, files, checked, db_url, report_path, on_warning or print_warning)
         return drive(prepared, on_progress, on_run_started)
 
 
@@ -122,13 +122,21 @@ def _open_sessions(stack: ExitStack, db_url: str) -> sessionmaker:
 
 
 def _store_start(stack: ExitStack, files: _RunFiles, checked: _Checked, db_url: str,
-                 report_path: Path | None) -> PreparedRun:
+                 report_path: Path | None, warn: Callable[[str], None]) -> PreparedRun:
     """Hold the bench, store the run with what it is measured with, open its log."""
     plan, bench, chosen = files.plan, files.bench, checked.chosen
     sessions = checked.sessions or _open_sessions(stack, db_url)
     set_id = calibration_set_id(sessions, chosen, bench, files.bench_path)
     hold = stack.enter_context(hold_bench(sessions, bench.settings.bench.name))  # one run per bench
+    device = plan.settings.device
+    differs = device_differences(sessions, device.model_dump())
+    differs_line = (f"plan [device] {device.part_number} {device.serial} disagrees with the device registry: "
+                    f"{'; '.join(differs)}; the run is stored against the registry's device") if differs else None
+    if differs_line:
+        warn(differs_line)
     recorder = hold.commit(_start_recorder(hold.sessions, files, checked))
+    if differs_line:
+        recorder.event("warning", "device-differs", differs_line)
     with sessions.begin() as session:
         session.get(Run, recorder.run_id).calibration_set_id = set_id
     if chosen.stale_message:

@@ -28,6 +28,22 @@ from tonebench.store.models import (
 _log = logging.getLogger(__name__)
 
 
+REGISTRY_FIELDS = ("lot", "wafer", "position")
+
+
+def device_differences(sessions, device: dict) -> list[str]:
+    """What a plan's [device] says that the registry holds otherwise for the same part and serial
+    (lot, wafer, position; a field either side leaves empty is no disagreement). The registry keeps
+    what it has: `tonebench device` commands change it."""
+    with sessions() as session:
+        row = session.scalars(select(Device).filter_by(part_number=device["part_number"],
+                                                       serial=device["serial"])).first()
+    if row is None:
+        return []
+    return [f"{name} {device[name]!r} (the registry has {getattr(row, name)!r})" for name in REGISTRY_FIELDS
+            if device.get(name) is not None and getattr(row, name) is not None and device[name] != getattr(row, name)]
+
+
 def _get_or_create(session: Session, model, lookup: dict, **defaults):
     """The row matching `lookup`, created if missing. Two processes may race to create it (two
     workers starting on one bench): the loser's insert fails on the unique key inside a savepoint
@@ -67,7 +83,7 @@ class RunRecorder:
         instruments: list[dict],
         offsets: list[dict],
         metadata: dict,
-    ) -> "RunRecorder":
+    ) -> RunRecorder:
         guid = str(uuid.uuid4())
         with sessions.begin() as session:
             bench = _get_or_create(session, Bench, {"name": bench_name}, description=bench_description, created_at=utc_now())
