@@ -30,3 +30,19 @@ def test_another_lot_is_a_warning_and_an_event(tmp_path):
     with Session(create_engine(f"sqlite:///{tmp_path / 't.db'}")) as session:
         assert session.scalars(select(Device.lot)).all() == ["TB24-031"]
         assert session.scalars(select(Event.message).where(Event.kind == "device-differs")).one() == line[9:]
+
+
+def test_device_edit_changes_the_registry_and_the_warning_goes(tmp_path):
+    run_plan(tmp_path, PLAN)
+    db = tmp_path / "t.db"
+    edited = invoke("device", "edit", "KLN-2417A", "KLN24031-0117", "--lot", "TB24-099", "--position", "", "--db", db)
+    assert edited.exit_code == 0, edited.output
+    assert edited.output.strip() == ("device KLN-2417A serial KLN24031-0117: lot: TB24-031 -> TB24-099; "
+                                     "position: R4C11 -> -")
+    shown = invoke("device", "show", "KLN-2417A", "KLN24031-0117", "--db", db).output
+    assert "lot:       TB24-099" in shown and "position:  -" in shown
+    again = run_plan(tmp_path, PLAN.replace('lot = "TB24-031"', 'lot = "TB24-099"'))
+    assert again.exit_code == 0 and "disagrees" not in again.output
+    missing = invoke("device", "edit", "KLN-2417A", "NOPE", "--lot", "x", "--db", db)
+    assert missing.exit_code == 2 and missing.output.strip() == (
+        "error: device KLN-2417A serial NOPE: not registered (see `tonebench device list`)")

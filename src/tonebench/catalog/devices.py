@@ -55,6 +55,22 @@ def add_device(session: Session, part_number: str, serial: str, *, lot: str | No
     return device
 
 
+def edit_device(session: Session, part_number: str, serial: str, **changes) -> tuple[Device, list[str]]:
+    """Change a registered device's lot, wafer, position, tags or notes (None leaves a field as it
+    is, "" clears it); returns the device and a line per field changed."""
+    device = get_device(session, part_number, serial)
+    said = []
+    for name, value in changes.items():
+        if value is None:
+            continue
+        new = clean_tags(value) if name == "tags" else _clean(name, value)
+        if new != getattr(device, name):
+            said.append(f"{name}: {getattr(device, name) or '-'} -> {(', '.join(new) if name == 'tags' else new) or '-'}")
+            setattr(device, name, new)
+    session.flush()
+    return device, said
+
+
 def find_device(session: Session, part_number: str, serial: str) -> Device | None:
     return session.scalars(sa.select(Device).where(Device.part_number == part_number, Device.serial == serial)).first()
 

@@ -165,6 +165,27 @@ def device_add(
         out.print(f"device {device.part_number} serial {device.serial} registered", highlight=False)
 
 
+@device_app.command("edit")
+def device_edit(
+    part: Annotated[str, typer.Argument(help="Part number.")],
+    serial: Annotated[str, typer.Argument(help="Serial number.")],
+    lot: Annotated[str | None, typer.Option(help="New lot (\"\" clears it).")] = None,
+    wafer: Annotated[str | None, typer.Option(help="New wafer (\"\" clears it).")] = None,
+    position: Annotated[str | None, typer.Option(help="New position (\"\" clears it).")] = None,
+    tag: Annotated[list[str] | None, typer.Option("--tag", help="Replace the tags (repeatable).")] = None,
+    notes: Annotated[str | None, typer.Option(help="New notes (\"\" clears them).")] = None,
+    db: DbOption = None,
+) -> None:
+    """Change a registered device's lot, wafer, position, tags or notes; its runs stay as they are."""
+    from tonebench.catalog.devices import edit_device
+
+    with one_line_errors(), _session(db, write=True) as session:
+        device, said = edit_device(session, part, serial, lot=lot, wafer=wafer, position=position, tags=tag,
+                                   notes=notes)
+        what = "; ".join(said) if said else "nothing changed"
+        out.print(f"device {device.part_number} serial {device.serial}: {what}", highlight=False)
+
+
 @device_app.command("list")
 def device_list(
     part: Annotated[str | None, typer.Option("--part", help="Only this part number.")] = None,
