@@ -86,8 +86,8 @@ class BiasSupplies:
 
     def read(self) -> BiasReading:
         """Both supplies' voltage and current; SupplyTripped if either output has tripped."""
-        return BiasReading(self.gate.measure_voltage_v(), self.gate.measure_current_a(),
-                           self.drain.measure_voltage_v(), self.drain.measure_current_a())
+        # One trip check per supply after both its readings (not one per reading).
+        return BiasReading(*self.gate.measure(), *self.drain.measure())
 
     def bias_down(self) -> list[str]:
         """Gate to idle, drain ramped down and off, gate off: every step tried even when one fails

@@ -132,6 +132,12 @@ class DcSupply(RoleDriver):
         self.check_output()
         return reading_v
 
+    def measure(self) -> tuple[float, float]:
+        """Voltage (V) and current (A) together, checked once after both readings."""
+        reading_v, reading_a = self._call("measure_voltage"), self._call("measure_current")
+        self.check_output()
+        return reading_v, reading_a
+
     def restore(self) -> None:
         """Send what was last asked for again: voltage, current limit, then the output state.
 
