@@ -17,7 +17,7 @@ from tonebench.plan.points import expand
 
 FIXTURE = PROJECT_ROOT / "tests" / "data" / "pre_layout"
 RUN = "c5af811f"
-SCHEMA_NOW = "0003"
+SCHEMA_NOW = "0004"
 runner = CliRunner(env={"COLUMNS": "200"})
 
 
@@ -53,7 +53,7 @@ def at_schema_now(text: str) -> str:
     its points carry the columns added since (empty for these points: written as null), and the
     trailer's digest (of everything above it) changes with them."""
     text = text.replace('"schema":"0002"', f'"schema":"{SCHEMA_NOW}"', 1)
-    text = re.sub(r'"(gate_read_v|gate_current_a|drain_read_v|drain_current_a)":null,', "", text)
+    text = re.sub(r'"(gate_read_v|gate_current_a|drain_read_v|drain_current_a|temperature_c|chamber_read_c)":null,', "", text)
     return re.sub(r'"sha256":"[0-9a-f]{64}"}\n$', '"sha256":"-"}\n', text)
 
 

@@ -19,7 +19,8 @@ REQUIRED_ROLES = ("source1", "source2", "analyzer")
 # A power meter at the DUT input plane: measured input calibration and closed-loop leveling.
 # Gate and drain: one output each of a DC supply or SMU, for a FET's bias (both or neither).
 BIAS_ROLES = ("gate", "drain")
-OPTIONAL_ROLES = ("power_meter", *BIAS_ROLES)
+# A thermal chamber around the DUT: temperature as a plan axis (needs the [chamber] table).
+OPTIONAL_ROLES = ("power_meter", *BIAS_ROLES, "chamber")
 
 
 class BenchInfo(StrictModel):
@@ -156,6 +157,28 @@ class BiasLimits(StrictModel):
         return self
 
 
+class ChamberLimits(StrictModel):
+    """`[chamber]`: the temperatures a plan may ask for, and what a soak is. A soak is done when
+    the chamber reads within tolerance_c of the set point for dwell_s without a break; one that
+    is not done after timeout_s is a fault. The chamber stays at the last set point when a command
+    ends (a study at several temperatures is several runs); bringing it back is the lab's call."""
+
+    min_c: float = Field(ge=-100.0, le=250.0)
+    max_c: float = Field(ge=-100.0, le=250.0)
+    tolerance_c: float = Field(default=0.5, gt=0.0, le=20.0)
+    dwell_s: float = Field(default=300.0, ge=0.0, le=86400.0)
+    timeout_s: float = Field(default=3600.0, gt=0.0, le=7 * 86400.0)
+    poll_s: float = Field(default=10.0, gt=0.0, le=600.0)
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "ChamberLimits":
+        if self.min_c > self.max_c:
+            raise ValueError(f"min_c {self.min_c:g} degC is above max_c {self.max_c:g} degC")
+        if self.timeout_s < self.dwell_s:
+            raise ValueError(f"timeout_s {self.timeout_s:g} s is shorter than dwell_s {self.dwell_s:g} s")
+        return self
+
+
 class BenchFile(StrictModel):
     bench: BenchInfo
     instruments: dict[str, InstrumentEntry]
@@ -164,6 +187,7 @@ class BenchFile(StrictModel):
     leveling: LevelingSettings = LevelingSettings()
     unattended: UnattendedSettings = UnattendedSettings()
     bias: BiasLimits | None = None
+    chamber: ChamberLimits | None = None
     simulation: dict[str, Any] | None = None
 
     @field_validator("instruments")
@@ -194,7 +218,18 @@ class BenchFile(StrictModel):
                              "(gate_min_v, gate_max_v, drain_v, drain_max_v, drain_current_limit_a)")
         if self.bias is not None and not self.has_bias:
             raise ValueError("[bias] is given but instruments has no gate and drain roles")
+        if self.has_chamber and self.chamber is None:
+            raise ValueError("[chamber] is missing: a bench with a chamber needs its limits (min_c, max_c)")
+        if self.chamber is not None and not self.has_chamber:
+            raise ValueError("[chamber] is given but instruments has no chamber role")
+        if self.chamber is not None and self.chamber.poll_s >= self.unattended.watchdog_s:
+            raise ValueError(f"[chamber] poll_s {self.chamber.poll_s:g} s is not below [unattended] watchdog_s "
+                             f"{self.unattended.watchdog_s:g} s: a soak would trip the watchdog between readings")
         return self
+
+    @property
+    def has_chamber(self) -> bool:
+        return "chamber" in self.instruments
 
     @property
     def has_bias(self) -> bool:
@@ -223,6 +258,7 @@ def load_bench(path: Path) -> LoadedBench:
     scenario = None
     if settings.simulated:
         scenario = validate(Scenario, settings.simulation, f"bench file {path} [simulation]")
+        check_simulated_roles(settings, scenario, path)
     else:
         for role, entry in settings.instruments.items():
             if not entry.resource:
@@ -232,6 +268,16 @@ def load_bench(path: Path) -> LoadedBench:
                 )
     check_resources(settings, path)
     return LoadedBench(path=path, settings=settings, scenario=scenario)
+
+
+def check_simulated_roles(settings: BenchFile, scenario: Scenario, path: Path) -> None:
+    """The simulator serves gate and drain only with a simulated FET, and a chamber only with a
+    simulated chamber; a role it cannot serve is refused here, naming the table it needs."""
+    needs = {"gate": ("fet", scenario.fet), "drain": ("fet", scenario.fet), "chamber": ("chamber", scenario.chamber)}
+    for role, (table, present) in needs.items():
+        if role in settings.instruments and present is None:
+            raise InputError(f"bench file {path}: instruments.{role} on a simulated bench needs a "
+                             f"[simulation.{table}] table (the simulated part it is connected to)")
 
 
 def check_resources(settings: BenchFile, path: Path) -> None:

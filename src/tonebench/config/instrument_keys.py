@@ -16,6 +16,7 @@ KNOWN_LIMITS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "power_meter": (("min_power_dbm", "max_power_dbm", "min_freq_hz", "max_freq_hz"), ()),
     # Voltage may be negative (a depletion-mode gate); the current limit is a magnitude.
     "supply": (("min_voltage_v", "max_voltage_v", "min_current_a", "max_current_a"), ()),
+    "chamber": (("min_temp_c", "max_temp_c"), ()),
 }
 # level_accuracy_db is optional here and may also come from the bench file, which takes the same
 # keys (config/bench_file.py reads ANALYZER_PERFORMANCE_KEYS).

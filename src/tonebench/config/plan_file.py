@@ -80,11 +80,18 @@ class SweepSettings(StrictModel):
     # Also read the second-order products f2-f1 and f1+f2 (IIP2), where the analyzer's range
     # and the output-path calibration reach them.
     second_order: bool = False
+    # Chamber set points (degC), the outermost axis (a soak per change); needs a bench chamber.
+    temperatures_c: list[float] | None = Field(default=None, min_length=1)
 
     @model_validator(mode="after")
     def _check(self) -> "SweepSettings":
         if self.tone_stop_dbm < self.tone_start_dbm:
             raise ValueError("tone_stop_dbm must not be below tone_start_dbm")
+        if self.temperatures_c is not None:
+            if any(not -100.0 <= t <= 250.0 for t in self.temperatures_c):
+                raise ValueError("temperatures_c values must lie within -100..250 degC")
+            if len(set(self.temperatures_c)) != len(self.temperatures_c):
+                raise ValueError("temperatures_c repeats a temperature")
         for spacing_hz in self.spacings_hz:
             if spacing_hz <= 0:
                 raise ValueError(f"spacings_hz must be > 0, got {spacing_hz}")
@@ -105,7 +112,8 @@ class SweepSettings(StrictModel):
         return count
 
     def point_count(self) -> int:
-        return len(self.center_freqs_hz) * len(self.spacings_hz) * self.tone_level_count()
+        temperatures = len(self.temperatures_c) if self.temperatures_c else 1
+        return temperatures * len(self.center_freqs_hz) * len(self.spacings_hz) * self.tone_level_count()
 
     def tone_levels_dbm(self) -> list[float]:
         return [round(self.tone_start_dbm + i * self.tone_step_dbm, 6) for i in range(self.tone_level_count())]

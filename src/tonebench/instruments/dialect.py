@@ -28,7 +28,7 @@ from tonebench.config.loading import describe_validation_error, read_toml
 from tonebench.errors import InputError
 from tonebench.packaged import data_dir
 
-Role = Literal["source", "analyzer", "power_meter", "supply"]
+Role = Literal["source", "analyzer", "power_meter", "supply", "chamber"]
 ReplyKind = Literal["text", "float", "int", "bool", "error"]
 
 _COMMON_OPERATIONS = ("identify", "clear_status", "wait_complete", "next_error")
@@ -59,6 +59,9 @@ REQUIRED_OPERATIONS: dict[str, tuple[str, ...]] = {
     "supply": _COMMON_OPERATIONS
     + ("set_voltage", "set_current_limit", "output_on", "output_off", "read_output",
        "measure_voltage", "measure_current"),
+    # A thermal chamber: set point, its own air temperature, conditioning on and off.
+    "chamber": _COMMON_OPERATIONS
+    + ("set_temperature", "read_set_point", "measure_temperature", "conditioning_on", "conditioning_off"),
 }
 
 _NUMBER_TABLES = {"limits": KNOWN_LIMITS, "performance": KNOWN_PERFORMANCE, "status": KNOWN_STATUS}
@@ -83,6 +86,7 @@ TEMPLATE_FIELDS: dict[str, frozenset[str]] = {
     "set_ref_level": frozenset({"ref_dbm"}),
     "set_voltage": frozenset({"channel", "voltage_v"}),
     "set_current_limit": frozenset({"channel", "current_a"}),
+    "set_temperature": frozenset({"temp_c"}),
     **{op: frozenset({"channel"}) for op in (
         "enable_protection", "output_on", "output_off", "read_output", "measure_voltage",
         "measure_current", "read_tripped")},

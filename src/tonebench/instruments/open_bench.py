@@ -8,6 +8,7 @@ from tonebench.config.bench_file import OPTIONAL_ROLES, BenchFile
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import SpectrumAnalyzer
 from tonebench.instruments.bias import BiasSupplies
+from tonebench.instruments.chamber import Chamber
 from tonebench.instruments.dialect import load_dialect
 from tonebench.instruments.power_meter import PowerMeter
 from tonebench.instruments.rf_guard import (
@@ -30,7 +31,7 @@ from tonebench.plan.limits import FreqRange, SourceRange
 
 # Which kind of dialect each bench role takes.
 ROLE_KINDS = {"source1": "source", "source2": "source", "analyzer": "analyzer", "power_meter": "power_meter",
-              "gate": "supply", "drain": "supply"}
+              "gate": "supply", "drain": "supply", "chamber": "chamber"}
 
 
 @dataclass(frozen=True)
@@ -54,6 +55,7 @@ class OpenBench:
     last_rf_off: RfOffReport | None = None  # the last switch_rf_off, for the command's last line
     rf_off_budget_s: float = RF_OFF_BUDGET_S  # the bench file's [unattended] rf_off_s
     bias: BiasSupplies | None = None  # gate and drain, when the bench file names them
+    chamber: Chamber | None = None  # when the bench file names one
 
     def sources(self) -> tuple[SignalSource, SignalSource]:
         return self.source1, self.source2
@@ -131,7 +133,8 @@ class OpenBench:
 
     def restore_all(self) -> None:
         """Send every driver's last settings again (after a reset or a reopened connection)."""
-        for driver in (self.source1, self.source2, self.analyzer, *self.bias_supplies()):
+        for driver in (self.source1, self.source2, self.analyzer, *self.bias_supplies(),
+                       *([self.chamber] if self.chamber else [])):
             driver.restore()
         if self.power_meter is not None:
             self.power_meter.prepare()
@@ -222,6 +225,7 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
             gate, drain = (DcSupply(by_role[role], settings.instruments[role].channel) for role in ("gate", "drain"))
             bias = BiasSupplies(gate, drain, settings.bias)
             bias.check_limits()
+        chamber = Chamber(by_role["chamber"], settings.chamber) if "chamber" in by_role else None
         source1, source2 = SignalSource(scpi1, power_guard), SignalSource(scpi2, power_guard)
         ranges = tuple(
             SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)
@@ -233,7 +237,7 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
         # The bench file knows this unit; its figures win over the dialect's typical ones.
         analyzer.performance = {**analyzer.performance, **settings.instruments["analyzer"].performance}
         return OpenBench(source1, source2, analyzer, ranges, infos, opened, meter,
-                         rf_off_budget_s=settings.unattended.rf_off_s, bias=bias)
+                         rf_off_budget_s=settings.unattended.rf_off_s, bias=bias, chamber=chamber)
     except BaseException:
         for instrument in opened:
             instrument.close()

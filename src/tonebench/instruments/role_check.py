@@ -22,8 +22,10 @@ from tonebench.errors import InputError
 from tonebench.instruments.scpi import ScpiInstrument, identity, parse_reply
 
 # The operation each kind answers and the others do not (all are required by their dialects).
-ROLE_PROBES = {"source": "read_rf", "analyzer": "read_sweep_time", "power_meter": "configure"}
-KIND_NAMES = {"source": "a signal source", "analyzer": "a spectrum analyzer", "power_meter": "a power meter"}
+ROLE_PROBES = {"source": "read_rf", "analyzer": "read_sweep_time", "power_meter": "configure",
+               "chamber": "measure_temperature"}
+KIND_NAMES = {"source": "a signal source", "analyzer": "a spectrum analyzer", "power_meter": "a power meter",
+              "chamber": "a thermal chamber"}
 
 
 def normalised_resource(resource: str) -> str:

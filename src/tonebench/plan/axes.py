@@ -2,8 +2,9 @@
 its values come from, the point field that holds its value, its part of the point key, and how a
 run sets it on the bench.
 
-Today's axes: centre frequency, tone spacing and tone power from the plan's [sweep], and gate
-bias from its [bias] table (None without one, leaving no trace in a key).
+Today's axes: chamber temperature (outermost: a soak per change), centre frequency, tone spacing
+and tone power from the plan's [sweep], and gate bias from its [bias] table (None without one,
+leaving no trace in a key).
 
 A sweep (what one fit runs over) is every point that differs only in the SWEEP_AXIS, tone power.
 `sweep_key_of` gives its key from a planned point or a stored point row, so the sequencer, the store and the results
@@ -13,11 +14,11 @@ Adding an axis (gate bias from a plan, temperature, LO frequency, device positio
 1. the plan field in config/plan_file.py (a table's model), e.g. `temperatures_c: list[float] | None`;
 2. a field with its unit on PlannedPoint (plan/points.py), defaulting to None so older callers and
    stored points without it keep their keys, and the column of the same name on the point record;
-3. one Axis in AXES below: `Axis("temperature", "degC", "temperature_c", _plan_field("sweep", "temperatures_c"),
-   "/t{:+.1f}C", "set_temperature")`. Its place in AXES is its place in the key; every axis other
+3. one Axis in AXES below, e.g. `Axis("lo", "Hz", "lo_hz", _plan_field("mixer", "lo_freqs_hz"),
+   "/lo{:.0f}", "lo_frequency")`. Its place in AXES is its place in the key; every axis other
    than tone power is iterated outside the tone-power ramp in AXES order, and becomes part of the
    sweep key;
-4. the run dispatches on `bench_setting` ("set_temperature") to whatever sets it.
+4. the run dispatches on `bench_setting` ("lo_frequency") to whatever sets it.
 An axis whose value is None (not in the plan) adds nothing to the key, so existing plans keep
 their points and keys.
 """
@@ -59,14 +60,17 @@ def _gate_voltages(plan) -> Sequence[float] | None:
     return None if bias is None else bias.gate_voltages_v()
 
 
+TEMPERATURE = Axis("temperature", "degC", "temperature_c", _plan_field("sweep", "temperatures_c"), "t{:+.1f}C/",
+                   "chamber_temperature")
 CENTER = Axis("center", "Hz", "center_hz", _plan_field("sweep", "center_freqs_hz"), "c{:.0f}", "tone_frequencies")
 SPACING = Axis("spacing", "Hz", "spacing_hz", _plan_field("sweep", "spacings_hz"), "/d{:.0f}", "tone_frequencies")
 TONE = Axis("tone", "dBm", "tone_dbm", _tone_levels, "/p{:+.2f}", "tone_power")
 BIAS = Axis("bias", "V", "bias_v", _gate_voltages, "/b{:+.4f}V", "gate_bias")
 
-AXES: tuple[Axis, ...] = (CENTER, SPACING, TONE, BIAS)  # key order
+AXES: tuple[Axis, ...] = (TEMPERATURE, CENTER, SPACING, TONE, BIAS)  # key order
 SWEEP_AXIS = TONE  # a fit runs over this axis; it is iterated innermost, rising
 GROUP_AXES: tuple[Axis, ...] = tuple(axis for axis in AXES if axis is not SWEEP_AXIS)
+GROUP_FIELDS: tuple[str, ...] = tuple(axis.point_field for axis in GROUP_AXES)
 
 
 def point_key_of(values: dict[str, float | None]) -> str:
@@ -78,6 +82,11 @@ def sweep_key_of(record) -> SweepKey:
     """The key of the sweep a point belongs to: its value on every axis but tone power, read by
     point field from a planned point or a stored point row (a missing field is None)."""
     return tuple(getattr(record, axis.point_field, None) for axis in GROUP_AXES)
+
+
+def group_of(key: SweepKey) -> dict[str, float | None]:
+    """A sweep key as point field -> value (the columns a stored result has for its sweep)."""
+    return dict(zip(GROUP_FIELDS, key))
 
 
 def axis_values(plan) -> list[tuple[Axis, Sequence[float | None]]]:

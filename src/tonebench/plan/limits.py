@@ -209,6 +209,27 @@ def check_plan_frequencies(points: list[PlannedPoint], plan_settings, bench_sett
     check_frequency_needs(needs, ranges, origin)
 
 
+def check_plan_parts(points: list[PlannedPoint], plan_settings, bench_settings, origin: str) -> None:
+    """The bench parts a plan's axes need, before anything is switched on: bias and chamber."""
+    check_plan_bias(points, plan_settings, bench_settings, origin)
+    check_plan_temperatures(points, bench_settings, origin)
+
+
+def check_plan_temperatures(points: list[PlannedPoint], bench_settings, origin: str) -> None:
+    """A plan with temperatures needs a bench chamber, and each within its [chamber] limits."""
+    temperatures_c = sorted({p.temperature_c for p in points if p.temperature_c is not None})
+    if not temperatures_c:
+        return
+    limits = bench_settings.chamber
+    if limits is None:
+        raise InputError(f"{origin}: the plan has temperatures_c but the bench file names no chamber "
+                         "(instruments.chamber and a [chamber] table of limits)")
+    for temp_c in temperatures_c:
+        if not limits.min_c <= temp_c <= limits.max_c:
+            raise InputError(f"{origin}: temperature {temp_c:g} degC outside the bench file's [chamber] "
+                             f"min_c..max_c ({limits.min_c:g}..{limits.max_c:g} degC)")
+
+
 def check_plan_bias(points: list[PlannedPoint], plan_settings, bench_settings, origin: str) -> None:
     """The pre-flight bias check of a run, a resume or `queue add`: a plan with gate voltages needs
     a bench with gate and drain supplies and the other way round, and every gate and drain voltage

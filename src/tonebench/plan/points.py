@@ -21,6 +21,7 @@ class PlannedPoint:
     spacing_hz: float
     tone_dbm: float
     bias_v: float | None = None
+    temperature_c: float | None = None  # chamber set point
 
     @property
     def f1_hz(self) -> float:

@@ -20,7 +20,7 @@ from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError
 from tonebench.instruments.dialect import load_dialect
 from tonebench.instruments.open_bench import bench_freq_ranges
-from tonebench.plan.limits import SourceRange, check_plan, check_plan_bias, check_plan_frequencies
+from tonebench.plan.limits import SourceRange, check_plan, check_plan_parts, check_plan_frequencies
 from tonebench.plan.points import expand
 from tonebench.run.calibration_choice import choose_calibration
 from tonebench.store.models import Job, Run, utc_now
@@ -97,7 +97,7 @@ def _check_limits(plan, bench, sessions: sessionmaker) -> None:
     points = expand(plan.settings)
     origin = f"plan {plan.path}"
     check_plan_frequencies(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings), origin)
-    check_plan_bias(points, plan.settings, bench.settings, origin)
+    check_plan_parts(points, plan.settings, bench.settings, origin)
     chosen = choose_calibration(bench, bench.settings.bench.calibration, sessions, points, origin)
     check_plan(points, chosen.tables, bench.settings.limits, ranges, dialects["analyzer"].limits.get("damage_dbm"), origin)
 

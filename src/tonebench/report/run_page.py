@@ -30,16 +30,18 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
         sweeps, rows = [], []
         set_id = referred_to.id if referred_to is not None else run.calibration_set_id
         summaries, bounds = [], []
-        for center_hz, spacing_hz, bias_v, arrays, assessment in report_sweeps(session, run, set_id, tables):
+        for group, arrays, assessment in report_sweeps(session, run, set_id, tables):
             fit = assessment.fit
+            center_hz, spacing_hz, bias_v = group["center_hz"], group["spacing_hz"], group["bias_v"]
+            temperature_c = group["temperature_c"]
             summaries.append(SweepSummary(center_hz, spacing_hz, bias_v, fit.iip3_lower_dbm, fit.iip3_upper_dbm,
                                           fit.iip3_dbm, fit.oip3_lower_dbm, fit.oip3_upper_dbm, fit.oip3_dbm,
-                                          assessment.iip3_bound_db))
-            bounds.append((sweep_title(center_hz, spacing_hz, bias_v), assessment.iip3_bound_db,
-                           assessment.bound_terms_db))
+                                          assessment.iip3_bound_db, temperature_c))
+            title = sweep_title(center_hz, spacing_hz, bias_v, temperature_c)
+            bounds.append((title, assessment.iip3_bound_db, assessment.bound_terms_db))
             sweeps.append(
                 SweepPlotData(
-                    title=sweep_title(center_hz, spacing_hz, bias_v),
+                    title=title,
                     pin_dbm=(arrays["pin1_dbm"] + arrays["pin2_dbm"]) / 2.0,
                     pout_dbm=(arrays["pout_f1_dbm"] + arrays["pout_f2_dbm"]) / 2.0,
                     im3_lower_dbm=arrays["im3_lower_dbm"],
@@ -54,6 +56,8 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             row = report_result_row(center_hz, spacing_hz, fit, assessment)
             if bias_v is not None:
                 row = {"bias (V)": f"{bias_v:.4f}", **row}
+            if temperature_c is not None:
+                row = {"temperature (degC)": f"{temperature_c:.1f}", **row}
             rows.append(row)
         device = run.device
         summary = [

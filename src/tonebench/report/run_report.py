@@ -82,10 +82,13 @@ def format_freq(freq_hz: float, decimals: int | None = None) -> str:
     return f"{value:.{decimals}f} {unit}" if decimals is not None else f"{value:g} {unit}"
 
 
-def sweep_title(center_freq_hz: float, spacing_hz: float, bias_v: float | None = None) -> str:
-    """Figure title for one sweep, e.g. '2.450 GHz, spacing 1 MHz' (', gate 0.5500 V' when biased)."""
+def sweep_title(center_freq_hz: float, spacing_hz: float, bias_v: float | None = None,
+                temperature_c: float | None = None) -> str:
+    """Figure title for one sweep, e.g. '2.450 GHz, spacing 1 MHz' (', gate 0.5500 V' when biased,
+    ', 85.0 degC' in a chamber)."""
     bias = "" if bias_v is None else f", gate {bias_v:.4f} V"
-    return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}{bias}"
+    temperature = "" if temperature_c is None else f", {temperature_c:.1f} degC"
+    return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}{bias}{temperature}"
 
 
 def flag_label(flag) -> str:

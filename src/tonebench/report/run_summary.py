@@ -16,6 +16,7 @@ _CONDITIONS = (
     ("center_hz", "center frequency (GHz)", 1e-9, lambda v: f"{v / 1e9:.4g} GHz"),
     ("spacing_hz", "tone spacing (MHz)", 1e-6, lambda v: f"spacing {v / 1e6:.4g} MHz"),
     ("bias_v", "gate bias (V)", 1.0, lambda v: f"bias {v:.4f} V"),
+    ("temperature_c", "temperature (degC)", 1.0, lambda v: f"{v:.1f} degC"),
 )
 _LOWER, _UPPER, _MEAN = "#c0561b", "#2a8a4a", "#1f5fa8"
 
@@ -34,6 +35,7 @@ class SweepSummary:
     oip3_upper_dbm: float | None
     oip3_dbm: float | None
     bound_db: float | None  # +/- on the mean intercepts
+    temperature_c: float | None = None
 
 
 def _stepped(sweeps: list[SweepSummary]) -> list[tuple]:

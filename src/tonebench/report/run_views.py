@@ -27,7 +27,7 @@ def results_table(results) -> Table:
                   pad_edge=False, collapse_padding=True)
     # Optional columns only when some sweep has something in them.
     shown = {"Note": any(row["Note"] for row in rows), "Flags": any(row["Flags"] != "-" for row in rows),
-             "Gate V": any(row["Gate V"] for row in rows)}
+             "Gate V": any(row["Gate V"] for row in rows), "degC": any(row["degC"] for row in rows)}
     columns = [c for c in (rows[0] if rows else ()) if shown.get(c, True)]
     for column in columns:
         table.add_column(column, no_wrap=column not in ("Note", "Flags"))
@@ -82,7 +82,7 @@ def describe_run(db_url: str, ident: str, console: Console) -> None:
         for inst in sorted(run.instruments, key=lambda i: i.role):
             console.print(f"  {inst.role:9} {inst.dialect:18} {inst.resource}  {inst.idn}", highlight=False)
         if run.results:
-            ordered = sorted(run.results, key=lambda r: (r.center_hz, r.spacing_hz, r.bias_v or 0.0))
+            ordered = sorted(run.results, key=lambda r: (r.temperature_c or 0.0, r.center_hz, r.spacing_hz, r.bias_v or 0.0))
             console.print(results_table(ordered))
             print_flags(session, run, ordered, console)
         for point in failed[:MAX_FAILED_SHOWN]:

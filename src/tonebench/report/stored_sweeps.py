@@ -16,6 +16,7 @@ import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
+from tonebench.plan.axes import GROUP_FIELDS
 from tonebench.results.sweeps import StoredPoint, assessed_sweeps, point_sweeps
 from tonebench.store.models import Point, PointFlag, Result, Run
 
@@ -116,15 +117,15 @@ def _point_flags(session: Session, run: Run) -> dict[int, list[PointFlag]]:
 
 
 def report_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None):
-    """(center_hz, spacing_hz, bias_v, arrays, assessment) per sweep: the stored assessment when
-    the run's stored results are those of its stored points, else the run assessed again."""
+    """(group axis values, arrays, assessment) per sweep: the stored assessment when the run's
+    stored results are those of its stored points, else the run assessed again."""
     sweeps = list(point_sweeps(session, run.id, tables))
-    results = {(r.center_hz, r.spacing_hz, r.bias_v): r for r in run.results}
+    results = {tuple(getattr(r, name) for name in GROUP_FIELDS): r for r in run.results}
     flags_by_point = _point_flags(session, run)
-    stored = [stored_assessment(results.get((c, s, b)), rows, flags_by_point) for c, s, b, rows, _ in sweeps]
+    stored = [stored_assessment(results.get(tuple(group.values())), rows, flags_by_point) for group, rows, _ in sweeps]
     if len(results) == len(sweeps) and None not in stored and _analysed_after_points(session, run, list(results.values())):
-        for (center_hz, spacing_hz, bias_v, _, arrays), assessment in zip(sweeps, stored):
-            yield center_hz, spacing_hz, bias_v, arrays, assessment
+        for (group, _, arrays), assessment in zip(sweeps, stored):
+            yield group, arrays, assessment
         return
-    for center_hz, spacing_hz, bias_v, _, arrays, assessment in assessed_sweeps(session, run, set_id, tables):
-        yield center_hz, spacing_hz, bias_v, arrays, assessment
+    for group, _, arrays, assessment in assessed_sweeps(session, run, set_id, tables):
+        yield group, arrays, assessment

@@ -26,6 +26,7 @@ def flag_names(flags) -> str:
 def terminal_row(result: Result) -> dict[str, str]:
     """A compact row for a terminal table (the HTML report has the full one); dB and dBm."""
     return {
+        "degC": "" if result.temperature_c is None else f"{result.temperature_c:.1f}",
         "GHz": f"{result.center_hz / 1e9:.4f}",
         "Spacing": f"{result.spacing_hz / 1e6:.3g} MHz",
         "Gate V": "" if result.bias_v is None else f"{result.bias_v:.4f}",

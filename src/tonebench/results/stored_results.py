@@ -65,15 +65,13 @@ def analyze_run(sessions: sessionmaker, run_guid: str, cal_name: str | None = No
         session.execute(delete(ResultFlag).where(ResultFlag.result_id.in_(result_ids)))
         session.execute(delete(Result).where(Result.run_id == run.id))
         results = []
-        for center_hz, spacing_hz, bias_v, rows, _arrays, a in assessed_sweeps(session, run, set_id, tables):
+        for group, rows, _arrays, a in assessed_sweeps(session, run, set_id, tables):
             fit, second = a.fit, a.second_order
             for row, flags in zip(rows, a.point_flags):
                 session.add_all(_flag_row(PointFlag, f, point_id=row.id) for f in flags)
             result = Result(
                 run_id=run.id,
-                center_hz=center_hz,
-                spacing_hz=spacing_hz,
-                bias_v=bias_v,
+                **group,
                 n_points=fit.n_points,
                 n_valid=fit.n_valid,
                 gain_db=_finite_or_none(fit.gain_db),

@@ -25,7 +25,7 @@ from tonebench.planes.referral import (
 )
 from tonebench.calibration.residual import check_shares
 from tonebench.calibration.sets import load_set
-from tonebench.plan.axes import sweep_key_of
+from tonebench.plan.axes import group_of, sweep_key_of
 from tonebench.planes.loss_table import LossTable
 from tonebench.store.models import CalibrationSet, Point, Run
 from tonebench.store.point_record import PointRecord, record_of
@@ -68,7 +68,7 @@ def stored_points(session: Session, run_id: int) -> list[StoredPoint]:
     rows = session.scalars(
         select(Point)
         .where(Point.run_id == run_id, Point.status == "measured")
-        .order_by(Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
+        .order_by(Point.temperature_c, Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
     ).all()
     return [StoredPoint(row.id, record_of(row)) for row in rows]
 
@@ -80,9 +80,10 @@ def rereferred(point: PointRecord | Point, tables: dict[str, LossTable]) -> dict
 
 
 def point_sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | None = None):
-    """Per sweep, the arrays the fit takes: as stored, or re-referred to `tables` when given."""
+    """Per sweep, (its value on every group axis as point field -> value, stored points, arrays
+    the fit takes): as stored, or re-referred to `tables` when given."""
     points = stored_points(session, run_id)
-    for (center_hz, spacing_hz, bias_v), group in groupby(points, key=lambda p: sweep_key_of(p.record)):
+    for key, group in groupby(points, key=lambda p: sweep_key_of(p.record)):
         stored = list(group)
         records = [p.record for p in stored]
         values = [rereferred(record, tables) if tables is not None else None for record in records]
@@ -94,7 +95,7 @@ def point_sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | N
 
         arrays = {name: _nan_array(column(name)) for name in POINT_ARRAYS if name != "overload"}
         arrays["overload"] = np.array([bool(v) for v in column("overload")], dtype=bool)
-        yield center_hz, spacing_hz, bias_v, stored, arrays
+        yield group_of(key), stored, arrays
 
 
 def _nan_array(values) -> np.ndarray:
@@ -155,12 +156,12 @@ def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, sp
 
 
 def assessed_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None):
-    """(center, spacing, bias, stored points, arrays, assessment) for each sweep of the run."""
+    """(group axis values, stored points, arrays, assessment) for each sweep of the run."""
     cal = session.get(CalibrationSet, set_id) if set_id is not None else None
-    for center_hz, spacing_hz, bias_v, stored, arrays in point_sweeps(session, run.id, tables):
+    for group, stored, arrays in point_sweeps(session, run.id, tables):
         data = sweep_data([p.record for p in stored], arrays)
-        assessment = assess_sweep(data, analysis_settings(run, cal, center_hz, spacing_hz))
-        yield center_hz, spacing_hz, bias_v, stored, arrays, assessment
+        assessment = assess_sweep(data, analysis_settings(run, cal, group["center_hz"], group["spacing_hz"]))
+        yield group, stored, arrays, assessment
 
 
 def referral_tables(session: Session, run: Run, cal_name: str | None) -> tuple[int | None, dict | None]:

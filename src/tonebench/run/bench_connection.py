@@ -48,6 +48,10 @@ def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started, warn: Ca
     guard = None if offsets is None else run_power_guard(bench, offsets)
     open_instruments = open_bench(bench.settings, resources, supervision, guard)
     stack.callback(open_instruments.close)
+    if bench.settings.simulated and open_instruments.chamber is not None:
+        # The simulated chamber lives on the virtual clock: the soak's waits pass there.
+        open_instruments.chamber.clock = lambda: sim.bench.clock_s
+        open_instruments.chamber.sleep = sim.bench.advance
     for line in open_instruments.switch_off_at_connect():
         relay(InstrumentEvent(line.split(" ", 1)[0], "rf-found-on", "warning", line))
         (warn or print_warning)(line)

@@ -31,7 +31,7 @@ from tonebench.analysis.transconductance import TransconductanceResult
 from tonebench.config.bench_file import load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
 from tonebench.errors import InputError
-from tonebench.plan.limits import check_bias_voltages, check_plan_bias
+from tonebench.plan.limits import check_bias_voltages, check_plan_parts
 from tonebench.plan.points import expand
 from tonebench.report.bias_page import (
     BiasFinding,
@@ -108,7 +108,7 @@ def run_bias_study(plan_path: Path, bench_path: Path, db_url: str, page_path: Pa
     bias = study_settings(plan, origin)
     search = bias.search
     # Everything refusable is refused before the first line is said and anything is switched on.
-    check_plan_bias(expand(plan.settings), plan.settings, bench.settings, origin)
+    check_plan_parts(expand(plan.settings), plan.settings, bench.settings, origin)
     check_bias_voltages(bench.settings.bias, bias.dc.gate_voltages_v(), bias.drain_v, f"{origin} [bias.dc]")
     sims = []
     say(f"DC transfer sweep: {bias.dc.gate_count()} gate voltages, {bias.dc.gate_start_v:g} to {bias.dc.gate_stop_v:g} V")

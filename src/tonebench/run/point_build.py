@@ -21,7 +21,8 @@ from tonebench.store.point_record import PointRecord
 def planned_fields(point: PlannedPoint) -> dict:
     """The record fields a point has from its plan alone."""
     return dict(point_key=point.key, seq=point.seq, center_hz=point.center_hz, spacing_hz=point.spacing_hz,
-                f1_hz=point.f1_hz, f2_hz=point.f2_hz, tone_dbm=point.tone_dbm, bias_v=point.bias_v)
+                f1_hz=point.f1_hz, f2_hz=point.f2_hz, tone_dbm=point.tone_dbm, bias_v=point.bias_v,
+                temperature_c=point.temperature_c)
 
 
 def failed_record(point: PlannedPoint, reason: str, elapsed_s: float) -> PointRecord:
@@ -63,6 +64,7 @@ def measured_record(point: PlannedPoint, measured: Measured, elapsed_s: float, t
     fields.update(_second_order_fields(point, measured.second, tables["out"]))
     if measured.bias is not None:
         fields.update(vars(measured.bias))  # gate_read_v, gate_current_a, drain_read_v, drain_current_a
+    fields["chamber_read_c"] = measured.chamber_c
     extra_time_s = sum(r.sweep_time_s for r in (measured.step, measured.second) if r is not None)
     fields["sweep_time_s"] = readings.sweep_time_s + extra_time_s
     fields["extra_json"] = _extra(measured, drift)

@@ -61,6 +61,7 @@ class Measured:
     step: StepReadings | None
     second: SecondOrderReadings | None
     bias: BiasReading | None = None  # the gate and drain supplies' read-back, on a bias bench
+    chamber_c: float | None = None  # the chamber's reading, on a point with a temperature
 
 
 def read_point(analyzer, point: PlannedPoint, noise_offset_hz: float) -> Readings:

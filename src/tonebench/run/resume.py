@@ -14,7 +14,7 @@ from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan, plan_from_text
 from tonebench.errors import InputError
 from tonebench.instruments.open_bench import bench_freq_ranges
-from tonebench.plan.limits import check_plan, check_plan_bias, check_plan_frequencies
+from tonebench.plan.limits import check_plan, check_plan_parts, check_plan_frequencies
 from tonebench.plan.points import expand
 from tonebench.planes.loss_table import LossTable
 from tonebench.report.run_report import check_report_path
@@ -134,7 +134,7 @@ def _check_and_hold(stack: ExitStack, sessions: sessionmaker, stored: _StoredRun
     remaining = [point for point in points if point.key not in done_keys]
     plan_origin = f"run {stored.guid} plan"
     check_plan_frequencies(remaining, plan.settings, bench.settings, bench_freq_ranges(bench.settings), plan_origin)
-    check_plan_bias(remaining, plan.settings, bench.settings, plan_origin)
+    check_plan_parts(remaining, plan.settings, bench.settings, plan_origin)
     check_bench_free(sessions, stored.bench_name, except_run_id=stored.run_id)  # before talking to its instruments
     instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, on_warning, stored.offsets)
     check_same_instruments(stored.guid, stored.instrument_ids, instruments)

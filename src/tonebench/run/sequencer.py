@@ -21,6 +21,7 @@ from tonebench.calibration.leveling import Leveler
 from tonebench.config.bench_file import BenchLimits, UnattendedSettings
 from tonebench.config.plan_file import AnalyzerSettings
 from tonebench.errors import InstrumentError
+from tonebench.instruments.chamber import ChamberSoakTimeout
 from tonebench.instruments.open_bench import OpenBench
 from tonebench.instruments.rf_guard import RfOffReport, raise_if_stopping, shielded
 from tonebench.instruments.supply import SupplyTripped
@@ -94,6 +95,7 @@ class Sequencer:
         self.sweeps: dict[SweepKey, SweepState] = {}
         self._rf_said = False
         self._said: set[str] = set()  # events said once per run
+        self._chamber_c: float | None = None  # the temperature soaked at, this run
 
     def run(self, points: list[PlannedPoint], on_progress: ProgressCallback | None = None,
             done_keys: frozenset[str] = frozenset()) -> None:
@@ -117,6 +119,7 @@ class Sequencer:
                 self.bench.rf_off_all()  # known state: leveling switches the sources one at a time
             for point in todo:
                 self._check_stop()
+                self._set_temperature(point)
                 try:
                     measured = guard.measure(point.key, lambda point=point: self._measure(point),
                                              lambda result, point=point: self._settled(point, result))
@@ -135,6 +138,24 @@ class Sequencer:
                 self.rf_report = self.bench.switch_rf_off()
                 self._say_rf_off(self.rf_report)
                 self._bias_down()  # after RF, in its safe order
+
+    def _set_temperature(self, point: PlannedPoint) -> None:
+        """A new chamber temperature: RF off, then a soak (kicking the watchdog at every reading);
+        a soak that never settles ends the run (aborted), it is not waited out."""
+        chamber = self.bench.chamber
+        if point.temperature_c is None or chamber is None or self._chamber_c == point.temperature_c:
+            return
+        self.rf.set(False, False)
+        limits = chamber.limits
+        self.log.event("info", "soak-start", f"{chamber.label}: soaking at {point.temperature_c:g} degC "
+                                             f"(within {limits.tolerance_c:g} degC for {limits.dwell_s:g} s, RF off)")
+        try:
+            soaked = chamber.soak(point.temperature_c, lambda read_c, waited_s: (self._kick(), self._check_stop()))
+        except ChamberSoakTimeout as exc:
+            self.log.event("error", "soak-timeout", str(exc))
+            raise RunStopped("aborted", str(exc)) from None
+        self._chamber_c = point.temperature_c
+        self.log.event("info", "soak-done", f"{chamber.label}: {soaked.read_c:.2f} degC after {soaked.waited_s:.0f} s")
 
     def _bias_up(self, todo: list[PlannedPoint]) -> None:
         """Bias on at the first point's gate voltage, before RF ever goes on."""
@@ -235,7 +256,8 @@ class Sequencer:
         readings = read_point(analyzer, point, self.analyzer_settings.noise_offset_hz)
         second = self._read_second_order(point) if self.second_order else None
         step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings)
-        return Measured(readings, setup, choice, step, second, self._read_bias(point))
+        chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
+        return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c)
 
     def _settled(self, point: PlannedPoint, measured: Measured) -> str | None:
         """Why the tone levels may still have been moving during the point, or None.

@@ -15,7 +15,7 @@ from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
 from tonebench.instruments.open_bench import OpenBench, bench_freq_ranges
 from tonebench.instruments.supervision import Supervision
-from tonebench.plan.limits import check_plan, check_plan_bias, check_plan_frequencies
+from tonebench.plan.limits import check_plan, check_plan_parts, check_plan_frequencies
 from tonebench.plan.points import PlannedPoint, expand
 from tonebench.report.run_report import check_report_path
 from tonebench.run.bench_connection import connect_bench, print_warning
@@ -106,7 +106,7 @@ def _check_and_connect(stack: ExitStack, files: _RunFiles, db_url: str, cal_name
     if chosen.stale_message:
         warn(chosen.stale_message)
     check_plan_frequencies(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings), files.origin)
-    check_plan_bias(points, plan.settings, bench.settings, files.origin)
+    check_plan_parts(points, plan.settings, bench.settings, files.origin)
     check_bench_free_at(db_url, sessions, bench.settings.bench.name)  # before talking to its instruments
     instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, warn, chosen.tables)
     check_plan(points, chosen.tables, bench.settings.limits, instruments.source_ranges,

@@ -71,9 +71,13 @@ class FetBias:
         self.fet = fet_of(scenario)
         self.gate = gate
         self.drain = drain
-        self.temp_k = scenario.temp_k  # a chamber may move it
+        self.temp_of = lambda: scenario.temp_k  # a chamber replaces it with its device temperature
         gate.set_load(1, lambda voltage_v: voltage_v / scenario.gate_leakage_ohm)
         drain.set_load(1, self.drain_current_a)
+
+    @property
+    def temp_k(self) -> float:
+        return self.temp_of()
 
     def gate_v(self) -> float:
         return self.gate.channel(1).operating_point()[0]

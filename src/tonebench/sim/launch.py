@@ -1,8 +1,9 @@
-"""Start a simulated bench in-process: four raw-SCPI instruments on free loopback ports, and the
-gate and drain supplies when the scenario has a FET."""
+"""Start a simulated bench in-process: four raw-SCPI instruments on free loopback ports, the
+gate and drain supplies when the scenario has a FET, and the chamber when it has one."""
 
 from __future__ import annotations
 
+from tonebench.sim.chamber import SimChamberPanel
 from tonebench.sim.signal_chain import SimBench
 from tonebench.sim.faults import FaultSchedule
 from tonebench.sim.instruments import SimAnalyzer, SimPowerMeter, SimSource
@@ -37,7 +38,7 @@ class RunningSimBench:
 
 def start_sim_bench(scenario: Scenario, faults: FaultSchedule | None = None) -> RunningSimBench:
     """Build the bench and serve source1, source2, analyzer, power_meter (and gate, drain with a
-    FET scenario) on free ports of 127.0.0.1."""
+    FET scenario, chamber with a chamber) on free ports of 127.0.0.1."""
     bench = SimBench(scenario)
     schedule = faults if faults is not None else FaultSchedule(scenario.faults)
     devices = {"source1": SimSource(bench, 1), "source2": SimSource(bench, 2), "analyzer": SimAnalyzer(bench),
@@ -45,6 +46,8 @@ def start_sim_bench(scenario: Scenario, faults: FaultSchedule | None = None) -> 
     for number, (role, supply) in enumerate(bench.supplies.items(), start=1):
         devices[role] = SimSupplyPanel(supply, name=role, idn=f"tonebench,simulated DC supply,SIM-PS-{number:04d},0.1",
                                        bench_log=bench.log)
+    if bench.chamber is not None:
+        devices["chamber"] = SimChamberPanel(bench.chamber, bench.log)
     servers: dict[str, InstrumentServer] = {}
     try:
         for role, device in devices.items():

@@ -134,6 +134,25 @@ class FetScenario(_Strict):
     current_noise_a: float = Field(2e-7, ge=0.0, le=1e-2)
 
 
+class ChamberScenario(_Strict):
+    """A thermal chamber around the DUT (`[simulation.chamber]`, sim/chamber.py): the bench then
+    serves it as role "chamber", and a FET's temperature is the chamber's device temperature."""
+
+    ambient_c: float = Field(23.0, ge=-40.0, le=60.0)
+    start_c: float = Field(23.0, ge=-100.0, le=250.0)
+    air_time_constant_s: float = Field(120.0, gt=0.0, le=86400.0)
+    device_time_constant_s: float = Field(60.0, gt=0.0, le=86400.0)
+    # What the chamber can reach; a set point beyond settles at the limit (and never soaks).
+    min_reach_c: float = Field(-70.0, ge=-100.0, le=250.0)
+    max_reach_c: float = Field(180.0, ge=-100.0, le=250.0)
+
+    @model_validator(mode="after")
+    def _reach(self) -> ChamberScenario:
+        if self.min_reach_c >= self.max_reach_c:
+            raise ValueError("min_reach_c must be below max_reach_c")
+        return self
+
+
 class Scenario(_Strict):
     """The whole `[simulation]` table."""
 
@@ -148,6 +167,8 @@ class Scenario(_Strict):
     power_meter: PowerMeterScenario = Field(default_factory=PowerMeterScenario)
     # A FET stage as the DUT, biased by simulated gate and drain supplies; None: the memoryless DUT above.
     fet: FetScenario | None = None
+    # A thermal chamber; None: the device stays at fet.temp_k.
+    chamber: ChamberScenario | None = None
     # A thru (0 dB, perfectly linear, noiseless) in place of the DUT; SimBench.set_thru switches it.
     thru: bool = False
     # Faults to inject ([[simulation.faults]] rows; see sim/faults.py), counted from the start.

@@ -35,6 +35,7 @@ _UNIT_SUFFIXES: dict[str, dict[str, float]] = {
     "S": {"S": 1.0, "MS": 1e-3, "US": 1e-6, "NS": 1e-9},
     "V": {"V": 1.0, "MV": 1e-3, "UV": 1e-6},
     "A": {"A": 1.0, "MA": 1e-3, "UA": 1e-6},
+    "CEL": {"CEL": 1.0},  # degrees Celsius, SCPI's temperature unit
 }
 
 # Decimal numeric program data, IEEE 488.2 7.7.2 (from memory), then an optional suffix
@@ -43,7 +44,7 @@ _NUMBER = re.compile(r"\s*([+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?)\s*([A-
 
 
 def parse_number(token: str, unit: str | None = None) -> float:
-    """Parse a numeric parameter, returning it in the base unit `unit` (HZ, DBM, DB, S, V, A).
+    """Parse a numeric parameter, returning it in the base unit `unit` (HZ, DBM, DB, S, V, A, CEL).
 
     With unit=None no suffix is allowed (-138). A suffix of another kind -> ScpiError(-131);
     not a number at all -> ScpiError(-104).

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from tonebench.sim import physics
+from tonebench.sim.chamber import SimChamber
 from tonebench.sim.fet_stage import FetBias, FetStage
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.supply import SimSupply
@@ -228,6 +229,16 @@ class SimBench:
                                              seed=(scenario.seed, 3 + number))
                              for number, role in enumerate(("gate", "drain"))}
             self.fet_bias = FetBias(scenario.fet, self.supplies["gate"], self.supplies["drain"])
+        self.chamber: SimChamber | None = None
+        if scenario.chamber is not None:
+            self.chamber = SimChamber(scenario.chamber, lambda: self.clock_s)
+            if self.fet_bias is not None:
+                self.fet_bias.temp_of = self.chamber.device_temp_k
+
+    def advance(self, seconds: float) -> None:
+        """Let virtual time pass (a wait of the driver of a slow instrument, such as a chamber soak)."""
+        with self.lock:
+            self.clock_s += max(0.0, seconds)
 
     def set_thru(self, thru: bool) -> None:
         """Put a 0 dB thru in place of the DUT (True) or the DUT back (False): the operator's job on a real bench."""

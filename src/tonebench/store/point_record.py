@@ -29,12 +29,14 @@ class PointRecord:
     f2_hz: float
     tone_dbm: float
     bias_v: float | None = None
+    temperature_c: float | None = None  # chamber set point (the axis value)
     fail_reason: str | None = None
     # The gate and drain supplies' read-back at the point (bias benches only).
     gate_read_v: float | None = None
     gate_current_a: float | None = None
     drain_read_v: float | None = None
     drain_current_a: float | None = None
+    chamber_read_c: float | None = None  # the chamber's reading at the point
 
     source1_dbm: float | None = None
     source2_dbm: float | None = None

@@ -30,6 +30,9 @@ class BiasStudy(Base):
     current_sigma_a: Mapped[float]
     # The two-tone runs, coarse then fine (GUIDs, comma-separated): runs stay deletable on their own.
     run_guids: Mapped[str] = mapped_column(sa.Text)
+    # The studies of one device at several chamber temperatures share a series GUID.
+    series_guid: Mapped[str | None] = mapped_column(sa.String(36), index=True)
+    temperature_c: Mapped[float | None]  # chamber set point; temp_k holds its reading
 
     dc_points: Mapped[list[DcPoint]] = relationship(cascade="all, delete-orphan", order_by="DcPoint.seq")
     findings: Mapped[list[BiasFinding]] = relationship(cascade="all, delete-orphan")

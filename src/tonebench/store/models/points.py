@@ -49,6 +49,8 @@ class Point(Base):
     f2_hz: Mapped[float]
     tone_dbm: Mapped[float]
     bias_v: Mapped[float | None]
+    temperature_c: Mapped[float | None]  # chamber set point (the axis value)
+    chamber_read_c: Mapped[float | None]  # the chamber's reading at the point
     # The gate and drain supplies' read-back at the point (bias benches only).
     gate_read_v: Mapped[float | None]
     gate_current_a: Mapped[float | None]

@@ -20,11 +20,14 @@ from tonebench.store.models.base import (
 from tonebench.store.models.runs import Run
 
 
-def result_group_key(center_hz: float, spacing_hz: float, bias_v: float | None) -> str:
-    """Key of one (center, spacing, bias) group; a plain string so a missing bias still compares
-    equal (a UNIQUE over a NULL column would let duplicates in)."""
+def result_group_key(center_hz: float, spacing_hz: float, bias_v: float | None,
+                     temperature_c: float | None = None) -> str:
+    """Key of one (center, spacing, bias, temperature) group; a plain string so a missing bias
+    still compares equal (a UNIQUE over a NULL column would let duplicates in). A result without
+    a temperature keeps the key it had before the temperature axis."""
     bias = "none" if bias_v is None else repr(float(bias_v))
-    return f"center_hz={float(center_hz)!r};spacing_hz={float(spacing_hz)!r};bias_v={bias}"
+    key = f"center_hz={float(center_hz)!r};spacing_hz={float(spacing_hz)!r};bias_v={bias}"
+    return key if temperature_c is None else f"{key};temperature_c={float(temperature_c)!r}"
 
 
 class Result(Base):
@@ -44,6 +47,7 @@ class Result(Base):
     center_hz: Mapped[float]
     spacing_hz: Mapped[float]
     bias_v: Mapped[float | None]
+    temperature_c: Mapped[float | None]  # chamber set point
     n_points: Mapped[int]
     n_valid: Mapped[int]
     gain_db: Mapped[float | None]
@@ -96,6 +100,6 @@ class ResultFlag(Base):
 @event.listens_for(Result, "before_insert")
 @event.listens_for(Result, "before_update")
 def _fill_group_key(mapper, connection, target: Result) -> None:
-    # Derived, never typed by hand: it must always match the three columns it stands for.
-    target.group_key = result_group_key(target.center_hz, target.spacing_hz, target.bias_v)
+    # Derived, never typed by hand: it must always match the columns it stands for.
+    target.group_key = result_group_key(target.center_hz, target.spacing_hz, target.bias_v, target.temperature_c)
 
