@@ -140,9 +140,36 @@ def drive_points(rows, drive_tone_dbm: float) -> DrivePoints:
     return DrivePoints(drive_tone_dbm, np.array([r.bias_v for r in chosen]), im3 - pout, pout - pin, drain, at_floor)
 
 
+def null_estimate_v(points: DrivePoints) -> float:
+    """Where the measured points put the g3 zero. The IM3 amplitude ratio a = 10^(ratio/20) is
+    |g3/g1| A^2 at a fixed drive: magnitude only, so a null narrower than the steps need not show
+    as a dip (and strong inversion, where a keeps falling, would win a plain smallest-ratio pick).
+    The sign is restored instead: for each split between neighbouring gate voltages, a is taken
+    positive below and negative above, and a cubic is fitted to it weighted by 1/a (relative
+    residuals: a spans decades). The split whose cubic fits best and has its root between the two
+    neighbours gives the null (the root); with no such split, the smallest ratio measured.
+    With fewer than six points the cubic cannot judge a split: the smallest ratio measured."""
+    v, ratio_db = points.gate_v, points.ratio_db
+    fallback_v = float(v[int(np.argmin(ratio_db))])
+    if v.size < 6:
+        return fallback_v
+    amplitude = 10 ** (ratio_db / 20)
+    centre_v, scale_v = float(np.mean(v)), float(np.ptp(v)) or 1.0
+    x = (v - centre_v) / scale_v
+    best = None
+    for split in range(1, v.size):
+        signed = np.where(np.arange(v.size) < split, amplitude, -amplitude)
+        coeffs, residual, *_ = np.polyfit(x, signed, 3, w=1.0 / amplitude, full=True)
+        roots = [r.real for r in np.roots(coeffs) if abs(r.imag) < 1e-9 and x[split - 1] <= r.real <= x[split]]
+        if roots and (best is None or float(residual.sum()) < best[0]):
+            best = (float(residual.sum()), roots[0])
+    return fallback_v if best is None else centre_v + scale_v * best[1]
+
+
 def refined_gates_v(points: DrivePoints, fine_step_v: float, fine_points: int) -> list[float]:
-    """Fine gate voltages around the measured IIP3 peak (the smallest IM3 ratio), not yet measured."""
-    centre_v = float(points.gate_v[int(np.argmin(points.ratio_db))])
+    """Fine gate voltages around the null the measured points put (null_estimate_v), on the fine
+    step's grid, not yet measured."""
+    centre_v = round(null_estimate_v(points) / fine_step_v) * fine_step_v
     half = fine_points // 2
     wanted = [round(centre_v + k * fine_step_v, 6) for k in range(-half, half + 1)]
     return [v for v in wanted if not np.any(np.isclose(points.gate_v, v, atol=1e-9))]
@@ -154,8 +181,9 @@ def _log_ratio(v, log_s2, v0, log_c):
 
 def measured_sweet_spot(points: DrivePoints, threshold_dbm: float | None = None,
                         below_peak_db: float | None = None, fit_points: int = 9) -> SweetSpotFinding:
-    """The sweet spot from the fit_points points nearest the smallest ratio (see the module docstring)."""
-    order = np.argsort(np.abs(points.gate_v - points.gate_v[int(np.argmin(points.ratio_db))]))[:fit_points]
+    """The sweet spot from the fit_points points nearest the null the points put (see the module
+    docstring and null_estimate_v)."""
+    order = np.argsort(np.abs(points.gate_v - null_estimate_v(points)))[:fit_points]
     v, ratio_db = points.gate_v[order], points.ratio_db[order]
     if v.size < 4:
         raise InputError(f"the sweet-spot fit needs at least 4 gate voltages at the drive level; got {v.size}")

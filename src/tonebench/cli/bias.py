@@ -57,14 +57,19 @@ def register_bias_commands(app: typer.Typer, run_with_progress) -> None:
                 raise InputError(f"plan {plan}: `tonebench bias dc` needs a [bias.dc] table "
                                  "(gate_start_v, gate_stop_v, gate_step_v)")
             search = bias.search
-            transfer = measure_dc_transfer(load_bench(bench), bias.dc, bias.drain_v, f"plan {plan}")
-            _, predicted = predicted_sweet_spot(
-                transfer.gate_v, transfer.drain_current_a, transfer.current_sigma_a, bias.dc.window_points,
-                bias.dc.polyorder, None if search is None else search.window_threshold_dbm,
-                None if search is None else search.window_below_peak_db)
-            out.print(f"DC transfer sweep: {transfer.gate_v.size} points at drain {transfer.drain_v:g} V, "
-                      f"current noise {transfer.current_sigma_a * 1e9:.0f} nA (measured); bias off", highlight=False)
-            out.print(finding_line("predicted from DC", predicted), highlight=False)
+            loaded_bench = load_bench(bench)
+            for temp_c in loaded.settings.sweep.temperatures_c or [None]:
+                transfer = measure_dc_transfer(loaded_bench, bias.dc, bias.drain_v, f"plan {plan}",
+                                               temperature_c=temp_c)
+                _, predicted = predicted_sweet_spot(
+                    transfer.gate_v, transfer.drain_current_a, transfer.current_sigma_a, bias.dc.window_points,
+                    bias.dc.polyorder, None if search is None else search.window_threshold_dbm,
+                    None if search is None else search.window_below_peak_db)
+                at = "" if temp_c is None else f" at {transfer.chamber_read_c:.2f} degC (set {temp_c:g})"
+                out.print(f"DC transfer sweep{at}: {transfer.gate_v.size} points at drain {transfer.drain_v:g} V, "
+                          f"current noise {transfer.current_sigma_a * 1e9:.0f} nA (measured); bias off",
+                          highlight=False)
+                out.print(finding_line("predicted from DC", predicted), highlight=False)
 
     @bias_app.command("search")
     def bias_search(
@@ -87,15 +92,29 @@ def register_bias_commands(app: typer.Typer, run_with_progress) -> None:
                 return run_with_progress(plan_path, bench_path, url, None, on_sim_started)
 
             say = lambda line: out.print(line, highlight=False)
-            study = run_bias_study(plan, bench, db_url, page_path, execute, say)
-            for run in study.runs:
-                say(f"run {run.guid[:8]}: {run.status}: {run.reason}")
-            say(f"study {study.guid}: stored with its {study.transfer.gate_v.size} DC points and findings")
-            say(finding_line("predicted from DC", study.predicted))
-            say(finding_line(f"measured at {study.measured.drive_tone_dbm:g} dBm per tone", study.measured))
-            if study.input_offset_db is not None:
-                say(f"predicted less measured IIP3 away from the null: {study.input_offset_db:+.2f} dB "
-                    f"(input match voltage gain {10 ** (study.input_offset_db / 20):.3f})")
-            for line in study.truth:
-                say(line)
-            say(f"bias page: {study.page_path.resolve()}")
+            series = run_bias_study(plan, bench, db_url, page_path, execute, say)
+            for study in series.studies:
+                say_study(study, say)
+            if series.drift is not None:
+                say(f"sweet spot drift: {series.drift.mv_per_k:+.3f} mV/K +/- {series.drift.bound_mv_per_k:.3f} "
+                    f"over {min(series.drift.temperatures_c):.1f} to {max(series.drift.temperatures_c):.1f} degC"
+                    + ("" if series.series_guid is None else f" (series {series.series_guid})"))
+            if series.truth_drift_mv_per_k is not None:
+                say(f"simulated truth: drift {series.truth_drift_mv_per_k:+.3f} mV/K")
+            say(f"bias page: {series.page_path.resolve()}")
+
+
+def say_study(study, say) -> None:
+    """What one temperature's study found, a line per finding."""
+    if study.temperature_c is not None:
+        say(f"at {study.temperature_c:g} degC (chamber read {study.temp_k - 273.15:.2f} degC):")
+    for run in study.runs:
+        say(f"run {run.guid[:8]}: {run.status}: {run.reason}")
+    say(f"study {study.guid}: stored with its {study.transfer.gate_v.size} DC points and findings")
+    say(finding_line("predicted from DC", study.predicted))
+    say(finding_line(f"measured at {study.measured.drive_tone_dbm:g} dBm per tone", study.measured))
+    if study.input_offset_db is not None:
+        say(f"predicted less measured IIP3 away from the null: {study.input_offset_db:+.2f} dB "
+            f"(input match voltage gain {10 ** (study.input_offset_db / 20):.3f})")
+    for line in study.truth:
+        say(line)

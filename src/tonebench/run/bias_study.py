@@ -5,6 +5,10 @@ spot, window and input offset beside the prediction, and the bias page.
 
 Both two-tone runs are ordinary runs (stored, analysed, reported, resumable); the fine run's plan
 is the coarse plan with its [bias] table replaced by the fine gate voltages.
+
+With [sweep] temperatures_c the whole study is made at each temperature in turn (each plan has
+that one temperature, so every command soaks the chamber before it measures), the studies share
+a series GUID, and the sweet spot's drift in mV/K comes from a weighted line through them.
 """
 
 from __future__ import annotations
@@ -12,10 +16,12 @@ from __future__ import annotations
 import math
 import re
 import tempfile
+import uuid
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 from sqlalchemy import select
 
 from tonebench.analysis.bias_search import (
@@ -24,11 +30,13 @@ from tonebench.analysis.bias_search import (
     drive_points,
     input_offset_db,
     measured_sweet_spot,
+    null_estimate_v,
     predicted_sweet_spot,
     refined_gates_v,
 )
+from tonebench.analysis.bias_drift import KELVIN_AT_0C, SweetSpotDrift, sweet_spot_drift
 from tonebench.analysis.transconductance import TransconductanceResult
-from tonebench.config.bench_file import load_bench
+from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
 from tonebench.errors import InputError
 from tonebench.plan.limits import check_bias_voltages, check_plan_parts
@@ -48,11 +56,16 @@ from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Point, Run
 
 _TABLE_HEADER = re.compile(r"^\s*\[+\s*([A-Za-z0-9_.\-\" ]+?)\s*\]+\s*(#.*)?$")
+_TEMPERATURES_LINE = re.compile(r"^\s*temperatures_c\s*=\s*([^#]*)")
 
 
 @dataclass
 class BiasStudy:
+    """The study at one temperature (or with no chamber, temperature_c None)."""
+
     guid: str  # the stored study (store/models/bias.py)
+    temperature_c: float | None  # chamber set point
+    temp_k: float | None  # the chamber's reading after the soak
     transfer: DcTransfer
     derivatives: TransconductanceResult
     predicted: SweetSpotFinding | None
@@ -60,8 +73,19 @@ class BiasStudy:
     points: DrivePoints
     measured: SweetSpotFinding
     input_offset_db: float | None
-    page_path: Path
     truth: list[str]  # what the simulator knows, on a simulated bench
+    truth_zero_v: float | None = None  # the simulated FET's g3 zero at the DUT's temperature
+
+
+@dataclass
+class BiasSeries:
+    """Every temperature's study, and the sweet spot's drift (two temperatures or more)."""
+
+    series_guid: str | None
+    studies: list[BiasStudy]
+    drift: SweetSpotDrift | None
+    truth_drift_mv_per_k: float | None
+    page_path: Path
 
 
 def study_settings(plan: LoadedPlan, origin: str):
@@ -74,20 +98,43 @@ def study_settings(plan: LoadedPlan, origin: str):
     return bias
 
 
-def fine_plan_text(text: str, gates_v: list[float], drain_v: float | None) -> str:
-    """The plan with its [bias] table (and subtables) replaced by these gate voltages."""
-    kept, in_bias = [], False
+def _without_tables(text: str, dropped: Callable[[str], bool]) -> list[str]:
+    kept, dropping = [], False
     for line in text.splitlines():
         header = _TABLE_HEADER.match(line)
         if header:
-            name = header.group(1).strip()
-            in_bias = name == "bias" or name.startswith("bias.")
-        if not in_bias:
+            dropping = dropped(header.group(1).strip())
+        if not dropping:
             kept.append(line)
+    return kept
+
+
+def fine_plan_text(text: str, gates_v: list[float], drain_v: float | None) -> str:
+    """The plan with its [bias] table (and subtables) replaced by these gate voltages."""
+    kept = _without_tables(text, lambda name: name == "bias" or name.startswith("bias."))
     table = ["", "[bias]", "gate_v = [" + ", ".join(repr(v) for v in gates_v) + "]"]
     if drain_v is not None:
         table.append(f"drain_v = {drain_v!r}")
     return "\n".join(kept + table) + "\n"
+
+
+def at_temperature_text(text: str, temp_c: float, origin: str) -> str:
+    """The plan with its [sweep] temperatures_c replaced by this one temperature. The line is
+    replaced in place (the plan text is stored with each run); a plan whose temperatures_c spans
+    several lines is refused rather than rewritten blindly."""
+    lines, in_sweep, replaced = [], False, 0
+    for line in text.splitlines():
+        header = _TABLE_HEADER.match(line)
+        if header:
+            in_sweep = header.group(1).strip() == "sweep"
+        if in_sweep and _TEMPERATURES_LINE.match(line):
+            if not _TEMPERATURES_LINE.match(line).group(1).rstrip().endswith("]"):
+                raise InputError(f"{origin}: write [sweep] temperatures_c on one line for `tonebench bias search`")
+            line, replaced = f"temperatures_c = [{temp_c!r}]", replaced + 1
+        lines.append(line)
+    if replaced != 1:
+        raise InputError(f"{origin}: [sweep] temperatures_c not found on a line of its own")
+    return "\n".join(lines) + "\n"
 
 
 def run_points(db_url: str, guid: str) -> list[Point]:
@@ -100,19 +147,54 @@ def run_points(db_url: str, guid: str) -> list[Point]:
 
 
 def run_bias_study(plan_path: Path, bench_path: Path, db_url: str, page_path: Path,
-                   execute: Callable[..., RunOutcome], say: Callable[[str], None] = print) -> BiasStudy:
-    """The whole study; `execute(plan, bench, db_url, on_sim_started)` measures one plan."""
+                   execute: Callable[..., RunOutcome], say: Callable[[str], None] = print) -> BiasSeries:
+    """The whole study, at each of the plan's temperatures in turn (or once without a chamber);
+    `execute(plan, bench, db_url, on_sim_started)` measures one plan."""
     check_report_path(page_path, "bias page path")
     plan, bench = load_plan(plan_path), load_bench(bench_path)
     origin = f"plan {plan_path}"
     bias = study_settings(plan, origin)
-    search = bias.search
     # Everything refusable is refused before the first line is said and anything is switched on.
     check_plan_parts(expand(plan.settings), plan.settings, bench.settings, origin)
     check_bias_voltages(bench.settings.bias, bias.dc.gate_voltages_v(), bias.drain_v, f"{origin} [bias.dc]")
+    temperatures_c = plan.settings.sweep.temperatures_c or [None]
+    texts = {t: plan.text if t is None else at_temperature_text(plan.text, t, origin) for t in temperatures_c}
+    series_guid = None if temperatures_c == [None] else str(uuid.uuid4())
+    studies = []
+    with tempfile.TemporaryDirectory() as folder:
+        for temp_c in temperatures_c:
+            if temp_c is None:
+                at_path = plan_path
+            else:
+                say(f"at {temp_c:g} degC")
+                at_path = Path(folder) / f"{plan_path.stem}-{temp_c:g}C.toml"
+                at_path.write_text(texts[temp_c])
+            studies.append(_study_at(plan, at_path, texts[temp_c], temp_c, series_guid, bench, bench_path, db_url,
+                                     execute, say, origin))
+    drift = None
+    measured = [s for s in studies if s.temp_k is not None]
+    if len(measured) >= 2:
+        drift = sweet_spot_drift([s.temp_k - KELVIN_AT_0C for s in measured],
+                                 [s.measured.sweet_spot_v for s in measured],
+                                 [s.measured.sweet_spot_bound_v for s in measured])
+    truth_drift = None
+    truths = [s for s in measured if s.truth_zero_v is not None]
+    if len(truths) >= 2:
+        truth_drift = 1e3 * float(np.polyfit([s.temp_k for s in truths], [s.truth_zero_v for s in truths], 1)[0])
+    series = BiasSeries(series_guid, studies, drift, truth_drift, page_path)
+    write_html_file(page_path, render_bias_page(page_data(series, plan, bias)), "bias page path")
+    return series
+
+
+def _study_at(plan: LoadedPlan, plan_path: Path, plan_text: str, temp_c: float | None, series_guid: str | None,
+              bench: LoadedBench, bench_path: Path, db_url: str, execute, say, origin: str) -> BiasStudy:
+    """DC sweep, prediction, coarse and fine two-tone runs, and the study stored, at one temperature."""
+    bias = plan.settings.bias
+    search = bias.search
     sims = []
     say(f"DC transfer sweep: {bias.dc.gate_count()} gate voltages, {bias.dc.gate_start_v:g} to {bias.dc.gate_stop_v:g} V")
-    transfer = measure_dc_transfer(bench, bias.dc, bias.drain_v, origin, on_sim_started=sims.append)
+    transfer = measure_dc_transfer(bench, bias.dc, bias.drain_v, origin, on_sim_started=sims.append,
+                                   temperature_c=temp_c)
     derivatives, predicted = predicted_sweet_spot(
         transfer.gate_v, transfer.drain_current_a, transfer.current_sigma_a, bias.dc.window_points, bias.dc.polyorder,
         search.window_threshold_dbm, search.window_below_peak_db)
@@ -124,10 +206,10 @@ def run_bias_study(plan_path: Path, bench_path: Path, db_url: str, page_path: Pa
                   if limits.gate_min_v <= v <= limits.gate_max_v]
     runs, rows = [coarse], run_points(db_url, coarse.guid)
     if fine_gates:
-        say(f"two-tone run at {len(fine_gates)} fine steps around {points.gate_v[points.ratio_db.argmin()]:.4f} V")
+        say(f"two-tone run at {len(fine_gates)} fine steps around {null_estimate_v(points):.4f} V (the null the coarse points put)")
         with tempfile.TemporaryDirectory() as folder:
             fine_path = Path(folder) / f"{plan_path.stem}-fine.toml"
-            fine_path.write_text(fine_plan_text(plan.text, fine_gates, bias.drain_v))
+            fine_path.write_text(fine_plan_text(plan_text, fine_gates, bias.drain_v))
             fine = execute(fine_path, bench_path, db_url, None)
         runs.append(fine)
         rows += run_points(db_url, fine.guid)
@@ -136,18 +218,23 @@ def run_bias_study(plan_path: Path, bench_path: Path, db_url: str, page_path: Pa
                                    fit_points=search.fine_points + 2)
     offset_db = input_offset_db(points, derivatives)
     truth = simulated_truth(sims[0], measured.window_threshold_dbm) if sims else []
+    temp_k = None if transfer.chamber_read_c is None else transfer.chamber_read_c + KELVIN_AT_0C
     engine = open_database(db_url)
     try:
         study_guid = add_study(
             session_factory(engine), part_number=plan.settings.device.part_number, serial=plan.settings.device.serial,
             bench_name=bench.settings.bench.name, transfer=transfer, window_points=bias.dc.window_points,
             polyorder=bias.dc.polyorder, step_v=bias.dc.gate_step_v, run_guids=[run.guid for run in runs],
-            findings=[predicted, measured], input_offset_db=offset_db)
+            findings=[predicted, measured], input_offset_db=offset_db, temp_k=temp_k, temperature_c=temp_c,
+            series_guid=series_guid)
     finally:
         engine.dispose()
-    study = BiasStudy(study_guid, transfer, derivatives, predicted, runs, points, measured, offset_db, page_path, truth)
-    write_html_file(page_path, render_bias_page(page_data(study, plan, bias)), "bias page path")
-    return study
+    truth_zero_v = None
+    if sims and sims[0].bench.fet_bias is not None:
+        fet_bias = sims[0].bench.fet_bias
+        truth_zero_v = fet_bias.fet.g3_zero_v(fet_bias.temp_k)
+    return BiasStudy(study_guid, temp_c, temp_k, transfer, derivatives, predicted, runs, points, measured, offset_db,
+                     truth, truth_zero_v)
 
 
 def simulated_truth(sim, threshold_dbm: float | None) -> list[str]:
@@ -164,10 +251,10 @@ def simulated_truth(sim, threshold_dbm: float | None) -> list[str]:
     return [line]
 
 
-def _finding(found: SweetSpotFinding | None, offset_db: float | None) -> list[BiasFinding]:
+def _finding(found: SweetSpotFinding | None, offset_db: float | None, temp_k: float | None) -> list[BiasFinding]:
     if found is None:
         return []
-    return [BiasFinding(kind=found.kind, drive_tone_dbm=found.drive_tone_dbm, sweet_spot_v=found.sweet_spot_v,
+    return [BiasFinding(kind=found.kind, temperature_k=temp_k, drive_tone_dbm=found.drive_tone_dbm, sweet_spot_v=found.sweet_spot_v,
                         sweet_spot_bound_v=found.sweet_spot_bound_v, peak_iip3_dbm=found.peak_iip3_dbm,
                         window_threshold_dbm=found.window_threshold_dbm, window_low_v=found.window_low_v,
                         window_low_bound_v=found.window_bound_v, window_high_v=found.window_high_v,
@@ -175,29 +262,36 @@ def _finding(found: SweetSpotFinding | None, offset_db: float | None) -> list[Bi
                         gain_db=found.gain_db, input_gain_offset_db=offset_db if found.kind == "two-tone" else None)]
 
 
-def page_data(study: BiasStudy, plan: LoadedPlan, bias) -> BiasPageData:
+def page_data(series: BiasSeries, plan: LoadedPlan, bias) -> BiasPageData:
     device = plan.settings.device
-    transfer = study.transfer
+    studies = series.studies
+    first = studies[0]
     summary = {
         "device": f"{device.part_number} {device.serial}" + (f" (lot {device.lot})" if device.lot else ""),
-        "study": study.guid,
-        "runs": ", ".join(run.guid[:8] for run in study.runs),
-        "drain": f"{transfer.drain_v:g} V",
-        "DC sweep": f"{transfer.gate_v.size} points, {bias.dc.gate_step_v * 1e3:g} mV step, "
-                    f"current noise {transfer.current_sigma_a * 1e9:.0f} nA (measured)",
-        "prediction": "no g3 zero in the sweep" if study.predicted is None else study.predicted.method,
-        "measurement": study.measured.method,
+        "studies": ", ".join(s.guid[:8] for s in studies),
+        "runs": ", ".join(run.guid[:8] for s in studies for run in s.runs),
+        "drain": f"{first.transfer.drain_v:g} V",
+        "DC sweep": f"{first.transfer.gate_v.size} points, {bias.dc.gate_step_v * 1e3:g} mV step, "
+                    f"current noise {first.transfer.current_sigma_a * 1e9:.0f} nA (measured)",
+        "prediction": "no g3 zero in the sweep" if first.predicted is None else first.predicted.method,
+        "measurement": first.measured.method,
     }
+    if series.drift is not None:
+        summary["drift with temperature"] = (f"{series.drift.mv_per_k:+.3f} ± {series.drift.bound_mv_per_k:.3f} mV/K "
+                                             f"({series.drift.method})")
+    truth = [line for s in studies for line in s.truth]
+    if series.truth_drift_mv_per_k is not None:
+        truth.append(f"simulated truth: drift {series.truth_drift_mv_per_k:+.3f} mV/K")
     summary.update({f"truth {i + 1}" if i else "simulated truth": line.removeprefix("simulated truth: ")
-                    for i, line in enumerate(study.truth)})
-    points = study.points
+                    for i, line in enumerate(truth)})
     return BiasPageData(
         title=f"Linearity sweet spot: {device.part_number} {device.serial}",
         summary=summary,
-        dc_sweeps=[DcSweep(None, transfer.gate_v, transfer.drain_current_a, transfer.current_sigma_a,
-                           bias.dc.window_points, bias.dc.polyorder)],
-        measured=[MeasuredIip3(None, points.drive_tone_dbm, points.gate_v, points.iip3_dbm,
-                               points.at_floor)],
-        findings=_finding(study.predicted, None) + _finding(study.measured, study.input_offset_db),
+        dc_sweeps=[DcSweep(s.temp_k, s.transfer.gate_v, s.transfer.drain_current_a, s.transfer.current_sigma_a,
+                           bias.dc.window_points, bias.dc.polyorder) for s in studies],
+        measured=[MeasuredIip3(s.temp_k, s.points.drive_tone_dbm, s.points.gate_v, s.points.iip3_dbm,
+                               s.points.at_floor) for s in studies],
+        findings=[f for s in studies for f in _finding(s.predicted, None, s.temp_k)
+                  + _finding(s.measured, s.input_offset_db, s.temp_k)],
         what_if_ohm=(("5 ohm", 5.0), ("10 ohm", 10.0)),
     )

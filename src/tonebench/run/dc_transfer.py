@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from contextlib import ExitStack
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -36,6 +36,7 @@ class DcTransfer:
     drain_read_v: np.ndarray
     drain_current_a: np.ndarray
     current_sigma_a: float  # measured scatter of one drain-current reading
+    chamber_read_c: float | None = None  # the chamber's reading after its soak, with a temperature
 
 
 def sweep_transfer(bias: BiasSupplies, settings: DcSweepSettings, drain_v: float | None = None,
@@ -67,16 +68,24 @@ def _settled(bias: BiasSupplies, gate_v: float, tolerance_v: float):
 
 
 def measure_dc_transfer(bench: LoadedBench, settings: DcSweepSettings, drain_v: float | None,
-                        origin: str, on_sim_started=None, on_progress=None) -> DcTransfer:
-    """Connect the bench (RF off at every source), sweep, and bias down in order on every way
-    out (Ctrl-C and SIGTERM raise once; the bias still goes down)."""
+                        origin: str, on_sim_started=None, on_progress=None,
+                        temperature_c: float | None = None) -> DcTransfer:
+    """Connect the bench (RF off at every source), soak the chamber at temperature_c (when
+    given, before any bias), sweep, and bias down in order on every way out (Ctrl-C and SIGTERM
+    raise once; the bias still goes down)."""
     if not bench.settings.has_bias:
         raise InputError(f"{origin}: a DC transfer sweep needs a bench with gate and drain supplies")
     check_bias_voltages(bench.settings.bias, settings.gate_voltages_v(), drain_v, origin)
+    if temperature_c is not None and bench.settings.chamber is None:
+        raise InputError(f"{origin}: a temperature needs a bench with a chamber (instruments.chamber, [chamber])")
     with ExitStack() as stack, stop_signals():
         instruments, _relay, _supervision = connect_bench(stack, bench, on_sim_started)
+        chamber_read_c = None
+        if temperature_c is not None:
+            chamber_read_c = instruments.chamber.soak(temperature_c).read_c
         try:
-            transfer = sweep_transfer(instruments.bias, settings, drain_v, on_progress)
+            transfer = replace(sweep_transfer(instruments.bias, settings, drain_v, on_progress),
+                               chamber_read_c=chamber_read_c)
         except BaseException:
             instruments.switch_bias_off()  # in its order; the error that ended the sweep is the one said
             raise
