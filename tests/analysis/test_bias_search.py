@@ -15,6 +15,7 @@ from tonebench.analysis.bias_search import (
     drive_points,
     input_offset_db,
     measured_sweet_spot,
+    null_estimate_v,
     predicted_sweet_spot,
     refined_gates_v,
 )
@@ -37,17 +38,17 @@ def row(gate_v, drive_dbm, ratio_db, noise_dbm=-200.0, gain_db=12.0, drain_a=6e-
                            drain_current_a=drain_a)
 
 
-def fet_rows(gates_v, drive_dbm, input_gain=1.0, ratio_noise_db=0.0, seed=3):
+def fet_rows(gates_v, drive_dbm, input_gain=1.0, ratio_noise_db=0.0, seed=3, temp_k=300.0):
     """Two-tone points of the simulated stage (3 V drain), IM3 from its FFT lines."""
     rng = np.random.default_rng(seed)
     amp_v = math.sqrt(2 * 50 * 1e-3 * 10 ** (drive_dbm / 10))
     rows = []
     for gate_v in gates_v:
-        stage = FetStage(FET, float(gate_v), 3.0, 300.0, input_gain, 50.0, 0.3)
+        stage = FetStage(FET, float(gate_v), 3.0, temp_k, input_gain, 50.0, 0.3)
         lines = physics.two_tone_products_v(stage, amp_v, amp_v)
         ratio_db = 20 * math.log10(abs(lines["im3_low"]) / abs(lines["f1"])) + rng.normal(0.0, ratio_noise_db)
         rows.append(row(float(gate_v), drive_dbm, ratio_db, gain_db=stage.gain_db(),
-                        drain_a=float(FET.drain_a(gate_v, 300.0))))
+                        drain_a=float(FET.drain_a(gate_v, temp_k))))
     return rows
 
 
@@ -103,6 +104,17 @@ def test_fine_steps_go_around_the_measured_peak_and_skip_what_was_measured():
     assert refined_gates_v(points, 0.002, 5) == [0.566, 0.568, 0.572, 0.574]
     with pytest.raises(InputError, match="no measured point at the drive level -20 dBm"):
         drive_points([row(0.5, -30.0, -80.0)], -20.0)
+
+
+def test_a_null_between_coarse_steps_is_placed_by_restoring_the_im3_sign():
+    # Cold (253 K) the window is 8 mV wide and falls between two 40 mV steps; the highest IIP3 on
+    # the coarse grid is then at its top end (strong inversion), not near the null.
+    gates_v = np.round(np.arange(0.41, 0.7705, 0.04), 6)
+    points = drive_points(fet_rows(gates_v, -30.0, ratio_noise_db=0.1, temp_k=253.15), -30.0)
+    zero_v = FET.g3_zero_v(253.15)
+    assert not any(abs(v - zero_v) < 0.01 for v in gates_v)
+    assert abs(points.gate_v[np.argmin(points.ratio_db)] - zero_v) > 0.1
+    assert null_estimate_v(points) == pytest.approx(zero_v, abs=3e-3)
 
 
 def test_points_at_the_noise_floor_are_marked():

@@ -42,8 +42,9 @@ def test_search_finds_the_simulated_sweet_spot_and_window(tmp_path):
         runs = session.scalars(select(Run)).all()
         fine_biases = {p.bias_v for p in session.scalars(select(Point).where(Point.run_id == runs[1].id))}
     assert [run.status for run in runs] == ["complete", "complete"]
-    # The fine steps sit around the measured peak, 2 mV apart, not on the coarse grid.
-    assert all(abs(v - 0.57) <= 0.0061 for v in fine_biases) and 0.57 not in fine_biases
+    # The fine steps sit around the null the coarse points put, 2 mV apart, not on the coarse grid.
+    assert abs((min(fine_biases) + max(fine_biases)) / 2 - zero_v) <= 0.003 and 0.57 not in fine_biases
+    assert all(round(v / 0.002, 6).is_integer() for v in fine_biases)
     guid = re.search(r"study ([0-9a-f-]{36}): stored", result.output).group(1)
     study = study_of(session_factory(create_engine(f"sqlite:///{tmp_path / 'tb.db'}")), guid)
     two_tone = next(f for f in study.findings if f.kind == "two-tone")
