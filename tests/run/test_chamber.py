@@ -7,6 +7,7 @@ simulated FET's own drift."""
 
 from __future__ import annotations
 
+import json
 import re
 
 import numpy as np
@@ -168,3 +169,14 @@ def test_the_sweet_spot_drift_over_three_temperatures_matches_the_simulated_fet(
     truth = float(np.polyfit([r + 273.15 for r in reads_c], [fet.g3_zero_v(r + 273.15) for r in reads_c], 1)[0]) * 1e3
     assert measured == pytest.approx(truth, rel=0.10)
     assert "Sweet spot against temperature" in (tmp_path / "bias.html").read_text()
+    # The catalog returns the same findings, one series, per temperature.
+    found = invoke("find", "--sweet-spots", "--json", "--temp-min-c", "0", "--db", tmp_path / "tb.db")
+    assert found.exit_code == 0, found.output
+    rows = json.loads(found.output)
+    assert sorted((r["temperature_c"], r["kind"]) for r in rows) == [
+        (25.0, "dc-prediction"), (25.0, "two-tone"), (85.0, "dc-prediction"), (85.0, "two-tone")]
+    assert len({r["series"] for r in rows}) == 1 and rows[0]["part_number"] == "TBF-77"
+    two_tone_85 = next(r for r in rows if r["temperature_c"] == 85.0 and r["kind"] == "two-tone")
+    assert f"{two_tone_85['sweet_spot_v']:.4f}" == f"{spots[2]:.4f}"
+    refused = invoke("find", "--sweet-spots", "--verdict", "pass", "--db", tmp_path / "tb.db")
+    assert refused.exit_code == 2 and "apply to results, not sweet spots" in refused.output

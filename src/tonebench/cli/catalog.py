@@ -305,6 +305,9 @@ def find(
     as_csv: Annotated[bool, typer.Option("--csv", help="CSV instead of a table.")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="JSON instead of a table.")] = False,
     out_path: Annotated[Path | None, typer.Option("--out", help="Write CSV/JSON to this file instead of the terminal.")] = None,
+    sweet_spots: Annotated[bool, typer.Option("--sweet-spots", help="Sweet-spot findings of `bias search` studies instead of results (device, date and temperature filters apply).")] = False,
+    temp_min_c: Annotated[float | None, typer.Option("--temp-min-c", help="With --sweet-spots: chamber set point at least this (degC).")] = None,
+    temp_max_c: Annotated[float | None, typer.Option("--temp-max-c", help="With --sweet-spots: chamber set point at most this (degC).")] = None,
     db: DbOption = None,
 ) -> None:
     """Find results by device, frequency, spacing, bias, date, flags and verdict."""
@@ -317,9 +320,54 @@ def find(
             raise InputError("find --out: give --csv or --json to say what to write")
         flt = _filter(part, lot, wafer, serial, tag, freq_min_hz, freq_max_hz, spacing_min_hz, spacing_max_hz,
                       bias_min_v, bias_max_v, since, until, flag, flagged, verdict)
+        if sweet_spots:
+            _find_sweet_spots(flt, temp_min_c, temp_max_c, limit, as_csv, as_json, out_path, db)
+            return
+        if temp_min_c is not None or temp_max_c is not None:
+            raise InputError("find: --temp-min-c and --temp-max-c go with --sweet-spots")
         with _session(db) as session:
             rows = find_results(session, flt, limit)
         _print_rows(rows, as_csv, as_json, out_path)
+
+
+def _find_sweet_spots(flt, temp_min_c, temp_max_c, limit, as_csv, as_json, out_path, db) -> None:
+    from tonebench.catalog.sweet_spots import SWEET_SPOT_FIELDS, find_sweet_spots
+
+    result_only = [name for name, value in (("--freq/--spacing/--bias ranges", flt.freq_min_hz or flt.freq_max_hz
+                                              or flt.spacing_min_hz or flt.spacing_max_hz or flt.bias_min_v
+                                              or flt.bias_max_v), ("--flag/--flagged", flt.flags or flt.flagged is not None),
+                                             ("--verdict", flt.verdicts), ("--tag", flt.tags)) if value]
+    if result_only:
+        raise InputError(f"find --sweet-spots: {', '.join(result_only)} apply to results, not sweet spots; "
+                         "allowed: --part, --lot, --wafer, --serial, --since, --until, --temp-min-c, --temp-max-c")
+    with _session(db) as session:
+        rows = find_sweet_spots(session, flt, temp_min_c, temp_max_c, limit)
+    if not (as_csv or as_json):
+        table = Table(box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False)
+        for column in ("Part", "Serial", "degC", "From", "Spot V", "± mV", "Window mV", "Peak IIP3"):
+            table.add_column(column, no_wrap=True)
+        for r in rows:
+            width = None if r["window_low_v"] is None else 1e3 * (r["window_high_v"] - r["window_low_v"])
+            kind = "DC" if r["kind"] == "dc-prediction" else "2-tone"
+            table.add_row(r["part_number"], r["serial"], _f(r["temperature_c"], ".1f"), kind,
+                          f"{r['sweet_spot_v']:.4f}", _f(1e3 * r["sweet_spot_bound_v"], ".1f"), _f(width, ".1f"),
+                          _f(r["peak_iip3_dbm"]))
+        out.print(table)
+        out.print(f"{len(rows)} sweet-spot findings", highlight=False)
+        return
+    stream = open(out_path, "w", newline="", encoding="utf-8") if out_path else sys.stdout
+    try:
+        if as_json:
+            json.dump([{name: _export_value(r[name]) for name in SWEET_SPOT_FIELDS} for r in rows], stream, indent=1)
+            stream.write("\n")
+        else:
+            writer = csv.writer(stream)
+            writer.writerow(SWEET_SPOT_FIELDS)
+            for r in rows:
+                writer.writerow(["" if r[name] is None else _export_value(r[name]) for name in SWEET_SPOT_FIELDS])
+    finally:
+        if out_path:
+            stream.close()
 
 
 def compare(
