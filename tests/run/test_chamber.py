@@ -25,7 +25,7 @@ from tonebench.run.start import execute_run
 from tonebench.sim.chamber import SimChamber
 from tonebench.sim.fet import SimFet
 from tonebench.sim.scenario import ChamberScenario
-from tonebench.store.models import Event, Point, Result, Run
+from tonebench.store.models import Event, Point, Result
 
 BENCH = (SAMPLE_RUNS / "bias_chamber_bench.toml").read_text()
 PLAN = """
