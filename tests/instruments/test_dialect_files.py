@@ -58,7 +58,7 @@ def load_error(path: Path) -> str:
 
 def test_repo_has_the_shipped_dialects():
     assert {p.stem for p in SHIPPED} == {"generic-source", "generic-analyzer", "verbose-analyzer", "generic-power-meter",
-                                         "generic-supply", "generic-smu"}
+                                         "generic-supply", "generic-smu", "generic-chamber"}
     # Installed (wheel copy) or run from the checkout, the named dialects are the repo's files.
     (folder,) = drivers_dirs()
     assert {p.name: p.read_text() for p in folder.glob("*.toml")} == {p.name: p.read_text() for p in SHIPPED}
