@@ -284,7 +284,7 @@ def _table(rows: list[dict[str, object]], css_class: str) -> str:
 def _results_table(rows: list[dict[str, object]]) -> str:
     """The results, then (under its own heading) the fit diagnostics of the same sweeps, each
     diagnostics row led by the sweep's conditions so the two tables read side by side."""
-    conditions = ("bias (V)", "center", "spacing")
+    conditions = ("temperature (degC)", "bias (V)", "center", "spacing")
     main = [{k: v for k, v in row.items() if k not in _DIAGNOSTIC_COLUMNS} for row in rows]
     diagnostics = [{**{k: row[k] for k in conditions if k in row},
                     **{k: row[k] for k in _DIAGNOSTIC_COLUMNS if k in row}} for row in rows]
