@@ -9,6 +9,9 @@ from __future__ import annotations
 
 import json
 import re
+import signal
+import subprocess
+import sys
 
 import numpy as np
 import pytest
@@ -180,3 +183,49 @@ def test_the_sweet_spot_drift_over_three_temperatures_matches_the_simulated_fet(
     assert f"{two_tone_85['sweet_spot_v']:.4f}" == f"{spots[2]:.4f}"
     refused = invoke("find", "--sweet-spots", "--verdict", "pass", "--db", tmp_path / "tb.db")
     assert refused.exit_code == 2 and "apply to results, not sweet spots" in refused.output
+
+
+def chamber_lab(folder, start_c: float):
+    """The chamber bench served in this process (its chamber holding start_c: the simulator's
+    clock stands still between commands), reached by a bench file as hardware with a short dwell."""
+    from tonebench.config.bench_file import load_bench
+    from tonebench.sim.launch import start_sim_bench
+
+    scenario = load_bench(SAMPLE_RUNS / "bias_chamber_bench.toml").scenario
+    scenario = scenario.model_copy(update={"chamber": scenario.chamber.model_copy(update={"start_c": start_c})})
+    sim = start_sim_bench(scenario)
+    text = BENCH.split("[simulation]")[0].replace("dwell_s = 300.0", "dwell_s = 0.3").replace("poll_s = 10.0",
+                                                                                              "poll_s = 0.05")
+    for role, resource in sim.resources.items():
+        text = text.replace(f"[instruments.{role}]\n", f'[instruments.{role}]\nresource = "{resource}"\n')
+    (folder / "bench.toml").write_text(text)
+    (folder / "plan.toml").write_text(PLAN.replace("[85.0, -20.0]", "[25.0]"))
+    return sim
+
+
+@pytest.mark.parametrize("start_c, when", [(25.0, "measuring"), (60.0, "soaking")])
+@pytest.mark.parametrize("signum, count, code", [(signal.SIGINT, 5, 130), (signal.SIGTERM, 3, 143)],
+                         ids=["ctrl-c-x5", "sigterm-x3"])
+def test_repeated_signals_in_a_chamber_run_leave_rf_and_bias_off(tmp_path, start_c, when, signum, count, code):
+    from test_rf_off_paths import both_on, finish, send_burst, wait_for
+
+    sim = chamber_lab(tmp_path, start_c)
+    try:
+        proc = subprocess.Popen([sys.executable, "-m", "tonebench", "run", "plan.toml", "--bench", "bench.toml",
+                                 "--db", "t.db"], cwd=tmp_path, text=True, stdout=subprocess.PIPE,
+                                stderr=subprocess.PIPE)
+        if when == "measuring":
+            wait_for(lambda: both_on(sim), proc, "RF on")
+        else:  # the chamber at 60 degC never reaches 25 degC here: signals arrive mid-soak
+            wait_for(lambda: sim.bench.chamber.set_point_c == 25.0
+                     and all(s.channel(1).output_on for s in sim.bench.supplies.values()), proc, "soaking")
+        send_burst(proc.pid, signum, count)
+        returncode, _stdout, stderr = finish(proc)
+        assert returncode == code and "Traceback" not in stderr, stderr
+        assert rf_is_off(sim)
+        assert not any(s.channel(1).output_on for s in sim.bench.supplies.values())
+        if when == "soaking":
+            assert not any(line.upper().startswith("OUTP ON") for _, name, line in sim.bench.command_log
+                           if name.startswith("source"))
+    finally:
+        sim.close()
