@@ -8,16 +8,15 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from tonebench.catalog.query import ResultFilter
+from tonebench.store.bias_store import FINDING_FIELDS
 from tonebench.store.models import BiasFinding, BiasStudy, Device
 
 KELVIN_AT_0C = 273.15
 
-SWEET_SPOT_FIELDS = (
-    "study", "series", "part_number", "serial", "lot", "wafer", "created_at", "temperature_c", "chamber_read_c",
-    "drain_v", "kind", "drive_tone_dbm", "sweet_spot_v", "sweet_spot_bound_v", "peak_iip3_dbm",
-    "window_threshold_dbm", "window_low_v", "window_high_v", "window_bound_v", "drain_current_a", "gain_db",
-    "input_offset_db", "method",
-)
+_STUDY_FIELDS = ("study", "series", "part_number", "serial", "lot", "wafer", "created_at", "temperature_c",
+                 "chamber_read_c", "drain_v")
+_FINDING_COLUMNS = (*FINDING_FIELDS, "input_offset_db")
+SWEET_SPOT_FIELDS = (*_STUDY_FIELDS, *_FINDING_COLUMNS)
 
 
 def find_sweet_spots(session: Session, flt: ResultFilter, temp_min_c: float | None = None,
@@ -47,6 +46,6 @@ def find_sweet_spots(session: Session, flt: ResultFilter, temp_min_c: float | No
             "serial": device.serial, "lot": device.lot, "wafer": device.wafer, "created_at": study.created_at,
             "temperature_c": study.temperature_c,
             "chamber_read_c": None if study.temp_k is None else study.temp_k - KELVIN_AT_0C,
-            "drain_v": study.drain_v, **{name: getattr(finding, name) for name in SWEET_SPOT_FIELDS[10:]},
+            "drain_v": study.drain_v, **{name: getattr(finding, name) for name in _FINDING_COLUMNS},
         })
     return rows

@@ -93,16 +93,21 @@ def _print_rows(rows, as_csv: bool, as_json: bool, out_path: Path | None) -> Non
     if not (as_csv or as_json):
         _print_table(rows)
         return
+    _write_export([{name: getattr(r, name) for name in EXPORT_FIELDS} for r in rows], EXPORT_FIELDS, as_json, out_path)
+
+
+def _write_export(records: list[dict], fields: tuple[str, ...], as_json: bool, out_path: Path | None) -> None:
+    """Records as JSON or CSV, to out_path or the terminal."""
     stream = open(out_path, "w", newline="", encoding="utf-8") if out_path else sys.stdout
     try:
         if as_json:
-            json.dump([{name: _export_value(getattr(r, name)) for name in EXPORT_FIELDS} for r in rows], stream, indent=1)
+            json.dump([{name: _export_value(r[name]) for name in fields} for r in records], stream, indent=1)
             stream.write("\n")
         else:
             writer = csv.writer(stream)
-            writer.writerow(EXPORT_FIELDS)
-            for r in rows:
-                values = [_export_value(getattr(r, name)) for name in EXPORT_FIELDS]
+            writer.writerow(fields)
+            for r in records:
+                values = [_export_value(r[name]) for name in fields]
                 writer.writerow([";".join(v) if isinstance(v, list) else "" if v is None else v for v in values])
     finally:
         if out_path:
@@ -355,19 +360,7 @@ def _find_sweet_spots(flt, temp_min_c, temp_max_c, limit, as_csv, as_json, out_p
         out.print(table)
         out.print(f"{len(rows)} sweet-spot findings", highlight=False)
         return
-    stream = open(out_path, "w", newline="", encoding="utf-8") if out_path else sys.stdout
-    try:
-        if as_json:
-            json.dump([{name: _export_value(r[name]) for name in SWEET_SPOT_FIELDS} for r in rows], stream, indent=1)
-            stream.write("\n")
-        else:
-            writer = csv.writer(stream)
-            writer.writerow(SWEET_SPOT_FIELDS)
-            for r in rows:
-                writer.writerow(["" if r[name] is None else _export_value(r[name]) for name in SWEET_SPOT_FIELDS])
-    finally:
-        if out_path:
-            stream.close()
+    _write_export(rows, SWEET_SPOT_FIELDS, as_json, out_path)
 
 
 def compare(
