@@ -6,6 +6,7 @@ import numpy as np
 
 SYSTEM_IMPEDANCE_OHM = 50.0
 BOLTZMANN_J_PER_K = 1.380649e-23  # exact, SI definition (2019)
+KELVIN_AT_0C = 273.15  # exact, by the definition of the Celsius scale
 REFERENCE_TEMPERATURE_K = 290.0  # IEEE standard noise temperature
 
 

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-KELVIN_AT_0C = 273.15
+from tonebench.units import KELVIN_AT_0C
 
 
 @dataclass(frozen=True)

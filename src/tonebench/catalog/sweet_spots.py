@@ -10,8 +10,8 @@ from sqlalchemy.orm import Session
 from tonebench.catalog.query import ResultFilter
 from tonebench.store.bias_store import FINDING_FIELDS
 from tonebench.store.models import BiasFinding, BiasStudy, Device
+from tonebench.units import KELVIN_AT_0C
 
-KELVIN_AT_0C = 273.15
 
 _STUDY_FIELDS = ("study", "series", "part_number", "serial", "lot", "wafer", "created_at", "temperature_c",
                  "chamber_read_c", "drain_v")

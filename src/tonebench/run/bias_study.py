@@ -34,7 +34,7 @@ from tonebench.analysis.bias_search import (
     predicted_sweet_spot,
     refined_gates_v,
 )
-from tonebench.analysis.bias_drift import KELVIN_AT_0C, SweetSpotDrift, sweet_spot_drift
+from tonebench.analysis.bias_drift import SweetSpotDrift, sweet_spot_drift
 from tonebench.analysis.transconductance import TransconductanceResult
 from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
@@ -54,6 +54,7 @@ from tonebench.run.ending import RunOutcome
 from tonebench.store.bias_store import add_study
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import Point, Run
+from tonebench.units import KELVIN_AT_0C
 
 _TABLE_HEADER = re.compile(r"^\s*\[+\s*([A-Za-z0-9_.\-\" ]+?)\s*\]+\s*(#.*)?$")
 _TEMPERATURES_LINE = re.compile(r"^\s*temperatures_c\s*=\s*([^#]*)")

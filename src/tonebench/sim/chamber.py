@@ -22,8 +22,8 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 from tonebench.sim.scpi_parser import DATA_OUT_OF_RANGE, ScpiDevice, ScpiError, parse_bool, parse_number
+from tonebench.units import KELVIN_AT_0C
 
-KELVIN_AT_0C = 273.15
 PANEL_MIN_C = -100.0
 PANEL_MAX_C = 250.0
 
