@@ -15,7 +15,6 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tonebench.units import KELVIN_AT_0C
 
 
 @dataclass(frozen=True)
