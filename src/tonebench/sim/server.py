@@ -41,6 +41,9 @@ class InstrumentServer:
         self._accept_thread: threading.Thread | None = None
         self._clients: dict[socket.socket, threading.Thread] = {}
         self._clients_lock = threading.Lock()
+        # Connections reset by a power cycle: a line that reached one before its serving thread
+        # woke (Linux still delivers data after SHUT_RD) must not be answered.
+        self._reset: set[socket.socket] = set()
 
     @property
     def port(self) -> int:
@@ -128,6 +131,8 @@ class InstrumentServer:
                     return
                 buffer += chunk
                 while b"\n" in buffer:
+                    if conn in self._reset:
+                        return
                     raw, buffer = buffer.split(b"\n", 1)
                     line = raw.rstrip(b"\r").decode("ascii", errors="replace")
                     if not self._serve_line(conn, line):
@@ -137,6 +142,7 @@ class InstrumentServer:
         finally:
             with self._clients_lock:
                 self._clients.pop(conn, None)
+                self._reset.discard(conn)
             conn.close()
 
     def _serve_line(self, conn: socket.socket, line: str) -> bool:
@@ -204,6 +210,7 @@ class InstrumentServer:
         caused it goes last: once its client sees the reset, no other connection is served again."""
         with self._clients_lock:
             clients = [conn for conn in self._clients if conn is not last]
+            self._reset.update(clients)
         for conn in clients + ([last] if last is not None else []):
             _abort(conn)
 
