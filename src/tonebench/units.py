@@ -35,3 +35,14 @@ def thermal_noise_dbm_per_hz(temperature_k: float = REFERENCE_TEMPERATURE_K) -> 
 def db_sum(*levels_dbm):
     """Power sum of incoherent contributions given in dBm (or any dB unit)."""
     return watt_to_dbm(sum(dbm_to_watt(x) for x in levels_dbm))
+
+
+def format_freq(freq_hz: float, decimals: int | None = None) -> str:
+    """Frequency in the largest unit that keeps the number >= 1, e.g. '2.450 GHz', '1 MHz'."""
+    for scale, unit in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):
+        if abs(freq_hz) >= scale:
+            value = freq_hz / scale
+            break
+    else:
+        value, unit = freq_hz, "Hz"
+    return f"{value:.{decimals}f} {unit}" if decimals is not None else f"{value:g} {unit}"

@@ -45,7 +45,7 @@ def open_sim(tmp_path):
         rm = pyvisa.ResourceManager(f"{yaml_path}@sim")
         managers.append(rm)
         dialect = load_dialect(dialect_name)
-        resource = open_resource(f"TCPIP0::localhost::{port}::SOCKET", dialect, rm)
+        resource = open_resource(f"TCPIP0::localhost::{port}::SOCKET", dialect, label, f"{yaml_path}@sim")
         return ScpiInstrument(Recorder(resource), dialect, label)
 
     yield _open
@@ -228,7 +228,7 @@ def test_malformed_resource_string():
     dialect = load_dialect("generic-source")
     expected = "'localhost:5025' is not a VISA resource.*TCPIP0::host::port::SOCKET"
     with pytest.raises(InputError, match=expected):
-        open_resource("localhost:5025", dialect)
+        open_resource("localhost:5025", dialect, "source1")
 
 
 def test_nothing_listening_is_cannot_reach():
@@ -238,5 +238,5 @@ def test_nothing_listening_is_cannot_reach():
         port = probe.getsockname()[1]
     resource = f"TCPIP0::127.0.0.1::{port}::SOCKET"
     with pytest.raises(InputError, match=f"cannot reach {resource} \\(source\\): "):
-        open_resource(resource, load_dialect("generic-source"))
+        open_resource(resource, load_dialect("generic-source"), "source1")
 

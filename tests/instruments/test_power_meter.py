@@ -35,7 +35,7 @@ def dialogue_meter(tmp_path):
         rm = pyvisa.ResourceManager(f"{yaml_path}@sim")
         managers.append(rm)
         dialect = load_dialect("generic-power-meter")
-        return ScpiInstrument(Recorder(open_resource(f"TCPIP0::localhost::{port}::SOCKET", dialect, rm)),
+        return ScpiInstrument(Recorder(open_resource(f"TCPIP0::localhost::{port}::SOCKET", dialect, "power_meter", f"{yaml_path}@sim")),
                               dialect, "power_meter")
 
     yield _open
@@ -84,7 +84,7 @@ def test_driver_on_the_simulated_power_meter():
     scenario = Scenario.model_validate({"power_meter": {"accuracy_db": 0.0, "reading_noise_db": 0.0}})
     with start_sim_bench(scenario) as sim:
         dialect = load_dialect("generic-power-meter")
-        meter = PowerMeter(ScpiInstrument(open_resource(sim.resources["power_meter"], dialect), dialect, "power_meter"))
+        meter = PowerMeter(ScpiInstrument(open_resource(sim.resources["power_meter"], dialect, "power_meter"), dialect, "power_meter"))
         try:
             meter.prepare()
             with sim.bench.lock:

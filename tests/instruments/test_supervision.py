@@ -53,7 +53,7 @@ def bench(tmp_path):
 
         def open_driver(role: str):
             dialect = fast_dialect(tmp_path, "generic-analyzer" if role == "analyzer" else "generic-source")
-            inst = ScpiInstrument(open_resource(sim.resources[role], dialect), dialect, role, supervision)
+            inst = ScpiInstrument(open_resource(sim.resources[role], dialect, role), dialect, role, supervision)
             assert inst.idn  # recorded for the identity check on reopen
             return SpectrumAnalyzer(inst) if role == "analyzer" else SignalSource(inst)
 
@@ -173,7 +173,7 @@ def test_a_different_instrument_after_reopening_is_an_error(tmp_path):
     try:
         dialect = fast_dialect(tmp_path, "generic-source")
         resource = sim_bench.resources["source1"]
-        inst = ScpiInstrument(open_resource(resource, dialect), dialect, "source1", Supervision(FAST))
+        inst = ScpiInstrument(open_resource(resource, dialect, "source1"), dialect, "source1", Supervision(FAST))
         source = SignalSource(inst)
         assert "SIM-SRC-0001" in inst.idn
         port = int(resource.split("::")[2])

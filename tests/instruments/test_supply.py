@@ -39,7 +39,7 @@ def bench() -> Iterator[tuple[SimSupply, str]]:
 
 def open_channel(resource: str, dialect_name: str, channel: int) -> DcSupply:
     dialect = load_dialect(dialect_name)
-    handle, _idn = connect(resource, dialect)
+    handle, _idn = connect(resource, dialect, f"supply{channel}")
     return DcSupply(ScpiInstrument(handle, dialect, f"supply{channel}"), channel)
 
 
@@ -213,7 +213,7 @@ def test_generic_dialect_strings_against_a_dialogue(tmp_path):
     rm = pyvisa.ResourceManager(f"{yaml_path}@sim")
     try:
         dialect = load_dialect("generic-supply")
-        inst = ScpiInstrument(Recorder(open_resource("TCPIP0::localhost::5030::SOCKET", dialect, rm)),
+        inst = ScpiInstrument(Recorder(open_resource("TCPIP0::localhost::5030::SOCKET", dialect, "drain", f"{yaml_path}@sim")),
                               dialect, "drain")
         drain = DcSupply(inst, channel=2)
         assert drain.idn == "Example Co,Dialogue Supply,SN0301,1.0"

@@ -29,7 +29,7 @@ from tonebench.store.models import Run
 
 def open_source(sim, role: str) -> SignalSource:
     dialect = load_dialect("generic-source")
-    inst = ScpiInstrument(open_resource(sim.resources[role], dialect), dialect, role,
+    inst = ScpiInstrument(open_resource(sim.resources[role], dialect, role), dialect, role,
                           Supervision(RetryPolicy(backoff_s=0.01)))
     assert inst.idn
     return SignalSource(inst)

@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import logging
+import time
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Annotated, Iterator
 
 import typer
@@ -59,3 +62,26 @@ def _say(note, line: str, exit_code: int) -> None:
         line, exit_code = note.line, note.exit_code
     err.print(line, markup=False, highlight=False, soft_wrap=True)
     raise typer.Exit(exit_code) from None
+
+
+def configure_logging(verbose: bool, trace_path: Path | None) -> None:
+    """-v: tonebench's log (the SCPI trace included) on stderr; --trace: the SCPI trace appended
+    to a file. Timestamps in UTC to the millisecond, like the database's."""
+    formatter = logging.Formatter("%(asctime)s.%(msecs)03dZ %(name)s %(message)s", "%Y-%m-%dT%H:%M:%S")
+    formatter.converter = time.gmtime
+    if verbose:
+        handler = logging.StreamHandler()
+        handler.setFormatter(formatter)
+        logger = logging.getLogger("tonebench")
+        logger.addHandler(handler)
+        logger.setLevel(logging.DEBUG)
+    if trace_path is not None:
+        try:
+            handler = logging.FileHandler(trace_path, mode="a", encoding="utf-8")
+        except OSError as exc:
+            raise InputError(f"--trace {trace_path}: cannot write there ({exc.strerror or exc}); "
+                             "give a file in an existing, writable folder") from None
+        handler.setFormatter(formatter)
+        scpi = logging.getLogger("tonebench.scpi")
+        scpi.addHandler(handler)
+        scpi.setLevel(logging.DEBUG)

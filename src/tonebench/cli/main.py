@@ -16,10 +16,11 @@ from rich.progress import (
 )
 from rich.table import Table
 
+from tonebench.cli.bench import register_bench_commands
 from tonebench.cli.bias import register_bias_commands
 from tonebench.cli.calibration import cal_app
 from tonebench.cli.catalog import register_catalog_commands
-from tonebench.cli.common import DbOption, database, err, one_line_errors, out
+from tonebench.cli.common import DbOption, configure_logging, database, err, one_line_errors, out
 from tonebench.cli.queue import register_queue_commands
 from tonebench.config.database_location import describe as describe_database
 from tonebench.errors import InputError
@@ -43,8 +44,17 @@ def _say_version(value: bool) -> None:
 def _main(
     version: Annotated[bool, typer.Option("--version", callback=_say_version, is_eager=True,
                                           help="Print the version and exit.")] = False,
+    verbose: Annotated[bool, typer.Option("--verbose", "-v",
+                                          help="Log what tonebench does, every SCPI command and reply included, "
+                                               "on stderr.")] = False,
+    trace: Annotated[Path | None, typer.Option("--trace", metavar="FILE",
+                                               help="Append every SCPI command and reply, per role and timestamped "
+                                                    "(UTC), to FILE. Give it before the command: "
+                                                    "tonebench --trace scpi.log bench check -b B")] = None,
 ) -> None:
     """Two-tone intercept (IIP3/OIP3) measurements on real or simulated benches, with every point logged."""
+    with one_line_errors():
+        configure_logging(verbose, trace)
 sim_app = typer.Typer(rich_markup_mode=None, help="The simulated bench.", no_args_is_help=True)
 db_app = typer.Typer(rich_markup_mode=None, help="Database housekeeping.", no_args_is_help=True)
 app.add_typer(sim_app, name="sim")
@@ -55,6 +65,7 @@ CalOption = Annotated[
     str | None,
     typer.Option("--cal", help="Calibration set to use (see `tonebench cal list`); default: the bench file's [bench] calibration, else its [offsets]."),
 ]
+register_bench_commands(app)
 register_queue_commands(app)
 register_catalog_commands(app)
 

@@ -29,6 +29,10 @@ class BenchInfo(StrictModel):
     # Calibration set (by name, in the database) a run uses unless `--cal` names another;
     # without either, the [offsets] table below.
     calibration: str | None = Field(default=None, min_length=1)
+    # pyvisa's library specification: "@py" (pyvisa-py), "@ivi" (an installed vendor VISA), a
+    # path to a VISA shared library, or "path@ivi". Left out: pyvisa's own conventions
+    # (PYVISA_LIBRARY, then .pyvisarc, then an installed VISA, then pyvisa-py).
+    visa_library: str | None = Field(default=None, min_length=1)
 
 
 # Analyzer figures a bench file may set over its dialect's [performance] table: this unit's own

@@ -9,7 +9,7 @@ from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.analyzer import SpectrumAnalyzer
 from tonebench.instruments.bias import BiasSupplies
 from tonebench.instruments.chamber import Chamber
-from tonebench.instruments.dialect import load_dialect
+from tonebench.instruments.dialect import Dialect, load_dialect
 from tonebench.instruments.power_meter import PowerMeter
 from tonebench.instruments.rf_guard import (
     RF_OFF_BUDGET_S,
@@ -190,6 +190,26 @@ def bench_freq_ranges(settings: BenchFile) -> dict[str, FreqRange]:
     return ranges
 
 
+def role_dialects(settings: BenchFile) -> dict[str, Dialect]:
+    """role -> its dialect, each loaded and checked to be of the role's kind (InputError if not)."""
+    dialects = {}
+    for role, entry in settings.instruments.items():
+        dialect = load_dialect(entry.dialect)
+        if dialect.role != ROLE_KINDS[role]:
+            raise InputError(f"instruments.{role}: dialect {dialect.name} is for a {dialect.role}; "
+                             f"this role needs a {ROLE_KINDS[role]} dialect")
+        dialects[role] = dialect
+    return dialects
+
+
+def visa_library(settings: BenchFile) -> str:
+    """The VISA library the bench is opened with: the bench file's choice, else pyvisa's own
+    default on hardware; the simulated bench always goes through pyvisa-py (installed with us)."""
+    if settings.bench.visa_library:
+        return settings.bench.visa_library
+    return "@py" if settings.simulated else ""
+
+
 def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supervision | None = None,
                power_guard: PowerGuard | None = None) -> OpenBench:
     """Connect to source1, source2, analyzer and (if the bench file has one) the power meter;
@@ -201,16 +221,16 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
     probe (tonebench.instruments.role_check)."""
     opened: list[ScpiInstrument] = []
     roles = ["source1", "source2", "analyzer"] + [r for r in OPTIONAL_ROLES if r in settings.instruments]
+    # Every role's dialect and resource before the first connection: a misspelled analyzer
+    # dialect must not hide behind an unreachable source.
+    dialects = role_dialects(settings)
+    check_distinct_resources(resources, roles)
+    library = visa_library(settings)
     try:
-        for index, role in enumerate(roles):
-            # Before opening each: an unreachable first instrument is reported as that.
-            check_distinct_resources(resources, roles[: index + 1])
-            dialect = load_dialect(settings.instruments[role].dialect)
-            if dialect.role != ROLE_KINDS[role]:
-                raise InputError(
-                    f"instruments.{role}: dialect {dialect.name} is for a {dialect.role}; this role needs a {ROLE_KINDS[role]} dialect"
-                )
-            opened.append(ScpiInstrument(open_resource(resources[role], dialect), dialect, role, supervision))
+        for role in roles:
+            dialect = dialects[role]
+            opened.append(ScpiInstrument(open_resource(resources[role], dialect, role, library), dialect, role,
+                                         supervision, library))
         for inst in opened:
             check_role(inst, ROLE_KINDS[inst.label])
         check_distinct_identities(opened)

@@ -63,8 +63,10 @@ class ScpiInstrument:
     re-apply their settings on each reopen.
     """
 
-    def __init__(self, resource, dialect: Dialect, label: str, supervision: Supervision | None = None):
+    def __init__(self, resource, dialect: Dialect, label: str, supervision: Supervision | None = None,
+                 visa_library: str = ""):
         self.resource = resource
+        self.visa_library = visa_library  # reconnections go through the same VISA library
         self.dialect = dialect
         self.label = label
         self.supervision = supervision
@@ -266,7 +268,7 @@ class ScpiInstrument:
             raise InstrumentError(f"{self.label}: cannot reopen: its resource string is unknown")
         with self.io_lock:
             self.close()
-            handle, idn = connect(self._resource_name, self.dialect)
+            handle, idn = connect(self._resource_name, self.dialect, self.label, self.visa_library)
             if self._idn is not None and identity(idn) != identity(self._idn):
                 handle.close()
                 raise IdentityChanged(

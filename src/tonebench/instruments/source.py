@@ -150,7 +150,7 @@ class SignalSource(RoleDriver):
         if inst.resource_name is None:
             raise InstrumentError(f"{self.label}: RF off failed: no second connection possible")
         ops = inst.dialect.operations
-        handle, _idn = connect(inst.resource_name, inst.dialect)
+        handle, _idn = connect(inst.resource_name, inst.dialect, inst.label, inst.visa_library)
         try:
             handle.write(ops["rf_off"].template)
             handle.query(ops["wait_complete"].template)

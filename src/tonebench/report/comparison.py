@@ -22,7 +22,7 @@ from tonebench.catalog.limits import LimitRule, list_limits
 from tonebench.catalog.query import ResultFilter, ResultRow, find_results
 from tonebench.errors import InputError
 from tonebench.report.html import check_report_path, page_html, write_html_file
-from tonebench.report.run_report import format_freq
+from tonebench.units import format_freq
 
 MAX_DEVICE_TRACES = 60  # above this many devices, traces are per lot (a legend of hundreds helps no one)
 FLAGGED_COLOR = "#9a9a9a"

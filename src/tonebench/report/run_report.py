@@ -18,6 +18,7 @@ from tonebench.analysis.assess import SweepAssessment
 from tonebench.analysis.fit import LATER_CHECK, SweepResult
 from tonebench.report.html import check_report_path, page_html, write_html_file
 from tonebench.report.run_summary import SweepSummary, summary_figure
+from tonebench.units import format_freq
 
 _COLORS = {"fundamental": "#1f5fa8", "im3_lower": "#c0561b", "im3_upper": "#2a8a4a",
            "noise": "#888888", "invalid": "#9a9a9a", "flag": "#c00000"}
@@ -69,17 +70,6 @@ class SweepPlotData:
         if self.assessment is None:
             return np.zeros(np.asarray(self.valid_mask).shape, bool)
         return self.assessment.flagged_mask
-
-
-def format_freq(freq_hz: float, decimals: int | None = None) -> str:
-    """Frequency in the largest unit that keeps the number >= 1, e.g. '2.450 GHz', '1 MHz'."""
-    for scale, unit in ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz")):
-        if abs(freq_hz) >= scale:
-            value = freq_hz / scale
-            break
-    else:
-        value, unit = freq_hz, "Hz"
-    return f"{value:.{decimals}f} {unit}" if decimals is not None else f"{value:g} {unit}"
 
 
 def sweep_title(center_freq_hz: float, spacing_hz: float, bias_v: float | None = None,

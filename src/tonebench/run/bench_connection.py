@@ -36,19 +36,31 @@ def connect_bench(stack: ExitStack, bench: LoadedBench, on_sim_started, warn: Ca
     and switch RF off at every source (an earlier command killed with RF on is said in an event
     and a warning); both are closed when `stack` unwinds. With the run's `offsets`, every source
     power command is checked against the bench limits from the sources' first command on."""
-    if bench.settings.simulated:
-        sim = stack.enter_context(start_sim_bench(bench.scenario))
-        resources = dict(sim.resources)
-        if on_sim_started:
-            on_sim_started(sim)
-    else:
-        resources = {role: entry.resource for role, entry in bench.settings.instruments.items()}
+    resources, sim = bench_resources(stack, bench, on_sim_started)
+    return open_resources(stack, bench, resources, sim, warn, offsets)
+
+
+def bench_resources(stack: ExitStack, bench: LoadedBench, on_sim_started=None) -> tuple[dict[str, str], object]:
+    """role -> VISA resource, and the running simulator (None on hardware); a simulated bench is
+    started here and stopped when `stack` unwinds."""
+    if not bench.settings.simulated:
+        return {role: entry.resource for role, entry in bench.settings.instruments.items()}, None
+    sim = stack.enter_context(start_sim_bench(bench.scenario))
+    if on_sim_started:
+        on_sim_started(sim)
+    return dict(sim.resources), sim
+
+
+def open_resources(stack: ExitStack, bench: LoadedBench, resources: dict[str, str], sim,
+                   warn: Callable[[str], None] | None = None,
+                   offsets: dict[str, LossTable] | None = None) -> tuple[OpenBench, EventRelay, Supervision]:
+    """The second half of connect_bench, on resources already known."""
     relay = EventRelay()
     supervision = supervision_for(bench, relay)
     guard = None if offsets is None else run_power_guard(bench, offsets)
     open_instruments = open_bench(bench.settings, resources, supervision, guard)
     stack.callback(open_instruments.close)
-    if bench.settings.simulated and open_instruments.chamber is not None:
+    if sim is not None and open_instruments.chamber is not None:
         # The simulated chamber lives on the virtual clock: the soak's waits pass there.
         open_instruments.chamber.clock = lambda: sim.bench.clock_s
         open_instruments.chamber.sleep = sim.bench.advance
