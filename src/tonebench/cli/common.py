@@ -64,9 +64,17 @@ def _say(note, line: str, exit_code: int) -> None:
     raise typer.Exit(exit_code) from None
 
 
+_installed: list[tuple[logging.Logger, logging.Handler]] = []
+
+
 def configure_logging(verbose: bool, trace_path: Path | None) -> None:
     """-v: tonebench's log (the SCPI trace included) on stderr; --trace: the SCPI trace appended
     to a file. Timestamps in UTC to the millisecond, like the database's."""
+    for logger, handler in _installed:  # a second command in one process (tests) starts afresh
+        logger.removeHandler(handler)
+        handler.close()
+        logger.setLevel(logging.NOTSET)
+    _installed.clear()
     formatter = logging.Formatter("%(asctime)s.%(msecs)03dZ %(name)s %(message)s", "%Y-%m-%dT%H:%M:%S")
     formatter.converter = time.gmtime
     if verbose:
@@ -75,6 +83,7 @@ def configure_logging(verbose: bool, trace_path: Path | None) -> None:
         logger = logging.getLogger("tonebench")
         logger.addHandler(handler)
         logger.setLevel(logging.DEBUG)
+        _installed.append((logger, handler))
     if trace_path is not None:
         try:
             handler = logging.FileHandler(trace_path, mode="a", encoding="utf-8")
@@ -85,3 +94,4 @@ def configure_logging(verbose: bool, trace_path: Path | None) -> None:
         scpi = logging.getLogger("tonebench.scpi")
         scpi.addHandler(handler)
         scpi.setLevel(logging.DEBUG)
+        _installed.append((scpi, handler))

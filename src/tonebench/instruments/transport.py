@@ -13,7 +13,7 @@ from tonebench.errors import InputError, InstrumentError
 from tonebench.config.resource_names import ALLOWED_FORMS, check_resource_name  # noqa: F401 - named here too
 from tonebench.instruments.dialect import Dialect
 
-# One resource manager per VISA library specification ("" is pyvisa's own default).
+# One resource manager per VISA library (a specification, or what pyvisa's defaults point at).
 _managers: dict[str, pyvisa.ResourceManager] = {}
 # Every command and reply of every instrument, at DEBUG (the CLI's --trace and -v switch it on).
 scpi_trace = logging.getLogger("tonebench.scpi")
@@ -31,7 +31,9 @@ def resource_manager(visa_library: str = "") -> pyvisa.ResourceManager:
     closed one is replaced rather than failing every later open (a worker runs for days). A
     library that cannot be loaded is InputError, one line naming it.
     """
-    manager = _managers.get(visa_library)
+    # pyvisa's defaults read the environment and ~/.pyvisarc: a changed one is another library.
+    key = visa_library or f"{os.environ.get('PYVISA_LIBRARY', '')}|{read_user_library_path() or ''}"
+    manager = _managers.get(key)
     if manager is not None:
         try:
             manager.session
@@ -50,7 +52,7 @@ def resource_manager(visa_library: str = "") -> pyvisa.ResourceManager:
                 reason = "no such shared library, or it cannot be loaded"
             raise InputError(f"VISA library {library_origin(visa_library)} cannot be loaded ({reason}); "
                              f"install it, or choose another in [bench] visa_library: {LIBRARY_FORMS}") from None
-        _managers[visa_library] = manager
+        _managers[key] = manager
     return manager
 
 
