@@ -89,4 +89,4 @@ def test_a_plain_run_of_the_study_plan_shows_each_gate_voltage(tmp_path):
     assert result.exit_code == 0, result.output
     assert "Gate V" in result.output
     for gate_v in ("0.4500", "0.5700", "0.7300"):
-        assert re.search(rf"2\.4500\s+1 MHz\s+{gate_v}\s", result.output), result.output
+        assert re.search(rf"2\.45 GHz\s+1 MHz\s+{gate_v}\s", result.output), result.output

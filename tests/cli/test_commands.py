@@ -124,7 +124,7 @@ def test_run_on_simulated_bench_then_runs_show_analyze_report(workdir):
     assert "rf-off" in shown.output
 
     analyzed = invoke("analyze", guid, "--db", db)
-    assert analyzed.exit_code == 0 and "2.4500" in analyzed.output
+    assert analyzed.exit_code == 0 and "2.45 GHz" in analyzed.output
 
     out_html = workdir / "again.html"
     reported = invoke("report", guid, "--db", db, "--out", out_html)

@@ -75,7 +75,8 @@ def test_an_axis_the_plan_names_is_iterated_outside_the_tone_ramp_and_joins_both
 
 
 def test_a_new_axis_is_one_declaration(monkeypatch):
-    lo = Axis("lo", "Hz", "lo_hz", lambda plan: getattr(plan.sweep, "lo_freqs_hz", None), "/lo{:.0f}", "lo_frequency")
+    lo = Axis("lo", "Hz", "lo_hz", lambda plan: getattr(plan.sweep, "lo_freqs_hz", None), "/lo{:.0f}", "lo_frequency",
+              lambda hz: f"LO {hz:g} Hz")
     monkeypatch.setattr(axes, "AXES", (*AXES, lo))
     monkeypatch.setattr(axes, "GROUP_AXES", (*GROUP_AXES, lo))
     sweep = _sweep(center_freqs_hz=[1.0e9], spacings_hz=[1.0e6], lo_freqs_hz=[0.9e9, 1.1e9], levels=[-20.0])

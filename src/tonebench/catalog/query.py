@@ -125,6 +125,7 @@ class ResultRow:
     verdict: str | None
     verdict_detail: str | None
     reason: str | None
+    temperature_c: float | None = None  # chamber set point; None without a chamber
     flags: tuple[str, ...] = ()
 
 
@@ -137,7 +138,7 @@ _COLUMNS = (
     Result.iip3_dbm, Result.iip3_lower_dbm, Result.iip3_upper_dbm, Result.oip3_dbm,
     Result.oip3_lower_dbm, Result.oip3_upper_dbm, Result.p1db_in_dbm, Result.iip2_dbm,
     Result.iip3_bound_db, Result.n_valid, Result.n_points, Result.verdict, Result.verdict_detail,
-    Result.reason,
+    Result.reason, Result.temperature_c,
 )
 
 

@@ -6,8 +6,6 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
-from rich import box
-from rich.table import Table
 
 from tonebench.cli.common import DbOption, database, one_line_errors, out
 
@@ -138,19 +136,20 @@ def measure_residual(
 def list_sets(db: DbOption = None) -> None:
     """List calibration sets, newest first, with their status (valid, stale or expired)."""
     from tonebench.calibration.sets import list_sets as stored_sets
+    from tonebench.report.terminal import fitted_table, styled
+    from tonebench.units import format_freq
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
         with session_factory(open_database(_db(db), read_only=True))() as session:
             views = stored_sets(session)
-        table = Table(title="Calibration sets", box=box.SIMPLE_HEAD)
-        for column in ("Name", "Method", "Created (UTC)", "Age (days)", "Valid (days)", "Status", "Range (GHz)", "Paths", "Residuals"):
-            table.add_column(column, no_wrap=True)
-        for v in views:
-            table.add_row(v.name, v.method, f"{v.created_at:%Y-%m-%d %H:%M}", f"{v.age_days():.1f}", f"{v.valid_days:g}",
-                          v.status(), f"{v.freq_min_hz / 1e9:.4f}..{v.freq_max_hz / 1e9:.4f}", ",".join(v.tables),
-                          str(len(v.residuals)))
-        out.print(table)
+        rows = [{"Name": v.name, "Method": v.method, "Created (UTC)": f"{v.created_at:%Y-%m-%d %H:%M}",
+                 "Age (days)": f"{v.age_days():.1f}", "Valid (days)": f"{v.valid_days:g}", "Status": styled(v.status()),
+                 "Range": f"{format_freq(v.freq_min_hz)} to {format_freq(v.freq_max_hz)}", "Paths": ",".join(v.tables),
+                 "Residuals": str(len(v.residuals))} for v in views]
+        out.print(fitted_table(out, "Calibration sets", rows,
+                               {"Name": 10, "Method": 6, "Created (UTC)": 7, "Age (days)": 5, "Valid (days)": 3,
+                                "Status": 10, "Range": 8, "Paths": 2, "Residuals": 1}))
 
 
 @cal_app.command("show")

@@ -118,25 +118,25 @@ def _f(value, spec: str = "+.2f") -> str:
     return "-" if value is None else format(value, spec)
 
 
+# Left out first when the terminal is narrow (lowest first); the IIP3 and the verdict stay.
+_FIND_PRIORITIES = {"Part": 9, "Serial": 9, "Lot": 6, "Wafer": 2, "Run": 7, "degC": 8, "Center": 10, "Spacing": 7,
+                    "Bias V": 8, "Gain": 5, "IIP3": 10, "OIP3": 4, "Verdict": 10, "Flags": 1}
+
+
 def _print_table(rows) -> None:
-    # Bias and flag columns only when some row has one: the table must fit a terminal.
-    columns = ["Part", "Serial", "Lot", "Wafer", "Run", "GHz", "MHz apart", "Bias V", "Gain", "IIP3", "OIP3",
-               "Verdict", "Flags"]
-    if not any(r.bias_v is not None for r in rows):
-        columns.remove("Bias V")
-    if not any(r.flags for r in rows):
-        columns.remove("Flags")
-    table = Table(title=f"{len(rows)} results (dB, dBm)", box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False,
-                  collapse_padding=True)
-    for column in columns:
-        table.add_column(column, no_wrap=column != "Flags")
-    for r in rows:
-        cells = {"Part": r.part_number, "Serial": r.serial, "Lot": r.lot or "-", "Wafer": r.wafer or "-",
-                 "Run": r.run_guid[:8], "GHz": f"{r.center_hz / 1e9:.4f}", "MHz apart": f"{r.spacing_hz / 1e6:g}",
-                 "Bias V": _f(r.bias_v, "g"), "Gain": _f(r.gain_db, ".2f"), "IIP3": _f(r.iip3_dbm),
-                 "OIP3": _f(r.oip3_dbm), "Verdict": r.verdict or "-", "Flags": ", ".join(r.flags)}
-        table.add_row(*(cells[c] for c in columns))
-    out.print(table)
+    from tonebench.report.terminal import fitted_table, styled
+    from tonebench.units import format_freq
+
+    # Bias, temperature and flag columns only when some row has one.
+    shown = {"Bias V": any(r.bias_v is not None for r in rows), "Flags": any(r.flags for r in rows),
+             "degC": any(r.temperature_c is not None for r in rows)}
+    cells = [{"Part": r.part_number, "Serial": r.serial, "Lot": r.lot or "-", "Wafer": r.wafer or "-",
+              "Run": r.run_guid[:8], "degC": _f(r.temperature_c, ".1f"), "Center": format_freq(r.center_hz),
+              "Spacing": format_freq(r.spacing_hz), "Bias V": _f(r.bias_v, "g"), "Gain": _f(r.gain_db, ".2f"),
+              "IIP3": _f(r.iip3_dbm), "OIP3": _f(r.oip3_dbm), "Verdict": styled(r.verdict), "Flags": ", ".join(r.flags)}
+             for r in rows]
+    cells = [{c: v for c, v in row.items() if shown.get(c, True)} for row in cells]
+    out.print(fitted_table(out, f"{len(rows)} results (dB, dBm)", cells, _FIND_PRIORITIES, wrapping=("Flags",)))
 
 
 def register_catalog_commands(app: typer.Typer) -> None:

@@ -14,7 +14,7 @@ from rich.progress import (
     TimeElapsedColumn,
     TimeRemainingColumn,
 )
-from rich.table import Table
+from rich.text import Text
 
 from tonebench.cli.bench import register_bench_commands
 from tonebench.cli.bias import register_bias_commands
@@ -132,8 +132,10 @@ def outcome_exit_code(outcome) -> int:
 
 def _say_outcome(outcome) -> None:
     """The run's end in a few lines: status and reason, how RF went off, where things are."""
-    out.print(f"run {outcome.guid}: {outcome.status}" + (f": {outcome.reason}" if outcome.reason else ""),
-              highlight=False)
+    from tonebench.report.terminal import styled
+
+    out.print(Text.assemble(f"run {outcome.guid}: ", styled(outcome.status),
+                            f": {outcome.reason}" if outcome.reason else ""))
     if outcome.rf_off:
         if outcome.rf_confirmed:
             out.print(outcome.rf_off, highlight=False)
@@ -157,7 +159,7 @@ def _print_results(results) -> None:
     from tonebench.report.run_views import results_table
 
     if results:
-        out.print(results_table(results))
+        out.print(results_table(results, out))
 
 
 @app.command()
@@ -219,15 +221,15 @@ def runs(
 ) -> None:
     """List runs, newest first."""
     from tonebench.report.run_views import list_runs
+    from tonebench.report.terminal import fitted_table, styled
 
     with one_line_errors():
         _close_dead_runs(database(db))
-        table = Table(title="Runs")
-        for column in ("GUID", "Started (UTC)", "Status", "Device", "Bench", "Points"):
-            table.add_column(column)
-        for row in list_runs(database(db), limit):
-            table.add_row(*row)
-        out.print(table)
+        rows = [dict(zip(("Run", "Started (UTC)", "Status", "Device", "Bench", "Points"),
+                         (guid[:8], started, styled(status), device, bench_name, points)))
+                for guid, started, status, device, bench_name, points in list_runs(database(db), limit)]
+        out.print(fitted_table(out, "Runs, newest first", rows,
+                               {"Run": 10, "Started (UTC)": 8, "Status": 10, "Device": 9, "Bench": 6, "Points": 5}))
 
 
 @app.command()

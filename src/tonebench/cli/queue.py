@@ -6,8 +6,6 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
-from rich import box
-from rich.table import Table
 
 from tonebench.cli.common import DbOption, database, err, one_line_errors, out
 
@@ -49,16 +47,16 @@ def _register_job_commands(queue_app: typer.Typer) -> None:
     ) -> None:
         """List jobs in the order workers take them."""
         from tonebench.queue.jobs import list_jobs
+        from tonebench.report.terminal import fitted_table, styled
 
         with one_line_errors():
-            table = Table(title="Jobs", box=box.SIMPLE_HEAD)
-            for column in ("Job", "Bench", "Plan", "Status", "Prio", "Queued (UTC)", "Worker", "Run", "Note"):
-                table.add_column(column)
-            for job in list_jobs(_sessions(db, read_only=True), bench, all_jobs):
-                table.add_row(job.guid[:8], job.bench_name, job.plan_name, job.status, str(job.priority),
-                              f"{job.created_at:%Y-%m-%d %H:%M}", job.claimed_by or "",
-                              (job.run_guid or "")[:8], job.message or "")
-            out.print(table)
+            rows = [{"Job": job.guid[:8], "Bench": job.bench_name, "Plan": job.plan_name, "Status": styled(job.status),
+                     "Prio": str(job.priority), "Queued (UTC)": f"{job.created_at:%Y-%m-%d %H:%M}",
+                     "Worker": job.claimed_by or "", "Run": (job.run_guid or "")[:8], "Note": job.message or ""}
+                    for job in list_jobs(_sessions(db, read_only=True), bench, all_jobs)]
+            out.print(fitted_table(out, "Jobs, in the order workers take them", rows,
+                                   {"Job": 10, "Bench": 7, "Plan": 8, "Status": 10, "Prio": 4, "Queued (UTC)": 5,
+                                    "Worker": 2, "Run": 6, "Note": 1}, wrapping=("Note",)))
 
     @queue_app.command("cancel")
     def queue_cancel(

@@ -15,7 +15,7 @@ Adding an axis (gate bias from a plan, temperature, LO frequency, device positio
 2. a field with its unit on PlannedPoint (plan/points.py), defaulting to None so older callers and
    stored points without it keep their keys, and the column of the same name on the point record;
 3. one Axis in AXES below, e.g. `Axis("lo", "Hz", "lo_hz", _plan_field("mixer", "lo_freqs_hz"),
-   "/lo{:.0f}", "lo_frequency")`. Its place in AXES is its place in the key; every axis other
+   "/lo{:.0f}", "lo_frequency", lambda hz: f"LO {format_freq(hz)}")`. Its place in AXES is its place in the key; every axis other
    than tone power is iterated outside the tone-power ramp in AXES order, and becomes part of the
    sweep key;
 4. the run dispatches on `bench_setting` ("lo_frequency") to whatever sets it.
@@ -26,7 +26,10 @@ their points and keys.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+import re
 from dataclasses import dataclass
+
+from tonebench.units import format_freq
 
 SweepKey = tuple  # the point's value on every axis but the sweep axis, in AXES order
 
@@ -42,9 +45,16 @@ class Axis:
     plan_values: Callable[[object], Sequence[float] | None]
     key_format: str
     bench_setting: str
+    describe: Callable[[float], str]  # the value as a reader names it, e.g. "spacing 1 MHz"
 
     def key_part(self, value: float | None) -> str:
         return "" if value is None else self.key_format.format(value)
+
+    def key_pattern(self) -> str:
+        """A regular expression for key_part, the value captured (optional: None leaves no trace)."""
+        before, _, rest = self.key_format.partition("{")
+        after = rest.partition("}")[2]
+        return f"(?:{re.escape(before)}([-+]?[0-9.]+){re.escape(after)})?"
 
 
 def _plan_field(table: str, name: str) -> Callable[[object], Sequence[float] | None]:
@@ -61,11 +71,13 @@ def _gate_voltages(plan) -> Sequence[float] | None:
 
 
 TEMPERATURE = Axis("temperature", "degC", "temperature_c", _plan_field("sweep", "temperatures_c"), "t{:+.1f}C/",
-                   "chamber_temperature")
-CENTER = Axis("center", "Hz", "center_hz", _plan_field("sweep", "center_freqs_hz"), "c{:.0f}", "tone_frequencies")
-SPACING = Axis("spacing", "Hz", "spacing_hz", _plan_field("sweep", "spacings_hz"), "/d{:.0f}", "tone_frequencies")
-TONE = Axis("tone", "dBm", "tone_dbm", _tone_levels, "/p{:+.2f}", "tone_power")
-BIAS = Axis("bias", "V", "bias_v", _gate_voltages, "/b{:+.4f}V", "gate_bias")
+                   "chamber_temperature", lambda c: f"{c:.1f} degC")
+CENTER = Axis("center", "Hz", "center_hz", _plan_field("sweep", "center_freqs_hz"), "c{:.0f}", "tone_frequencies",
+              format_freq)
+SPACING = Axis("spacing", "Hz", "spacing_hz", _plan_field("sweep", "spacings_hz"), "/d{:.0f}", "tone_frequencies",
+               lambda hz: f"spacing {format_freq(hz)}")
+TONE = Axis("tone", "dBm", "tone_dbm", _tone_levels, "/p{:+.2f}", "tone_power", lambda dbm: f"{dbm:+.2f} dBm per tone")
+BIAS = Axis("bias", "V", "bias_v", _gate_voltages, "/b{:+.4f}V", "gate_bias", lambda v: f"gate {v:.4f} V")
 
 AXES: tuple[Axis, ...] = (TEMPERATURE, CENTER, SPACING, TONE, BIAS)  # key order
 SWEEP_AXIS = TONE  # a fit runs over this axis; it is iterated innermost, rising
@@ -76,6 +88,24 @@ GROUP_FIELDS: tuple[str, ...] = tuple(axis.point_field for axis in GROUP_AXES)
 def point_key_of(values: dict[str, float | None]) -> str:
     """The stable key of a point from its value on every axis (by point field)."""
     return "".join(axis.key_part(values.get(axis.point_field)) for axis in AXES)
+
+
+def point_name(values: dict[str, float | None]) -> str:
+    """A point as a reader names it, e.g. '2.45 GHz, spacing 1 MHz, -20.00 dBm per tone'."""
+    return ", ".join(axis.describe(values[axis.point_field]) for axis in AXES
+                     if values.get(axis.point_field) is not None)
+
+
+_KEY_PATTERN = re.compile("".join(axis.key_pattern() for axis in AXES) + "$")
+
+
+def point_name_of_key(point_key: str) -> str:
+    """The reader's name of a stored point key (the key itself if it is not one of ours)."""
+    match = _KEY_PATTERN.match(point_key)
+    if match is None or not any(match.groups()):
+        return point_key
+    return point_name({axis.point_field: None if text is None else float(text)
+                       for axis, text in zip(AXES, match.groups())})
 
 
 def sweep_key_of(record) -> SweepKey:

@@ -25,6 +25,7 @@ from tonebench.plan.points import PlannedPoint
 from tonebench.planes import arithmetic
 from tonebench.planes.arithmetic import TWO_EQUAL_TONES_DB
 from tonebench.planes.loss_table import LossTable
+from tonebench.plan.axes import point_name_of_key
 
 
 @dataclass(frozen=True)
@@ -104,7 +105,7 @@ def check_plan(
     for point in points:
         if point.tone_dbm > limits.max_tone_dbm:
             raise InputError(
-                f"{origin}: point {point.key} asks {point.tone_dbm:.2f} dBm per tone at the DUT input; "
+                f"{origin}: point {point.name} asks {point.tone_dbm:.2f} dBm per tone at the DUT input; "
                 f"the bench limit max_tone_dbm is {limits.max_tone_dbm:.2f} dBm"
             )
         levels = predict_levels(point, offsets, limits)
@@ -112,7 +113,7 @@ def check_plan(
             check_source_power(source, setting_dbm, point.key)
         if levels.analyzer_input_dbm > limit_dbm:
             raise InputError(
-                f"{origin}: point {point.key} would put {levels.analyzer_input_dbm:.2f} dBm into the "
+                f"{origin}: point {point.name} would put {levels.analyzer_input_dbm:.2f} dBm into the "
                 f"analyzer (expected gain {limits.expected_gain_db:.1f} dB); the limit is {limit_dbm:.2f} dBm"
             )
 
@@ -120,7 +121,7 @@ def check_plan(
 def check_source_power(source: SourceRange, setting_dbm: float, point_key: str) -> None:
     if not source.min_power_dbm <= setting_dbm <= source.max_power_dbm:
         raise InputError(
-            f"point {point_key}: {source.label} would be set to {setting_dbm:.2f} dBm; it allows "
+            f"point {point_name_of_key(point_key)}: {source.label} would be set to {setting_dbm:.2f} dBm; it allows "
             f"{source.min_power_dbm:.2f} to {source.max_power_dbm:.2f} dBm"
         )
 
@@ -187,7 +188,7 @@ def plan_freq_needs(points: Iterable[PlannedPoint], span_hz: float, leveling: bo
         if (point.f1_hz, point.f2_hz) in seen:
             continue
         seen.add((point.f1_hz, point.f2_hz))
-        at = f"point {point.key}"
+        at = f"point {point.name}"
         needs += [FreqNeed("source1", f"{at} tone f1", point.f1_hz, point.f1_hz),
                   FreqNeed("source2", f"{at} tone f2", point.f2_hz, point.f2_hz)]
         for name, freq_hz in (("f1", point.f1_hz), ("f2", point.f2_hz), ("the lower IM3 product 2f1-f2", point.lower_hz),

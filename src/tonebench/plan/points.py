@@ -11,7 +11,7 @@ from dataclasses import dataclass
 from itertools import product
 
 from tonebench.config.plan_file import PlanFile
-from tonebench.plan.axes import AXES, SweepKey, axis_values, point_key_of, sweep_key_of
+from tonebench.plan.axes import AXES, SweepKey, axis_values, point_key_of, point_name, sweep_key_of
 
 
 @dataclass(frozen=True)
@@ -44,6 +44,11 @@ class PlannedPoint:
     @property
     def key(self) -> str:
         return point_key_of({axis.point_field: getattr(self, axis.point_field) for axis in AXES})
+
+    @property
+    def name(self) -> str:
+        """The point as messages name it, e.g. '2.45 GHz, spacing 1 MHz, -20.00 dBm per tone'."""
+        return point_name({axis.point_field: getattr(self, axis.point_field) for axis in AXES})
 
     @property
     def sweep_key(self) -> SweepKey:

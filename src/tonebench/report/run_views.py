@@ -6,34 +6,31 @@ command closes such runs first (store/ownership.close_dead_runs), before it show
 
 from __future__ import annotations
 
-from rich import box
 from rich.console import Console
 from rich.table import Table
+from rich.text import Text
 from sqlalchemy import func, select
 
 from tonebench.report.run_report import flag_text
-from tonebench.report.terminal import terminal_row
+from tonebench.report.terminal import RESULT_PRIORITIES, fitted_table, styled, terminal_row
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.lookups import find_run
 from tonebench.store.models import CalibrationSet, Point, PointFlag, Run
+from tonebench.plan.axes import point_name_of_key
 
 MAX_FAILED_SHOWN = 10  # failed points listed by `show`; the rest are counted
 
 
-def results_table(results) -> Table:
-    """Stored results as a compact terminal table; the Note column only when a sweep has one."""
+def results_table(results, console: Console) -> Table:
+    """Stored results as a compact terminal table at the console's width; optional columns only
+    when some sweep has something in them."""
     rows = [terminal_row(r) for r in results]
-    table = Table(title="Results (dB, dBm; IIP3 ± its bound; P1dB per tone)", box=box.SIMPLE_HEAD, padding=(0, 1),
-                  pad_edge=False, collapse_padding=True)
-    # Optional columns only when some sweep has something in them.
     shown = {"Note": any(row["Note"] for row in rows), "Flags": any(row["Flags"] != "-" for row in rows),
-             "Gate V": any(row["Gate V"] for row in rows), "degC": any(row["degC"] for row in rows)}
-    columns = [c for c in (rows[0] if rows else ()) if shown.get(c, True)]
-    for column in columns:
-        table.add_column(column, no_wrap=column not in ("Note", "Flags"))
-    for row in rows:
-        table.add_row(*(row[c] for c in columns))
-    return table
+             "Gate V": any(row["Gate V"] for row in rows), "degC": any(row["degC"] for row in rows),
+             "Verdict": any(r.verdict not in (None, "no-limit") for r in results)}
+    rows = [{c: cell for c, cell in row.items() if shown.get(c, True)} for row in rows]
+    return fitted_table(console, "Results (dB, dBm; IIP3 ± its bound; P1dB per tone)", rows, RESULT_PRIORITIES,
+                        wrapping=("Note", "Flags"))
 
 
 def list_runs(db_url: str, limit: int) -> list[tuple[str, ...]]:
@@ -60,7 +57,7 @@ def describe_run(db_url: str, ident: str, console: Console) -> None:
         run = find_run(session, ident)
         device = run.device
         console.print(f"run {run.guid}", highlight=False)
-        console.print(f"  status:  {run.status}" + (f" ({run.end_reason})" if run.end_reason else ""), highlight=False)
+        console.print(Text.assemble("  status:  ", styled(run.status), f" ({run.end_reason})" if run.end_reason else ""))
         ended = run.ended_at.strftime("%Y-%m-%d %H:%M:%S") if run.ended_at else "-"
         console.print(f"  started: {run.started_at:%Y-%m-%d %H:%M:%S} UTC, ended: {ended} UTC", highlight=False)
         console.print(f"  device:  {device.part_number} serial {device.serial} lot {device.lot or '-'}", highlight=False)
@@ -83,10 +80,10 @@ def describe_run(db_url: str, ident: str, console: Console) -> None:
             console.print(f"  {inst.role:9} {inst.dialect:18} {inst.resource}  {inst.idn}", highlight=False)
         if run.results:
             ordered = sorted(run.results, key=lambda r: (r.temperature_c or 0.0, r.center_hz, r.spacing_hz, r.bias_v or 0.0))
-            console.print(results_table(ordered))
+            console.print(results_table(ordered, console))
             print_flags(session, run, ordered, console)
         for point in failed[:MAX_FAILED_SHOWN]:
-            console.print(f"  failed point {point.point_key}: {point.fail_reason}", highlight=False)
+            console.print(f"  failed point {point_name_of_key(point.point_key)}: {point.fail_reason}", highlight=False)
         if len(failed) > MAX_FAILED_SHOWN:
             console.print(f"  ... and {len(failed) - MAX_FAILED_SHOWN} more failed points", highlight=False)
         console.print("events (UTC):", highlight=False)

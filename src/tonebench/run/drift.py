@@ -92,5 +92,5 @@ class DriftTracker:
 
     def _say(self, point, reason: str, details: dict) -> None:
         self.events += 1
-        self.log.event("warning", "source-drift", f"point {point.key}: {reason}",
+        self.log.event("warning", "source-drift", f"point {point.name}: {reason}",
                        {"point_key": point.key, "tolerance_db": self.tolerance_db, **details})

@@ -23,6 +23,7 @@ from tonebench.instruments.scpi import (
 )
 from tonebench.instruments.source import SignalSource
 from tonebench.instruments.supervision import RecoveryStopped
+from tonebench.plan.axes import point_name_of_key
 
 T = TypeVar("T")
 
@@ -86,7 +87,7 @@ class PointGuard(Generic[T]):
                 # Not measured again: a level beyond damage must not get RF once more, and a reply
                 # that is no reading is stored as a failed point (resume measures it again).
                 self.check()
-                self.log("error", "impossible-reading", f"point {point_key}: {exc}", {"point_key": point_key})
+                self.log("error", "impossible-reading", f"point {point_name_of_key(point_key)}: {exc}", {"point_key": point_key})
                 raise PointFailed(f"impossible reading: {exc}") from None
             except InstrumentError as exc:
                 reason = str(exc)
@@ -96,7 +97,7 @@ class PointGuard(Generic[T]):
             if attempt == self.attempts:
                 break
             self.log("warning", "point-retry",
-                     f"point {point_key}: measured again ({attempt + 1} of {self.attempts}): {reason}",
+                     f"point {point_name_of_key(point_key)}: measured again ({attempt + 1} of {self.attempts}): {reason}",
                      {"point_key": point_key, "attempt": attempt + 1})
             self._reapply(point_key)
         raise PointFailed(f"failed after {self.attempts} attempts: {reason}")
@@ -124,9 +125,9 @@ class PointGuard(Generic[T]):
             raise
         except InstrumentError as exc:
             # The next attempt starts with the same settings anyway; its failure says more.
-            self.log("warning", "reapplied", f"point {point_key}: re-applying settings failed: {exc}", {})
+            self.log("warning", "reapplied", f"point {point_name_of_key(point_key)}: re-applying settings failed: {exc}", {})
             return
-        self.log("info", "reapplied", f"point {point_key}: every instrument setting sent again", {})
+        self.log("info", "reapplied", f"point {point_name_of_key(point_key)}: every instrument setting sent again", {})
 
 
 def settle_check(first_dbm: Sequence[float], again_dbm: Sequence[float], tolerance_db: float,

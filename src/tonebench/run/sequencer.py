@@ -184,14 +184,14 @@ class Sequencer:
     def _set_bias(self, point: PlannedPoint) -> None:
         bias = self.bench.bias
         if bias is not None and point.bias_v is not None and bias.gate_v != point.bias_v:
-            with self._trips_stop_the_run(f"point {point.key}"):
+            with self._trips_stop_the_run(f"point {point.name}"):
                 bias.set_gate(point.bias_v)
 
     def _read_bias(self, point: PlannedPoint):
         bias = self.bench.bias
         if bias is None or not bias.up:
             return None
-        with self._trips_stop_the_run(f"point {point.key}"):
+        with self._trips_stop_the_run(f"point {point.name}"):
             return bias.read()
 
     @contextlib.contextmanager
@@ -284,14 +284,14 @@ class Sequencer:
         store_point(self.recorder.sessions, self.recorder.run_id, failed_record(point, reason, elapsed_s))
         self.failed_keys.append(point.key)
         policy = self.unattended.on_point_failure
-        self.log.event("error", "point-failed", f"point {point.key}: {reason}; on_point_failure = {policy}",
+        self.log.event("error", "point-failed", f"point {point.name}: {reason}; on_point_failure = {policy}",
                        {"point_key": point.key, "policy": policy})
         if policy == "pause":
-            self.log.event("warning", "pause", f"run paused at point {point.key}; RF off; "
+            self.log.event("warning", "pause", f"run paused at point {point.name}; RF off; "
                                                "`tonebench resume` measures it again and goes on")
-            raise RunStopped("paused", f"paused at point {point.key}: {reason}")
+            raise RunStopped("paused", f"paused at point {point.name}: {reason}")
         if policy == "abort":
-            raise RunStopped("aborted", f"aborted at point {point.key}: {reason}")
+            raise RunStopped("aborted", f"aborted at point {point.name}: {reason}")
 
     def _restore(self) -> None:
         self.rf.take_from_sources()

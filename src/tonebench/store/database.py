@@ -22,6 +22,7 @@ from sqlalchemy.orm import sessionmaker
 
 from tonebench.errors import DatabaseError, InputError
 from tonebench.packaged import data_dir
+from tonebench.plan.axes import point_name_of_key
 
 URL_EXAMPLES = "use e.g. sqlite:///path/to/file.db or postgresql+psycopg://user@host/dbname"
 SQLITE_BUSY_TIMEOUT_MS = 10_000  # a second writer waits this long before "database is locked"
@@ -256,7 +257,7 @@ def _disk_full_message(engine: sa.Engine, shown: str, point_key: str | None, run
     if guid is None:  # the run's own first write: nothing of it is stored
         return nothing
     short = str(guid)[:8]
-    what = f"point {point_key} of run {short}" if point_key else f"run {short}"
+    what = f"point {point_name_of_key(point_key)} of run {short}" if point_key else f"run {short}"
     return (f"disk full while storing {what} (database {shown}); the run is stored up to point {stored}; "
             f"free space and `tonebench resume {short}`")
 

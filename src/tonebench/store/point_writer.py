@@ -9,6 +9,7 @@ from sqlalchemy.orm import sessionmaker
 from tonebench.errors import InputError
 from tonebench.store.models import Point, utc_now
 from tonebench.store.point_record import PointRecord, point_columns
+from tonebench.plan.axes import point_name_of_key
 
 
 def store_point(sessions: sessionmaker, run_id: int, record: PointRecord) -> None:
@@ -20,6 +21,6 @@ def store_point(sessions: sessionmaker, run_id: int, record: PointRecord) -> Non
         ).first()
         if existing is not None:
             if existing.status == "measured":
-                raise InputError(f"point {record.point_key} of run {run_id} is already measured; not stored twice")
+                raise InputError(f"point {point_name_of_key(record.point_key)} of run {run_id} is already measured; not stored twice")
             session.execute(delete(Point).where(Point.id == existing.id))
         session.add(Point(run_id=run_id, measured_at=utc_now(), **point_columns(record)))
