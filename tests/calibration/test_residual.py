@@ -105,7 +105,7 @@ def measure_on_thru(tmp_path, simulation, use_cli: bool = False) -> SystemResidu
         result = runner.invoke(app, ["cal", "measure-residual", "thru-cal", "--bench", str(bench), "--plan", str(plan),
                                      "--db", db])
         assert result.exit_code == 0, result.output
-        assert "residual 2.45e+09 Hz" in result.output
+        assert "residual 2.45 GHz" in result.output
     else:
         workflow.measure_residual(db, "thru-cal", bench, plan)
     with Session(create_engine(db)) as session:

@@ -16,6 +16,7 @@ import numpy as np
 
 from tonebench.errors import InputError
 from tonebench.planes.loss_table import LossTable
+from tonebench.units import format_freq
 
 CSV_COLUMNS = ("freq_hz", "loss_db")
 # A passive path: a little gain is allowed for measurement scatter, as in the bench file.
@@ -39,7 +40,7 @@ def check_losses(where: str, freqs_hz: np.ndarray, losses_db: np.ndarray) -> Non
         raise InputError(f"{where}: every frequency and loss must be a finite number")
     if np.any(freqs_hz <= 0):
         bad = float(freqs_hz[freqs_hz <= 0][0])
-        raise InputError(f"{where}: frequency {bad:g} Hz; frequencies must be > 0 Hz")
+        raise InputError(f"{where}: frequency {format_freq(bad)}; frequencies must be > 0 Hz")
     steps = np.diff(freqs_hz)
     if np.any(steps <= 0):
         i = int(np.argmax(steps <= 0))
@@ -125,7 +126,7 @@ def _cascade(networks: list, files: list[Path]):
     low_hz = max(float(n.f[0]) for n in networks)
     high_hz = min(float(n.f[-1]) for n in networks)
     if low_hz > high_hz:
-        ranges = ", ".join(f"{f.name} {n.f[0]:.6g}..{n.f[-1]:.6g} Hz" for f, n in zip(files, networks))
+        ranges = ", ".join(f"{f.name} {format_freq(n.f[0])} to {format_freq(n.f[-1])}" for f, n in zip(files, networks))
         raise InputError(f"Touchstone files to cascade do not share any frequency range ({ranges})")
     grid_hz = np.unique(np.concatenate([n.f[(n.f >= low_hz) & (n.f <= high_hz)] for n in networks]))
     frequency = skrf.Frequency.from_f(grid_hz, unit="hz")

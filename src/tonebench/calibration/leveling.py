@@ -15,6 +15,7 @@ from tonebench.errors import InstrumentError
 from tonebench.instruments.power_meter import PowerMeter
 from tonebench.instruments.source import SignalSource
 from tonebench.plan.limits import SourceRange, check_source_power
+from tonebench.units import format_freq
 
 DEFAULT_TOLERANCE_DB = 0.05
 DEFAULT_MAX_ITERATIONS = 5
@@ -61,7 +62,7 @@ class Leveler:
         error_db = float("nan")
         for reading in range(1, self.max_iterations + 1):
             setting_dbm = open_loop_dbm + correction_db
-            check_source_power(source_range, setting_dbm, f"leveling at {freq_hz:.6g} Hz")
+            check_source_power(source_range, setting_dbm, f"leveling at {format_freq(freq_hz)}")
             source.set_tone(freq_hz, setting_dbm)  # returns after the source's *OPC?
             error_db = self.meter.read_power_dbm(freq_hz) - target_dbm
             if abs(error_db) <= self.tolerance_db:
@@ -71,7 +72,7 @@ class Leveler:
             correction_db -= error_db
             if abs(correction_db) > self.max_correction_db:
                 raise InstrumentError(
-                    f"leveling {source.label} at {freq_hz:.6g} Hz: needs {correction_db:+.2f} dB on top of the "
+                    f"leveling {source.label} at {format_freq(freq_hz)}: needs {correction_db:+.2f} dB on top of the "
                     f"calibration, more than the {self.max_correction_db:g} dB allowed; check the connections "
                     "and the calibration set"
                 )

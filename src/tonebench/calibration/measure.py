@@ -15,7 +15,7 @@ drivers), and acts on a Ctrl-C or SIGTERM between steps even if its exception wa
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -27,6 +27,7 @@ from tonebench.instruments.rf_guard import raise_if_stopping
 from tonebench.plan.limits import check_source_power
 from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
+from tonebench.units import format_freq
 
 # An output-path reading must clear its noise marker by this much to be a loss, not noise.
 MIN_TONE_SNR_DB = 30.0
@@ -42,7 +43,7 @@ def calibration_freqs_hz(tone_pairs_hz: Iterable[tuple[float, float]], step_hz: 
     grid = np.array(sorted(freqs), dtype=float)
     if step_hz is not None and grid.size > 1:
         if step_hz <= 0:
-            raise InputError(f"step {step_hz:g} Hz: the calibration grid step must be > 0 Hz")
+            raise InputError(f"step {format_freq(step_hz)}: the calibration grid step must be > 0 Hz")
         extra = np.arange(grid[0], grid[-1], step_hz)
         grid = np.unique(np.concatenate([grid, extra]))
     return grid
@@ -56,8 +57,10 @@ class InputPaths:
     meter_dbm: dict[str, list[float]]  # readings per path, for the set's notes and tests
 
 
-def measure_input_paths(bench: OpenBench, freqs_hz: Sequence[float], source_dbm: float) -> InputPaths:
-    """Both input paths with the power meter at the DUT input plane; source_dbm is each source's setting."""
+def measure_input_paths(bench: OpenBench, freqs_hz: Sequence[float], source_dbm: float,
+                        on_step: Callable[[], None] = lambda: None) -> InputPaths:
+    """Both input paths with the power meter at the DUT input plane; source_dbm is each source's
+    setting. on_step is called after each reading (2 per frequency)."""
     meter = bench.power_meter
     if meter is None:
         raise InputError("measuring the input paths needs a power_meter instrument in the bench file")
@@ -77,6 +80,7 @@ def measure_input_paths(bench: OpenBench, freqs_hz: Sequence[float], source_dbm:
                 reading_dbm = meter.read_power_dbm(float(freq_hz))
                 readings[path].append(reading_dbm)
                 losses[path].append(source_dbm - reading_dbm)
+                on_step()
             source.rf_off()
     finally:
         bench.switch_rf_off()  # read back, retried; never raises over the error in flight
@@ -84,8 +88,10 @@ def measure_input_paths(bench: OpenBench, freqs_hz: Sequence[float], source_dbm:
 
 
 def measure_output_path(bench: OpenBench, in1: LossTable, freqs_hz: Sequence[float], source_dbm: float,
-                        setup: AnalyzerSetup, noise_offset_hz: float) -> np.ndarray:
-    """Output loss (dB) at each frequency, through a thru, from source 1 and the input calibration."""
+                        setup: AnalyzerSetup, noise_offset_hz: float,
+                        on_step: Callable[[], None] = lambda: None) -> np.ndarray:
+    """Output loss (dB) at each frequency, through a thru, from source 1 and the input calibration;
+    on_step after each frequency."""
     analyzer = bench.analyzer
     losses = []
     try:
@@ -104,15 +110,16 @@ def measure_output_path(bench: OpenBench, in1: LossTable, freqs_hz: Sequence[flo
             tone_dbm, noise_dbm = reading.powers_dbm
             if reading.overload:
                 raise InstrumentError(
-                    f"output calibration at {freq_hz:.6g} Hz: the analyzer is overloaded; lower the level or raise "
+                    f"output calibration at {format_freq(freq_hz)}: the analyzer is overloaded; lower the level or raise "
                     "the plan's attenuation"
                 )
             if tone_dbm - noise_dbm < MIN_TONE_SNR_DB:
                 raise InstrumentError(
-                    f"output calibration at {freq_hz:.6g} Hz: the tone is only {tone_dbm - noise_dbm:.1f} dB over the "
+                    f"output calibration at {format_freq(freq_hz)}: the tone is only {tone_dbm - noise_dbm:.1f} dB over the "
                     "noise; is the thru in place and the output path connected?"
                 )
             losses.append(plane_dbm - tone_dbm)
+            on_step()
     finally:
         bench.switch_rf_off()  # read back, retried; never raises over the error in flight
     return np.array(losses)
@@ -139,9 +146,9 @@ def stepped_atten_db(base_atten_db: float, max_atten_db: float) -> float:
 
 def measure_residual_sweeps(bench: OpenBench, tables: dict[str, LossTable], center_hz: float, spacing_hz: float,
                             tone_levels_dbm: Sequence[float], setup: AnalyzerSetup, noise_offset_hz: float,
-                            attens_db: Sequence[float]) -> list[ResidualSweep]:
+                            attens_db: Sequence[float], on_step: Callable[[], None] = lambda: None) -> list[ResidualSweep]:
     """Thru in place: both tones at each level (dBm at the DUT input plane, open loop through the
-    set's input losses), IM3 and its noise floor read at each attenuation."""
+    set's input losses), IM3 and its noise floor read at each attenuation; on_step after each level."""
     f1_hz, f2_hz = center_hz - spacing_hz / 2.0, center_hz + spacing_hz / 2.0
     lower_hz, upper_hz = 2.0 * f1_hz - f2_hz, 2.0 * f2_hz - f1_hz
     in1_db, in2_db = tables["in1"].loss_db(f1_hz), tables["in2"].loss_db(f2_hz)
@@ -173,6 +180,7 @@ def measure_residual_sweeps(bench: OpenBench, tables: dict[str, LossTable], cent
                 columns["upper"].append(arithmetic.dut_output_dbm(upper.powers_dbm[0], out_upper_db))
                 columns["noise_upper"].append(arithmetic.dut_output_dbm(upper.powers_dbm[1], out_upper_db))
                 columns["overload"].append(lower.overload or upper.overload)
+                on_step()
             sweeps.append(ResidualSweep(
                 atten_db, *(np.array(columns[k], dtype=float) for k in ("p1", "p2", "lower", "upper", "noise_lower", "noise_upper")),
                 np.array(columns["overload"], dtype=bool),

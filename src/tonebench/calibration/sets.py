@@ -28,6 +28,7 @@ from tonebench.store.models import (
     SystemResidual,
     utc_now,
 )
+from tonebench.units import format_freq
 
 DEFAULT_VALID_DAYS = 30.0
 MAX_VALID_DAYS = 3650.0
@@ -90,7 +91,7 @@ def tables_range_hz(tables: Mapping[str, LossTable]) -> tuple[float, float]:
     low_hz = max(float(t.freqs_hz[0]) for t in tables.values())
     high_hz = min(float(t.freqs_hz[-1]) for t in tables.values())
     if low_hz > high_hz:
-        ranges = ", ".join(f"{p} {t.freqs_hz[0]:.6g}..{t.freqs_hz[-1]:.6g} Hz" for p, t in tables.items())
+        ranges = ", ".join(f"{p} {format_freq(t.freqs_hz[0])} to {format_freq(t.freqs_hz[-1])}" for p, t in tables.items())
         raise InputError(f"the paths' frequency ranges do not overlap ({ranges})")
     return low_hz, high_hz
 

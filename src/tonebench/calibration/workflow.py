@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import dataclasses
 import getpass
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -43,6 +44,9 @@ from tonebench.plan.points import expand
 from tonebench.planes.referral import check_coverage
 from tonebench.store.bench_lock import check_free as check_bench_free
 from tonebench.store.database import open_database, session_factory
+from tonebench.units import format_freq
+
+ProgressCallback = Callable[[int, int], None]  # (readings done, readings in all)
 
 RESIDUAL_LEVELS_BELOW_TOP_DB = (15.0, 10.0, 5.0, 0.0)  # default thru sweep, per tone, under the top level
 MARGIN_DB = 1.0
@@ -125,8 +129,9 @@ def _setup(plan: LoadedPlan) -> AnalyzerSetup:
 
 def measure_input(db_url: str, name: str, bench_path: Path, plan_path: Path, *, level_dbm: float | None = None,
                   step_hz: float | None = None, valid_days: float = DEFAULT_VALID_DAYS, operator: str | None = None,
-                  on_sim_started=None) -> CalibrationView:
-    """A new set with in1 and in2 measured by the power meter over every frequency of the plan."""
+                  on_sim_started=None, on_progress: ProgressCallback | None = None) -> CalibrationView:
+    """A new set with in1 and in2 measured by the power meter over every frequency of the plan;
+    on_progress(done, total) after each reading."""
     bench = load_bench(bench_path)
     if not bench.settings.has_power_meter:
         raise InputError(f"bench file {bench_path}: no [instruments.power_meter]; the input paths are measured with one")
@@ -140,15 +145,15 @@ def measure_input(db_url: str, name: str, bench_path: Path, plan_path: Path, *, 
         meter = opened.power_meter
         if freqs_hz[0] < meter.min_freq_hz or freqs_hz[-1] > meter.max_freq_hz:
             raise InputError(
-                f"plan {plan_path}: needs {freqs_hz[0]:.6g}..{freqs_hz[-1]:.6g} Hz; the power meter covers "
-                f"{meter.min_freq_hz:.6g}..{meter.max_freq_hz:.6g} Hz"
+                f"plan {plan_path}: needs {format_freq(freqs_hz[0])} to {format_freq(freqs_hz[-1])}; the power meter covers "
+                f"{format_freq(meter.min_freq_hz)} to {format_freq(meter.max_freq_hz)}"
             )
         # The DUT may still be connected: its output must stay within the analyzer's limit.
         gain_db = max(bench.settings.limits.expected_gain_db, 0.0)
         analyzer_limit_dbm = _analyzer_limit_dbm(bench, opened)
         level = _default_level(bench, gain_db, analyzer_limit_dbm) if level_dbm is None else level_dbm
         _check_level(bench, level, gain_db, analyzer_limit_dbm, f"input calibration {name}")
-        paths = measure.measure_input_paths(opened, freqs_hz, level)
+        paths = measure.measure_input_paths(opened, freqs_hz, level, _steps(on_progress, 2 * len(freqs_hz)))
         instruments = provenance(opened, ("source1", "source2", "power_meter"), "input paths")
     origin = f"calibration set {name}"
     tables = {
@@ -167,7 +172,8 @@ def measure_input(db_url: str, name: str, bench_path: Path, plan_path: Path, *, 
 
 
 def measure_output(db_url: str, name: str, bench_path: Path, plan_path: Path, *, level_dbm: float | None = None,
-                   step_hz: float | None = None, thru_in_place: bool = False, on_sim_started=None) -> CalibrationView:
+                   step_hz: float | None = None, thru_in_place: bool = False, on_sim_started=None,
+                   on_progress: ProgressCallback | None = None) -> CalibrationView:
     """Add 'out' to a set whose input paths are known: a thru in place, read on the analyzer."""
     bench = load_bench(bench_path)
     plan, freqs_hz = _plan_and_grid(plan_path, step_hz)
@@ -182,15 +188,16 @@ def measure_output(db_url: str, name: str, bench_path: Path, plan_path: Path, *,
     in1 = view.tables["in1"]
     if freqs_hz[0] < in1.freqs_hz[0] - 1.0 or freqs_hz[-1] > in1.freqs_hz[-1] + 1.0:
         raise InputError(
-            f"plan {plan_path}: needs {freqs_hz[0]:.6g}..{freqs_hz[-1]:.6g} Hz; {view.label} has in1 over "
-            f"{in1.freqs_hz[0]:.6g}..{in1.freqs_hz[-1]:.6g} Hz"
+            f"plan {plan_path}: needs {format_freq(freqs_hz[0])} to {format_freq(freqs_hz[-1])}; {view.label} has in1 over "
+            f"{format_freq(in1.freqs_hz[0])} to {format_freq(in1.freqs_hz[-1])}"
         )
     with calibration_bench(bench, thru=True, thru_in_place=thru_in_place, on_sim_started=on_sim_started) as opened:
         analyzer_limit_dbm = _analyzer_limit_dbm(bench, opened)
         level = _default_level(bench, 0.0, analyzer_limit_dbm) if level_dbm is None else level_dbm
         _check_level(bench, level, 0.0, analyzer_limit_dbm, f"output calibration {name}")
         losses_db = measure.measure_output_path(opened, in1, freqs_hz, level, _setup(plan),
-                                                plan.settings.analyzer.noise_offset_hz)
+                                                plan.settings.analyzer.noise_offset_hz,
+                                                _steps(on_progress, len(freqs_hz)))
         instruments = provenance(opened, ("analyzer",), "output path")
     table = table_from_arrays("out", freqs_hz, losses_db, view.label)
     importers.check_losses("measured out (is the thru in place?)", table.freqs_hz, table.losses_db)
@@ -230,7 +237,8 @@ def residual_levels_dbm(bench: LoadedBench, opened: OpenBench, atten_db: float,
 
 def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, *, start_dbm: float | None = None,
                      stop_dbm: float | None = None, step_db: float | None = None, rbw_hz: float | None = None,
-                     thru_in_place: bool = False, on_sim_started=None) -> CalibrationView:
+                     thru_in_place: bool = False, on_sim_started=None,
+                     on_progress: ProgressCallback | None = None) -> CalibrationView:
     """System residual per (center, spacing) of the plan, stored with the set (replacing older ones).
 
     rbw_hz replaces the plan's RBW (span 10 RBW): the residual usually sits far lower than the
@@ -248,8 +256,8 @@ def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, 
     if rbw_hz is not None:
         if not 0 < 10.0 * rbw_hz < min(plan.settings.sweep.spacings_hz):
             raise InputError(
-                f"RBW {rbw_hz:g} Hz: the span (10 RBW) must be narrower than the tone spacing "
-                f"{min(plan.settings.sweep.spacings_hz):g} Hz"
+                f"RBW {format_freq(rbw_hz)}: the span (10 RBW) must be narrower than the tone spacing "
+                f"{format_freq(min(plan.settings.sweep.spacings_hz))}"
             )
         setup = dataclasses.replace(setup, rbw_hz=rbw_hz, vbw_hz=rbw_hz, span_hz=10.0 * rbw_hz)
         noise_offset_hz = 0.4 * setup.span_hz
@@ -260,15 +268,30 @@ def measure_residual(db_url: str, name: str, bench_path: Path, plan_path: Path, 
         base_db = setup.atten_db
         step_atten_db = measure.stepped_atten_db(base_db, opened.analyzer.limits["max_atten_db"])
         levels = residual_levels_dbm(bench, opened, min(base_db, step_atten_db), start_dbm, stop_dbm, step_db)
+        step = _steps(on_progress, len(groups) * 2 * len(levels))
         for center_hz, spacing_hz in groups:
             base, stepped = measure.measure_residual_sweeps(
-                opened, view.tables, center_hz, spacing_hz, levels, setup, noise_offset_hz, (base_db, step_atten_db))
+                opened, view.tables, center_hz, spacing_hz, levels, setup, noise_offset_hz, (base_db, step_atten_db),
+                step)
             rows.append(_residual_row(center_hz, spacing_hz, levels, base, stepped, setup))
         instruments = provenance(opened, ("source1", "source2", "analyzer"), "system residual")
     with sessions.begin() as session:
         replace_residuals(session, name, rows)
         add_paths(session, name, {}, instruments, f"system residual at {len(groups)} (center, spacing) pairs")
     return _load(sessions, name)
+
+
+def _steps(on_progress: ProgressCallback | None, total: int) -> Callable[[], None]:
+    """A step counter that reports (done, total) after each reading."""
+    done = 0
+
+    def step() -> None:
+        nonlocal done
+        done += 1
+        if on_progress is not None:
+            on_progress(done, total)
+
+    return step
 
 
 def _check_residual_freqs(bench: LoadedBench, groups, span_hz: float, origin: str) -> None:

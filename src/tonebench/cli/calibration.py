@@ -8,6 +8,8 @@ from typing import Annotated
 import typer
 
 from tonebench.cli.common import DbOption, database, one_line_errors, out
+from tonebench.cli.progress import StepProgress
+from tonebench.units import format_freq
 
 cal_app = typer.Typer(rich_markup_mode=None, help="Calibration sets: path losses and the system residual.", no_args_is_help=True)
 
@@ -30,10 +32,10 @@ def _summary(view) -> None:
     paths = ", ".join(f"{p} {t.freqs_hz.size} points {t.losses_db.min():.2f}..{t.losses_db.max():.2f} dB"
                       for p, t in view.tables.items())
     out.print(f"calibration set {view.name} ({view.method}): {paths}", highlight=False)
-    out.print(f"  range {view.freq_min_hz:.6g} to {view.freq_max_hz:.6g} Hz, valid {view.valid_days:g} days, "
+    out.print(f"  range {format_freq(view.freq_min_hz)} to {format_freq(view.freq_max_hz)}, valid {view.valid_days:g} days, "
               f"status {view.status()}", highlight=False)
     for r in view.residuals:
-        out.print(f"  residual {r['center_hz']:.6g} Hz / {r['spacing_hz']:.6g} Hz at {r['atten_db']:g} dB: "
+        out.print(f"  residual {format_freq(r['center_hz'])} / {format_freq(r['spacing_hz'])} at {r['atten_db']:g} dB: "
                   f"system {_ip3(r['system_ip3_dbm'])}, sources {_ip3(r['source_ip3_dbm'])}, "
                   f"analyzer {_ip3(r['analyzer_ip3_dbm'])}", highlight=False)
 
@@ -97,8 +99,9 @@ def measure_input(
     from tonebench.calibration.workflow import measure_input as run_measure
 
     with one_line_errors():
-        view = run_measure(_db(db), name, bench, plan, level_dbm=level_dbm, step_hz=step_hz,
-                           valid_days=valid_days, operator=operator or default_operator())
+        with StepProgress("calibrating", "readings") as bar:
+            view = run_measure(_db(db), name, bench, plan, level_dbm=level_dbm, step_hz=step_hz,
+                               valid_days=valid_days, operator=operator or default_operator(), on_progress=bar.advance)
         _summary(view)
 
 
@@ -111,8 +114,10 @@ def measure_output(
     from tonebench.calibration.workflow import measure_output as run_measure
 
     with one_line_errors():
-        _summary(run_measure(_db(db), name, bench, plan, level_dbm=level_dbm, step_hz=step_hz,
-                             thru_in_place=thru_in_place))
+        with StepProgress("calibrating", "readings") as bar:
+            view = run_measure(_db(db), name, bench, plan, level_dbm=level_dbm, step_hz=step_hz,
+                               thru_in_place=thru_in_place, on_progress=bar.advance)
+        _summary(view)
 
 
 @cal_app.command("measure-residual")
@@ -128,8 +133,11 @@ def measure_residual(
     from tonebench.calibration.workflow import measure_residual as run_measure
 
     with one_line_errors():
-        _summary(run_measure(_db(db), name, bench, plan, start_dbm=tone_start_dbm, stop_dbm=tone_stop_dbm,
-                             step_db=tone_step_db, rbw_hz=rbw_hz, thru_in_place=thru_in_place))
+        with StepProgress("calibrating", "readings") as bar:
+            view = run_measure(_db(db), name, bench, plan, start_dbm=tone_start_dbm, stop_dbm=tone_stop_dbm,
+                               step_db=tone_step_db, rbw_hz=rbw_hz, thru_in_place=thru_in_place,
+                               on_progress=bar.advance)
+        _summary(view)
 
 
 @cal_app.command("list")
@@ -137,7 +145,6 @@ def list_sets(db: DbOption = None) -> None:
     """List calibration sets, newest first, with their status (valid, stale or expired)."""
     from tonebench.calibration.sets import list_sets as stored_sets
     from tonebench.report.terminal import fitted_table, styled
-    from tonebench.units import format_freq
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():

@@ -65,6 +65,20 @@ def _say(note, line: str, exit_code: int) -> None:
 
 
 _installed: list[tuple[logging.Logger, logging.Handler]] = []
+_EVENT_STYLES = {logging.WARNING: "yellow", logging.ERROR: "bold red"}
+
+
+class LiveEvents(logging.Handler):
+    """Run events on stderr as they happen, e.g. '13:20:01Z warning  point 2.45 GHz, ...: measured
+    again (2 of 4): ...'; printed through the console a progress bar uses, so they go above it."""
+
+    def emit(self, record: logging.LogRecord) -> None:
+        from rich.text import Text
+
+        at = time.strftime("%H:%M:%SZ", time.gmtime(record.created))
+        level = record.levelname.lower()
+        err.print(Text.assemble(f"{at} ", (f"{level:8}", _EVENT_STYLES.get(record.levelno, "")), record.getMessage()),
+                  highlight=False)
 
 
 def configure_logging(verbose: bool, trace_path: Path | None) -> None:
@@ -77,6 +91,13 @@ def configure_logging(verbose: bool, trace_path: Path | None) -> None:
     _installed.clear()
     formatter = logging.Formatter("%(asctime)s.%(msecs)03dZ %(name)s %(message)s", "%Y-%m-%dT%H:%M:%S")
     formatter.converter = time.gmtime
+    live = LiveEvents()  # a run's warnings and errors as they happen (all its events with -v)
+    live.setLevel(logging.DEBUG if verbose else logging.WARNING)
+    events = logging.getLogger("tonebench.events")
+    events.addHandler(live)
+    events.setLevel(logging.DEBUG)
+    events.propagate = False  # -v's handler below would print each one twice
+    _installed.append((events, live))
     if verbose:
         handler = logging.StreamHandler()
         handler.setFormatter(formatter)

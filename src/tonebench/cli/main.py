@@ -6,19 +6,12 @@ from pathlib import Path
 from typing import Annotated
 
 import typer
-from rich.progress import (
-    BarColumn,
-    MofNCompleteColumn,
-    Progress,
-    TextColumn,
-    TimeElapsedColumn,
-    TimeRemainingColumn,
-)
 from rich.text import Text
 
 from tonebench.cli.bench import register_bench_commands
 from tonebench.cli.bias import register_bias_commands
 from tonebench.cli.calibration import cal_app
+from tonebench.cli.progress import StepProgress
 from tonebench.cli.catalog import register_catalog_commands
 from tonebench.cli.common import DbOption, configure_logging, database, err, one_line_errors, out
 from tonebench.cli.queue import register_queue_commands
@@ -69,39 +62,14 @@ register_bench_commands(app)
 register_queue_commands(app)
 register_catalog_commands(app)
 
-def _progress() -> Progress:
-    return Progress(
-        TextColumn("[bold]measuring"),
-        BarColumn(),
-        MofNCompleteColumn(),
-        TextColumn("points"),
-        TimeElapsedColumn(),
-        TextColumn("ETA"),
-        TimeRemainingColumn(),
-        console=err,
-    )
-
-
 def _warn(message: str) -> None:
     err.print(f"warning: {message}", markup=False, highlight=False)
 
 
 def _with_progress(start):
-    """start(advance) with a progress bar that appears at the first measured point, so a refused
-    plan prints its error line and nothing else."""
-    progress = _progress()
-    task = progress.add_task("run", total=None, start=False)
-
-    def advance(done: int, total: int) -> None:
-        if not progress.live.is_started:
-            progress.start()
-            progress.start_task(task)
-        progress.update(task, completed=done, total=total)
-
-    try:
-        return start(advance)
-    finally:
-        progress.stop()
+    """start(advance) with a progress bar of the measured points."""
+    with StepProgress("measuring", "points") as bar:
+        return start(bar.advance)
 
 
 def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None,

@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import datetime as dt
 from pathlib import Path
 from typing import Annotated
 
 import typer
+from rich.text import Text
 
 from tonebench.cli.common import DbOption, database, err, one_line_errors, out
+from tonebench.cli.progress import StepProgress
 
 
 def _sessions(db: str | None, read_only: bool = False):
@@ -83,18 +86,33 @@ def _register_worker_command(app: typer.Typer) -> None:
         """Run the queued jobs of one bench, one after another, unattended (Ctrl-C or SIGTERM stops)."""
         from tonebench.queue.worker import Worker
 
-        with one_line_errors():
-            unit = Worker(database(db), bench, on_job=_say_job, poll_s=poll_s, report_dir=report_dir)
+        with one_line_errors(), StepProgress("measuring", "points", transient=True) as bar:
+            def say_job(what: str, job, detail: str) -> None:
+                if what in ("start", "resume"):
+                    bar.restart()
+                _say_job(what, job, detail)
+
+            unit = Worker(database(db), bench, on_job=say_job, on_progress=bar.advance, poll_s=poll_s,
+                          report_dir=report_dir)
             count, termed = _work(unit, until_empty)
-            out.print(f"worker for bench {unit.bench_name}: {count} job(s) run", highlight=False)
+            bar.stop()
+            out.print(f"{_now()} worker for bench {unit.bench_name}: {count} job(s) run", highlight=False)
             if termed:  # SIGTERM between runs: a clean stop, with SIGTERM's exit code all the same
                 err.print("worker stopped by SIGTERM between runs", markup=False, highlight=False)
                 raise typer.Exit(143)
 
 
+def _now() -> str:
+    return dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M:%SZ")
+
+
 def _say_job(what: str, job, detail: str) -> None:
-    line = f"job {job.guid[:8]} ({job.plan_name}): {what}" + (f": {detail}" if detail else "")
-    err.print(line, markup=False, highlight=False)
+    """One line per job event, timestamped (UTC), the outcome word in colour."""
+    from tonebench.report.terminal import styled
+
+    line = Text.assemble(f"{_now()} job {job.guid[:8]} ({job.plan_name}): ", styled(what),
+                         f": {detail}" if detail else "")
+    err.print(line, highlight=False)
 
 
 def _work(unit, until_empty: bool) -> tuple[int, bool]:

@@ -14,6 +14,7 @@ from tonebench.instruments.scpi import (
     ScpiInstrument,
 )
 from tonebench.units import thermal_noise_dbm_per_hz
+from tonebench.units import format_freq
 
 # Reads of one product before giving up when each is cut by a reopened connection.
 MAX_READ_ATTEMPTS = 3
@@ -111,8 +112,8 @@ class SpectrumAnalyzer(RoleDriver):
         for freq_hz in (center_hz, *marker_freqs_hz):
             if not low <= freq_hz <= high:
                 raise LimitError(
-                    f"{self.label}: frequency {freq_hz:.6g} Hz outside the "
-                    f"{self.instrument.dialect.name} range {low:.6g}..{high:.6g} Hz"
+                    f"{self.label}: frequency {format_freq(freq_hz)} outside the "
+                    f"{self.instrument.dialect.name} range {format_freq(low)} to {format_freq(high)}"
                 )
         inst = self.instrument
         for _ in range(MAX_READ_ATTEMPTS):
@@ -133,7 +134,7 @@ class SpectrumAnalyzer(RoleDriver):
                 return MarkerReading(tuple(powers_dbm), overload, sweep_time_s)
         raise InstrumentError(
             f"{self.label}: the connection was reopened or the settings lost during each of "
-            f"{MAX_READ_ATTEMPTS} reads at {center_hz:.6g} Hz"
+            f"{MAX_READ_ATTEMPTS} reads at {format_freq(center_hz)}"
         )
 
     def marker_bounds_dbm(self) -> tuple[float, float]:
@@ -150,7 +151,7 @@ class SpectrumAnalyzer(RoleDriver):
         why = (f"above the damage level {self.limits['damage_dbm']:g} dBm + {ABOVE_DAMAGE_DB:g} dB"
                if power_dbm > high_dbm else
                f"below thermal noise in the RBW - {BELOW_THERMAL_DB:g} dB ({low_dbm:.1f} dBm)")
-        raise ImpossibleReading(f"{self.label}: impossible reading {power_dbm:.6g} dBm at {freq_hz:.6g} Hz: {why}")
+        raise ImpossibleReading(f"{self.label}: impossible reading {power_dbm:.6g} dBm at {format_freq(freq_hz)}: {why}")
 
     def _settings_lost(self, sweep_time_s: float) -> bool:
         """True (after restoring them) when the analyzer's sweep time shows other settings.

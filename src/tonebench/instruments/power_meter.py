@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from tonebench.errors import InstrumentError
 from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument
+from tonebench.units import format_freq
 
 
 class PowerMeter(RoleDriver):
@@ -36,8 +37,8 @@ class PowerMeter(RoleDriver):
         name = self.instrument.dialect.name
         if not self.min_freq_hz <= freq_hz <= self.max_freq_hz:
             raise LimitError(
-                f"{self.label}: frequency {freq_hz:.6g} Hz outside the {name} range "
-                f"{self.min_freq_hz:.6g}..{self.max_freq_hz:.6g} Hz (min_freq_hz/max_freq_hz)"
+                f"{self.label}: frequency {format_freq(freq_hz)} outside the {name} range "
+                f"{format_freq(self.min_freq_hz)} to {format_freq(self.max_freq_hz)} (min_freq_hz/max_freq_hz)"
             )
         inst = self.instrument
         if self._freq_hz != freq_hz:
@@ -50,7 +51,7 @@ class PowerMeter(RoleDriver):
         inst.check_errors()
         if not self.min_power_dbm <= reading_dbm <= self.max_power_dbm:
             raise InstrumentError(
-                f"{self.label}: read {reading_dbm:.2f} dBm at {freq_hz:.6g} Hz, outside the {name} range "
+                f"{self.label}: read {reading_dbm:.2f} dBm at {format_freq(freq_hz)}, outside the {name} range "
                 f"{self.min_power_dbm:.2f}..{self.max_power_dbm:.2f} dBm (is the sensor connected?)"
             )
         return reading_dbm

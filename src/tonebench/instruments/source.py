@@ -9,6 +9,7 @@ import pyvisa
 
 from tonebench.errors import InstrumentError
 from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument, parse_reply
+from tonebench.units import format_freq
 
 # (source label, freq_hz, power_dbm) -> None, or raises LimitError: the bench's own limits,
 # checked before every power command this driver sends.
@@ -49,8 +50,8 @@ class SignalSource(RoleDriver):
         name = self.instrument.dialect.name
         if not self.min_freq_hz <= freq_hz <= self.max_freq_hz:
             raise LimitError(
-                f"{self.label}: frequency {freq_hz:.6g} Hz outside the {name} range "
-                f"{self.min_freq_hz:.6g}..{self.max_freq_hz:.6g} Hz (min_freq_hz/max_freq_hz)"
+                f"{self.label}: frequency {format_freq(freq_hz)} outside the {name} range "
+                f"{format_freq(self.min_freq_hz)} to {format_freq(self.max_freq_hz)} (min_freq_hz/max_freq_hz)"
             )
         if not self.min_power_dbm <= power_dbm <= self.max_power_dbm:
             raise LimitError(
@@ -109,7 +110,7 @@ class SignalSource(RoleDriver):
         if None not in (wanted.power_dbm, actual.power_dbm) and abs(actual.power_dbm - wanted.power_dbm) > power_tolerance_db:
             differences.append(f"power {actual.power_dbm:.2f} dBm, expected {wanted.power_dbm:.2f} dBm")
         if None not in (wanted.freq_hz, actual.freq_hz) and abs(actual.freq_hz - wanted.freq_hz) > max(1.0, 1e-7 * wanted.freq_hz):
-            differences.append(f"frequency {actual.freq_hz:.6g} Hz, expected {wanted.freq_hz:.6g} Hz")
+            differences.append(f"frequency {format_freq(actual.freq_hz)}, expected {format_freq(wanted.freq_hz)}")
         return f"{self.label}: " + ", ".join(differences) if differences else None
 
     def restore(self) -> None:

@@ -26,6 +26,7 @@ from tonebench.planes import arithmetic
 from tonebench.planes.arithmetic import TWO_EQUAL_TONES_DB
 from tonebench.planes.loss_table import LossTable
 from tonebench.plan.axes import point_name_of_key
+from tonebench.units import format_freq
 
 
 @dataclass(frozen=True)
@@ -142,13 +143,13 @@ def power_guard(offsets: dict[str, LossTable], limits: BenchLimits, analyzer_dam
         tone_dbm = arithmetic.tone_at_plane_dbm(power_dbm, offsets[paths[label]].loss_db(freq_hz))
         if tone_dbm > limits.max_tone_dbm + 1e-9:
             raise LimitError(
-                f"{label}: {power_dbm:.2f} dBm at {freq_hz:.6g} Hz would put {tone_dbm:.2f} dBm at the DUT input; "
+                f"{label}: {power_dbm:.2f} dBm at {format_freq(freq_hz)} would put {tone_dbm:.2f} dBm at the DUT input; "
                 f"the bench limit max_tone_dbm is {limits.max_tone_dbm:.2f} dBm"
             )
         analyzer_dbm = predicted_analyzer_input_dbm(((tone_dbm, freq_hz),), limits.expected_gain_db, offsets["out"])
         if analyzer_dbm > limit_dbm + 1e-9:
             raise LimitError(
-                f"{label}: {power_dbm:.2f} dBm at {freq_hz:.6g} Hz would put {analyzer_dbm:.2f} dBm into the analyzer "
+                f"{label}: {power_dbm:.2f} dBm at {format_freq(freq_hz)} would put {analyzer_dbm:.2f} dBm into the analyzer "
                 f"(expected gain {limits.expected_gain_db:.1f} dB); the limit is {limit_dbm:.2f} dBm"
             )
 

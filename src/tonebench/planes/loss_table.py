@@ -7,6 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tonebench.errors import InputError
+from tonebench.units import format_freq
 
 
 @dataclass(frozen=True)
@@ -32,8 +33,8 @@ class LossTable:
         if np.any(outside):
             bad_hz = float(np.atleast_1d(freqs_hz)[np.atleast_1d(outside)][0])
             raise InputError(
-                f"{self.origin}: no '{self.path}' loss at {bad_hz:.6g} Hz; the table covers "
-                f"{lowest_hz:.6g} to {highest_hz:.6g} Hz and tonebench does not extrapolate"
+                f"{self.origin}: no '{self.path}' loss at {format_freq(bad_hz)}; the table covers "
+                f"{format_freq(lowest_hz)} to {format_freq(highest_hz)} and tonebench does not extrapolate"
             )
         if self.freqs_hz.size == 1:
             return np.full_like(freqs_hz, self.losses_db[0]) if freqs_hz.ndim else float(self.losses_db[0])

@@ -14,6 +14,7 @@ from collections.abc import Iterable, Mapping
 from tonebench.errors import InputError
 from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
+from tonebench.units import format_freq
 
 PATHS = ("in1", "in2", "out")
 
@@ -98,7 +99,7 @@ def check_coverage(tables: Mapping[str, LossTable], tone_pairs_hz: Iterable[tupl
             if not table.freqs_hz[0] - 1.0 <= freq_hz <= table.freqs_hz[-1] + 1.0:
                 label = {"f1": "f1", "f2": "f2", "lower": "2f1-f2", "upper": "2f2-f1"}[name]
                 raise InputError(
-                    f"{what}: '{path}' covers {table.freqs_hz[0]:.6g} to {table.freqs_hz[-1]:.6g} Hz; "
-                    f"the plan needs {freq_hz:.6g} Hz ({label} of tones {f1_hz:.6g}/{f2_hz:.6g} Hz) "
+                    f"{what}: '{path}' covers {format_freq(table.freqs_hz[0])} to {format_freq(table.freqs_hz[-1])}; "
+                    f"the plan needs {format_freq(freq_hz)} ({label} of tones {format_freq(f1_hz)}/{format_freq(f2_hz)}) "
                     "and tonebench does not extrapolate"
                 )

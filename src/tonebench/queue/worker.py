@@ -49,11 +49,13 @@ class Worker:
     """Runs the queued jobs of one bench, one after another, until stopped (or the queue is empty)."""
 
     def __init__(self, db_url: str, bench_path: Path, *, on_job: JobCallback | None = None,
-                 poll_s: float = IDLE_POLL_S, report_dir: Path | None = None):
+                 on_progress: Callable[[int, int], None] | None = None, poll_s: float = IDLE_POLL_S,
+                 report_dir: Path | None = None):
         self.db_url = db_url
         self.bench_path = Path(bench_path)
         self.bench_name = load_bench(self.bench_path).settings.bench.name
         self.on_job = on_job or (lambda what, job, detail: None)
+        self.on_progress = on_progress or (lambda done, total: None)  # points of the job's run
         self.poll_s = poll_s
         self.report_dir = report_dir
         self.owner = process_owner()
@@ -106,6 +108,7 @@ class Worker:
         def check_cancelled(done: int, total: int) -> None:
             if job_status(sessions, job.id) == "cancelled":
                 raise JobCancelled(f"cancelled from the queue (job {job.guid})")
+            self.on_progress(done, total)
 
         with tempfile.TemporaryDirectory(prefix="tonebench-job-") as folder:
             report = self.report_dir / f"report-{job.guid[:8]}.html" if self.report_dir else None

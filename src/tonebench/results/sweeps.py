@@ -29,6 +29,7 @@ from tonebench.plan.axes import group_of, sweep_key_of
 from tonebench.planes.loss_table import LossTable
 from tonebench.store.models import CalibrationSet, Point, Run
 from tonebench.store.point_record import PointRecord, record_of
+from tonebench.units import format_freq
 
 
 POINT_ARRAYS = (
@@ -127,7 +128,7 @@ def _residual_shares(cal: CalibrationSet | None, center_hz: float, spacing_hz: f
         return {}, "the run has no calibration set"
     same = [r for r in cal.residuals if math.isclose(r.spacing_hz, spacing_hz, rel_tol=1e-9)]
     if not same:
-        return {}, f"calibration set {cal.name} has no system residual at {spacing_hz:.6g} Hz spacing"
+        return {}, f"calibration set {cal.name} has no system residual at {format_freq(spacing_hz)} spacing"
     row = min(same, key=lambda r: abs(r.center_hz - center_hz))
     extra = row.sweep_json or {}
     shares = check_shares(row.system_ip3_dbm, row.source_ip3_dbm, row.analyzer_ip3_dbm, row.atten_db,
@@ -135,7 +136,7 @@ def _residual_shares(cal: CalibrationSet | None, center_hz: float, spacing_hz: f
                           split_known=row.source_ip3_dbm is not None or row.analyzer_ip3_dbm is not None
                           or "source_ip3_min_dbm" in extra)
     if shares is None:
-        return {}, f"calibration set {cal.name}: the residual at {row.center_hz:.6g} Hz was below its noise"
+        return {}, f"calibration set {cal.name}: the residual at {format_freq(row.center_hz)} was below its noise"
     return {"system_ip3_dbm": float(row.system_ip3_dbm), "source_ip3_dbm": shares.source_ip3_dbm,
             "source_ip3_is_bound": shares.source_is_bound, "analyzer_ip3_dbm": shares.analyzer_ip3_dbm,
             "residual_atten_db": float(shares.atten_db)}, None

@@ -13,6 +13,9 @@ from sqlalchemy.engine import make_url
 from tonebench.instruments.supervision import InstrumentEvent
 
 _log = logging.getLogger(__name__)
+# Every run event, as it happens, for whoever watches (the CLI prints warnings and errors live).
+events = logging.getLogger("tonebench.events")
+LOG_LEVELS = {"debug": logging.DEBUG, "info": logging.INFO, "warning": logging.WARNING, "error": logging.ERROR}
 
 
 def log_path_for(db_url: str) -> Path:
@@ -36,13 +39,16 @@ class RunLog:
         self.path = path
         self._lock = threading.Lock()
 
-    def event(self, level: str, kind: str, message: str, details: dict | None = None) -> None:
+    def event(self, level: str, kind: str, message: str, details: dict | None = None, said: bool = False) -> None:
+        """Store and append one event; `said`: already told to the user (not passed on live)."""
         self.line(level, kind, message)
         self.recorder.event(level, kind, message, details)
+        if not said:
+            events.log(LOG_LEVELS.get(level, logging.INFO), "%s", message, extra={"kind": kind, "run": self.recorder.guid})
 
-    def instrument_event(self, event: InstrumentEvent) -> None:
+    def instrument_event(self, event: InstrumentEvent, said: bool = False) -> None:
         """Callback for tonebench.instruments.supervision.Supervision."""
-        self.event(event.level, event.kind, event.message, {"instrument": event.instrument, **event.details})
+        self.event(event.level, event.kind, event.message, {"instrument": event.instrument, **event.details}, said)
 
     def line(self, level: str, kind: str, message: str) -> None:
         """Only the text file (for lines the store writes itself, like the run's start and end)."""

@@ -33,5 +33,7 @@ class EventRelay:
         self.log = log
         self._on_activity = on_activity
         for event in self._early:
-            log.instrument_event(event)
+            # From opening the bench, before the run existed: said then, if at all (e.g. a
+            # source found with RF on is a warning line), so stored now but not repeated.
+            log.instrument_event(event, said=True)
         self._early.clear()

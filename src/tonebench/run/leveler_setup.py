@@ -6,6 +6,7 @@ from __future__ import annotations
 from tonebench.calibration.leveling import Leveler
 from tonebench.config.bench_file import LoadedBench
 from tonebench.errors import InputError
+from tonebench.units import format_freq
 
 
 def make_leveler(bench: LoadedBench, open_instruments, points: list, plan_origin: str) -> Leveler | None:
@@ -25,8 +26,8 @@ def _check_meter_freqs(meter, points: list, plan_origin: str) -> None:
         for freq_hz in (point.f1_hz, point.f2_hz):
             if not meter.min_freq_hz <= freq_hz <= meter.max_freq_hz:
                 raise InputError(
-                    f"{plan_origin}: tone {freq_hz:.6g} Hz outside the power meter's {meter.min_freq_hz:.6g}.."
-                    f"{meter.max_freq_hz:.6g} Hz; set [leveling] enabled = false to run without leveling"
+                    f"{plan_origin}: tone {format_freq(freq_hz)} outside the power meter's {format_freq(meter.min_freq_hz)} to "
+                    f"{format_freq(meter.max_freq_hz)}; set [leveling] enabled = false to run without leveling"
                 )
 
 
@@ -39,6 +40,6 @@ def _check_meter_powers(meter, points: list, plan_origin: str) -> None:
         if not meter.min_power_dbm <= top_dbm <= meter.max_power_dbm:
             raise InputError(
                 f"{plan_origin}: leveling reads each tone at its sweep's highest power, {top_dbm:.2f} dBm at "
-                f"{center_hz:.6g} Hz; the power meter reads {meter.min_power_dbm:.2f} to {meter.max_power_dbm:.2f} dBm "
+                f"{format_freq(center_hz)}; the power meter reads {meter.min_power_dbm:.2f} to {meter.max_power_dbm:.2f} dBm "
                 "(or set [leveling] enabled = false)"
             )

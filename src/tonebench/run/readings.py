@@ -11,6 +11,7 @@ from tonebench.instruments.analyzer import AnalyzerSetup, MarkerReading
 from tonebench.instruments.bias import BiasReading
 from tonebench.plan.points import PlannedPoint
 from tonebench.planes.loss_table import LossTable
+from tonebench.units import format_freq
 
 
 @dataclass(frozen=True)
@@ -110,8 +111,8 @@ def second_order_blocked(analyzer_limits: dict, span_hz: float, out: LossTable, 
     lim = analyzer_limits
     half_span_hz = span_hz / 2.0
     if diff_hz - half_span_hz < lim["min_freq_hz"] or sum_hz + half_span_hz > lim["max_freq_hz"]:
-        return (f"f2-f1 = {diff_hz:.6g} Hz or f1+f2 = {sum_hz:.6g} Hz outside the analyzer's "
-                f"{lim['min_freq_hz']:.6g}..{lim['max_freq_hz']:.6g} Hz")
+        return (f"f2-f1 = {format_freq(diff_hz)} or f1+f2 = {format_freq(sum_hz)} outside the analyzer's "
+                f"{format_freq(lim['min_freq_hz'])} to {format_freq(lim['max_freq_hz'])}")
     try:
         out.loss_db(diff_hz)
         out.loss_db(sum_hz)

@@ -47,6 +47,7 @@ from tonebench.run.tone_leveling import ToneLeveling
 from tonebench.run.watchdog import Watchdog
 from tonebench.store.point_writer import store_point
 from tonebench.store.records import RunRecorder
+from tonebench.units import format_freq
 
 ProgressCallback = Callable[[int, int], None]
 
@@ -322,7 +323,7 @@ class Sequencer:
         blocked = second_order_blocked(self.bench.analyzer.limits, self.setup.span_hz, self.offsets["out"], point)
         if blocked is not None:
             self._say_once(f"second-order {point.center_hz} {point.spacing_hz}", "warning", "second-order-skipped",
-                           f"second order not read at {point.center_hz:.6g} Hz / {point.spacing_hz:.6g} Hz: {blocked}")
+                           f"second order not read at {format_freq(point.center_hz)} / {format_freq(point.spacing_hz)}: {blocked}")
             return None
         return read_second_order(self.bench.analyzer, point, self.analyzer_settings.noise_offset_hz)
 

@@ -14,6 +14,7 @@ from tonebench.plan.points import PlannedPoint
 from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
 from tonebench.run.rf_switches import RfSwitches
+from tonebench.units import format_freq
 
 
 class ToneLeveling:
@@ -43,7 +44,7 @@ class ToneLeveling:
         if abs(imbalance_db) > IMBALANCE_LIMIT_DB:
             self.log.event(
                 "warning", "tone-imbalance",
-                f"sweep {point.center_hz:.6g} Hz / {point.spacing_hz:.6g} Hz: tones differ by {imbalance_db:+.2f} dB "
+                f"sweep {format_freq(point.center_hz)} / {format_freq(point.spacing_hz)}: tones differ by {imbalance_db:+.2f} dB "
                 f"at the DUT input plane (limit {IMBALANCE_LIMIT_DB} dB)",
                 {"center_hz": point.center_hz, "spacing_hz": point.spacing_hz, "imbalance_db": imbalance_db},
             )
@@ -60,7 +61,7 @@ class ToneLeveling:
         if not result.converged:
             self.log.event(
                 "warning", "leveling",
-                f"source{index} at {freq_hz:.6g} Hz: {result.error_db:+.3f} dB from its target after "
+                f"source{index} at {format_freq(freq_hz)}: {result.error_db:+.3f} dB from its target after "
                 f"{result.readings} readings (tolerance {self.leveler.tolerance_db:g} dB)",
                 {"source": index, "freq_hz": freq_hz, "error_db": result.error_db,
                  "correction_db": result.correction_db},
