@@ -183,12 +183,14 @@ def test_report_renders_in_chromium_without_network(database, tmp_path):
     with session_factory(database)() as session:
         rows = find_results(session, ResultFilter())
         write_compare_report(session, ResultFilter(), page)
-    load = load_in_chromium(page, tmp_path, want_figures=5)
+    load = load_in_chromium(page, tmp_path, want_figures=7)
     assert leaving_requests(load, page) == []
     assert load.requests == [page.resolve().as_uri()]
     assert load.exceptions == []
-    # frequency, spacing, bias, lots, asymmetry: every figure drawn, with markers and lot boxes
-    assert load.state["figures"] == load.state["drawn"] == 5, load.state
+    # frequency, spacing, bias, lots, distribution, wafer maps, asymmetry: every figure drawn
+    assert load.state["figures"] == load.state["drawn"] == 7, load.state
+    assert any(title.startswith("Wafer maps") for title in load.state["titles"])
+    assert any("empirical CDF" in title for title in load.state["titles"])
     plotted = sum(1 for r in rows if r.iip3_dbm is not None)
     assert load.state["points"] >= 2 * plotted  # IIP3 and OIP3 of each result, at least
     assert load.state["boxes"] == len({(r.part_number, r.lot) for r in rows})
@@ -254,3 +256,60 @@ def test_a_device_has_one_colour_in_both_panels():
     assert len(by_device) == 3
     assert all(len(colors) == 1 for colors in by_device.values())  # IIP3 and OIP3 drawn alike
     assert len({next(iter(colors)) for colors in by_device.values()}) == 3  # and devices apart
+
+
+def test_no_two_devices_share_a_style_and_each_keeps_it_in_every_panel():
+    from tonebench.report.comparison import _against, series_styles
+
+    rows = [row(f"S{i:02d}", f"L{i % 3}", 4.0 + i / 10, bias=0.5 if i % 2 else None) for i in range(25)]
+    styles = series_styles(rows)
+    assert len(set(styles.values())) == 25  # 25 devices: colours repeat past ten, shapes then differ
+    by_frequency = _against(rows, "center_hz", 1e9, "GHz", "f", styles=styles)
+    by_bias = _against([r for r in rows if r.bias_v is not None], "bias_v", 1.0, "V", "b", styles=styles)
+    for fig in (by_frequency, by_bias):
+        for trace in fig.data:
+            assert (trace.marker.color, trace.marker.symbol) == styles[trace.legendgroup]
+
+
+def test_a_device_measured_twice_shows_its_latest_run_unless_all_runs():
+    import datetime as dt
+
+    from tonebench.catalog.query import latest_per_device
+
+    first, second, other = row("S1", "L1", 4.0), row("S1", "L1", 4.6), row("S2", "L1", 5.0)
+    first.started_at, second.started_at = dt.datetime(2026, 11, 2), dt.datetime(2026, 11, 30)
+    other.started_at = dt.datetime(2026, 10, 1)
+    first.run_guid, second.run_guid = "aaaa" + first.run_guid[4:], "bbbb" + first.run_guid[4:]
+    kept, left_out = latest_per_device([second, first, other])
+    assert kept == [second, other] and left_out == 1
+    page = render_compare_page(kept, {}, "all", left_out)
+    assert "1 results of earlier runs left out" in page
+    assert "every run" in render_compare_page([second, first, other], {}, "all", -1)
+
+
+def test_die_positions_and_the_wafer_map_outline_each_verdict():
+    from tonebench.report.lot_plots import die_xy, wafer_maps
+
+    assert die_xy("R12C7") == (7, 12) and die_xy("x3y-4") == (3, -4) and die_xy(" 3, -4 ") == (3, -4)
+    assert die_xy("centre") is None and die_xy(None) is None
+    rows = [row(f"S{i}", "L1", 4.0 + i) for i in range(3)] + [row("S9", "L1", 6.0)]
+    for r, position, verdict in zip(rows, ("R1C1", "R1C2", "R2C1", "near the flat"), ("pass", "fail", None, "pass")):
+        r.position, r.verdict = position, verdict
+    fig, note = wafer_maps(rows)
+    (trace,) = fig.data  # one wafer
+    assert list(zip(trace.x, trace.y)) == [(1, 1), (2, 1), (1, 2)]
+    assert list(trace.marker.color) == [4.0, 5.0, 6.0]
+    assert list(trace.marker.line.color) == ["#2a8a4a", "#d01c1c", "rgba(0,0,0,0)"]  # pass, fail, not judged
+    assert "1 device(s) without a die position" in note
+
+
+def test_the_distribution_ends_at_one_with_the_spec_limit_drawn():
+    from tonebench.report.comparison import SERIES_COLORS
+    from tonebench.report.lot_plots import ecdf_figure
+
+    rows = [row(f"S{i}", "L1", value) for i, value in enumerate((5.0, 3.0, 4.0, 6.0))]
+    rows.append(row("S8", "L1", 1.0, flags=("slope",)))  # flagged: not in the distribution
+    fig = ecdf_figure(rows, {"QMX-4410": [LimitRule(7, "iip3_dbm", 3.5, None, 2.3e9, 2.6e9)]}, SERIES_COLORS)
+    (trace,) = fig.data
+    assert list(trace.x) == [3.0, 4.0, 5.0, 6.0] and list(trace.y) == [0.25, 0.5, 0.75, 1.0]
+    assert [shape.x0 for shape in fig.layout.shapes] == [3.5]

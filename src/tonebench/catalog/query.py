@@ -225,3 +225,16 @@ def result_flags(session: Session, result_ids: list[int]) -> dict[int, set[str]]
                 sa.select(ResultFlag.result_id, ResultFlag.flag).where(ResultFlag.result_id.in_(chunk))):
             found.setdefault(result_id, set()).add(flag)
     return found
+
+
+def latest_per_device(rows: list[ResultRow]) -> tuple[list[ResultRow], int]:
+    """One result per device and condition (centre, spacing, bias, temperature): the one from the
+    device's latest run. Returns the kept rows, in their order, and how many older ones were left out."""
+    latest: dict[tuple, ResultRow] = {}
+    for row in rows:
+        key = (row.part_number, row.serial, row.center_hz, row.spacing_hz, row.bias_v, row.temperature_c)
+        kept = latest.get(key)
+        if kept is None or (row.started_at, row.run_guid) > (kept.started_at, kept.run_guid):
+            latest[key] = row
+    chosen = {id(row) for row in latest.values()}
+    return [row for row in rows if id(row) in chosen], len(rows) - len(latest)

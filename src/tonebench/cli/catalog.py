@@ -63,7 +63,8 @@ Until = Annotated[str | None, typer.Option("--until", help="Runs started before 
 Flags = Annotated[list[str] | None, typer.Option("--flag", help="Results carrying this result flag (repeatable); point flags do not count.")]
 Flagged = Annotated[bool | None, typer.Option("--flagged/--unflagged", help="Only results the test system may have limited (some result flag), or only those with none.")]
 Verdicts = Annotated[list[str] | None, typer.Option("--verdict", help="pass, fail or no-limit (repeatable).")]
-Limit = Annotated[int | None, typer.Option("--limit", min=1, help="At most this many results.")]
+# --rows, not --limit: `limit` is the command for spec limits.
+Limit = Annotated[int | None, typer.Option("--rows", min=1, help="At most this many results.")]
 
 
 def _filter(part, lot, wafer, serial, tag, freq_min_hz, freq_max_hz, spacing_min_hz, spacing_max_hz,
@@ -197,7 +198,7 @@ def device_list(
     lot: Annotated[str | None, typer.Option("--lot", help="Only this lot.")] = None,
     wafer: Annotated[str | None, typer.Option("--wafer", help="Only this wafer.")] = None,
     tag: Annotated[str | None, typer.Option("--tag", help="Only devices with this tag.")] = None,
-    limit: Annotated[int, typer.Option("--limit", min=1, help="At most this many devices.")] = 200,
+    limit: Annotated[int, typer.Option("--rows", min=1, help="At most this many devices.")] = 200,
     db: DbOption = None,
 ) -> None:
     """List registered devices with their number of runs."""
@@ -370,16 +371,18 @@ def compare(
     since: Since = None, until: Until = None, flag: Flags = None, flagged: Flagged = None,
     verdict: Verdicts = None, limit: Limit = None,
     out_path: Annotated[Path, typer.Option("--out", help="HTML file to write.")] = Path("tonebench-compare.html"),
+    all_runs: Annotated[bool, typer.Option("--all-runs", help="Every run of a device, not only its latest.")] = False,
     db: DbOption = None,
 ) -> None:
-    """Write a comparison report (self-contained HTML) of the results a query finds."""
+    """Write a comparison report (self-contained HTML) of the results a query finds; a device
+    measured several times shows its latest run unless --all-runs."""
     from tonebench.report.comparison import write_compare_report
 
     with one_line_errors():
         flt = _filter(part, lot, wafer, serial, tag, freq_min_hz, freq_max_hz, spacing_min_hz, spacing_max_hz,
                       bias_min_v, bias_max_v, since, until, flag, flagged, verdict)
         with _session(db) as session:
-            written, count = write_compare_report(session, flt, out_path, limit)
+            written, count = write_compare_report(session, flt, out_path, limit, all_runs)
         out.print(f"compare report: {written} ({count} results)", highlight=False)
 
 

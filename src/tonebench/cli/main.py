@@ -185,7 +185,7 @@ def _close_dead_runs(db_url: str) -> None:
 @app.command()
 def runs(
     db: DbOption = None,
-    limit: Annotated[int, typer.Option(min=1, help="Show at most this many runs, newest first.")] = 20,
+    limit: Annotated[int, typer.Option("--rows", min=1, help="Show at most this many runs, newest first.")] = 20,
 ) -> None:
     """List runs, newest first."""
     from tonebench.report.run_views import list_runs

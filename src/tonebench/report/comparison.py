@@ -1,7 +1,9 @@
 """Comparison report across devices: one self-contained HTML page built from a result query.
 
-Plots IIP3 and OIP3 against center frequency, tone spacing and bias (one trace per device), the
-IIP3 distribution per lot with the spec limits, and lower against upper IM3 intercepts. Results
+Plots IIP3 and OIP3 against center frequency, tone spacing and bias (one style per device, the
+same in every panel), the IIP3 distribution per lot with the spec limits (box plot and empirical
+CDF), wafer maps from the die positions, and lower against upper IM3 intercepts. By default a
+device measured several times shows its latest run (the query decides which runs are eligible). Results
 flagged as limited by the test system are drawn apart (grey, their own trace) and listed in their
 own table. Page shell, stylesheet and the file write are report/html.py's.
 """
@@ -19,20 +21,34 @@ from plotly.subplots import make_subplots
 from sqlalchemy.orm import Session
 
 from tonebench.catalog.limits import LimitRule, list_limits
-from tonebench.catalog.query import ResultFilter, ResultRow, find_results
+from tonebench.catalog.query import ResultFilter, ResultRow, find_results, latest_per_device
 from tonebench.errors import InputError
 from tonebench.report.html import check_report_path, page_html, write_html_file
+from tonebench.report.lot_plots import ecdf_figure, wafer_maps
 from tonebench.units import format_freq
 
 MAX_DEVICE_TRACES = 60  # above this many devices, traces are per lot (a legend of hundreds helps no one)
 FLAGGED_COLOR = "#9a9a9a"
-# Ten distinguishable hues (our own order), cycled when there are more devices.
+# Ten distinguishable hues (our own order); past ten devices the marker shape changes too, so no
+# two series share a style (10 hues x 6 shapes covers MAX_DEVICE_TRACES).
 SERIES_COLORS = ("#1f5fa8", "#c0561b", "#2a8a4a", "#7a4f9a", "#8a6d1f", "#b03a6a", "#3b8f9e", "#5c5c5c",
                  "#a0522d", "#4a6fd0")
+SERIES_SYMBOLS = ("circle", "square", "diamond", "triangle-up", "triangle-down", "star")
 LIMIT_COLOR = "#b22222"
 
 def _device_label(row: ResultRow) -> str:
     return f"{row.part_number} {row.serial}"
+
+
+Style = tuple[str, str]  # (colour, marker symbol)
+
+
+def series_styles(rows: list[ResultRow]) -> dict[str, Style]:
+    """One style per series (device, or lot when there are too many devices) for the whole page,
+    so a device looks the same in every panel, and no two series look alike."""
+    _kind, series = _series(rows)
+    return {label: (SERIES_COLORS[i % len(SERIES_COLORS)], SERIES_SYMBOLS[(i // len(SERIES_COLORS)) % len(SERIES_SYMBOLS)])
+            for i, label in enumerate(sorted(series))}
 
 
 def _series(rows: list[ResultRow]) -> tuple[str, dict[str, list[ResultRow]]]:
@@ -57,14 +73,16 @@ def _hover(row: ResultRow) -> str:
 
 
 def _against(rows: list[ResultRow], x_name: str, x_scale: float, x_title: str, title: str,
-             log_x: bool = False) -> go.Figure:
+             log_x: bool = False, styles: dict[str, Style] | None = None) -> go.Figure:
     """IIP3 (left) and OIP3 (right) against one condition; flagged results in their own trace."""
     fig = make_subplots(rows=1, cols=2, subplot_titles=("IIP3", "OIP3"), horizontal_spacing=0.08)
     clean = [r for r in rows if not r.flags]
     flagged = [r for r in rows if r.flags]
     kind, series = _series(clean)
-    for index, (label, members) in enumerate(sorted(series.items())):
-        color = SERIES_COLORS[index % len(SERIES_COLORS)]  # one colour per device in both panels
+    if styles is None or any(label not in styles for label in series):  # a subset drawn per device
+        styles = series_styles(clean)
+    for label, members in sorted(series.items()):
+        color, symbol = styles[label]  # the device's style in every panel
         members = sorted(members, key=lambda r: (getattr(r, x_name), r.spacing_hz, r.bias_v or 0.0))
         xs = [getattr(r, x_name) / x_scale for r in members]
         mode = "lines+markers" if len(set(xs)) == len(xs) and kind == "device" else "markers"
@@ -72,7 +90,7 @@ def _against(rows: list[ResultRow], x_name: str, x_scale: float, x_title: str, t
             fig.add_trace(go.Scatter(
                 x=xs, y=[getattr(r, value) for r in members], mode=mode, name=html.escape(label), legendgroup=label,
                 showlegend=col == 1, hovertext=[_hover(r) for r in members], line={"color": color},
-                marker={"color": color},
+                marker={"color": color, "symbol": symbol, "size": 7},
                 hovertemplate="%{y:.2f} dBm<br>%{hovertext}<extra></extra>"), row=1, col=col)
     if flagged:
         for col, value in ((1, "iip3_dbm"), (2, "oip3_dbm")):
@@ -208,11 +226,14 @@ def _figure_html(fig: go.Figure, div_id: str) -> str:
                                                  config={"displaylogo": False}) + "</div>")
 
 
-def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]], selection: str) -> str:
-    """The whole page as one string; limits maps part number to its spec limits."""
+def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]], selection: str,
+                        older_left_out: int = 0) -> str:
+    """The whole page as one string; limits maps part number to its spec limits; older_left_out
+    counts results of earlier runs not shown (one result per device and condition)."""
     if not rows:
         raise InputError(f"compare: the query ({selection}) matched no results; nothing to compare")
     fitted = [r for r in rows if r.iip3_dbm is not None]
+    styles = series_styles([r for r in fitted if not r.flags])
     verdicts = Counter(r.verdict or "not judged" for r in rows)
     summary = {
         "Selection": selection,
@@ -221,19 +242,26 @@ def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]
         "Lots": str(len({(r.part_number, r.lot) for r in rows})),
         "Verdicts": ", ".join(f"{k} {v}" for k, v in sorted(verdicts.items())),
         "Flagged": f"{sum(1 for r in rows if r.flags)} (grey crosses in the plots, listed at the end)",
+        "Runs": ("the latest run of each device per condition" + (f" ({older_left_out} results of earlier runs left "
+                 "out; --all-runs shows them)" if older_left_out else "")) if older_left_out >= 0 else "every run",
     }
     sections = [
         ("IIP3 and OIP3 against frequency",
-         _figure_html(_against(fitted, "center_hz", 1e9, "center frequency (GHz)", "Intercepts against frequency"), "by-frequency")),
+         _figure_html(_against(fitted, "center_hz", 1e9, "center frequency (GHz)", "Intercepts against frequency",
+                               styles=styles), "by-frequency")),
         ("IIP3 and OIP3 against tone spacing",
          _figure_html(_against(fitted, "spacing_hz", 1e6, "tone spacing (MHz)", "Intercepts against tone spacing",
-                               log_x=True), "by-spacing")),
+                               log_x=True, styles=styles), "by-spacing")),
     ]
     biased = [r for r in fitted if r.bias_v is not None]
     sections.append(("IIP3 and OIP3 against bias", _figure_html(
-        _against(biased, "bias_v", 1.0, "bias (V)", "Intercepts against bias"), "by-bias") if biased
+        _against(biased, "bias_v", 1.0, "bias (V)", "Intercepts against bias", styles=styles), "by-bias") if biased
         else '<p class="note">No result in this selection was measured with a bias.</p>'))
     sections.append(("IIP3 across parts and lots", _figure_html(_lot_distribution(fitted, limits), "by-lot") + _lot_table(rows)))
+    sections.append(("IIP3 distribution per lot", _figure_html(ecdf_figure(fitted, limits, SERIES_COLORS), "ecdf")))
+    maps, note = wafer_maps(fitted)
+    sections.append(("Wafer maps", (_figure_html(maps, "wafer-maps") if maps is not None else "")
+                     + (f'<p class="note">{html.escape(note[0].upper() + note[1:])}.</p>' if note else "")))
     sections.append(("Lower against upper IM3", _figure_html(_asymmetry(fitted), "asymmetry")))
     sections.append(("Flagged results (may be limited by the test system)", _flagged_table(rows)))
     summary_html = "\n".join(f"<dt>{html.escape(k)}</dt><dd>{html.escape(v)}</dd>" for k, v in summary.items())
@@ -247,10 +275,15 @@ def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]
 {body}""", body_class="wide")
 
 
-def write_compare_report(session: Session, flt: ResultFilter, path: Path, limit: int | None = None) -> tuple[Path, int]:
-    """Query, render and write the page atomically; returns (path, number of results)."""
+def write_compare_report(session: Session, flt: ResultFilter, path: Path, limit: int | None = None,
+                         all_runs: bool = False) -> tuple[Path, int]:
+    """Query, render and write the page atomically; returns (path, number of results shown).
+    Unless all_runs, a device measured more than once shows its latest run's results."""
     check_report_path(path, "compare report")  # before the query: a bad path costs nothing
     rows = find_results(session, flt, limit)
+    older = -1
+    if not all_runs:
+        rows, older = latest_per_device(rows)
     limits = {part: [LimitRule.of(l) for l in list_limits(session, part)] for part in {r.part_number for r in rows}}
-    page = render_compare_page(rows, limits, flt.describe())
+    page = render_compare_page(rows, limits, flt.describe(), older)
     return write_html_file(path, page, "compare report"), len(rows)
