@@ -85,8 +85,8 @@ def test_unknown_dialect(workdir):
 
 def test_unreachable_resource(workdir):
     (workdir / "plan.toml").write_text(SHORT_PLAN)
-    port = closed_loopback_port()
-    resources = {role: f"TCPIP0::127.0.0.1::{port}::SOCKET" for role in ("source1", "source2", "analyzer")}
+    resources = {role: f"TCPIP0::127.0.0.1::{closed_loopback_port()}::SOCKET" for role in ("source1", "source2", "analyzer")}
+    assert len(set(resources.values())) == 3  # one resource per role, else that is what is refused
     (workdir / "bench.toml").write_text(hardware_bench(resources))
     result = invoke("run", "plan.toml", "--bench", "bench.toml", "--db", f"sqlite:///{workdir}/t.db")
     assert_refused(result, "cannot reach", workdir)
@@ -169,7 +169,7 @@ def test_a_run_stores_spec_limit_verdicts(workdir):
     from sqlalchemy import create_engine, select
     from sqlalchemy.orm import Session
 
-    from tonebench.store.models import Result
+    from tonebench.store.models import Result, Run
 
     db = f"sqlite:///{workdir}/verdicts.db"
     (workdir / "plan.toml").write_text(SHORT_PLAN)
@@ -183,7 +183,8 @@ def test_a_run_stores_spec_limit_verdicts(workdir):
         assert session.scalars(select(Result.verdict)).all() == ["pass"]
     assert invoke("limit", "add", "KLN-2417A", "iip3_dbm", "--min", "5", "--freq-min-hz", "2.4e9",
                   "--freq-max-hz", "2.5e9", "--db", db).exit_code == 0
-    guid = invoke("runs", "--db", db).output.split("│")[1].strip()[:8]
+    with Session(engine) as session:
+        guid = session.scalars(select(Run.guid)).one()
     assert invoke("analyze", guid, "--db", db).exit_code == 0
     with Session(engine) as session:
         assert session.scalars(select(Result.verdict)).all() == ["fail"]

@@ -79,7 +79,7 @@ def test_run_refuses_an_analyzer_span_past_its_range_before_rf_goes_on(tmp_path,
     result = CliRunner().invoke(app, ["run", str(write_plan(tmp_path)), "--bench", str(bench), "--db", f"sqlite:///{db_path}"])
     assert result.exit_code == 2, result.output
     line = one_error_line(result)
-    assert "c2480000000/d1000000" in line and "upper IM3 product 2f2-f1 at 2481500000 Hz over a 10000 Hz span" in line
+    assert "point 2.48 GHz, spacing 1 MHz" in line and "upper IM3 product 2f2-f1 at 2481500000 Hz over a 10000 Hz span" in line
     assert "2481495000..2481505000 Hz" in line and "analyzer (dialect generic-analyzer) covers 9000..2481504500 Hz" in line
     assert count_rows(db_path, Run) == 0
     assert rf_never_on(sim)
