@@ -8,17 +8,24 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import TypeVar
 
-from pydantic import BaseModel, ConfigDict, ValidationError
+from pydantic import BaseModel, ConfigDict, ValidationError, field_validator
 
+from tonebench.config.quantities import with_units
 from tonebench.errors import InputError
 
 Model = TypeVar("Model", bound=BaseModel)
 
 
 class StrictModel(BaseModel):
-    """A table of a TOML file: an unknown key is an error (usually a typo), never ignored."""
+    """A table of a TOML file: an unknown key is an error (usually a typo), never ignored. A field
+    whose name carries a unit (`_hz`, `_dbm`, ...) also takes a quantity such as "2.45 GHz"."""
 
     model_config = ConfigDict(extra="forbid")
+
+    @field_validator("*", mode="before")
+    @classmethod
+    def _quantities(cls, value, info):
+        return with_units(value, info.field_name)
 
 
 def read_toml(path: Path, what: str) -> tuple[str, dict]:
