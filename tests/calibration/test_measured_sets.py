@@ -22,6 +22,7 @@ from tonebench.results.sweeps import rereferred
 from tonebench.run.start import execute_run
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import CalibrationSet, Event, Point, Result, Run
+from tonebench.units import format_freq
 
 
 def results_by_center(outcome) -> dict[float, object]:
@@ -171,7 +172,7 @@ def test_plan_outside_the_calibrated_range_is_refused_with_nothing_written(tmp_p
     assert result.exit_code == 2
     lines = result.output.strip().splitlines()
     assert len(lines) == 1 and "calibration set lab-1" in lines[0] and "does not extrapolate" in lines[0], result.output
-    assert f"{view.freq_max_hz:.6g}" in lines[0]
+    assert format_freq(view.freq_max_hz) in lines[0]
     assert count_runs(db) == 0
     # An upper IM3 product just past the range is refused too (tones inside, 2f2-f1 outside).
     edge_center_hz = view.freq_max_hz - 1.0e6  # f2 = max - 0.5 MHz, 2f2 - f1 = max + 0.5 MHz

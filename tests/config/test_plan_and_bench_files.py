@@ -79,7 +79,7 @@ def test_loss_table_interpolates_linearly_in_db_and_never_extrapolates():
     assert table.loss_db(1.5e9) == pytest.approx(3.0)
     assert table.loss_db(2.75e9) == pytest.approx(4.75)
     np.testing.assert_allclose(table.loss_db(np.array([1e9, 3e9])), [2.0, 5.0])
-    with pytest.raises(InputError, match="covers 1e\\+09 to 3e\\+09 Hz"):
+    with pytest.raises(InputError, match="covers 1 GHz to 3 GHz"):
         table.loss_db(3.1e9)
     with pytest.raises(InputError, match="does not extrapolate"):
         table.loss_db(np.array([2e9, 0.5e9]))

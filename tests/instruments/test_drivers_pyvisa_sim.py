@@ -103,7 +103,7 @@ def test_source_limits_checked_before_anything_is_sent(open_sim):
     inst.resource.sent.clear()
     with pytest.raises(LimitError, match="source2: power 25.00 dBm .*max_power_dbm"):
         source.set_tone(1.0e9, 25.0)
-    with pytest.raises(LimitError, match="source2: frequency 1e\\+10 Hz"):
+    with pytest.raises(LimitError, match="source2: frequency 10 GHz outside"):
         source.set_tone(10e9, -10.0)
     assert inst.resource.sent == []
 
@@ -237,6 +237,6 @@ def test_nothing_listening_is_cannot_reach():
         probe.bind(("127.0.0.1", 0))
         port = probe.getsockname()[1]
     resource = f"TCPIP0::127.0.0.1::{port}::SOCKET"
-    with pytest.raises(InputError, match=f"cannot reach {resource} \\(source\\): "):
+    with pytest.raises(InputError, match=f"cannot reach {resource} \\(source1\\): "):
         open_resource(resource, load_dialect("generic-source"), "source1")
 

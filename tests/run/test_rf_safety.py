@@ -192,7 +192,7 @@ def test_plan_over_a_limit_is_refused_before_rf_goes_on(tmp_path):
     with pytest.raises(InputError) as refused:
         execute_run(hot, write_bench(tmp_path), f"sqlite:///{db_path}", None, None, sims.append)
     message = str(refused.value)
-    assert "\n" not in message and "max_tone_dbm" in message and "p+2.00" in message  # the first point over
+    assert "\n" not in message and "max_tone_dbm" in message and "+2.00 dBm per tone" in message  # the first point over
     assert not [line for _, _, line in sims[0].bench.command_log if line.startswith("OUTP ON")]
     assert not [line for _, _, line in sims[0].bench.command_log if line.startswith("SOUR:POW")]
     if db_path.exists():
