@@ -15,7 +15,7 @@ import pytest
 from tonebench.analysis import flags as fl
 from tonebench.analysis.assess import SweepData, merged_point_flags
 from tonebench.analysis.bound import compression_shift_db, iip3_at_least_dbm, iip3_bound_db, noise_term_db
-from tonebench.analysis.fit import free_iip3_dbm
+from tonebench.analysis.sweep_fit import free_iip3_dbm
 from tonebench.analysis.flags import Flag, StepJudgement
 from tonebench.analysis.intercepts import input_intercepts_dbm, point_intercepts
 from tonebench.analysis.point_checks import check_imbalance, check_noise, check_overload

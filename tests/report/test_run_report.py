@@ -152,7 +152,7 @@ def test_flagged_points_drawn_distinctly_with_reasons():
 
 
 def test_left_out_points_say_why_in_legend_and_hover():
-    from tonebench.analysis.fit import IM3_OVER_NOISE_MIN_DB, exclusion_reasons
+    from tonebench.analysis.sweep_fit import IM3_OVER_NOISE_MIN_DB, exclusion_reasons
     from tonebench.report.run_report import sweep_figure
 
     plot, assessment = _flagged_sweep()

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from tonebench.analysis.fit import fit_sweep
+from tonebench.analysis.sweep_fit import fit_sweep
 from tonebench.report.run_report import FOLD_SWEEPS_ABOVE, SweepPlotData, render_report, sweep_title
 from tonebench.report.run_summary import SweepSummary, summary_figure
 

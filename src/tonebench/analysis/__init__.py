@@ -1,14 +1,15 @@
 """Analysis: pure functions over numpy arrays (no database, no instruments); imports only numpy,
 scipy and tonebench.errors/units.
 
-intercepts: the per-point gain and third-order intercepts (the one formula); fit: one sweep's valid
+intercepts: the per-point gain and third-order intercepts (the one formula); sweep_fit: one sweep's valid
 region and fits; compression: the 1 dB compression point; phasor: coherent-sum error bounds;
 attenuation: the analyzer's own IM3 and noise versus attenuation, and the optimum; flags: the flag
 vocabulary and the attenuation-step judgement; uncertainty: combining bound terms; second_order:
 IIP2; settings: what the analysis knows of the test system. assess runs one sweep from readings to
 flags, fits and bound through named steps: point_checks (noise, overload, tone imbalance),
 system_checks (the analyzer's own distortion, the sources' intermod), region (the fit over the
-valid region, compression), bound (the IIP3 bound and lower bound), result_flags.
+valid region, compression), bound (the IIP3 bound and lower bound), result_flags. table_fit:
+`fit(table)`, the same assessment from any table of columns (a pandas DataFrame included).
 """
 
 from tonebench.analysis.assess import (
@@ -23,7 +24,7 @@ from tonebench.analysis.attenuation import (
     optimum_atten_db,
 )
 from tonebench.analysis.compression import p1db
-from tonebench.analysis.fit import SweepResult, fit_sweep, noise_corrected_dbm
+from tonebench.analysis.sweep_fit import SweepResult, fit_sweep, noise_corrected_dbm
 from tonebench.analysis.flags import Flag, judge_step
 from tonebench.analysis.intercepts import PointIntercepts, input_intercepts_dbm, point_intercepts
 from tonebench.analysis.phasor import (
@@ -31,6 +32,7 @@ from tonebench.analysis.phasor import (
     phasor_bounds_db,
     reading_error_bounds_db,
 )
+from tonebench.analysis.table_fit import REQUIRED_COLUMNS, fit
 from tonebench.analysis.second_order import (
     SecondOrderResult,
     fit_second_order,
@@ -38,6 +40,7 @@ from tonebench.analysis.second_order import (
 )
 
 __all__ = [
+    "REQUIRED_COLUMNS",
     "AnalysisSettings",
     "AttenChoice",
     "Flag",
@@ -48,6 +51,7 @@ __all__ = [
     "SweepResult",
     "analyzer_im3_dbm",
     "assess_sweep",
+    "fit",
     "fit_second_order",
     "fit_sweep",
     "input_intercepts_dbm",

@@ -15,7 +15,7 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bound_db
-from tonebench.analysis.fit import SweepResult
+from tonebench.analysis.sweep_fit import SweepResult
 from tonebench.analysis.flags import Flag
 from tonebench.analysis.intercepts import point_intercepts
 from tonebench.analysis.point_checks import PointFlags, check_imbalance, check_noise, check_overload

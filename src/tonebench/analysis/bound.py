@@ -9,7 +9,7 @@ import math
 
 import numpy as np
 
-from tonebench.analysis.fit import SweepResult
+from tonebench.analysis.sweep_fit import SweepResult
 from tonebench.analysis.intercepts import point_intercepts
 from tonebench.analysis.point_checks import mean_pair
 from tonebench.analysis.region import small_signal_usable

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tonebench.analysis.fit import NOISE_CORRECT_MIN_DB, noise_corrected_dbm
+from tonebench.analysis.sweep_fit import NOISE_CORRECT_MIN_DB, noise_corrected_dbm
 
 ANALYZER_LIMITED = "analyzer-limited"
 SOURCE_INTERMOD_LIMITED = "source-intermod-limited"

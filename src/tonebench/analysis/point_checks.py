@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tonebench.analysis import flags as fl
-from tonebench.analysis.fit import IM3_OVER_NOISE_MIN_DB, noise_corrected_dbm
+from tonebench.analysis.sweep_fit import IM3_OVER_NOISE_MIN_DB, noise_corrected_dbm
 from tonebench.analysis.flags import Flag
 
 PointFlags = tuple[tuple[int, Flag], ...]

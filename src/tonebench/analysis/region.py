@@ -11,7 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tonebench.analysis import flags as fl
-from tonebench.analysis.fit import GAIN_TOLERANCE_DB, SweepResult, fit_sweep, high_order_top
+from tonebench.analysis.sweep_fit import GAIN_TOLERANCE_DB, SweepResult, fit_sweep, high_order_top
 from tonebench.analysis.flags import Flag
 from tonebench.analysis.point_checks import PointFlags, flag_points, mean_pair
 

@@ -10,7 +10,7 @@ import math
 import numpy as np
 
 from tonebench.analysis import flags as fl
-from tonebench.analysis.fit import GAIN_TOLERANCE_DB, SweepResult
+from tonebench.analysis.sweep_fit import GAIN_TOLERANCE_DB, SweepResult
 from tonebench.analysis.flags import Flag
 from tonebench.analysis.point_checks import ImbalanceCheck
 from tonebench.analysis.settings import AnalysisSettings

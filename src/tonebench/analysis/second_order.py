@@ -12,7 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tonebench.analysis.fit import (
+from tonebench.analysis.sweep_fit import (
     IM3_OVER_NOISE_MIN_DB,
     MIN_VALID_POINTS,
     noise_corrected_dbm,

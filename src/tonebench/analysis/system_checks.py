@@ -15,7 +15,7 @@ import numpy as np
 
 from tonebench.analysis import flags as fl
 from tonebench.analysis.attenuation import analyzer_im3_dbm, implied_mixer_toi_dbm, residual_ip3_at_atten_dbm
-from tonebench.analysis.fit import noise_corrected_dbm
+from tonebench.analysis.sweep_fit import noise_corrected_dbm
 from tonebench.analysis.flags import Flag, StepJudgement
 from tonebench.analysis.phasor import intercept_error_db
 from tonebench.analysis.point_checks import PointFlags, flag_points, mean_pair

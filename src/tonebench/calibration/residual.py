@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tonebench.analysis.fit import noise_corrected_dbm
+from tonebench.analysis.sweep_fit import noise_corrected_dbm
 from tonebench.analysis.intercepts import input_intercepts_dbm
 
 MIN_SNR_DB = 10.0  # a residual reading is used only this far above its noise marker (design section 3)

@@ -389,18 +389,44 @@ def compare(
 # --- moving runs between databases -------------------------------------------------------------
 
 def export(
-    out_path: Annotated[Path, typer.Argument(metavar="FILE", help="Transfer file to write (gzip JSON lines).")],
+    out_path: Annotated[Path, typer.Argument(metavar="FILE", help="Transfer file to write (gzip JSON lines), or with --points the table.")],
     run: Annotated[list[str] | None, typer.Option("--run", help="Run GUID or unique prefix (repeatable; default all runs).")] = None,
     since: Since = None,
+    points: Annotated[str | None, typer.Option("--points", metavar="FORMAT",
+                                               help="Write the runs' points as one table instead: csv or parquet "
+                                                    "(one row per point, with in_fit, left_out and flags).")] = None,
     db: DbOption = None,
 ) -> None:
-    """Export runs with their points, results, flags, calibration and events to a portable file."""
+    """Export runs with their points, results, flags, calibration and events to a portable file;
+    with --points, the points of the runs as a CSV or Parquet table."""
     from tonebench.catalog.transfer import export_runs
 
+    if points is not None:
+        with one_line_errors():
+            _export_points(db, run, since, points, out_path)
+        return
     with one_line_errors(), _session(db) as session:
         summary = export_runs(session, out_path, run, _when(since, "--since"))
         out.print(f"exported {summary.runs} runs, {summary.points} points to {summary.path} "
                   f"(sha256 {summary.sha256[:16]})", highlight=False)
+
+
+def _export_points(db, run, since, fmt: str, out_path: Path) -> None:
+    from tonebench.api.database import Database
+    from tonebench.api.points_export import POINT_FORMATS, points_of, write_points
+
+    if fmt not in POINT_FORMATS:
+        raise InputError(f"--points {fmt!r}: allowed formats are {', '.join(POINT_FORMATS)}")
+    with Database(database(db)) as opened:
+        runs = run
+        if since is not None:
+            listed = opened.runs(since=_when(since, "--since"))
+            runs = [g for g in listed["run_guid"] if not run or any(g.startswith(r.lower()) for r in run)]
+            if not runs:
+                raise InputError(f"--since {since}: no run started since then; nothing to export")
+        frame = points_of(opened, runs)
+        written = write_points(frame, out_path, fmt)
+    out.print(f"exported {len(frame)} points of {frame['run_guid'].nunique()} runs to {written} ({fmt})", highlight=False)
 
 
 def import_file(

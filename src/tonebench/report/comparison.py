@@ -226,6 +226,30 @@ def _figure_html(fig: go.Figure, div_id: str) -> str:
                                                  config={"displaylogo": False}) + "</div>")
 
 
+def compare_figures(rows: list[ResultRow], limits: dict[str, list[LimitRule]]) -> dict[str, go.Figure]:
+    """The page's figures by name (its div ids): by-frequency, by-spacing, by-bias (when some
+    result has a bias), by-lot, ecdf, wafer-maps (when devices have die positions), asymmetry.
+    Results without a fitted IIP3 are not plotted."""
+    fitted = [r for r in rows if r.iip3_dbm is not None]
+    styles = series_styles([r for r in fitted if not r.flags])
+    figures = {
+        "by-frequency": _against(fitted, "center_hz", 1e9, "center frequency (GHz)", "Intercepts against frequency",
+                                 styles=styles),
+        "by-spacing": _against(fitted, "spacing_hz", 1e6, "tone spacing (MHz)", "Intercepts against tone spacing",
+                               log_x=True, styles=styles),
+    }
+    biased = [r for r in fitted if r.bias_v is not None]
+    if biased:
+        figures["by-bias"] = _against(biased, "bias_v", 1.0, "bias (V)", "Intercepts against bias", styles=styles)
+    figures["by-lot"] = _lot_distribution(fitted, limits)
+    figures["ecdf"] = ecdf_figure(fitted, limits, SERIES_COLORS)
+    maps, _note = wafer_maps(fitted)
+    if maps is not None:
+        figures["wafer-maps"] = maps
+    figures["asymmetry"] = _asymmetry(fitted)
+    return figures
+
+
 def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]], selection: str,
                         older_left_out: int = 0) -> str:
     """The whole page as one string; limits maps part number to its spec limits; older_left_out
@@ -233,7 +257,6 @@ def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]
     if not rows:
         raise InputError(f"compare: the query ({selection}) matched no results; nothing to compare")
     fitted = [r for r in rows if r.iip3_dbm is not None]
-    styles = series_styles([r for r in fitted if not r.flags])
     verdicts = Counter(r.verdict or "not judged" for r in rows)
     summary = {
         "Selection": selection,
@@ -245,25 +268,24 @@ def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]
         "Runs": ("the latest run of each device per condition" + (f" ({older_left_out} results of earlier runs left "
                  "out; --all-runs shows them)" if older_left_out else "")) if older_left_out >= 0 else "every run",
     }
+    figures = compare_figures(rows, limits)
+    maps_note = wafer_maps(fitted)[1]
+
+    def shown(name: str, absent: str = "") -> str:
+        return _figure_html(figures[name], name) if name in figures else absent
+
     sections = [
-        ("IIP3 and OIP3 against frequency",
-         _figure_html(_against(fitted, "center_hz", 1e9, "center frequency (GHz)", "Intercepts against frequency",
-                               styles=styles), "by-frequency")),
-        ("IIP3 and OIP3 against tone spacing",
-         _figure_html(_against(fitted, "spacing_hz", 1e6, "tone spacing (MHz)", "Intercepts against tone spacing",
-                               log_x=True, styles=styles), "by-spacing")),
+        ("IIP3 and OIP3 against frequency", shown("by-frequency")),
+        ("IIP3 and OIP3 against tone spacing", shown("by-spacing")),
+        ("IIP3 and OIP3 against bias",
+         shown("by-bias", '<p class="note">No result in this selection was measured with a bias.</p>')),
+        ("IIP3 across parts and lots", shown("by-lot") + _lot_table(rows)),
+        ("IIP3 distribution per lot", shown("ecdf")),
+        ("Wafer maps", shown("wafer-maps")
+         + (f'<p class="note">{html.escape(maps_note[0].upper() + maps_note[1:])}.</p>' if maps_note else "")),
+        ("Lower against upper IM3", shown("asymmetry")),
+        ("Flagged results (may be limited by the test system)", _flagged_table(rows)),
     ]
-    biased = [r for r in fitted if r.bias_v is not None]
-    sections.append(("IIP3 and OIP3 against bias", _figure_html(
-        _against(biased, "bias_v", 1.0, "bias (V)", "Intercepts against bias", styles=styles), "by-bias") if biased
-        else '<p class="note">No result in this selection was measured with a bias.</p>'))
-    sections.append(("IIP3 across parts and lots", _figure_html(_lot_distribution(fitted, limits), "by-lot") + _lot_table(rows)))
-    sections.append(("IIP3 distribution per lot", _figure_html(ecdf_figure(fitted, limits, SERIES_COLORS), "ecdf")))
-    maps, note = wafer_maps(fitted)
-    sections.append(("Wafer maps", (_figure_html(maps, "wafer-maps") if maps is not None else "")
-                     + (f'<p class="note">{html.escape(note[0].upper() + note[1:])}.</p>' if note else "")))
-    sections.append(("Lower against upper IM3", _figure_html(_asymmetry(fitted), "asymmetry")))
-    sections.append(("Flagged results (may be limited by the test system)", _flagged_table(rows)))
     summary_html = "\n".join(f"<dt>{html.escape(k)}</dt><dd>{html.escape(v)}</dd>" for k, v in summary.items())
     body = "\n".join(f"<h2>{html.escape(title)}</h2>\n{content}" for title, content in sections)
     return page_html("Device comparison", f"""<header>

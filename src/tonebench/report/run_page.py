@@ -6,7 +6,7 @@ from pathlib import Path
 
 from sqlalchemy.orm import sessionmaker
 
-from tonebench.analysis.fit import exclusion_reasons
+from tonebench.analysis.sweep_fit import exclusion_reasons
 from tonebench.calibration.sets import load_set_by_id
 from tonebench.report.run_archive import archive_html
 from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
@@ -14,6 +14,23 @@ from tonebench.report.run_report import result_row as report_result_row
 from tonebench.report.run_summary import SweepSummary
 from tonebench.report.stored_sweeps import report_sweeps
 from tonebench.store.lookups import find_run
+
+
+def sweep_plot(group: dict, arrays: dict, assessment) -> SweepPlotData:
+    """What one sweep's figure shows, from its group axis values, arrays and assessment."""
+    fit = assessment.fit
+    return SweepPlotData(
+        title=sweep_title(group["center_hz"], group["spacing_hz"], group["bias_v"], group["temperature_c"]),
+        pin_dbm=(arrays["pin1_dbm"] + arrays["pin2_dbm"]) / 2.0,
+        pout_dbm=(arrays["pout_f1_dbm"] + arrays["pout_f2_dbm"]) / 2.0,
+        im3_lower_dbm=arrays["im3_lower_dbm"],
+        im3_upper_dbm=arrays["im3_upper_dbm"],
+        noise_dbm=(arrays["noise_lower_dbm"] + arrays["noise_upper_dbm"]) / 2.0,
+        valid_mask=fit.valid_mask,
+        result=fit,
+        assessment=assessment,
+        exclusions=exclusion_reasons(arrays, fit.valid_mask),
+    )
 
 
 def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
@@ -37,22 +54,9 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             summaries.append(SweepSummary(center_hz, spacing_hz, bias_v, fit.iip3_lower_dbm, fit.iip3_upper_dbm,
                                           fit.iip3_dbm, fit.oip3_lower_dbm, fit.oip3_upper_dbm, fit.oip3_dbm,
                                           assessment.iip3_bound_db, temperature_c))
-            title = sweep_title(center_hz, spacing_hz, bias_v, temperature_c)
-            bounds.append((title, assessment.iip3_bound_db, assessment.bound_terms_db))
-            sweeps.append(
-                SweepPlotData(
-                    title=title,
-                    pin_dbm=(arrays["pin1_dbm"] + arrays["pin2_dbm"]) / 2.0,
-                    pout_dbm=(arrays["pout_f1_dbm"] + arrays["pout_f2_dbm"]) / 2.0,
-                    im3_lower_dbm=arrays["im3_lower_dbm"],
-                    im3_upper_dbm=arrays["im3_upper_dbm"],
-                    noise_dbm=(arrays["noise_lower_dbm"] + arrays["noise_upper_dbm"]) / 2.0,
-                    valid_mask=fit.valid_mask,
-                    result=fit,
-                    assessment=assessment,
-                    exclusions=exclusion_reasons(arrays, fit.valid_mask),
-                )
-            )
+            plot = sweep_plot(group, arrays, assessment)
+            bounds.append((plot.title, assessment.iip3_bound_db, assessment.bound_terms_db))
+            sweeps.append(plot)
             row = report_result_row(center_hz, spacing_hz, fit, assessment)
             if bias_v is not None:
                 row = {"bias (V)": f"{bias_v:.4f}", **row}

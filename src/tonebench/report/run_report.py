@@ -15,7 +15,7 @@ import plotly.graph_objects as go
 import plotly.io as pio
 
 from tonebench.analysis.assess import SweepAssessment
-from tonebench.analysis.fit import LATER_CHECK, SweepResult
+from tonebench.analysis.sweep_fit import LATER_CHECK, SweepResult
 from tonebench.report.html import check_report_path, page_html, write_html_file
 from tonebench.report.run_summary import SweepSummary, summary_figure
 from tonebench.units import format_freq
@@ -44,7 +44,7 @@ class SweepPlotData:
     # same fields). With an assessment, flagged points get a red ring, their flags in the hover text.
     result: SweepResult
     assessment: SweepAssessment | None = None
-    # Per point why it was left out of the fit (None: in it), from analysis.fit.exclusion_reasons.
+    # Per point why it was left out of the fit (None: in it), from analysis.sweep_fit.exclusion_reasons.
     exclusions: list[str | None] | None = None
 
     def left_out_reasons(self) -> list[str | None]:

@@ -23,7 +23,7 @@ from tonebench.store.models import Point, PointFlag, Result, Run
 
 @dataclass(frozen=True)
 class StoredFit:
-    """The fields of analysis.fit.SweepResult the page shows, read back from a Result."""
+    """The fields of analysis.sweep_fit.SweepResult the page shows, read back from a Result."""
 
     n_points: int
     n_valid: int
@@ -117,15 +117,20 @@ def _point_flags(session: Session, run: Run) -> dict[int, list[PointFlag]]:
 
 
 def report_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None):
-    """(group axis values, arrays, assessment) per sweep: the stored assessment when the run's
-    stored results are those of its stored points, else the run assessed again."""
+    """(group axis values, arrays, assessment) per sweep (report_sweeps_with_points without the points)."""
+    for group, _points, arrays, assessment in report_sweeps_with_points(session, run, set_id, tables):
+        yield group, arrays, assessment
+
+
+def report_sweeps_with_points(session: Session, run: Run, set_id: int | None, tables: dict | None):
+    """(group axis values, stored points, arrays, assessment) per sweep: the stored assessment
+    when the run's stored results are those of its stored points, else the run assessed again."""
     sweeps = list(point_sweeps(session, run.id, tables))
     results = {tuple(getattr(r, name) for name in GROUP_FIELDS): r for r in run.results}
     flags_by_point = _point_flags(session, run)
     stored = [stored_assessment(results.get(tuple(group.values())), rows, flags_by_point) for group, rows, _ in sweeps]
     if len(results) == len(sweeps) and None not in stored and _analysed_after_points(session, run, list(results.values())):
-        for (group, _, arrays), assessment in zip(sweeps, stored):
-            yield group, arrays, assessment
+        for (group, rows, arrays), assessment in zip(sweeps, stored):
+            yield group, rows, arrays, assessment
         return
-    for group, _, arrays, assessment in assessed_sweeps(session, run, set_id, tables):
-        yield group, arrays, assessment
+    yield from assessed_sweeps(session, run, set_id, tables)
