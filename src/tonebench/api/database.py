@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import os
 from contextlib import contextmanager
 
 import pandas as pd
@@ -23,10 +24,10 @@ RUN_COLUMNS = ("run_guid", "started_at", "ended_at", "status", "end_reason", "pa
                "wafer", "bench", "simulated", "plan", "points")
 
 
-def open(location: str | None = None) -> "Database":  # noqa: A001 - the API's name, as `tonebench.open`
+def open(location: str | os.PathLike | None = None) -> "Database":  # noqa: A001 - the API's name, as `tonebench.open`
     """Open a tonebench database read-only: a file path (SQLite) or a SQLAlchemy URL; without one,
     the CLI's default (TONEBENCH_DB, the per-user config file, else tonebench.db here)."""
-    return Database(choose_database(location).url)
+    return Database(choose_database(None if location is None else os.fspath(location)).url)
 
 
 class Database:
