@@ -235,3 +235,15 @@ def test_the_worked_example_runs_against_the_demo_database(tmp_path):
     assert re.search(r"lot TB24-031: 3 results from 1 device", done.stdout)
     assert re.search(r"stored IIP3 ([-+]\d+\.\d+) dBm, fitted again \1 dBm", done.stdout), done.stdout
     assert (tmp_path / "demo" / "iip3-by-lot.html").stat().st_size > 100_000
+
+
+def test_analyze_stores_what_the_cli_analyze_stores(demo_db, tmp_path):
+    by_cli, by_api = tmp_path / "cli.db", tmp_path / "api.db"
+    by_cli.write_bytes(demo_db.read_bytes())
+    by_api.write_bytes(demo_db.read_bytes())
+    guid = tonebench.open(demo_db).runs(part="KLN-2417A")["run_guid"].iloc[0]
+    assert invoke("analyze", guid[:8], "--db", by_cli).exit_code == 0
+    from_api = tonebench.open(by_api).analyze(guid)
+    from_cli = tonebench.open(by_cli).run(guid).results()
+    columns = ["center_hz", "iip3_dbm", "iip3_bound_db", "oip3_dbm", "gain_db", "n_valid", "verdict"]
+    pd.testing.assert_frame_equal(from_api[columns], from_cli[columns])
