@@ -9,7 +9,7 @@ For notebooks and scripts (the stable API; README, "Python API"):
     tonebench.analysis.fit(df); tonebench.plan.load("plan.toml").points()
 """
 
-__version__ = "0.1.0"
+from tonebench.version import __version__
 
 __all__ = ["Database", "RunView", "analysis", "open", "plan", "__version__"]
 

@@ -9,6 +9,7 @@ import os
 import stat
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from tonebench.analysis import fit_sweep
@@ -57,9 +58,9 @@ def _calibration_view() -> CalibrationView:
                            expired_at=None, notes=None, tables=tables)
 
 
-@pytest.fixture(params=["run report", "comparison", "calibration page"])
+@pytest.fixture(params=["run report", "comparison", "calibration page", "points table"])
 def writer(request, catalog_db):
-    """A callable writing one kind of page to a path."""
+    """A callable writing one kind of page (or the points table of `export --points`) to a path."""
     if request.param == "run report":
         return _run_report
     if request.param == "comparison":
@@ -67,6 +68,11 @@ def writer(request, catalog_db):
             with session_factory(catalog_db)() as session:
                 return write_compare_report(session, ResultFilter(), path)[0]
         return compare
+    if request.param == "points table":
+        from tonebench.api.points_export import write_points
+
+        table = pd.DataFrame({"tone_dbm": [-30.0, -20.0], "flags": [[], ["slope"]]})
+        return lambda path: write_points(table, path, "csv")
     return lambda path: write_calibration_page(_calibration_view(), path)
 
 
@@ -82,7 +88,10 @@ def test_page_is_fsynced_in_a_temporary_file_then_renamed(writer, tmp_path, monk
     assert [c[0] for c in calls] == ["fsync", "replace"]
     assert calls[1][1:] == (str(tmp_path), str(target))  # renamed from the same folder
     page = target.read_text(encoding="utf-8")
-    assert page.startswith("<!DOCTYPE html>") and page.count(html_module.STYLE) == 1
+    if page.startswith("tone_dbm"):  # the points table
+        assert page.splitlines() == ["tone_dbm,flags", "-30.0,", "-20.0,slope"]
+    else:
+        assert page.startswith("<!DOCTYPE html>") and page.count(html_module.STYLE) == 1
     assert stat.S_IMODE(target.stat().st_mode) == 0o644
     assert [p.name for p in tmp_path.iterdir()] == ["page.html"]  # no temporary or probe file left
 

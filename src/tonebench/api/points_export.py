@@ -3,13 +3,12 @@ DataFrames of RunView.points() from Python), written whole or not at all."""
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 import pandas as pd
 
-from tonebench.errors import InputError, TonebenchError
+from tonebench.errors import InputError
+from tonebench.files import replace_atomically
 from tonebench.report.html import check_report_path
 
 POINT_FORMATS = ("csv", "parquet")
@@ -35,20 +34,7 @@ def write_points(frame: pd.DataFrame, path: Path, fmt: str) -> Path:
         except ImportError:
             raise InputError('export --points parquet needs pyarrow: pip install "tonebench[parquet]"') from None
     path = check_report_path(path, "points file")
-    fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    os.close(fd)
-    try:
-        if fmt == "csv":
-            flat = frame.assign(flags=frame["flags"].map(lambda flags: ";".join(flags)))
-            flat.to_csv(tmp_name, index=False)
-        else:
-            frame.to_parquet(tmp_name, index=False)
-        os.chmod(tmp_name, 0o644)
-        os.replace(tmp_name, path)
-    except OSError as exc:
-        Path(tmp_name).unlink(missing_ok=True)
-        raise TonebenchError(f"points file {path}: cannot be written ({exc.strerror or exc}); nothing was replaced") from None
-    except BaseException:
-        Path(tmp_name).unlink(missing_ok=True)
-        raise
-    return path
+    if fmt == "csv":
+        flat = frame.assign(flags=frame["flags"].map(lambda flags: ";".join(flags)))
+        return replace_atomically(path, lambda tmp_name: flat.to_csv(tmp_name, index=False), "points file")
+    return replace_atomically(path, lambda tmp_name: frame.to_parquet(tmp_name, index=False), "points file")

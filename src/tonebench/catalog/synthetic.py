@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import sqlalchemy as sa
 
-from tonebench import __version__
+from tonebench.version import __version__
 from tonebench.store.models import (
     ANALYZER_CAUSES,
     FLAGS,

@@ -27,7 +27,7 @@ app = typer.Typer(rich_markup_mode=None,
 
 def _say_version(value: bool) -> None:
     if value:
-        from tonebench import __version__
+        from tonebench.version import __version__
 
         out.print(f"tonebench {__version__}", highlight=False)
         raise typer.Exit()

@@ -11,7 +11,8 @@ from pathlib import Path
 
 from plotly.offline import get_plotlyjs
 
-from tonebench.errors import InputError, TonebenchError
+from tonebench.errors import InputError
+from tonebench.files import replace_atomically
 
 # Pages differ in width only (body class "wide": the comparison's many-column tables).
 STYLE = """
@@ -85,24 +86,8 @@ def check_report_path(path: Path, what: str = "report path") -> Path:
 
 
 def write_html_file(path: Path, page: str, what: str = "report path") -> Path:
-    """Write `page` to `path`: checked (check_report_path), into a temporary file in the same
-    folder, fsynced, then renamed over the old file, so a reader never sees half a page and a
-    crash leaves the old page or the new one."""
+    """Write `page` to `path`: checked (check_report_path), then written whole or not at all
+    (tonebench.files.replace_atomically), so a reader never sees half a page."""
     path = check_report_path(path, what)
-    fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        os.fchmod(fd, 0o644)  # mkstemp makes it private; a report is meant to be shared
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(page)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp_name, path)
-    except OSError as exc:
-        Path(tmp_name).unlink(missing_ok=True)
-        # Checked beforehand, so this is the disk (full, failing), not the path given: exit 1.
-        raise TonebenchError(f"{what} {path}: cannot be written ({exc.strerror or exc}); nothing was replaced") from None
-    except BaseException:
-        Path(tmp_name).unlink(missing_ok=True)
-        raise
-    return path
+    return replace_atomically(path, lambda tmp_name: Path(tmp_name).write_text(page, encoding="utf-8"), what)
 

@@ -12,7 +12,7 @@ from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
-from tonebench import __version__
+from tonebench.version import __version__
 from tonebench.store.database import DiskFull
 from tonebench.store.models import (
     Bench,
