@@ -10,6 +10,7 @@ A tripped output is a fault (SupplyTripped), never a reading of zero bias.
 from __future__ import annotations
 
 import math
+import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -44,6 +45,8 @@ class BiasSupplies:
         self.gate_v = 0.0  # as last set
         self.drain_v = 0.0
         self.up = False
+        # The run's thread and the watchdog's may both bring the bias down: one does, once.
+        self._down_lock = threading.Lock()
 
     def supplies(self) -> tuple[DcSupply, DcSupply]:
         return self.gate, self.drain
@@ -107,6 +110,27 @@ class BiasSupplies:
                     failures.append(f"{supply.label}: {exc}")
         self.up = False
         return failures
+
+    def bias_down_if_up(self, lock_wait_s: float | None = None) -> list[str] | None:
+        """bias_down once, from whichever thread comes first (the other finds it done: []).
+        With lock_wait_s (the watchdog, while the run's thread may be stuck in a call), each
+        supply's connection is waited for at most that long; None when one stayed busy, so the
+        bias is left to the run's own ending rather than sent over a connection in use."""
+        with self._down_lock:
+            if not self.up:
+                return []
+            if lock_wait_s is None:
+                return self.bias_down()
+            held = []
+            try:
+                for lock in {id(s.instrument.io_lock): s.instrument.io_lock for s in self.supplies()}.values():
+                    if not lock.acquire(timeout=lock_wait_s):
+                        return None
+                    held.append(lock)
+                return self.bias_down()
+            finally:
+                for lock in held:
+                    lock.release()
 
     def _ramp(self, supply: DcSupply, from_v: float, to_v: float) -> float:
         """Move supply from from_v to to_v in steps of at most ramp_step_v at ramp_v_per_s."""

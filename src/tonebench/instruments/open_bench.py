@@ -93,8 +93,15 @@ class OpenBench:
         return () if self.bias is None else self.bias.supplies()
 
     def switch_bias_off(self) -> list[str]:
-        """Bias down in its safe order (RF must already be off); a line per step that failed."""
-        return [] if self.bias is None else self.bias.bias_down()
+        """Bias down in its safe order (RF must already be off); a line per step that failed.
+        Nothing to do when the watchdog already brought it down."""
+        return [] if self.bias is None else self.bias.bias_down_if_up()
+
+    def force_bias_off(self, lock_wait_s: float = 0.5) -> list[str] | None:
+        """Bias down in its safe order from the watchdog's thread, after RF is off: a line per
+        failed step; None when a supply's connection stayed busy (the run's stuck thread holds
+        it), so the run's own ending brings the bias down."""
+        return [] if self.bias is None else self.bias.bias_down_if_up(lock_wait_s)
 
     def switch_off_at_connect(self) -> list[str]:
         """RF off at every source as soon as the bench is connected: a run killed (kill -9, power

@@ -91,7 +91,13 @@ def _take_over(run: PreparedRun, on_run_started: Callable[[str], None] | None) -
 
 def _trip(run: PreparedRun, reason: str) -> None:
     """The watchdog's action, in its own thread: stop recovery, RF off by any connection, retried
-    until read back off (or the time allowed is spent)."""
+    until read back off (or the time allowed is spent), then the bias down in its order through
+    the supplies' connections when they are free."""
     run.supervision.stop.set()  # no more retries, and no source turns RF on again
     report = run.instruments.force_rf_off_all()
-    run.log.event("error", "watchdog", f"{reason}; {report.line()}")
+    line = f"{reason}; {report.line()}"
+    if run.instruments.bias is not None and run.instruments.bias.up:
+        failures = run.instruments.force_bias_off() if report.ok else None  # never bias off under RF
+        line += ("; bias left to the run's ending (RF not read back off, or a supply busy)" if failures is None
+                 else f"; bias off failed: {'; '.join(failures)}" if failures else "; bias switched off in order")
+    run.log.event("error", "watchdog", line)
