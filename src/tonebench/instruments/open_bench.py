@@ -21,6 +21,7 @@ from tonebench.instruments.role_check import (
     check_distinct_identities,
     check_distinct_resources,
     check_role,
+    shared_supply,
 )
 from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.source import PowerGuard, SignalSource
@@ -231,17 +232,23 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
     # Every role's dialect and resource before the first connection: a misspelled analyzer
     # dialect must not hide behind an unreachable source.
     dialects = role_dialects(settings)
-    check_distinct_resources(resources, roles)
+    shared = shared_supply(resources, {role: entry.channel for role, entry in settings.instruments.items()},
+                           {role: dialect.name for role, dialect in dialects.items()})
+    check_distinct_resources(resources, roles, ("gate", "drain") if shared else None)
     library = visa_library(settings)
+    by_role: dict[str, ScpiInstrument] = {}
     try:
         for role in roles:
+            if shared and role == "drain":  # the gate's supply: one connection for both outputs
+                by_role[role] = by_role["gate"]
+                continue
             dialect = dialects[role]
-            opened.append(ScpiInstrument(open_resource(resources[role], dialect, role, library), dialect, role,
-                                         supervision, library))
+            by_role[role] = ScpiInstrument(open_resource(resources[role], dialect, role, library), dialect, role,
+                                           supervision, library)
+            opened.append(by_role[role])
         for inst in opened:
             check_role(inst, ROLE_KINDS[inst.label])
         check_distinct_identities(opened)
-        by_role = {inst.label: inst for inst in opened}
         scpi1, scpi2, scpi_analyzer = opened[:3]
         meter = PowerMeter(by_role["power_meter"]) if "power_meter" in by_role else None
         if meter is not None:
@@ -249,7 +256,7 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
             by_role["power_meter"].add_restore_hook(meter.prepare)
         bias = None
         if settings.has_bias:
-            gate, drain = (DcSupply(by_role[role], settings.instruments[role].channel) for role in ("gate", "drain"))
+            gate, drain = (DcSupply(by_role[role], settings.instruments[role].channel, role) for role in ("gate", "drain"))
             bias = BiasSupplies(gate, drain, settings.bias)
             bias.check_limits()
         chamber = Chamber(by_role["chamber"], settings.chamber) if "chamber" in by_role else None
@@ -257,9 +264,7 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
         ranges = tuple(
             SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)
         )
-        infos = [
-            InstrumentInfo(inst.label, resources[inst.label], inst.dialect.name, inst.idn) for inst in opened
-        ]
+        infos = [InstrumentInfo(role, resources[role], by_role[role].dialect.name, by_role[role].idn) for role in roles]
         analyzer = SpectrumAnalyzer(scpi_analyzer)
         # The bench file knows this unit; its figures win over the dialect's typical ones.
         analyzer.performance = {**analyzer.performance, **settings.instruments["analyzer"].performance}

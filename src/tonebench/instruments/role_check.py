@@ -36,17 +36,34 @@ def normalised_resource(resource: str) -> str:
         return resource.strip().lower()
 
 
-def check_distinct_resources(resources: dict[str, str], roles: list[str]) -> None:
-    """Two roles on one resource string: refused before anything is opened."""
+def check_distinct_resources(resources: dict[str, str], roles: list[str], shared: tuple[str, str] | None = None) -> None:
+    """Two roles on one resource string: refused before anything is opened, except the pair
+    `shared` (gate and drain on two outputs of one supply, see shared_supply)."""
     seen: dict[str, str] = {}
     for role in roles:
         key = normalised_resource(resources[role])
-        if key in seen:
+        if key in seen and (seen[key], role) != shared:
             raise InputError(
                 f"instruments.{seen[key]} and instruments.{role} both use {resources[role]}; "
-                "each role needs an instrument of its own"
+                "each role needs an instrument of its own (gate and drain may share a supply on two channels)"
             )
-        seen[key] = role
+        seen.setdefault(key, role)
+
+
+def shared_supply(resources: dict[str, str], channels: dict[str, int], dialects: dict[str, str]) -> bool:
+    """Whether gate and drain are two outputs of one multi-output supply (one resource, one
+    dialect, two channels): then they share one connection. The same output for both is refused."""
+    if "gate" not in resources or "drain" not in resources:
+        return False
+    if normalised_resource(resources["gate"]) != normalised_resource(resources["drain"]):
+        return False
+    if dialects["gate"] != dialects["drain"]:
+        raise InputError(f"instruments.gate and instruments.drain both use {resources['gate']} with different dialects "
+                         f"({dialects['gate']}, {dialects['drain']}); one supply has one dialect")
+    if channels["gate"] == channels["drain"]:
+        raise InputError(f"instruments.gate and instruments.drain are both channel {channels['gate']} of "
+                         f"{resources['gate']}; give each its own output (channel = 1, 2, ...)")
+    return True
 
 
 def check_distinct_identities(opened: list[ScpiInstrument]) -> None:

@@ -29,8 +29,10 @@ class SupplyState:
 class DcSupply(RoleDriver):
     """Output `channel` (from 1) of an instrument reached through a supply dialect."""
 
-    def __init__(self, instrument: ScpiInstrument, channel: int = 1):
+    def __init__(self, instrument: ScpiInstrument, channel: int = 1, label: str | None = None):
         super().__init__(instrument)
+        # Its own role name: gate and drain may be two outputs of one instrument.
+        self._label = label or instrument.label
         if channel < 1:
             raise ValueError(f"{instrument.label}: channel {channel}; outputs are numbered from 1")
         limits = instrument.dialect.limits
@@ -43,6 +45,10 @@ class DcSupply(RoleDriver):
         self.wanted = SupplyState(output_on=False)
         self._protection_armed = False
         instrument.add_restore_hook(self.restore)
+
+    @property
+    def label(self) -> str:
+        return self._label
 
     def _wait_s(self) -> float:
         return self.instrument.dialect.io.query_timeout_s

@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 from tonebench.config.bench_file import OPTIONAL_ROLES, REQUIRED_ROLES, LoadedBench
 from tonebench.errors import InputError, TonebenchError
 from tonebench.instruments.open_bench import ROLE_KINDS, OpenBench, role_dialects, visa_library
-from tonebench.instruments.role_check import check_distinct_resources, check_role
+from tonebench.instruments.role_check import check_distinct_resources, check_role, shared_supply
 from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.scpi_errors import ScpiErrors
 from tonebench.instruments.transport import library_in_use, open_resource
@@ -54,10 +54,16 @@ def check_bench(bench: LoadedBench, warn=None) -> BenchCheck:
     library = visa_library(settings)
     with ExitStack() as stack:
         resources, sim = bench_resources(stack, bench)
-        check_distinct_resources(resources, roles)
+        shared = shared_supply(resources, {role: entry.channel for role, entry in settings.instruments.items()},
+                               {role: dialect.name for role, dialect in dialects.items()})
+        check_distinct_resources(resources, roles, ("gate", "drain") if shared else None)
         checks = [RoleCheck(role, resources[role], dialects[role].name, limits=_limits(bench, role, dialects[role]))
                   for role in roles]
         for check in checks:
+            if shared and check.role == "drain":  # the gate's supply, already checked
+                gate = next(c for c in checks if c.role == "gate")
+                check.idn, check.problem = gate.idn, gate.problem
+                continue
             check.idn, check.problem = _fit(check, dialects[check.role], library)
         if all(check.problem is None for check in checks):
             opened, _relay, _supervision = open_resources(stack, bench, resources, sim, warn)
@@ -117,6 +123,9 @@ def _state(opened: OpenBench, role: str) -> tuple[list[str], str | None]:
 
 
 def _connection(opened: OpenBench, role: str) -> ScpiInstrument:
+    """The role's connection (gate and drain may share one: two outputs of one supply)."""
+    if role in ("gate", "drain"):
+        return (opened.bias.gate if role == "gate" else opened.bias.drain).instrument
     return next(inst for inst in opened.connections if inst.label == role)
 
 
