@@ -191,3 +191,42 @@ def test_repeated_signals_leave_rf_and_bias_off_in_order(tmp_path, signum, count
         assert_safe_order(sim)
     finally:
         sim.close()
+
+
+def test_a_drain_current_target_is_found_on_the_bench_and_held_for_every_point(tmp_path):
+    from tonebench.sim.fet import SimFet
+
+    # The simulated FET at 0.60 V gate and 3 V drain (the drain's knee factor tanh(Vd / 0.3 V)).
+    target_a = float(SimFet().drain_a(0.60, 300.0)) * math.tanh(3.0 / 0.3)
+    outcome, sim = run(tmp_path, plan_text=PLAN.replace("gate_v = [0.55, 0.62]", f"drain_current_a = {target_a!r}"))
+    assert outcome.status == "complete", outcome.reason
+    assert_safe_order(sim)
+    with Session(create_engine(f"sqlite:///{tmp_path / 'tb.db'}")) as session:
+        points = session.scalars(select(Point).order_by(Point.seq)).all()
+        events = {e.kind: e.message for e in session.scalars(select(Event))}
+    assert len(points) == 3 and all(p.bias_v is None for p in points)  # no bias axis: one gate, found
+    for point in points:
+        assert point.drain_current_a == pytest.approx(target_a, rel=0.011)
+        assert point.gate_read_v == pytest.approx(0.60, abs=2e-3)  # the FET's own gate for that current
+    assert "bias-target" in events and f"(target {target_a * 1e3:g} mA" in events["bias-target"]
+    gates = [float(line.split()[-1]) for _c, name, line in sim.bench.command_log if name == "gate" and ":VOLT " in line]
+    assert max(gates) < 0.85 and min(gates) >= 0.0  # bisection midpoints: never at the limits
+
+
+def test_a_drain_current_the_gate_limits_cannot_give_aborts_with_bias_off(tmp_path):
+    outcome, sim = run(tmp_path, plan_text=PLAN.replace("gate_v = [0.55, 0.62]", "drain_current_a = 0.055"),
+                       bench_text=BIAS_BENCH.replace("gate_max_v = 0.85", "gate_max_v = 0.50"))
+    assert outcome.status == "aborted" and "no gate voltage within 0..0.5 V gives 55 mA" in outcome.reason
+    assert rf_is_off(sim) and bias_is_off(sim)
+    assert not any(line.upper().startswith("OUTP ON") for _c, name, line in sim.bench.command_log
+                   if name.startswith("source"))
+
+
+@pytest.mark.parametrize("plan_edit, words", [
+    ("gate_v = [0.55, 0.62]\ndrain_current_a = 0.01", "drain_current_a is given with gate voltages"),
+    ("drain_current_a = 0.07", "is not below the bench file's drain_current_limit_a (0.06 A)"),
+])
+def test_bad_drain_current_targets_are_refused_before_anything_is_switched_on(tmp_path, plan_edit, words):
+    result, sim = run(tmp_path, plan_text=PLAN.replace("gate_v = [0.55, 0.62]", plan_edit))
+    assert isinstance(result, InputError) and words in str(result), result
+    assert sim is None or bias_is_off(sim)

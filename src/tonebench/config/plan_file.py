@@ -178,6 +178,9 @@ class BiasSettings(StrictModel):
     optionally the DC sweep and the two-tone search of `tonebench bias`."""
 
     gate_v: list[float] | None = Field(default=None, min_length=1)
+    # Instead of gate voltages: the drain current to bias at. The gate voltage that gives it is
+    # searched at the start of the run (RF off) within the bench file's gate_min_v..gate_max_v.
+    drain_current_a: float | None = Field(default=None, gt=0.0, le=10.0)
     gate_start_v: float | None = Field(default=None, ge=-GATE_LIMIT_V, le=GATE_LIMIT_V)
     gate_stop_v: float | None = Field(default=None, ge=-GATE_LIMIT_V, le=GATE_LIMIT_V)
     gate_step_v: float | None = Field(default=None, gt=0.0, le=GATE_LIMIT_V)
@@ -189,7 +192,12 @@ class BiasSettings(StrictModel):
     @model_validator(mode="after")
     def _one_form(self) -> "BiasSettings":
         range_given = [name for name in ("gate_start_v", "gate_stop_v", "gate_step_v") if getattr(self, name) is not None]
-        forms = "either gate_v = [volts, ...] or gate_start_v, gate_stop_v and gate_step_v"
+        forms = "either gate_v = [volts, ...], or gate_start_v, gate_stop_v and gate_step_v, or drain_current_a"
+        if self.drain_current_a is not None:
+            if self.gate_v is not None or range_given or self.dc is not None or self.search is not None:
+                raise ValueError(f"drain_current_a is given with gate voltages or a [bias.dc]/[bias.search] table; "
+                                 f"use {forms}")
+            return self
         if self.gate_v is not None and range_given:
             raise ValueError(f"gate_v and {', '.join(range_given)} both given; use {forms}")
         if self.gate_v is None and len(range_given) != 3:
@@ -201,11 +209,17 @@ class BiasSettings(StrictModel):
         return self
 
     def gate_count(self) -> int:
+        if self.drain_current_a is not None:
+            return 1
         if self.gate_v is not None:
             return len(self.gate_v)
         return int(math.floor((self.gate_stop_v - self.gate_start_v) / self.gate_step_v + 1e-9)) + 1
 
-    def gate_voltages_v(self) -> list[float]:
+    def gate_voltages_v(self) -> list[float] | None:
+        """The gate voltages of the bias axis; None with a drain-current target (no axis: the
+        gate voltage is found on the bench, and stored with every point as read back)."""
+        if self.drain_current_a is not None:
+            return None
         if self.gate_v is not None:
             return [round(v, 6) for v in self.gate_v]
         return [round(self.gate_start_v + i * self.gate_step_v, 6) for i in range(self.gate_count())]

@@ -16,7 +16,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 from tonebench.config.bench_file import BiasLimits
-from tonebench.errors import InputError
+from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.rf_guard import shielded
 from tonebench.instruments.supply import DcSupply
 from tonebench.plan.limits import check_bias_voltages
@@ -30,6 +30,15 @@ class BiasReading:
     gate_current_a: float
     drain_read_v: float
     drain_current_a: float
+
+
+class BiasTargetMissed(InstrumentError):
+    """No gate voltage within the bench file's limits gives the drain current asked for."""
+
+
+# A drain-current target is met within this fraction of it; the search stops at this gate step.
+TARGET_TOLERANCE = 0.01
+TARGET_RESOLUTION_V = 1e-4
 
 
 class BiasSupplies:
@@ -86,6 +95,28 @@ class BiasSupplies:
         check_bias_voltages(self.limits, [gate_v], None, "bias")
         self.gate_v = self._ramp(self.gate, self.gate_v, gate_v)
         self.sleep(self.limits.settle_s)
+
+    def find_gate_for_current(self, target_a: float, on_step: Callable[[], None] = lambda: None) -> tuple[float, float, int]:
+        """With the bias up: the gate voltage, by bisection within gate_min_v..gate_max_v, at
+        which the drain reads target_a within TARGET_TOLERANCE (drain current rising with gate
+        voltage, as in an n-channel FET). Every step ramps and settles like any gate change and
+        only visits midpoints, never the limits themselves. Returns (gate_v, drain_a, steps);
+        BiasTargetMissed when the target lies outside what the limits allow."""
+        low_v, high_v = self.limits.gate_min_v, self.limits.gate_max_v
+        steps = 0
+        while True:
+            gate_v = round((low_v + high_v) / 2.0, 6)
+            self.set_gate(gate_v)
+            drain_a = self.drain.measure_current_a()
+            steps += 1
+            on_step()
+            if abs(drain_a - target_a) <= TARGET_TOLERANCE * target_a:
+                return gate_v, drain_a, steps
+            low_v, high_v = (gate_v, high_v) if drain_a < target_a else (low_v, gate_v)
+            if high_v - low_v < TARGET_RESOLUTION_V:
+                raise BiasTargetMissed(
+                    f"bias: no gate voltage within {self.limits.gate_min_v:g}..{self.limits.gate_max_v:g} V gives "
+                    f"{target_a * 1e3:g} mA (within {TARGET_TOLERANCE:.0%}); {drain_a * 1e3:.4g} mA at {gate_v:.4f} V")
 
     def read(self) -> BiasReading:
         """Both supplies' voltage and current; SupplyTripped if either output has tripped."""

@@ -248,6 +248,10 @@ def check_plan_bias(points: list[PlannedPoint], plan_settings, bench_settings, o
                          "supplies (instruments.gate, instruments.drain and a [bias] table of limits)")
     check_bias_voltages(bench_settings.bias, (p.bias_v for p in points if p.bias_v is not None),
                         plan_bias.drain_v, origin)
+    target_a = plan_bias.drain_current_a
+    if target_a is not None and target_a >= bench_settings.bias.drain_current_limit_a:
+        raise InputError(f"{origin}: [bias] drain_current_a {target_a:g} A is not below the bench file's "
+                         f"drain_current_limit_a ({bench_settings.bias.drain_current_limit_a:g} A)")
 
 
 def check_bias_voltages(limits, gate_voltages_v: Iterable[float], drain_v: float | None, origin: str) -> None:

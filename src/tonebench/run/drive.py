@@ -51,7 +51,8 @@ def drive(run: PreparedRun, on_progress: ProgressCallback | None,
         sequencer = Sequencer(run.instruments, run.offsets, run.bench.settings.limits, run.plan.settings.analyzer,
                               run.recorder, run.leveler, second_order=run.plan.settings.sweep.second_order,
                               unattended=run.bench.settings.unattended, log=run.log, watchdog=watchdog,
-                              drain_v=plan_drain_v(run.plan.settings))
+                              drain_v=plan_drain_v(run.plan.settings),
+                              target_drain_a=getattr(run.plan.settings.bias, "drain_current_a", None))
         heartbeat = Heartbeat(run.sessions, run.recorder.run_id)
 
         def progress(done: int, total: int) -> None:

@@ -21,6 +21,7 @@ from tonebench.calibration.leveling import Leveler
 from tonebench.config.bench_file import BenchLimits, UnattendedSettings
 from tonebench.config.plan_file import AnalyzerSettings
 from tonebench.errors import InstrumentError
+from tonebench.instruments.bias import BiasTargetMissed
 from tonebench.instruments.chamber import ChamberSoakTimeout
 from tonebench.instruments.open_bench import OpenBench
 from tonebench.instruments.rf_guard import RfOffReport, raise_if_stopping, shielded
@@ -74,9 +75,11 @@ class Sequencer:
         log=None,
         watchdog: Watchdog | None = None,
         drain_v: float | None = None,
+        target_drain_a: float | None = None,
     ):
         self.bench = bench
         self.drain_v = drain_v  # the plan's, else the bench file's [bias] drain_v
+        self.target_drain_a = target_drain_a  # the plan's drain-current target, instead of gate voltages
         self.offsets = offsets
         self.limits = limits
         self.analyzer_settings = analyzer_settings
@@ -159,15 +162,30 @@ class Sequencer:
         self.log.event("info", "soak-done", f"{chamber.label}: {soaked.read_c:.2f} degC after {soaked.waited_s:.0f} s")
 
     def _bias_up(self, todo: list[PlannedPoint]) -> None:
-        """Bias on at the first point's gate voltage, before RF ever goes on."""
+        """Bias on at the first point's gate voltage (or, for a drain-current target, at the
+        gate that gives it), before RF ever goes on."""
         bias = self.bench.bias
         first_v = next((point.bias_v for point in todo if point.bias_v is not None), None)
-        if bias is None or first_v is None:
+        if bias is None or (first_v is None and self.target_drain_a is None):
             return
+        start_v = first_v if first_v is not None else bias.limits.gate_idle_v
         with self._trips_stop_the_run("bias on"):
-            bias.bias_up(first_v, self.drain_v)
-        self.log.event("info", "bias-on", f"bias on: gate {first_v:g} V, drain {bias.drain_v:g} V "
+            bias.bias_up(start_v, self.drain_v)
+        self.log.event("info", "bias-on", f"bias on: gate {start_v:g} V, drain {bias.drain_v:g} V "
                                           f"(gate first, drain ramped at {bias.limits.ramp_v_per_s:g} V/s)")
+        if first_v is None:
+            self._find_target_gate(bias)
+
+    def _find_target_gate(self, bias) -> None:
+        target_a = self.target_drain_a
+        with self._trips_stop_the_run("bias target"):
+            try:
+                gate_v, drain_a, steps = bias.find_gate_for_current(target_a, lambda: (self._kick(), self._check_stop()))
+            except BiasTargetMissed as exc:
+                self.log.event("error", "bias-target-missed", str(exc))
+                raise RunStopped("aborted", str(exc)) from None
+        self.log.event("info", "bias-target", f"bias: gate {gate_v:.4f} V gives {drain_a * 1e3:.4g} mA "
+                                              f"(target {target_a * 1e3:g} mA, {steps} steps, RF off)")
 
     def _bias_down(self) -> None:
         bias = self.bench.bias
