@@ -163,3 +163,54 @@ def test_the_distribution_ends_at_one_with_the_spec_limit_drawn():
     (trace,) = fig.data
     assert list(trace.x) == [3.0, 4.0, 5.0, 6.0] and list(trace.y) == [0.25, 0.5, 0.75, 1.0]
     assert [shape.x0 for shape in fig.layout.shapes] == [3.5]
+
+
+def _add_study(session, device, created_at, findings: dict[str, float], temperature_c=None):
+    import uuid
+
+    from tonebench.store.models import BiasFinding, BiasStudy
+
+    study = BiasStudy(guid=str(uuid.uuid4()), device_id=device.id, created_at=created_at, bench_name="b",
+                      temp_k=None, drain_v=3.0, window_points=41, polyorder=5, step_v=1e-3, current_sigma_a=2e-7,
+                      run_guids="", temperature_c=temperature_c)
+    study.findings = [BiasFinding(kind=kind, sweet_spot_v=v, sweet_spot_bound_v=0.002, peak_iip3_dbm=20.0,
+                                  window_low_v=v - 0.005, window_high_v=v + 0.006, window_bound_v=0.001, method="m")
+                      for kind, v in findings.items()]
+    session.add(study)
+
+
+def test_the_sweet_spot_of_each_device_of_a_lot_is_drawn_with_its_window(database, tmp_path):
+    import datetime as dt
+
+    from tonebench.store.models import Device
+
+    with session_factory(database).begin() as session:
+        first, second = session.query(Device).order_by(Device.id).limit(2).all()
+        utc = dt.timezone.utc
+        _add_study(session, first, dt.datetime(2026, 11, 1, tzinfo=utc), {"dc-prediction": 0.570, "two-tone": 0.568})
+        _add_study(session, first, dt.datetime(2026, 11, 20, tzinfo=utc), {"two-tone": 0.571})  # measured again
+        _add_study(session, second, dt.datetime(2026, 11, 2, tzinfo=utc), {"two-tone": 0.590})
+    page = tmp_path / "compare.html"
+    with session_factory(database)() as session:
+        write_compare_report(session, ResultFilter(), page)
+    load = load_in_chromium(page, tmp_path, want_figures=8)
+    assert leaving_requests(load, page) == [] and load.exceptions == []
+    assert load.state["figures"] == load.state["drawn"] == 8, load.state
+    spots = [t for t in load.state["traces"] if t["figure"] == "sweet-spots" and t["name"].startswith("sweet spot")]
+    by_name = {t["name"]: t for t in spots}
+    # The first device's later two-tone study replaces its earlier one: two measured points, one predicted.
+    assert by_name["sweet spot, measured two-tone"]["points"] == 2
+    assert by_name["sweet spot, predicted from DC"]["points"] == 1
+    assert by_name["sweet spot, measured two-tone"]["symbol"] != by_name["sweet spot, predicted from DC"]["symbol"]
+    from tonebench.report.sweet_spot_plots import latest_per_device, sweet_spot_figure
+
+    with session_factory(database)() as session:
+        from tonebench.catalog.sweet_spots import find_sweet_spots
+
+        found = find_sweet_spots(session, ResultFilter())
+    assert len(found) == 4 and len(latest_per_device(found)) == 3
+    figure = sweet_spot_figure(latest_per_device(found))
+    measured = next(t for t in figure.data if t.name == "sweet spot, measured two-tone")
+    assert sorted(measured.y) == [0.571, 0.590]
+    window = next(t for t in figure.data if t.name == "window, measured two-tone")
+    assert [round(b, 3) for b in window.base] == [round(y - 0.005, 3) for y in measured.y]

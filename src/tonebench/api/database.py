@@ -15,7 +15,9 @@ from tonebench.catalog.limits import LimitRule, list_limits
 from tonebench.catalog.query import ResultFilter, find_results, latest_per_device
 from tonebench.config.database_location import choose_database
 from tonebench.errors import InputError
+from tonebench.catalog.sweet_spots import find_sweet_spots
 from tonebench.report.comparison import compare_figures
+from tonebench.report.sweet_spot_plots import latest_per_device as latest_spots
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.lookups import find_run
 from tonebench.store.models import Device, Point, Run
@@ -99,8 +101,9 @@ class Database:
     def compare(self, all_runs: bool = False, **query) -> dict[str, go.Figure]:
         """The comparison report's figures for the results find(**query) gives, by name:
         'by-frequency', 'by-spacing', 'by-bias' (when some result has a bias), 'by-lot', 'ecdf',
-        'wafer-maps' (when devices have die positions) and 'asymmetry'. One result per device and
-        condition (its latest run) unless all_runs."""
+        'wafer-maps' (when devices have die positions), 'asymmetry' and 'sweet-spots' (when devices
+        have sweet-spot studies). One result per device and condition (its latest run), and one
+        sweet spot per device, kind and temperature (its latest study), unless all_runs."""
         with self.session() as session:
             rows = query.pop("rows", None)
             found = find_results(session, self._filter(**query), rows)
@@ -108,9 +111,10 @@ class Database:
                 found, _older = latest_per_device(found)
             limits = {part: [LimitRule.of(row) for row in list_limits(session, part)]
                       for part in {r.part_number for r in found}}
+            spots = find_sweet_spots(session, self._filter(**query))
         if not found:
             raise InputError("compare: the query matched no results; nothing to compare")
-        return compare_figures(found, limits)
+        return compare_figures(found, limits, spots if all_runs else latest_spots(spots))
 
     @staticmethod
     def _filter(part=None, lot=None, wafer=None, serial=None, tag=None, freq_hz=None, spacing_hz=None,

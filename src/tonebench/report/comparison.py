@@ -22,9 +22,12 @@ from sqlalchemy.orm import Session
 
 from tonebench.catalog.limits import LimitRule, list_limits
 from tonebench.catalog.query import ResultFilter, ResultRow, find_results, latest_per_device
+from tonebench.catalog.sweet_spots import find_sweet_spots
 from tonebench.errors import InputError
 from tonebench.report.html import check_report_path, page_html, write_html_file
 from tonebench.report.lot_plots import ecdf_figure, wafer_maps
+from tonebench.report.sweet_spot_plots import latest_per_device as spot_latest
+from tonebench.report.sweet_spot_plots import sweet_spot_figure
 from tonebench.units import format_freq
 
 MAX_DEVICE_TRACES = 60  # above this many devices, traces are per lot (a legend of hundreds helps no one)
@@ -226,10 +229,12 @@ def _figure_html(fig: go.Figure, div_id: str) -> str:
                                                  config={"displaylogo": False}) + "</div>")
 
 
-def compare_figures(rows: list[ResultRow], limits: dict[str, list[LimitRule]]) -> dict[str, go.Figure]:
+def compare_figures(rows: list[ResultRow], limits: dict[str, list[LimitRule]],
+                    sweet_spots: list[dict] = ()) -> dict[str, go.Figure]:
     """The page's figures by name (its div ids): by-frequency, by-spacing, by-bias (when some
-    result has a bias), by-lot, ecdf, wafer-maps (when devices have die positions), asymmetry.
-    Results without a fitted IIP3 are not plotted."""
+    result has a bias), by-lot, ecdf, wafer-maps (when devices have die positions), asymmetry,
+    sweet-spots (when the devices have stored sweet-spot findings). Results without a fitted IIP3
+    are not plotted."""
     fitted = [r for r in rows if r.iip3_dbm is not None]
     styles = series_styles([r for r in fitted if not r.flags])
     figures = {
@@ -247,11 +252,14 @@ def compare_figures(rows: list[ResultRow], limits: dict[str, list[LimitRule]]) -
     if maps is not None:
         figures["wafer-maps"] = maps
     figures["asymmetry"] = _asymmetry(fitted)
+    spots = sweet_spot_figure(list(sweet_spots))
+    if spots is not None:
+        figures["sweet-spots"] = spots
     return figures
 
 
 def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]], selection: str,
-                        older_left_out: int = 0) -> str:
+                        older_left_out: int = 0, sweet_spots: list[dict] = ()) -> str:
     """The whole page as one string; limits maps part number to its spec limits; older_left_out
     counts results of earlier runs not shown (one result per device and condition)."""
     if not rows:
@@ -268,7 +276,7 @@ def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]
         "Runs": ("the latest run of each device per condition" + (f" ({older_left_out} results of earlier runs left "
                  "out; --all-runs shows them)" if older_left_out else "")) if older_left_out >= 0 else "every run",
     }
-    figures = compare_figures(rows, limits)
+    figures = compare_figures(rows, limits, sweet_spots)
     maps_note = wafer_maps(fitted)[1]
 
     def shown(name: str, absent: str = "") -> str:
@@ -284,6 +292,8 @@ def render_compare_page(rows: list[ResultRow], limits: dict[str, list[LimitRule]
         ("Wafer maps", shown("wafer-maps")
          + (f'<p class="note">{html.escape(maps_note[0].upper() + maps_note[1:])}.</p>' if maps_note else "")),
         ("Lower against upper IM3", shown("asymmetry")),
+        ("Sweet spot in gate bias per device",
+         shown("sweet-spots", '<p class="note">No device in this selection has a stored sweet-spot study.</p>')),
         ("Flagged results (may be limited by the test system)", _flagged_table(rows)),
     ]
     summary_html = "\n".join(f"<dt>{html.escape(k)}</dt><dd>{html.escape(v)}</dd>" for k, v in summary.items())
@@ -307,5 +317,6 @@ def write_compare_report(session: Session, flt: ResultFilter, path: Path, limit:
     if not all_runs:
         rows, older = latest_per_device(rows)
     limits = {part: [LimitRule.of(l) for l in list_limits(session, part)] for part in {r.part_number for r in rows}}
-    page = render_compare_page(rows, limits, flt.describe(), older)
+    spots = find_sweet_spots(session, flt)
+    page = render_compare_page(rows, limits, flt.describe(), older, spots if all_runs else spot_latest(spots))
     return write_html_file(path, page, "compare report"), len(rows)

@@ -1,0 +1,66 @@
+"""The sweet spot and its window per device of a lot, for the comparison report: one point per
+device and finding (predicted from DC, measured two-tone), its bound as an error bar and its
+window as a translucent bar, per chamber temperature."""
+
+from __future__ import annotations
+
+import html
+
+import plotly.graph_objects as go
+
+KIND_STYLES = {"dc-prediction": ("predicted from DC", "diamond-open", -0.12),
+               "two-tone": ("measured two-tone", "circle", 0.12)}  # (label, symbol, x offset)
+TEMPERATURE_COLORS = ("#1f5fa8", "#c0561b", "#2a8a4a", "#7a4f9a", "#8a6d1f", "#b03a6a")
+
+
+def latest_per_device(spots: list[dict]) -> list[dict]:
+    """One finding per device, kind and temperature: the newest study's (the query's order)."""
+    seen, kept = set(), []
+    for spot in spots:  # newest study first
+        key = (spot["part_number"], spot["serial"], spot["kind"], spot["temperature_c"])
+        if key not in seen:
+            seen.add(key)
+            kept.append(spot)
+    return kept
+
+
+def sweet_spot_figure(spots: list[dict]) -> go.Figure | None:
+    """Gate voltage of the sweet spot per device (x: part, lot and serial), or None without findings."""
+    if not spots:
+        return None
+    devices = sorted({(s["part_number"], s["lot"] or "-", s["serial"]) for s in spots})
+    x_of = {device: index for index, device in enumerate(devices)}
+    temperatures = sorted({s["temperature_c"] for s in spots}, key=lambda t: (t is None, t))
+    fig = go.Figure()
+    for t_index, temperature_c in enumerate(temperatures):
+        color = TEMPERATURE_COLORS[t_index % len(TEMPERATURE_COLORS)]
+        at = "" if temperature_c is None else f", {temperature_c:g} degC"
+        for kind, (label, symbol, offset) in KIND_STYLES.items():
+            members = [s for s in spots if s["kind"] == kind and s["temperature_c"] == temperature_c]
+            if not members:
+                continue
+            xs = [x_of[(s["part_number"], s["lot"] or "-", s["serial"])] + offset for s in members]
+            windows = [(s["window_low_v"], s["window_high_v"]) for s in members]
+            fig.add_trace(go.Bar(
+                x=xs, y=[high - low if low is not None and high is not None else None for low, high in windows],
+                base=[low for low, _high in windows], width=0.18, marker=dict(color=color, opacity=0.18),
+                name=f"window, {label}{at}", legendgroup=f"{kind}{at}", showlegend=False, hoverinfo="skip"))
+            fig.add_trace(go.Scatter(
+                x=xs, y=[s["sweet_spot_v"] for s in members], mode="markers", name=f"sweet spot, {label}{at}",
+                legendgroup=f"{kind}{at}", marker=dict(symbol=symbol, size=10, color=color, line=dict(width=1.5, color=color)),
+                error_y=dict(type="data", array=[s["sweet_spot_bound_v"] for s in members], color=color),
+                hovertext=[_hover(s) for s in members], hovertemplate="%{hovertext}<extra></extra>"))
+    fig.update_layout(
+        title="Sweet spot (gate voltage where g3 crosses zero), its bound, and its window (bar) per device",
+        template="plotly_white", height=480, barmode="overlay", yaxis_title="gate voltage (V)",
+        xaxis=dict(tickmode="array", tickvals=list(range(len(devices))), title="device (serial, lot)",
+                   ticktext=[f"{html.escape(serial)}<br>{html.escape(lot)}" for _part, lot, serial in devices]),
+        legend=dict(font=dict(size=10)))
+    return fig
+
+
+def _hover(spot: dict) -> str:
+    window = ("" if spot["window_low_v"] is None else
+              f"<br>window {spot['window_low_v']:.4f} to {spot['window_high_v']:.4f} V")
+    return (f"{html.escape(spot['serial'])}: {spot['sweet_spot_v']:.4f} ± {spot['sweet_spot_bound_v'] * 1e3:.1f} mV"
+            f"{window}<br>peak IIP3 {spot['peak_iip3_dbm']:+.2f} dBm, {html.escape(spot['kind'])}")
