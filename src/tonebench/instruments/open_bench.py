@@ -232,8 +232,7 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
     # Every role's dialect and resource before the first connection: a misspelled analyzer
     # dialect must not hide behind an unreachable source.
     dialects = role_dialects(settings)
-    shared = shared_supply(resources, {role: entry.channel for role, entry in settings.instruments.items()},
-                           {role: dialect.name for role, dialect in dialects.items()})
+    shared = shared_supply(settings, resources, dialects)
     check_distinct_resources(resources, roles, ("gate", "drain") if shared else None)
     library = visa_library(settings)
     by_role: dict[str, ScpiInstrument] = {}

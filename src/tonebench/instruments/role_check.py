@@ -50,16 +50,19 @@ def check_distinct_resources(resources: dict[str, str], roles: list[str], shared
         seen.setdefault(key, role)
 
 
-def shared_supply(resources: dict[str, str], channels: dict[str, int], dialects: dict[str, str]) -> bool:
+def shared_supply(settings, resources: dict[str, str], dialects: dict) -> bool:
     """Whether gate and drain are two outputs of one multi-output supply (one resource, one
-    dialect, two channels): then they share one connection. The same output for both is refused."""
+    dialect, two channels): then they share one connection. The same output for both is refused.
+    `settings` is the bench file, `dialects` role -> Dialect."""
     if "gate" not in resources or "drain" not in resources:
         return False
+    channels = {role: settings.instruments[role].channel for role in ("gate", "drain")}
+    names = {role: dialects[role].name for role in ("gate", "drain")}
     if normalised_resource(resources["gate"]) != normalised_resource(resources["drain"]):
         return False
-    if dialects["gate"] != dialects["drain"]:
+    if names["gate"] != names["drain"]:
         raise InputError(f"instruments.gate and instruments.drain both use {resources['gate']} with different dialects "
-                         f"({dialects['gate']}, {dialects['drain']}); one supply has one dialect")
+                         f"({names['gate']}, {names['drain']}); one supply has one dialect")
     if channels["gate"] == channels["drain"]:
         raise InputError(f"instruments.gate and instruments.drain are both channel {channels['gate']} of "
                          f"{resources['gate']}; give each its own output (channel = 1, 2, ...)")

@@ -41,10 +41,6 @@ class BenchCheck:
     roles: list[RoleCheck]
     bench_limits: list[str]
 
-    @property
-    def ok(self) -> bool:
-        return all(role.problem is None for role in self.roles)
-
 
 def check_bench(bench: LoadedBench, warn=None) -> BenchCheck:
     """Open every role, check it fits, read its state; never switches anything on."""
@@ -54,8 +50,7 @@ def check_bench(bench: LoadedBench, warn=None) -> BenchCheck:
     library = visa_library(settings)
     with ExitStack() as stack:
         resources, sim = bench_resources(stack, bench)
-        shared = shared_supply(resources, {role: entry.channel for role, entry in settings.instruments.items()},
-                               {role: dialect.name for role, dialect in dialects.items()})
+        shared = shared_supply(settings, resources, dialects)
         check_distinct_resources(resources, roles, ("gate", "drain") if shared else None)
         checks = [RoleCheck(role, resources[role], dialects[role].name, limits=_limits(bench, role, dialects[role]))
                   for role in roles]
