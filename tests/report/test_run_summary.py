@@ -34,11 +34,16 @@ def test_frequency_is_the_axis_and_bias_the_families():
     mean = _trace(fig, "mean of lower and upper, ± bound (bias 0.6000 V)")[0]
     np.testing.assert_allclose(mean.y, [4.0, 4.0])
     assert list(mean.error_y.array) == [0.2, 0.2]
+    # Each family's mean line is named at its last point, in both panels.
+    labels = sorted((a.text, a.x, a.y) for a in fig.layout.annotations if a.text.startswith("bias"))
+    assert labels == [("bias 0.5000 V", 2.45, 3.0), ("bias 0.5000 V", 2.45, 18.0),
+                      ("bias 0.6000 V", 2.45, 4.0), ("bias 0.6000 V", 2.45, 19.0)]
 
 
 def test_bias_alone_is_the_axis():
     fig = summary_figure([_summary(2.45e9, bias_v=b) for b in (0.50, 0.55, 0.60)])
     assert fig.layout.xaxis.title.text == "gate bias (V)"
+    assert [a.text for a in fig.layout.annotations] == ["IIP3", "OIP3"]  # one family: no line names
     assert list(_trace(fig, "upper")[0].x) == [0.50, 0.55, 0.60]
 
 

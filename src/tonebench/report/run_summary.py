@@ -68,6 +68,9 @@ def summary_figure(sweeps: list[SweepSummary]) -> go.Figure | None:
                 line={"color": _MEAN, "dash": dashes[index % len(dashes)]}, marker={"color": _MEAN, "size": 6},
                 error_y={"type": "data", "array": [s.bound_db or 0.0 for s in members], "visible": True}),
                 row=1, col=col)
+            if family:  # each mean line named at its end: dashes alone do not tell families apart
+                fig.add_annotation(x=x[-1], y=getattr(members[-1], f"{prefix}_dbm"), text=family, showarrow=False,
+                                   xanchor="left", xshift=8, font={"size": 10, "color": _MEAN}, row=1, col=col)
             for kind, color, symbol in (("lower", _LOWER, "triangle-down"), ("upper", _UPPER, "triangle-up")):
                 fig.add_trace(go.Scatter(
                     x=x, y=[getattr(s, f"{prefix}_{kind}_dbm") for s in members], mode="markers",
