@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import dataclasses
-
 import pandas as pd
 
 from tonebench.catalog.query import EXPORT_FIELDS
@@ -13,11 +11,3 @@ def results_frame(rows) -> pd.DataFrame:
     """ResultRow objects (catalog.query) as a DataFrame with the columns of `find --csv`."""
     return pd.DataFrame([{name: getattr(row, name) for name in EXPORT_FIELDS} for row in rows],
                         columns=list(EXPORT_FIELDS))
-
-
-def records_frame(records: list[dict], columns: list[str]) -> pd.DataFrame:
-    return pd.DataFrame(records, columns=columns)
-
-
-def dataclass_columns(cls) -> list[str]:
-    return [f.name for f in dataclasses.fields(cls)]

@@ -7,6 +7,7 @@ import json
 import pandas as pd
 import plotly.graph_objects as go
 
+from tonebench.errors import InputError
 from tonebench.plan.axes import GROUP_FIELDS, point_name_of_key
 from tonebench.report.run_page import sweep_plot
 from tonebench.report.run_report import flag_label, sweep_figure
@@ -52,9 +53,9 @@ class RunView:
         rows = []
         with self._database.session() as session:
             run = find_run(session, self.guid)
-            for _group, stored, _arrays, assessment in report_sweeps_with_points(session, run,
+            for group, stored, arrays, assessment in report_sweeps_with_points(session, run,
                                                                                   run.calibration_set_id, None):
-                reasons = sweep_plot(_group, _arrays, assessment).left_out_reasons()
+                reasons = sweep_plot(group, arrays, assessment).left_out_reasons()
                 for index, point in enumerate(stored):
                     flags = assessment.point_flags[index]
                     rows.append(self._point_row(point.record, in_fit=bool(assessment.fit.valid_mask[index]),
@@ -104,8 +105,6 @@ class RunView:
                       in report_sweeps_with_points(session, run, run.calibration_set_id, None)]
         chosen = [s for s in sweeps if all(value is None or _same(s[0][name], value) for name, value in wanted.items())]
         if len(chosen) != 1:
-            from tonebench.errors import InputError
-
             options = "; ".join(", ".join(f"{k}={g[k]:g}" for k in GROUP_FIELDS if g[k] is not None) for g, _, _ in sweeps)
             raise InputError(f"run {self.guid[:8]}: {len(chosen)} sweeps match {_describe(wanted)}; "
                              f"the run has: {options}")
