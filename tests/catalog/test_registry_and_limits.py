@@ -82,6 +82,18 @@ def test_judge_hand_cases():
     spaced = [rule(spacing_max_hz=2e6)]
     assert judge({"iip3_dbm": 0.0}, 2.45e9, 10e6, None, spaced)[0] == "no-limit"
     assert judge({"iip3_dbm": 0.0}, 2.45e9, 1e6, None, spaced)[0] == "fail"
+    warm = [rule(temp_min_c=20.0, temp_max_c=30.0)]
+    assert judge({"iip3_dbm": 0.0}, 2.45e9, 1e6, None, warm)[0] == "no-limit"  # no chamber: does not apply
+    assert judge({"iip3_dbm": 0.0}, 2.45e9, 1e6, None, warm, temperature_c=30.0)[0] == "fail"
+    assert judge({"iip3_dbm": 0.0}, 2.45e9, 1e6, None, warm, temperature_c=85.0)[0] == "no-limit"
+
+
+def test_judge_sweet_spot_findings_in_volts():
+    rules = [rule(parameter="sweet_spot_v", min_value=0.55, max_value=0.60), rule(id=2, min_value=-5.0)]
+    verdict, detail = judge({"sweet_spot_v": 0.6012, "window_width_v": 0.012}, 2.45e9, None, None, rules)
+    # The IIP3 limit judges results only; the finding's own parameter with four decimals in volts.
+    assert (verdict, detail) == ("fail", "sweet_spot_v (limit 1): 0.6012 V above max 0.6000")
+    assert judge({"sweet_spot_v": 0.57}, None, None, None, rules)[0] == "no-limit"  # no frequency known
 
 
 BAD_LIMITS = [
@@ -91,6 +103,8 @@ BAD_LIMITS = [
     (dict(freq_min_hz=3e9), "freq_min_hz=3e+09 is above"),
     (dict(bias_min_v=float("inf")), "bias_min_v"),
     (dict(part_number=" "), "part_number"),
+    (dict(temp_min_c=85.0, temp_max_c=-40.0), "temp_min_c=85 is above temp_max_c=-40"),
+    (dict(parameter="sweet_spot_v", spacing_max_hz=2e6), "limit sweet_spot_v: a sweet-spot finding has no single spacing"),
 ]
 
 

@@ -4,6 +4,7 @@ root-found), and the bad inputs they refuse in one line."""
 
 from __future__ import annotations
 
+import json
 import re
 
 import pytest
@@ -25,12 +26,28 @@ SPOT = r"sweet spot (\d\.\d+) V \+/- ([\d.]+) mV.*? from (\d\.\d+) to (\d\.\d+) 
 
 
 def test_search_finds_the_simulated_sweet_spot_and_window(tmp_path):
-    page = tmp_path / "bias.html"
-    result = invoke("bias", "search", PLAN, "--bench", BENCH, "--db", tmp_path / "tb.db", "--page", page)
+    page, db = tmp_path / "bias.html", tmp_path / "tb.db"
+    zero_v = FET.g3_zero_v(300.0)
+    # Limits known before the study: the sweet spot within 5 mV of the truth (holds), a window
+    # of at least 50 mV (the FET's is about 12 mV: fails); at 2.3-2.6 GHz, 20-30 degC only.
+    for args in (("sweet_spot_v", "--min", f"{zero_v - 0.005:.4f}", "--max", f"{zero_v + 0.005:.4f}"),
+                 ("window_width_v", "--min", "0.05"), ("sweet_spot_iip3_dbm", "--min", "0", "--temp-min-c", "20")):
+        added = invoke("limit", "add", "TBF-77", *args, "--freq-min-hz", "2.3e9", "--freq-max-hz", "2.6e9", "--db", db)
+        assert added.exit_code == 0, added.output
+    result = invoke("bias", "search", PLAN, "--bench", BENCH, "--db", db, "--page", page)
     assert result.exit_code == 0, result.output
+    # No chamber on this bench: the temperature-bound limit 3 does not apply.
+    assert re.search(r"spec limits: fail: window_width_v \(limit 2\): 0\.01\d\d V below min 0\.0500; "
+                     r"sweet_spot_v \(limit 1\): 0\.\d{4} V ok", result.output), result.output
+    found = json.loads(invoke("find", "--sweet-spots", "--json", "--db", db).output)
+    assert {r["kind"]: r["verdict"] for r in found} == {"dc-prediction": None, "two-tone": "fail"}
+    assert found[0]["center_hz"] == 2.45e9
+    removed = invoke("limit", "remove", "2", "--db", db)
+    assert "sweet spots pass 1" in removed.output, removed.output
+    passing = json.loads(invoke("find", "--sweet-spots", "--json", "--verdict", "pass", "--db", db).output)
+    assert [(r["kind"], r["verdict_detail"].startswith("sweet_spot_v (limit 1)")) for r in passing] == [("two-tone", True)]
     measured = re.search(r"measured at -30 dBm per tone: " + SPOT, result.output)
     predicted = re.search(r"predicted from DC: " + SPOT, result.output)
-    zero_v = FET.g3_zero_v(300.0)
     low_v, high_v = FET.iip3_window_v(15.0, 300.0)
     spot_v, bound_mv = float(measured.group(1)), float(measured.group(2))
     assert abs(spot_v - zero_v) < max(3 * bound_mv * 1e-3, 1e-3)
@@ -53,6 +70,7 @@ def test_search_finds_the_simulated_sweet_spot_and_window(tmp_path):
     assert {f.kind for f in study.findings} == {"dc-prediction", "two-tone"}
     text = page.read_text()
     assert "Linearity sweet spot: TBF-77 TBF77-0042" in text and "measured less predicted" in text
+    assert "<dt>spec limits</dt><dd>fail: window_width_v (limit 2)" in text
 
 
 def test_dc_alone_predicts_with_rf_off(tmp_path):
@@ -69,6 +87,8 @@ def test_dc_alone_predicts_with_rf_off(tmp_path):
      "give exactly one of window_threshold_dbm and window_below_peak_db"),
     (("gate_stop_v = 0.80", "gate_stop_v = 0.95"), "[bias.dc]: gate voltage 0.851 V outside the bench file's [bias]"),
     (("window_points = 81", "window_points = 80"), "window_points must be odd"),
+    (("center_freqs_hz = [2.45e9]", "center_freqs_hz = [2.4e9, 2.45e9]"),
+     "measures at one centre frequency and one spacing; the plan gives 2 and 1"),
 ])
 def test_bad_study_plans_are_one_line(tmp_path, edit, message):
     plan = tmp_path / "plan.toml"

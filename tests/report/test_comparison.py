@@ -172,7 +172,7 @@ def _add_study(session, device, created_at, findings: dict[str, float], temperat
 
     study = BiasStudy(guid=str(uuid.uuid4()), device_id=device.id, created_at=created_at, bench_name="b",
                       temp_k=None, drain_v=3.0, window_points=41, polyorder=5, step_v=1e-3, current_sigma_a=2e-7,
-                      run_guids="", temperature_c=temperature_c)
+                      run_guids="", temperature_c=temperature_c, center_hz=2.45e9)
     study.findings = [BiasFinding(kind=kind, sweet_spot_v=v, sweet_spot_bound_v=0.002, peak_iip3_dbm=20.0,
                                   window_low_v=v - 0.005, window_high_v=v + 0.006, window_bound_v=0.001, method="m")
                       for kind, v in findings.items()]
@@ -214,3 +214,37 @@ def test_the_sweet_spot_of_each_device_of_a_lot_is_drawn_with_its_window(databas
     assert sorted(measured.y) == [0.571, 0.590]
     window = next(t for t in figure.data if t.name == "window, measured two-tone")
     assert [round(b, 3) for b in window.base] == [round(y - 0.005, 3) for y in measured.y]
+    assert set(measured.marker.line.color) == {"#1f5fa8"} and figure.layout.shapes == ()  # no limits yet
+
+
+def test_sweet_spot_limits_judge_measured_spots_and_show_on_the_comparison(database):
+    import datetime as dt
+
+    from tonebench.catalog.limits import add_limit, apply_finding_verdicts
+    from tonebench.catalog.sweet_spots import find_sweet_spots
+    from tonebench.report.lot_plots import VERDICT_OUTLINES
+    from tonebench.report.sweet_spot_plots import sweet_spot_figure
+    from tonebench.store.models import Device
+
+    with session_factory(database).begin() as session:
+        part = session.query(Device.part_number).order_by(Device.id).limit(1).scalar()
+        first, second = session.query(Device).filter_by(part_number=part).order_by(Device.id).limit(2).all()
+        when = dt.datetime(2026, 11, 1, tzinfo=dt.timezone.utc)
+        _add_study(session, first, when, {"dc-prediction": 0.600, "two-tone": 0.571})
+        _add_study(session, second, when, {"two-tone": 0.590})
+        limit = add_limit(session, part, "sweet_spot_v", freq_min_hz=2.4e9, freq_max_hz=2.5e9, min_value=0.56,
+                          max_value=0.58)
+        counts = apply_finding_verdicts(session, part_number=part)
+    # Two measured spots judged (the prediction, outside the limit, is not): one in, one out.
+    assert counts == {"pass": 1, "fail": 1}
+    with session_factory(database)() as session:
+        found = find_sweet_spots(session, ResultFilter())
+        limits = {part: [LimitRule.of(limit) for limit in session.query(type(limit))]}
+    verdicts = {(r["serial"], r["kind"]): (r["verdict"], r["verdict_detail"]) for r in found}
+    assert verdicts[(second.serial, "two-tone")] == ("fail", f"sweet_spot_v (limit {limit.id}): 0.5900 V above max 0.5800")
+    assert verdicts[(first.serial, "two-tone")][0] == "pass" and verdicts[(first.serial, "dc-prediction")] == (None, None)
+    figure = sweet_spot_figure(found, limits)
+    measured = next(t for t in figure.data if t.name == "sweet spot, measured two-tone")
+    outline = dict(zip(measured.y, measured.marker.line.color))
+    assert outline == {0.571: VERDICT_OUTLINES["pass"], 0.590: VERDICT_OUTLINES["fail"]}
+    assert sorted(shape.y0 for shape in figure.layout.shapes) == [0.56, 0.58]

@@ -1,15 +1,16 @@
-"""Migration 0003 on both backends: down to 0002 drops the bias tables and columns and keeps the
+"""Migrations 0003 and 0005 on both backends: down to 0002 drops the bias tables and columns and keeps the
 points; up again restores them, matching the models; a study's rows go with it."""
 
 from __future__ import annotations
 
+import pytest
 import sqlalchemy as sa
 from alembic import command
 from test_database import drift, make_point, make_run
 
 from tonebench.store import session_factory
 from tonebench.store.database import alembic_config, database_revision
-from tonebench.store.models import BiasStudy, DcPoint, Device
+from tonebench.store.models import BiasStudy, DcPoint, Device, SpecLimit
 
 BIAS_TABLES = {"bias_studies", "dc_points", "bias_findings"}
 BIAS_COLUMNS = {"gate_read_v", "gate_current_a", "drain_read_v", "drain_current_a"}
@@ -50,3 +51,25 @@ def _device(session) -> int:
     session.add(device)
     session.flush()
     return device.id
+
+
+def test_0005_down_drops_finding_limits_and_up_judges_them_again(engine):
+    """Down to 0004: limits on sweet-spot parameters cannot live under the old constraint and go,
+    result limits stay; up again the new parameters are accepted and unknown ones still refused."""
+    with session_factory(engine)() as session:
+        session.add_all([SpecLimit(part_number="TBF-77", parameter="iip3_dbm", min_value=0.0, freq_min_hz=1e9, freq_max_hz=3e9),
+                         SpecLimit(part_number="TBF-77", parameter="sweet_spot_v", min_value=0.5, freq_min_hz=1e9,
+                                   freq_max_hz=3e9, temp_min_c=20.0)])
+        session.commit()
+    migrate(engine, "downgrade", "0004")
+    with engine.connect() as connection:
+        assert connection.execute(sa.text("SELECT parameter FROM spec_limits")).scalars().all() == ["iip3_dbm"]
+    migrate(engine, "upgrade", "head")
+    assert drift(engine) == []
+    with session_factory(engine)() as session:
+        session.add(SpecLimit(part_number="TBF-77", parameter="window_width_v", min_value=0.01, freq_min_hz=1e9,
+                              freq_max_hz=3e9))
+        session.commit()
+        session.add(SpecLimit(part_number="TBF-77", parameter="nf_db", min_value=1.0, freq_min_hz=1e9, freq_max_hz=3e9))
+        with pytest.raises(sa.exc.IntegrityError):
+            session.commit()

@@ -1,10 +1,15 @@
-"""Spec limits per part number, and the pass/fail verdict they give each stored result.
+"""Spec limits per part number, and the pass/fail verdict they give each stored result and each
+measured sweet-spot finding.
 
 A limit applies to a result when the result's device has the limit's part number, its center
-frequency lies in the limit's frequency range, and (when the limit gives them) its spacing and
-bias lie in the limit's spacing and bias ranges; all ranges inclusive. A result fails when any
+frequency lies in the limit's frequency range, and (when the limit gives them) its spacing, bias
+and chamber temperature lie in the limit's ranges; all ranges inclusive. A result fails when any
 applicable limit is broken or its parameter was not measured (a refused fit cannot show the part
 meets its limit), passes when all hold, and gets 'no-limit' when none applies.
+
+Limits on the sweet spot, its window's width and the IIP3 there judge the two-tone finding of a
+`bias search` study (at the study's centre frequency and chamber set point). The DC prediction
+is not judged: it is a gate-plane estimate, not the part measured at its input.
 """
 
 from __future__ import annotations
@@ -18,13 +23,30 @@ from sqlalchemy.orm import Session
 from sqlalchemy.orm.attributes import set_committed_value
 
 from tonebench.errors import InputError
-from tonebench.store.models import SPEC_PARAMETERS, Device, Result, Run, SpecLimit, utc_now
+from tonebench.store.models import (
+    FINDING_PARAMETERS,
+    RESULT_PARAMETERS,
+    SPEC_PARAMETERS,
+    BiasFinding,
+    BiasStudy,
+    Device,
+    Result,
+    Run,
+    SpecLimit,
+    utc_now,
+)
 
 _BATCH = 2000  # results judged and updated per round trip
 
 
 def parameter_unit(parameter: str) -> str:
+    if parameter.endswith("_v"):
+        return "V"
     return "dBm" if parameter.endswith("_dbm") else "dB"
+
+
+def _number(value: float, unit: str) -> str:
+    return f"{value:.4f}" if unit == "V" else f"{value:+.2f}"
 
 
 def add_limit(
@@ -40,9 +62,11 @@ def add_limit(
     spacing_max_hz: float | None = None,
     bias_min_v: float | None = None,
     bias_max_v: float | None = None,
+    temp_min_c: float | None = None,
+    temp_max_c: float | None = None,
     notes: str | None = None,
 ) -> SpecLimit:
-    """Store a limit after checking it; values in the parameter's unit (dBm or dB)."""
+    """Store a limit after checking it; values in the parameter's unit (dBm, dB or V)."""
     part_number = part_number.strip()
     if not part_number:
         raise InputError("limit part_number: empty; give the part number the limit is for")
@@ -50,14 +74,22 @@ def add_limit(
         raise InputError(f"limit parameter '{parameter}': unknown; allowed: {', '.join(SPEC_PARAMETERS)}")
     if min_value is None and max_value is None:
         raise InputError("limit: give a minimum, a maximum or both")
+    if parameter in FINDING_PARAMETERS:
+        given = [name for name, value in (("spacing", spacing_min_hz), ("spacing", spacing_max_hz),
+                                          ("bias", bias_min_v), ("bias", bias_max_v)) if value is not None]
+        if given:
+            raise InputError(f"limit {parameter}: a sweet-spot finding has no single {given[0]}; "
+                             "give its frequency and temperature ranges only")
     values = dict(min_value=min_value, max_value=max_value, freq_min_hz=freq_min_hz,
                   freq_max_hz=freq_max_hz, spacing_min_hz=spacing_min_hz,
-                  spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v)
+                  spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v,
+                  temp_min_c=temp_min_c, temp_max_c=temp_max_c)
     for name, value in values.items():
         if value is not None and not math.isfinite(value):
             raise InputError(f"limit {name}: {value} is not a finite number")
     for low, high in (("min_value", "max_value"), ("freq_min_hz", "freq_max_hz"),
-                      ("spacing_min_hz", "spacing_max_hz"), ("bias_min_v", "bias_max_v")):
+                      ("spacing_min_hz", "spacing_max_hz"), ("bias_min_v", "bias_max_v"),
+                      ("temp_min_c", "temp_max_c")):
         if values[low] is not None and values[high] is not None and values[low] > values[high]:
             raise InputError(f"limit {low}={values[low]:g} is above {high}={values[high]:g}; give min <= max")
     if freq_min_hz <= 0:
@@ -98,26 +130,27 @@ class LimitRule:
     spacing_max_hz: float | None = None
     bias_min_v: float | None = None
     bias_max_v: float | None = None
+    temp_min_c: float | None = None
+    temp_max_c: float | None = None
 
     @classmethod
     def of(cls, limit: SpecLimit) -> "LimitRule":
         return cls(limit.id, limit.parameter, limit.min_value, limit.max_value, limit.freq_min_hz,
                    limit.freq_max_hz, limit.spacing_min_hz, limit.spacing_max_hz, limit.bias_min_v,
-                   limit.bias_max_v)
+                   limit.bias_max_v, limit.temp_min_c, limit.temp_max_c)
 
-    def applies(self, center_hz: float, spacing_hz: float, bias_v: float | None) -> bool:
-        if not self.freq_min_hz <= center_hz <= self.freq_max_hz:
-            return False
-        if self.spacing_min_hz is not None and spacing_hz < self.spacing_min_hz:
-            return False
-        if self.spacing_max_hz is not None and spacing_hz > self.spacing_max_hz:
-            return False
-        if self.bias_min_v is not None or self.bias_max_v is not None:
-            if bias_v is None:
-                return False
-            if self.bias_min_v is not None and bias_v < self.bias_min_v:
-                return False
-            if self.bias_max_v is not None and bias_v > self.bias_max_v:
+    def applies(self, center_hz: float | None, spacing_hz: float | None, bias_v: float | None,
+                temperature_c: float | None = None) -> bool:
+        """Whether every range the limit gives holds the condition; a condition not known (no
+        bias, no chamber) is outside any range given for it."""
+        ranges = ((center_hz, self.freq_min_hz, self.freq_max_hz),
+                  (spacing_hz, self.spacing_min_hz, self.spacing_max_hz),
+                  (bias_v, self.bias_min_v, self.bias_max_v),
+                  (temperature_c, self.temp_min_c, self.temp_max_c))
+        for value, low, high in ranges:
+            if low is None and high is None:
+                continue
+            if value is None or (low is not None and value < low) or (high is not None and value > high):
                 return False
         return True
 
@@ -128,21 +161,30 @@ class LimitRule:
         if value is None:
             return False, f"{name}: not measured"
         if self.min_value is not None and value < self.min_value:
-            return False, f"{name}: {value:+.2f} {unit} below min {self.min_value:+.2f}"
+            return False, f"{name}: {_number(value, unit)} {unit} below min {_number(self.min_value, unit)}"
         if self.max_value is not None and value > self.max_value:
-            return False, f"{name}: {value:+.2f} {unit} above max {self.max_value:+.2f}"
-        return True, f"{name}: {value:+.2f} {unit} ok"
+            return False, f"{name}: {_number(value, unit)} {unit} above max {_number(self.max_value, unit)}"
+        return True, f"{name}: {_number(value, unit)} {unit} ok"
 
 
-def judge(values: dict[str, float | None], center_hz: float, spacing_hz: float, bias_v: float | None,
-          rules: list[LimitRule]) -> tuple[str, str]:
-    """(verdict, detail) of one result; values maps SPEC_PARAMETERS names to the result's values."""
-    checks = [rule.check(values.get(rule.parameter)) for rule in rules if rule.applies(center_hz, spacing_hz, bias_v)]
+def judge(values: dict[str, float | None], center_hz: float | None, spacing_hz: float | None,
+          bias_v: float | None, rules: list[LimitRule], temperature_c: float | None = None) -> tuple[str, str]:
+    """(verdict, detail) of one result or finding; values maps parameter names to its values.
+    Only the rules on the parameters in `values` are considered."""
+    checks = [rule.check(values[rule.parameter]) for rule in rules
+              if rule.parameter in values and rule.applies(center_hz, spacing_hz, bias_v, temperature_c)]
     if not checks:
-        return "no-limit", "no spec limit covers this part at this frequency, spacing and bias"
+        return "no-limit", "no spec limit covers this part at this frequency, spacing, bias and temperature"
     verdict = "pass" if all(ok for ok, _ in checks) else "fail"
     # Failures first: they are what a reader looks for.
     return verdict, "; ".join(text for ok, text in sorted(checks, key=lambda c: c[0]))
+
+
+def _rules(session: Session) -> dict[str, list[LimitRule]]:
+    rules: dict[str, list[LimitRule]] = {}
+    for limit in session.scalars(sa.select(SpecLimit)):
+        rules.setdefault(limit.part_number, []).append(LimitRule.of(limit))
+    return rules
 
 
 def apply_verdicts(session: Session, run_id: int | None = None, *, part_number: str | None = None) -> Counter:
@@ -153,11 +195,10 @@ def apply_verdicts(session: Session, run_id: int | None = None, *, part_number: 
     session get the new values too.
     """
     session.flush()
-    rules: dict[str, list[LimitRule]] = {}
-    for limit in session.scalars(sa.select(SpecLimit)):
-        rules.setdefault(limit.part_number, []).append(LimitRule.of(limit))
-    columns = [getattr(Result, name) for name in SPEC_PARAMETERS]
-    query = (sa.select(Result.id, Device.part_number, Result.center_hz, Result.spacing_hz, Result.bias_v, *columns)
+    rules = _rules(session)
+    columns = [getattr(Result, name) for name in RESULT_PARAMETERS]
+    query = (sa.select(Result.id, Device.part_number, Result.center_hz, Result.spacing_hz, Result.bias_v,
+                       Result.temperature_c, *columns)
              .join(Run, Run.id == Result.run_id).outerjoin(Device, Device.id == Run.device_id)
              .order_by(Result.id).limit(_BATCH))
     if run_id is not None:
@@ -174,13 +215,43 @@ def apply_verdicts(session: Session, run_id: int | None = None, *, part_number: 
         if not page:
             return counts
         batch = []
-        for result_id, part_number, center_hz, spacing_hz, bias_v, *values in page:
-            verdict, detail = judge(dict(zip(SPEC_PARAMETERS, values)), center_hz, spacing_hz, bias_v,
-                                    rules.get(part_number, []))
+        for result_id, part_number, center_hz, spacing_hz, bias_v, temperature_c, *values in page:
+            verdict, detail = judge(dict(zip(RESULT_PARAMETERS, values)), center_hz, spacing_hz, bias_v,
+                                    rules.get(part_number, []), temperature_c)
             counts[verdict] += 1
             batch.append({"result_id": result_id, "new_verdict": verdict, "new_detail": detail})
         _write(session, update, batch)
         last_id = page[-1][0]
+
+
+def finding_values(finding: BiasFinding) -> dict[str, float | None]:
+    """The values the FINDING_PARAMETERS limits judge."""
+    width_v = (None if finding.window_low_v is None or finding.window_high_v is None
+               else finding.window_high_v - finding.window_low_v)
+    return {"sweet_spot_v": finding.sweet_spot_v, "window_width_v": width_v,
+            "sweet_spot_iip3_dbm": finding.peak_iip3_dbm}
+
+
+def apply_finding_verdicts(session: Session, study_id: int | None = None, *,
+                           part_number: str | None = None) -> Counter:
+    """(Re)compute and store the verdict of every two-tone sweet-spot finding (of one study, of
+    one part number, or all); returns the count per verdict. Like apply_verdicts, in the
+    caller's transaction. Studies are few (one per device and temperature): read whole."""
+    session.flush()
+    rules = _rules(session)
+    query = (sa.select(BiasFinding, BiasStudy, Device.part_number).join(BiasStudy, BiasFinding.study_id == BiasStudy.id)
+             .join(Device, Device.id == BiasStudy.device_id).where(BiasFinding.kind == "two-tone"))
+    if study_id is not None:
+        query = query.where(BiasStudy.id == study_id)
+    if part_number is not None:
+        query = query.where(Device.part_number == part_number)
+    counts: Counter = Counter()
+    for finding, study, part in session.execute(query):
+        finding.verdict, finding.verdict_detail = judge(finding_values(finding), study.center_hz, None, None,
+                                                        rules.get(part, []), study.temperature_c)
+        counts[finding.verdict] += 1
+    session.flush()
+    return counts
 
 
 def _write(session: Session, update, batch: list[dict]) -> None:

@@ -1,6 +1,7 @@
 """Querying sweet-spot findings (`tonebench find --sweet-spots`): one row per stored finding of a
-study (predicted from DC or measured two-tone), with its device and temperature, filtered by
-the device fields the result queries take and by the chamber temperature."""
+study (predicted from DC or measured two-tone), with its device, temperature and (measured
+findings) spec verdict, filtered by the device fields the result queries take, the chamber
+temperature and the verdict (which keeps only measured findings: predictions are not judged)."""
 
 from __future__ import annotations
 
@@ -14,8 +15,8 @@ from tonebench.units import KELVIN_AT_0C
 
 
 _STUDY_FIELDS = ("study", "series", "part_number", "serial", "lot", "wafer", "created_at", "temperature_c",
-                 "chamber_read_c", "drain_v")
-_FINDING_COLUMNS = (*FINDING_FIELDS, "input_offset_db")
+                 "chamber_read_c", "center_hz", "drain_v")
+_FINDING_COLUMNS = (*FINDING_FIELDS, "input_offset_db", "verdict", "verdict_detail")
 SWEET_SPOT_FIELDS = (*_STUDY_FIELDS, *_FINDING_COLUMNS)
 
 
@@ -36,6 +37,8 @@ def find_sweet_spots(session: Session, flt: ResultFilter, temp_min_c: float | No
         query = query.where(BiasStudy.temperature_c >= temp_min_c)
     if temp_max_c is not None:
         query = query.where(BiasStudy.temperature_c <= temp_max_c)
+    if flt.verdicts:
+        query = query.where(BiasFinding.verdict.in_(flt.verdicts))
     query = query.order_by(BiasStudy.created_at.desc(), BiasStudy.id.desc(), BiasFinding.kind)
     if limit is not None:
         query = query.limit(limit)
@@ -46,6 +49,6 @@ def find_sweet_spots(session: Session, flt: ResultFilter, temp_min_c: float | No
             "serial": device.serial, "lot": device.lot, "wafer": device.wafer, "created_at": study.created_at,
             "temperature_c": study.temperature_c,
             "chamber_read_c": None if study.temp_k is None else study.temp_k - KELVIN_AT_0C,
-            "drain_v": study.drain_v, **{name: getattr(finding, name) for name in _FINDING_COLUMNS},
+            "center_hz": study.center_hz, "drain_v": study.drain_v, **{name: getattr(finding, name) for name in _FINDING_COLUMNS},
         })
     return rows

@@ -113,6 +113,8 @@ def say_study(study, say) -> None:
     say(f"study {study.guid}: stored with its {study.transfer.gate_v.size} DC points and findings")
     say(finding_line("predicted from DC", study.predicted))
     say(finding_line(f"measured at {study.measured.drive_tone_dbm:g} dBm per tone", study.measured))
+    if study.verdict is not None and study.verdict[0] != "no-limit":
+        say(f"spec limits: {study.verdict[0]}: {study.verdict[1]}")
     if study.input_offset_db is not None:
         say(f"predicted less measured IIP3 away from the null: {study.input_offset_db:+.2f} dB "
             f"(input match voltage gain {10 ** (study.input_offset_db / 20):.3f})")

@@ -239,28 +239,44 @@ def device_show(
 @limit_app.command("add")
 def limit_add(
     part: Annotated[str, typer.Argument(help="Part number the limit is for.")],
-    parameter: Annotated[str, typer.Argument(help="iip3_dbm, oip3_dbm, gain_db, p1db_in_dbm or iip2_dbm.")],
+    parameter: Annotated[str, typer.Argument(help="iip3_dbm, oip3_dbm, gain_db, p1db_in_dbm, iip2_dbm (results) or sweet_spot_v, window_width_v, sweet_spot_iip3_dbm (measured sweet spots).")],
     freq_min_hz: Annotated[float, typer.Option("--freq-min-hz", help="Lowest center frequency it covers (Hz).")],
     freq_max_hz: Annotated[float, typer.Option("--freq-max-hz", help="Highest center frequency it covers (Hz).")],
-    min_value: Annotated[float | None, typer.Option("--min", help="Lowest allowed value (dBm or dB).")] = None,
-    max_value: Annotated[float | None, typer.Option("--max", help="Highest allowed value (dBm or dB).")] = None,
+    min_value: Annotated[float | None, typer.Option("--min", help="Lowest allowed value (dBm, dB or V).")] = None,
+    max_value: Annotated[float | None, typer.Option("--max", help="Highest allowed value (dBm, dB or V).")] = None,
     spacing_min_hz: Annotated[float | None, typer.Option("--spacing-min-hz", help="Only from this tone spacing (Hz).")] = None,
     spacing_max_hz: Annotated[float | None, typer.Option("--spacing-max-hz", help="Only up to this tone spacing (Hz).")] = None,
     bias_min_v: Annotated[float | None, typer.Option("--bias-min-v", help="Only from this bias (V).")] = None,
     bias_max_v: Annotated[float | None, typer.Option("--bias-max-v", help="Only up to this bias (V).")] = None,
+    temp_min_c: Annotated[float | None, typer.Option("--temp-min-c", help="Only from this chamber set point (degC).")] = None,
+    temp_max_c: Annotated[float | None, typer.Option("--temp-max-c", help="Only up to this chamber set point (degC).")] = None,
     notes: Annotated[str | None, typer.Option(help="Where the limit comes from.")] = None,
     db: DbOption = None,
 ) -> None:
-    """Add a spec limit and judge the part's stored results again."""
-    from tonebench.catalog.limits import add_limit, apply_verdicts
+    """Add a spec limit and judge the part's stored results and sweet spots again."""
+    from tonebench.catalog.limits import add_limit
 
     with one_line_errors(), _session(db, write=True) as session:
         limit = add_limit(session, part, parameter, freq_min_hz=freq_min_hz, freq_max_hz=freq_max_hz,
                           min_value=min_value, max_value=max_value, spacing_min_hz=spacing_min_hz,
-                          spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v, notes=notes)
-        counts = apply_verdicts(session, part_number=limit.part_number)
-        out.print(f"limit {limit.id} added; verdicts of {limit.part_number} now: " + (", ".join(f"{k} {v}" for k, v in sorted(counts.items())) or "no results"),
+                          spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v,
+                          temp_min_c=temp_min_c, temp_max_c=temp_max_c, notes=notes)
+        out.print(f"limit {limit.id} added; verdicts of {limit.part_number} now: {_judge_part(session, limit.part_number)}",
                   highlight=False)
+
+
+def _judge_part(session, part_number: str) -> str:
+    """Judge the part's results and measured sweet spots again; the counts as one phrase."""
+    from tonebench.catalog.limits import apply_finding_verdicts, apply_verdicts
+
+    phrases = []
+    for what, counts in (("results", apply_verdicts(session, part_number=part_number)),
+                         ("sweet spots", apply_finding_verdicts(session, part_number=part_number))):
+        if counts:
+            phrases.append(f"{what} " + ", ".join(f"{k} {v}" for k, v in sorted(counts.items())))
+        elif what == "results":
+            phrases.append("no results")
+    return "; ".join(phrases)
 
 
 @limit_app.command("list")
@@ -273,7 +289,7 @@ def limit_list(
 
     with one_line_errors(), _session(db) as session:
         table = Table(title="Spec limits", box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False)
-        for column in ("Id", "Part", "Parameter", "Min", "Max", "GHz", "Spacing MHz", "Bias V", "Notes"):
+        for column in ("Id", "Part", "Parameter", "Min", "Max", "GHz", "Spacing MHz", "Bias V", "degC", "Notes"):
             table.add_column(column)
 
         def span(low, high, scale=1.0):
@@ -282,7 +298,7 @@ def limit_list(
         for l in list_limits(session, part):
             table.add_row(str(l.id), l.part_number, l.parameter, _f(l.min_value), _f(l.max_value),
                           span(l.freq_min_hz, l.freq_max_hz, 1e9), span(l.spacing_min_hz, l.spacing_max_hz, 1e6),
-                          span(l.bias_min_v, l.bias_max_v), l.notes or "")
+                          span(l.bias_min_v, l.bias_max_v), span(l.temp_min_c, l.temp_max_c), l.notes or "")
         out.print(table)
 
 
@@ -291,13 +307,13 @@ def limit_remove(
     limit_id: Annotated[int, typer.Argument(metavar="ID", help="Limit id (see `limit list`).")],
     db: DbOption = None,
 ) -> None:
-    """Remove a spec limit and judge the part's stored results again."""
-    from tonebench.catalog.limits import apply_verdicts, remove_limit
+    """Remove a spec limit and judge the part's stored results and sweet spots again."""
+    from tonebench.catalog.limits import remove_limit
 
     with one_line_errors(), _session(db, write=True) as session:
         removed = remove_limit(session, limit_id)
-        apply_verdicts(session, part_number=removed.part_number)
-        out.print(f"limit {limit_id} removed", highlight=False)
+        out.print(f"limit {limit_id} removed; verdicts of {removed.part_number} now: "
+                  f"{_judge_part(session, removed.part_number)}", highlight=False)
 
 
 # --- queries and reports ------------------------------------------------------------------------
@@ -338,26 +354,27 @@ def find(
 
 def _find_sweet_spots(flt, temp_min_c, temp_max_c, limit, as_csv, as_json, out_path, db) -> None:
     from tonebench.catalog.sweet_spots import SWEET_SPOT_FIELDS, find_sweet_spots
+    from tonebench.report.terminal import styled
 
     result_only = [name for name, value in (("--freq/--spacing/--bias ranges", flt.freq_min_hz or flt.freq_max_hz
                                               or flt.spacing_min_hz or flt.spacing_max_hz or flt.bias_min_v
                                               or flt.bias_max_v), ("--flag/--flagged", flt.flags or flt.flagged is not None),
-                                             ("--verdict", flt.verdicts), ("--tag", flt.tags)) if value]
+                                             ("--tag", flt.tags)) if value]
     if result_only:
         raise InputError(f"find --sweet-spots: {', '.join(result_only)} apply to results, not sweet spots; "
-                         "allowed: --part, --lot, --wafer, --serial, --since, --until, --temp-min-c, --temp-max-c")
+                         "allowed: --part, --lot, --wafer, --serial, --since, --until, --temp-min-c, --temp-max-c, --verdict")
     with _session(db) as session:
         rows = find_sweet_spots(session, flt, temp_min_c, temp_max_c, limit)
     if not (as_csv or as_json):
         table = Table(box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False)
-        for column in ("Part", "Serial", "degC", "From", "Spot V", "± mV", "Window mV", "Peak IIP3"):
+        for column in ("Part", "Serial", "degC", "From", "Spot V", "± mV", "Window mV", "Peak IIP3", "Verdict"):
             table.add_column(column, no_wrap=True)
         for r in rows:
             width = None if r["window_low_v"] is None else 1e3 * (r["window_high_v"] - r["window_low_v"])
             kind = "DC" if r["kind"] == "dc-prediction" else "2-tone"
             table.add_row(r["part_number"], r["serial"], _f(r["temperature_c"], ".1f"), kind,
                           f"{r['sweet_spot_v']:.4f}", _f(1e3 * r["sweet_spot_bound_v"], ".1f"), _f(width, ".1f"),
-                          _f(r["peak_iip3_dbm"]))
+                          _f(r["peak_iip3_dbm"]), styled(r["verdict"]) if r["verdict"] else "-")
         out.print(table)
         out.print(f"{len(rows)} sweet-spot findings", highlight=False)
         return

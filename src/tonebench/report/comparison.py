@@ -25,7 +25,7 @@ from tonebench.catalog.query import ResultFilter, ResultRow, find_results, lates
 from tonebench.catalog.sweet_spots import find_sweet_spots
 from tonebench.errors import InputError
 from tonebench.report.html import check_report_path, page_html, write_html_file
-from tonebench.report.lot_plots import ecdf_figure, wafer_maps
+from tonebench.report.lot_plots import LIMIT_COLOR, ecdf_figure, wafer_maps
 from tonebench.report.sweet_spot_plots import latest_per_device as spot_latest
 from tonebench.report.sweet_spot_plots import sweet_spot_figure
 from tonebench.units import format_freq
@@ -37,7 +37,6 @@ FLAGGED_COLOR = "#9a9a9a"
 SERIES_COLORS = ("#1f5fa8", "#c0561b", "#2a8a4a", "#7a4f9a", "#8a6d1f", "#b03a6a", "#3b8f9e", "#5c5c5c",
                  "#a0522d", "#4a6fd0")
 SERIES_SYMBOLS = ("circle", "square", "diamond", "triangle-up", "triangle-down", "star")
-LIMIT_COLOR = "#b22222"
 
 def _device_label(row: ResultRow) -> str:
     return f"{row.part_number} {row.serial}"
@@ -252,7 +251,7 @@ def compare_figures(rows: list[ResultRow], limits: dict[str, list[LimitRule]],
     if maps is not None:
         figures["wafer-maps"] = maps
     figures["asymmetry"] = _asymmetry(fitted)
-    spots = sweet_spot_figure(list(sweet_spots))
+    spots = sweet_spot_figure(list(sweet_spots), limits)
     if spots is not None:
         figures["sweet-spots"] = spots
     return figures

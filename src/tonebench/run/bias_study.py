@@ -36,6 +36,7 @@ from tonebench.analysis.bias_search import (
 )
 from tonebench.analysis.bias_drift import SweetSpotDrift, sweet_spot_drift
 from tonebench.analysis.transconductance import TransconductanceResult
+from tonebench.catalog.limits import apply_finding_verdicts
 from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
 from tonebench.errors import InputError
@@ -53,6 +54,7 @@ from tonebench.run.dc_transfer import DcTransfer, measure_dc_transfer
 from tonebench.run.ending import RunOutcome
 from tonebench.store.bias_store import add_study
 from tonebench.store.database import open_database, session_factory
+from tonebench.store.models import BiasFinding as StoredFinding
 from tonebench.store.models import Point, Run
 from tonebench.units import KELVIN_AT_0C
 
@@ -76,6 +78,7 @@ class BiasStudy:
     input_offset_db: float | None
     truth: list[str]  # what the simulator knows, on a simulated bench
     truth_zero_v: float | None = None  # the simulated FET's g3 zero at the DUT's temperature
+    verdict: tuple[str, str] | None = None  # the measured finding's, against the part's spec limits
 
 
 @dataclass
@@ -93,6 +96,11 @@ def study_settings(plan: LoadedPlan, origin: str):
     bias = plan.settings.bias
     if bias is None or bias.dc is None or bias.search is None:
         raise InputError(f"{origin}: `tonebench bias search` needs [bias] with its [bias.dc] and [bias.search] tables")
+    sweep = plan.settings.sweep
+    if len(sweep.center_freqs_hz) != 1 or len(sweep.spacings_hz) != 1:
+        raise InputError(f"{origin}: `tonebench bias search` measures at one centre frequency and one spacing; "
+                         f"the plan gives {len(sweep.center_freqs_hz)} and {len(sweep.spacings_hz)} "
+                         "(one study per frequency: one plan each)")
     if bias.search.drive_tone_dbm not in plan.settings.sweep.tone_levels_dbm():
         raise InputError(f"{origin}: [bias.search] drive_tone_dbm {bias.search.drive_tone_dbm:g} dBm is not one of the "
                          f"[sweep] tone levels ({', '.join(f'{v:g}' for v in plan.settings.sweep.tone_levels_dbm())})")
@@ -220,14 +228,15 @@ def _study_at(plan: LoadedPlan, plan_path: Path, plan_text: str, temp_c: float |
     offset_db = input_offset_db(points, derivatives)
     truth = simulated_truth(sims[0], measured.window_threshold_dbm) if sims else []
     temp_k = None if transfer.chamber_read_c is None else transfer.chamber_read_c + KELVIN_AT_0C
-    engine = open_database(db_url)
+    engine, verdicts = open_database(db_url), []
     try:
         study_guid = add_study(
             session_factory(engine), part_number=plan.settings.device.part_number, serial=plan.settings.device.serial,
             bench_name=bench.settings.bench.name, transfer=transfer, window_points=bias.dc.window_points,
             polyorder=bias.dc.polyorder, step_v=bias.dc.gate_step_v, run_guids=[run.guid for run in runs],
             findings=[predicted, measured], input_offset_db=offset_db, temp_k=temp_k, temperature_c=temp_c,
-            series_guid=series_guid)
+            center_hz=plan.settings.sweep.center_freqs_hz[0], series_guid=series_guid,
+            judge=lambda session, study_id: verdicts.extend(_judged(session, study_id)))
     finally:
         engine.dispose()
     truth_zero_v = None
@@ -235,7 +244,14 @@ def _study_at(plan: LoadedPlan, plan_path: Path, plan_text: str, temp_c: float |
         fet_bias = sims[0].bench.fet_bias
         truth_zero_v = fet_bias.fet.g3_zero_v(fet_bias.temp_k)
     return BiasStudy(study_guid, temp_c, temp_k, transfer, derivatives, predicted, runs, points, measured, offset_db,
-                     truth, truth_zero_v)
+                     truth, truth_zero_v, verdicts[0] if verdicts else None)
+
+
+def _judged(session, study_id: int) -> list[tuple[str, str]]:
+    """The measured finding's (verdict, detail) against the part's spec limits, stored."""
+    apply_finding_verdicts(session, study_id)
+    return [(found.verdict, found.verdict_detail) for found in session.scalars(
+        select(StoredFinding).where(StoredFinding.study_id == study_id, StoredFinding.kind == "two-tone"))]
 
 
 def simulated_truth(sim, threshold_dbm: float | None) -> list[str]:
@@ -280,6 +296,10 @@ def page_data(series: BiasSeries, plan: LoadedPlan, bias) -> BiasPageData:
     if series.drift is not None:
         summary["drift with temperature"] = (f"{series.drift.mv_per_k:+.3f} ± {series.drift.bound_mv_per_k:.3f} mV/K "
                                              f"({series.drift.method})")
+    for s in studies:
+        if s.verdict is not None and s.verdict[0] != "no-limit":
+            at = "" if s.temperature_c is None else f" at {s.temperature_c:g} degC"
+            summary[f"spec limits{at}"] = f"{s.verdict[0]}: {s.verdict[1]}"
     truth = [line for s in studies for line in s.truth]
     if series.truth_drift_mv_per_k is not None:
         truth.append(f"simulated truth: drift {series.truth_drift_mv_per_k:+.3f} mV/K")

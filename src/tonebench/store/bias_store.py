@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import uuid
+from collections.abc import Callable
 
 from sqlalchemy import select
-from sqlalchemy.orm import selectinload, sessionmaker
+from sqlalchemy.orm import Session, selectinload, sessionmaker
 
 from tonebench.store.models import BiasFinding, BiasStudy, DcPoint, Device
 
@@ -16,15 +17,16 @@ FINDING_FIELDS = ("kind", "drive_tone_dbm", "sweet_spot_v", "sweet_spot_bound_v"
 
 def add_study(sessions: sessionmaker, *, part_number: str, serial: str, bench_name: str, transfer, window_points: int,
               polyorder: int, step_v: float, run_guids: list[str], findings: list, input_offset_db: float | None,
-              temp_k: float | None = None, temperature_c: float | None = None,
-              series_guid: str | None = None) -> str:
-    """Store one study (its device must exist: its runs made it); returns the study's GUID."""
+              temp_k: float | None = None, temperature_c: float | None = None, center_hz: float | None = None,
+              series_guid: str | None = None, judge: Callable[[Session, int], object] | None = None) -> str:
+    """Store one study (its device must exist: its runs made it); returns the study's GUID.
+    `judge(session, study_id)` gives its findings their verdicts in the same transaction."""
     guid = str(uuid.uuid4())
     with sessions.begin() as session:
         device = session.scalars(select(Device).where(Device.part_number == part_number,
                                                       Device.serial == serial)).one()
         study = BiasStudy(guid=guid, device_id=device.id, bench_name=bench_name, temp_k=temp_k,
-                          temperature_c=temperature_c, series_guid=series_guid,
+                          temperature_c=temperature_c, center_hz=center_hz, series_guid=series_guid,
                           drain_v=float(transfer.drain_v), window_points=window_points, polyorder=polyorder,
                           step_v=step_v, current_sigma_a=transfer.current_sigma_a, run_guids=",".join(run_guids))
         study.dc_points = [
@@ -37,6 +39,9 @@ def add_study(sessions: sessionmaker, *, part_number: str, serial: str, bench_na
                         input_offset_db=input_offset_db if found.kind == "two-tone" else None)
             for found in findings if found is not None]
         session.add(study)
+        if judge is not None:
+            session.flush()
+            judge(session, study.id)
     return guid
 
 

@@ -11,11 +11,13 @@ from tonebench.store.models.base import (
     ANALYZER_CAUSES,
     CALIBRATION_METHODS,
     EVENT_LEVELS,
+    FINDING_PARAMETERS,
     FLAGS,
     JOB_STATUSES,
     NAMING_CONVENTION,
     OFFSET_PATHS,
     POINT_STATUSES,
+    RESULT_PARAMETERS,
     RUN_STATUSES,
     SPEC_PARAMETERS,
     VERDICTS,
@@ -43,8 +45,8 @@ from tonebench.store.models.runs import (
 )
 
 __all__ = [
-    "ANALYZER_CAUSES", "CALIBRATION_METHODS", "EVENT_LEVELS", "FLAGS", "JOB_STATUSES", "NAMING_CONVENTION",
-    "OFFSET_PATHS", "POINT_STATUSES", "RUN_STATUSES", "SPEC_PARAMETERS", "VERDICTS", "Base", "UtcDateTime",
+    "ANALYZER_CAUSES", "CALIBRATION_METHODS", "EVENT_LEVELS", "FINDING_PARAMETERS", "FLAGS", "JOB_STATUSES", "NAMING_CONVENTION",
+    "OFFSET_PATHS", "POINT_STATUSES", "RESULT_PARAMETERS", "RUN_STATUSES", "SPEC_PARAMETERS", "VERDICTS", "Base", "UtcDateTime",
     "utc_now", "Bench", "Device", "Event", "Instrument", "Offset", "Plan", "Run", "Point", "PointFlag",
     "Result", "ResultFlag", "result_group_key", "CalibrationOffset", "CalibrationSet", "SystemResidual",
     "Job", "SpecLimit", "BiasStudy", "DcPoint", "BiasFinding",

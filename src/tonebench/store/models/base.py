@@ -33,7 +33,10 @@ FLAGS = ("analyzer-limited", "source-intermod-limited", "compressed", "tone-imba
 ANALYZER_CAUSES = ("noise", "distortion", "overload")
 JOB_STATUSES = ("queued", "running", "done", "failed", "cancelled")
 VERDICTS = ("pass", "fail", "no-limit")
-SPEC_PARAMETERS = ("iip3_dbm", "oip3_dbm", "gain_db", "p1db_in_dbm", "iip2_dbm")
+# A limit judges a two-tone result's value, or a sweet-spot finding's (store/models/bias.py).
+RESULT_PARAMETERS = ("iip3_dbm", "oip3_dbm", "gain_db", "p1db_in_dbm", "iip2_dbm")
+FINDING_PARAMETERS = ("sweet_spot_v", "window_width_v", "sweet_spot_iip3_dbm")
+SPEC_PARAMETERS = RESULT_PARAMETERS + FINDING_PARAMETERS
 
 
 def utc_now() -> dt.datetime:

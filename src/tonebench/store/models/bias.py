@@ -8,7 +8,7 @@ import datetime as dt
 import sqlalchemy as sa
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
-from tonebench.store.models.base import Base, in_list, utc_now
+from tonebench.store.models.base import VERDICTS, Base, in_list, utc_now
 
 FINDING_KINDS = ("dc-prediction", "two-tone")
 
@@ -33,6 +33,7 @@ class BiasStudy(Base):
     # The studies of one device at several chamber temperatures share a series GUID.
     series_guid: Mapped[str | None] = mapped_column(sa.String(36), index=True)
     temperature_c: Mapped[float | None]  # chamber set point; temp_k holds its reading
+    center_hz: Mapped[float | None]  # the two-tone runs' centre frequency (spec limits cover a range)
 
     dc_points: Mapped[list[DcPoint]] = relationship(cascade="all, delete-orphan", order_by="DcPoint.seq")
     findings: Mapped[list[BiasFinding]] = relationship(cascade="all, delete-orphan")
@@ -53,7 +54,8 @@ class DcPoint(Base):
 
 class BiasFinding(Base):
     __tablename__ = "bias_findings"
-    __table_args__ = (sa.CheckConstraint(in_list("kind", FINDING_KINDS), name="kind"),)
+    __table_args__ = (sa.CheckConstraint(in_list("kind", FINDING_KINDS), name="kind"),
+                      sa.CheckConstraint(f"verdict IS NULL OR {in_list('verdict', VERDICTS)}", name="verdict"))
 
     id: Mapped[int] = mapped_column(primary_key=True)
     study_id: Mapped[int] = mapped_column(sa.ForeignKey("bias_studies.id", ondelete="CASCADE"), index=True)
@@ -70,3 +72,6 @@ class BiasFinding(Base):
     gain_db: Mapped[float | None]
     input_offset_db: Mapped[float | None]
     method: Mapped[str] = mapped_column(sa.Text)
+    # Against the part's spec limits on FINDING_PARAMETERS (catalog/limits.py), as results are.
+    verdict: Mapped[str | None] = mapped_column(sa.String(16))
+    verdict_detail: Mapped[str | None] = mapped_column(sa.Text)

@@ -47,7 +47,7 @@ class Job(Base):
 
 class SpecLimit(Base):
     """A datasheet-style limit for a part number: parameter within [min_value, max_value] over a
-    frequency range, optionally only for some spacings and biases."""
+    frequency range, optionally only for some spacings, biases and chamber temperatures."""
 
     __tablename__ = "spec_limits"
     __table_args__ = (sa.CheckConstraint(in_list("parameter", SPEC_PARAMETERS), name="parameter"),)
@@ -63,5 +63,7 @@ class SpecLimit(Base):
     spacing_max_hz: Mapped[float | None]
     bias_min_v: Mapped[float | None]
     bias_max_v: Mapped[float | None]
+    temp_min_c: Mapped[float | None]
+    temp_max_c: Mapped[float | None]
     created_at: Mapped[dt.datetime] = mapped_column(default=utc_now)
     notes: Mapped[str | None] = mapped_column(sa.Text)
