@@ -56,13 +56,13 @@ gate_v = [0.62]
 """
 
 
-def _run(tmp_path, bench_text=BENCH, plan_text=PLAN):
+def _run(tmp_path, bench_text=BENCH, plan_text=PLAN, held_at_c=None):
     (tmp_path / "bench.toml").write_text(bench_text)
     (tmp_path / "plan.toml").write_text(plan_text)
     started = []
     try:
         outcome = execute_run(tmp_path / "plan.toml", tmp_path / "bench.toml", f"sqlite:///{tmp_path / 'tb.db'}",
-                              tmp_path / "report.html", on_sim_started=started.append)
+                              tmp_path / "report.html", on_sim_started=started.append, held_at_c=held_at_c)
     except InputError as exc:
         return exc, started
     return outcome, started
@@ -122,6 +122,24 @@ def test_a_soak_that_never_settles_aborts_the_run_with_rf_and_bias_off(tmp_path)
     assert rf_is_off(sim)
     assert not any(supply.channel(1).output_on for supply in sim.bench.supplies.values())
     assert sim.bench.clock_s >= 1800.0  # waited on the virtual clock, not in real time
+
+
+@pytest.mark.parametrize("start_c, soaked", [(85.0, False), (84.0, True)])
+def test_a_chamber_held_at_the_callers_soak_is_not_dwelt_in_again(tmp_path, start_c, soaked):
+    """The runs of a study follow its DC sweep's soak: a chamber still within tolerance of the
+    temperature the caller soaked at waits no second dwell; one found out of it is soaked again;
+    the other temperature of the plan is soaked as always."""
+    outcome, started = _run(tmp_path, bench_text=BENCH.replace("start_c = 23.0", f"start_c = {start_c}"),
+                            held_at_c=85.0)
+    assert outcome.status == "complete", outcome.reason
+    with Session(create_engine(f"sqlite:///{tmp_path / 'tb.db'}")) as session:
+        events = [(e.kind, e.message) for e in session.scalars(select(Event).order_by(Event.id))]
+        reads = [p.chamber_read_c for p in session.scalars(select(Point).where(Point.temperature_c == 85.0))]
+    kinds = [kind for kind, _ in events]
+    assert kinds.count("soak-start") == (2 if soaked else 1) and kinds.count("soak-held") == (0 if soaked else 1)
+    assert all(abs(read_c - 85.0) <= 0.5 for read_c in reads)
+    if not soaked:
+        assert "held at 85 degC since the last soak, reads 85.00 degC" in dict(events)["soak-held"]
 
 
 @pytest.mark.parametrize("edit, message", [

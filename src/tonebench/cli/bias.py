@@ -88,8 +88,8 @@ def register_bias_commands(app: typer.Typer, run_with_progress) -> None:
             serial = load_plan(plan).settings.device.serial
             page_path = page or Path(f"bias-{serial}.html")
 
-            def execute(plan_path, bench_path, url, on_sim_started):
-                return run_with_progress(plan_path, bench_path, url, None, on_sim_started)
+            def execute(plan_path, bench_path, url, on_sim_started, held_at_c=None):
+                return run_with_progress(plan_path, bench_path, url, None, on_sim_started, held_at_c=held_at_c)
 
             say = lambda line: out.print(line, highlight=False)
             series = run_bias_study(plan, bench, db_url, page_path, execute, say)

@@ -73,11 +73,11 @@ def _with_progress(start):
 
 
 def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None, on_sim_started=None,
-                       cal_name: str | None = None):
+                       cal_name: str | None = None, held_at_c: float | None = None):
     from tonebench.run.start import execute_run
 
     return _with_progress(lambda advance: execute_run(plan, bench, db_url, report, advance, on_sim_started,
-                                                      cal_name=cal_name, on_warning=_warn))
+                                                      cal_name=cal_name, on_warning=_warn, held_at_c=held_at_c))
 
 
 # Exit codes of a run that ended without an exception (README, "Exit codes").

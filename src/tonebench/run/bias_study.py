@@ -7,8 +7,9 @@ Both two-tone runs are ordinary runs (stored, analysed, reported, resumable); th
 is the coarse plan with its [bias] table replaced by the fine gate voltages.
 
 With [sweep] temperatures_c the whole study is made at each temperature in turn (each plan has
-that one temperature, so every command soaks the chamber before it measures), the studies share
-a series GUID, and the sweet spot's drift in mV/K comes from a weighted line through them.
+that one temperature): the DC sweep soaks the chamber, the two-tone runs after it find it held
+there and wait no second dwell (a chamber found out of tolerance is soaked again). The studies
+share a series GUID, and the sweet spot's drift in mV/K comes from a weighted line through them.
 """
 
 from __future__ import annotations
@@ -158,7 +159,8 @@ def run_points(db_url: str, guid: str) -> list[Point]:
 def run_bias_study(plan_path: Path, bench_path: Path, db_url: str, page_path: Path,
                    execute: Callable[..., RunOutcome], say: Callable[[str], None] = print) -> BiasSeries:
     """The whole study, at each of the plan's temperatures in turn (or once without a chamber);
-    `execute(plan, bench, db_url, on_sim_started)` measures one plan."""
+    `execute(plan, bench, db_url, on_sim_started, held_at_c=)` measures one plan (held_at_c: the
+    temperature the chamber was just soaked at)."""
     check_report_path(page_path, "bias page path")
     plan, bench = load_plan(plan_path), load_bench(bench_path)
     origin = f"plan {plan_path}"
@@ -208,7 +210,7 @@ def _study_at(plan: LoadedPlan, plan_path: Path, plan_text: str, temp_c: float |
         transfer.gate_v, transfer.drain_current_a, transfer.current_sigma_a, bias.dc.window_points, bias.dc.polyorder,
         search.window_threshold_dbm, search.window_below_peak_db)
     say("two-tone run over the coarse gate steps")
-    coarse = execute(plan_path, bench_path, db_url, None)
+    coarse = execute(plan_path, bench_path, db_url, None, held_at_c=temp_c)
     points = drive_points(run_points(db_url, coarse.guid), search.drive_tone_dbm)
     limits = bench.settings.bias
     fine_gates = [v for v in refined_gates_v(points, search.fine_step_v, search.fine_points)
@@ -219,7 +221,7 @@ def _study_at(plan: LoadedPlan, plan_path: Path, plan_text: str, temp_c: float |
         with tempfile.TemporaryDirectory() as folder:
             fine_path = Path(folder) / f"{plan_path.stem}-fine.toml"
             fine_path.write_text(fine_plan_text(plan_text, fine_gates, bias.drain_v))
-            fine = execute(fine_path, bench_path, db_url, None)
+            fine = execute(fine_path, bench_path, db_url, None, held_at_c=temp_c)
         runs.append(fine)
         rows += run_points(db_url, fine.guid)
     points = drive_points(rows, search.drive_tone_dbm)

@@ -40,7 +40,7 @@ def watchdog_seconds(run: PreparedRun) -> float:
 
 
 def drive(run: PreparedRun, on_progress: ProgressCallback | None,
-          on_run_started: Callable[[str], None] | None) -> RunOutcome:
+          on_run_started: Callable[[str], None] | None, held_at_c: float | None = None) -> RunOutcome:
     """Measure what is left of the run with supervision, the run-time power guard and the
     watchdog; store the end truthfully; analyze and report the measured points.
 
@@ -52,7 +52,8 @@ def drive(run: PreparedRun, on_progress: ProgressCallback | None,
                               run.recorder, run.leveler, second_order=run.plan.settings.sweep.second_order,
                               unattended=run.bench.settings.unattended, log=run.log, watchdog=watchdog,
                               drain_v=plan_drain_v(run.plan.settings),
-                              target_drain_a=getattr(run.plan.settings.bias, "drain_current_a", None))
+                              target_drain_a=getattr(run.plan.settings.bias, "drain_current_a", None),
+                              held_at_c=held_at_c)
         heartbeat = Heartbeat(run.sessions, run.recorder.run_id)
 
         def progress(done: int, total: int) -> None:

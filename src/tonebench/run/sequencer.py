@@ -76,8 +76,12 @@ class Sequencer:
         watchdog: Watchdog | None = None,
         drain_v: float | None = None,
         target_drain_a: float | None = None,
+        held_at_c: float | None = None,
     ):
         self.bench = bench
+        # The caller soaked the chamber here just before this run and left it there (the runs of
+        # one `bias search` study): held within tolerance, the dwell is not waited again.
+        self.held_at_c = held_at_c
         self.drain_v = drain_v  # the plan's, else the bench file's [bias] drain_v
         self.target_drain_a = target_drain_a  # the plan's drain-current target, instead of gate voltages
         self.offsets = offsets
@@ -151,6 +155,14 @@ class Sequencer:
             return
         self.rf.set(False, False)
         limits = chamber.limits
+        if point.temperature_c == self.held_at_c:
+            chamber.set_point(point.temperature_c)
+            read_c = chamber.temperature_c()
+            if abs(read_c - point.temperature_c) <= limits.tolerance_c:
+                self._chamber_c = point.temperature_c
+                self.log.event("info", "soak-held", f"{chamber.label}: held at {point.temperature_c:g} degC since the "
+                                                    f"last soak, reads {read_c:.2f} degC: no second dwell")
+                return
         self.log.event("info", "soak-start", f"{chamber.label}: soaking at {point.temperature_c:g} degC "
                                              f"(within {limits.tolerance_c:g} degC for {limits.dwell_s:g} s, RF off)")
         try:

@@ -50,10 +50,12 @@ def execute_run(
     cal_name: str | None = None,
     on_warning: Callable[[str], None] | None = None,
     on_run_started: Callable[[str], None] | None = None,
+    held_at_c: float | None = None,
 ) -> RunOutcome:
     """Measure a plan on a bench. cal_name picks a calibration set (else the bench file's
     [bench] calibration, else its [offsets]); on_warning gets warnings before the run starts
-    (default: one line on stderr); on_run_started gets the run's GUID once it is stored.
+    (default: one line on stderr); on_run_started gets the run's GUID once it is stored;
+    held_at_c: the chamber temperature the caller has just soaked at (Sequencer).
 
     A run stopped by the bench file's on_point_failure policy or by the watchdog returns with
     status 'paused' or 'aborted' (RF off, the reason stored); Ctrl-C, SIGTERM and errors raise;
@@ -64,7 +66,7 @@ def execute_run(
     with ExitStack() as stack:
         checked = _check_and_connect(stack, files, db_url, cal_name, on_sim_started, on_warning or print_warning)
         prepared = _store_start(stack, files, checked, db_url, report_path, on_warning or print_warning)
-        return drive(prepared, on_progress, on_run_started)
+        return drive(prepared, on_progress, on_run_started, held_at_c)
 
 
 @dataclass
