@@ -235,3 +235,27 @@ def test_degenerated_sweet_spot_moves_to_where_the_exact_g3_prime_is_zero():
     assert pred.sweet_spot_v[0] == pytest.approx(exact, abs=1e-3)
     assert pred.shift_v[0] == pytest.approx(exact - sweet_spots(r)[0].gate_v, abs=1e-3)
     assert np.all(np.isfinite(pred.iip3_dbm[np.abs(pred.g3) > 0]))
+
+
+def test_an_inductor_fills_the_null_in_rather_than_moving_it_to_the_sweep_end():
+    """With a reactive Zs the quadrature term 2 g2^2 Zs is added where g3 vanishes: a small
+    inductance leaves a dip at the undegenerated zero, a larger one none at all (the least |g3'|
+    then sits at the sweep's end, where it is no sweet spot). The DC sweep is the simulated FET's;
+    the reference its closed-form g1..g3 (sim/fet.py, checked against sympy in tests/sim)."""
+    from tonebench.sim.fet import SimFet
+
+    fet, gate_v = SimFet(), np.round(np.arange(0.40, 0.8005, 0.001), 6)
+    series = [fet.series(float(v), 300.0) for v in gate_v]
+    r = transconductance(gate_v, np.array([s.drain_a for s in series]), sigma_a=0.0, window_points=81)
+    kept = np.isin(gate_v, r.gate_v)
+    exact = [np.array([float(getattr(s, name)) for s in series])[kept] for name in ("g1_s", "g2_a_per_v2", "g3_a_per_v3")]
+    for inductance_h, dips in ((1e-12, 1), (1e-9, 0)):
+        z = inductor_ohm(inductance_h, 2.45e9)
+        pred = degenerate(r, z)
+        exact_g3 = np.abs(np.asarray(degenerated_coefficients(*exact, z)[2]))
+        assert len(pred.sweet_spot_v) == dips, (inductance_h, pred.sweet_spot_v)
+        if dips:
+            assert pred.sweet_spot_v[0] == pytest.approx(fet.g3_zero_v(300.0), abs=2e-3)
+            assert pred.sweet_spot_v[0] == pytest.approx(float(r.gate_v[np.argmin(exact_g3)]), abs=2e-3)
+        else:  # the exact |g3'| has its least value at an end of the sweep: no interior null
+            assert int(np.argmin(exact_g3)) in (0, exact_g3.size - 1)

@@ -20,6 +20,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.signal import find_peaks
 
 from tonebench.analysis.transconductance import TransconductanceResult, predicted_iip3_dbm
 from tonebench.errors import InputError
@@ -43,7 +44,10 @@ class DegeneratedPrediction:
     """Degenerated coefficients and predicted IIP3 (dBm) at gate_v, and the sweet spots (V).
 
     sweet_spot_v: for a resistor, every sign change of g3' (linear interpolation); for a complex
-    Zs, g3' is complex and need not pass through zero, so it holds the gate voltage of least |g3'|.
+    Zs, g3' is complex and need not pass through zero, so it holds the dips of |g3'| inside the
+    sweep (at least NULL_DEPTH_DB deep on both sides). The quadrature 2 g2^2 Zs term fills the
+    null in as the reactance grows: then there is none, rather than the end of the sweep where
+    |g3'| merely keeps falling.
     shift_v: each sweet spot less the nearest undegenerated one (None where either is missing).
     """
 
@@ -54,6 +58,17 @@ class DegeneratedPrediction:
     iip3_dbm: np.ndarray
     sweet_spot_v: list[float]
     shift_v: list[float] | None
+
+
+NULL_DEPTH_DB = 3.0  # a dip of |g3'| shallower than this is a slope's wobble, not a null
+
+
+def _dips(v: np.ndarray, g3: np.ndarray) -> list[float]:
+    """Interior minima of |g3'| with NULL_DEPTH_DB of prominence (scipy's find_peaks on -dB)."""
+    with np.errstate(divide="ignore"):
+        level_db = 20.0 * np.log10(np.abs(g3))
+    found, _ = find_peaks(-level_db, prominence=NULL_DEPTH_DB)
+    return [float(v[i]) for i in found]
 
 
 def _real_zeros(v: np.ndarray, g3: np.ndarray) -> list[float]:
@@ -80,7 +95,7 @@ def degenerate(
     if z.imag == 0.0:
         spots = _real_zeros(v, g3.real)
     else:
-        spots = [float(v[int(np.argmin(np.abs(g3)))])]
+        spots = _dips(v, g3)
     before = _real_zeros(v, result.g3)
     shifts = None
     if spots and before:

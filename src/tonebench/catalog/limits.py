@@ -45,7 +45,7 @@ def parameter_unit(parameter: str) -> str:
     return "dBm" if parameter.endswith("_dbm") else "dB"
 
 
-def _number(value: float, unit: str) -> str:
+def format_limit_value(value: float, unit: str) -> str:
     return f"{value:.4f}" if unit == "V" else f"{value:+.2f}"
 
 
@@ -161,10 +161,10 @@ class LimitRule:
         if value is None:
             return False, f"{name}: not measured"
         if self.min_value is not None and value < self.min_value:
-            return False, f"{name}: {_number(value, unit)} {unit} below min {_number(self.min_value, unit)}"
+            return False, f"{name}: {format_limit_value(value, unit)} {unit} below min {format_limit_value(self.min_value, unit)}"
         if self.max_value is not None and value > self.max_value:
-            return False, f"{name}: {_number(value, unit)} {unit} above max {_number(self.max_value, unit)}"
-        return True, f"{name}: {_number(value, unit)} {unit} ok"
+            return False, f"{name}: {format_limit_value(value, unit)} {unit} above max {format_limit_value(self.max_value, unit)}"
+        return True, f"{name}: {format_limit_value(value, unit)} {unit} ok"
 
 
 def judge(values: dict[str, float | None], center_hz: float | None, spacing_hz: float | None,

@@ -286,20 +286,30 @@ def limit_list(
 ) -> None:
     """List spec limits."""
     from tonebench.catalog.limits import list_limits
+    from tonebench.report.terminal import fitted_table
+
+    def span(low, high, scale=1.0):
+        return "any" if low is None and high is None else f"{_f(low and low / scale, 'g')}..{_f(high and high / scale, 'g')}"
 
     with one_line_errors(), _session(db) as session:
-        table = Table(title="Spec limits", box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False)
-        for column in ("Id", "Part", "Parameter", "Min", "Max", "GHz", "Spacing MHz", "Bias V", "degC", "Notes"):
-            table.add_column(column)
+        rows = [{"Id": str(l.id), "Part": l.part_number, "Parameter": l.parameter, "Min": _limit_value(l.min_value, l.parameter),
+                 "Max": _limit_value(l.max_value, l.parameter), "GHz": span(l.freq_min_hz, l.freq_max_hz, 1e9),
+                 "Spacing MHz": span(l.spacing_min_hz, l.spacing_max_hz, 1e6), "Bias V": span(l.bias_min_v, l.bias_max_v),
+                 "degC": span(l.temp_min_c, l.temp_max_c), "Notes": l.notes or ""}
+                for l in list_limits(session, part)]
+        if not any(row["Notes"] for row in rows):
+            rows = [{c: v for c, v in row.items() if c != "Notes"} for row in rows]
+        out.print(fitted_table(out, "Spec limits", rows, _LIMIT_PRIORITIES, wrapping=("Notes",)))
 
-        def span(low, high, scale=1.0):
-            return "any" if low is None and high is None else f"{_f(low and low / scale, 'g')}..{_f(high and high / scale, 'g')}"
 
-        for l in list_limits(session, part):
-            table.add_row(str(l.id), l.part_number, l.parameter, _f(l.min_value), _f(l.max_value),
-                          span(l.freq_min_hz, l.freq_max_hz, 1e9), span(l.spacing_min_hz, l.spacing_max_hz, 1e6),
-                          span(l.bias_min_v, l.bias_max_v), span(l.temp_min_c, l.temp_max_c), l.notes or "")
-        out.print(table)
+def _limit_value(value: float | None, parameter: str) -> str:
+    from tonebench.catalog.limits import format_limit_value, parameter_unit
+
+    return "-" if value is None else format_limit_value(value, parameter_unit(parameter))
+
+
+_LIMIT_PRIORITIES = {"Id": 9, "Part": 9, "Parameter": 9, "Min": 9, "Max": 9, "GHz": 8, "Spacing MHz": 5, "Bias V": 5,
+                     "degC": 6, "Notes": 3}
 
 
 @limit_app.command("remove")
@@ -354,7 +364,7 @@ def find(
 
 def _find_sweet_spots(flt, temp_min_c, temp_max_c, limit, as_csv, as_json, out_path, db) -> None:
     from tonebench.catalog.sweet_spots import SWEET_SPOT_FIELDS, find_sweet_spots
-    from tonebench.report.terminal import styled
+    from tonebench.report.terminal import fitted_table, styled
 
     result_only = [name for name, value in (("--freq/--spacing/--bias ranges", flt.freq_min_hz or flt.freq_max_hz
                                               or flt.spacing_min_hz or flt.spacing_max_hz or flt.bias_min_v
@@ -366,19 +376,20 @@ def _find_sweet_spots(flt, temp_min_c, temp_max_c, limit, as_csv, as_json, out_p
     with _session(db) as session:
         rows = find_sweet_spots(session, flt, temp_min_c, temp_max_c, limit)
     if not (as_csv or as_json):
-        table = Table(box=box.SIMPLE_HEAD, padding=(0, 1), pad_edge=False)
-        for column in ("Part", "Serial", "degC", "From", "Spot V", "± mV", "Window mV", "Peak IIP3", "Verdict"):
-            table.add_column(column, no_wrap=True)
+        cells = []
         for r in rows:
             width = None if r["window_low_v"] is None else 1e3 * (r["window_high_v"] - r["window_low_v"])
-            kind = "DC" if r["kind"] == "dc-prediction" else "2-tone"
-            table.add_row(r["part_number"], r["serial"], _f(r["temperature_c"], ".1f"), kind,
-                          f"{r['sweet_spot_v']:.4f}", _f(1e3 * r["sweet_spot_bound_v"], ".1f"), _f(width, ".1f"),
-                          _f(r["peak_iip3_dbm"]), styled(r["verdict"]) if r["verdict"] else "-")
-        out.print(table)
-        out.print(f"{len(rows)} sweet-spot findings", highlight=False)
+            cells.append({"Part": r["part_number"], "Serial": r["serial"], "degC": _f(r["temperature_c"], ".1f"),
+                          "From": "DC" if r["kind"] == "dc-prediction" else "2-tone", "Spot V": f"{r['sweet_spot_v']:.4f}",
+                          "± mV": _f(1e3 * r["sweet_spot_bound_v"], ".1f"), "Window mV": _f(width, ".1f"),
+                          "Peak IIP3": _f(r["peak_iip3_dbm"]), "Verdict": styled(r["verdict"]) if r["verdict"] else "-"})
+        out.print(fitted_table(out, f"{len(rows)} sweet-spot findings", cells, _SPOT_PRIORITIES))
         return
     _write_export(rows, SWEET_SPOT_FIELDS, as_json, out_path)
+
+
+_SPOT_PRIORITIES = {"Part": 8, "Serial": 10, "degC": 9, "From": 10, "Spot V": 10, "± mV": 9, "Window mV": 9,
+                    "Peak IIP3": 7, "Verdict": 10}
 
 
 def compare(

@@ -201,7 +201,8 @@ def what_if_figure(data: BiasPageData, sweep: DcSweep) -> go.Figure:
                                name="no degeneration", line=dict(color=PREDICTED_COLOR)))
     for (label, z_ohm), color in zip(data.what_if_ohm, WHAT_IF_COLORS):
         what_if = degenerate(result, z_ohm, data.source_ohm)
-        spots = ", ".join(f"{v:.4f} V" for v in what_if.sweet_spot_v[:3]) or "none in range"
+        none = "none: the null is filled in" if complex(z_ohm).imag else "none in range"
+        spots = ", ".join(f"{v:.4f} V" for v in what_if.sweet_spot_v[:3]) or none
         if len(what_if.sweet_spot_v) > 3:
             spots += f" and {len(what_if.sweet_spot_v) - 3} more"
         fig.add_trace(go.Scatter(x=result.gate_v, y=what_if.iip3_dbm, mode="lines", line=dict(color=color),

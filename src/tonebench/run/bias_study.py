@@ -25,6 +25,7 @@ from pathlib import Path
 import numpy as np
 from sqlalchemy import select
 
+from tonebench.analysis.bias_drift import SweetSpotDrift, sweet_spot_drift
 from tonebench.analysis.bias_search import (
     DrivePoints,
     SweetSpotFinding,
@@ -35,7 +36,7 @@ from tonebench.analysis.bias_search import (
     predicted_sweet_spot,
     refined_gates_v,
 )
-from tonebench.analysis.bias_drift import SweetSpotDrift, sweet_spot_drift
+from tonebench.analysis.degeneration import inductor_ohm
 from tonebench.analysis.transconductance import TransconductanceResult
 from tonebench.catalog.limits import apply_finding_verdicts
 from tonebench.config.bench_file import LoadedBench, load_bench
@@ -57,7 +58,7 @@ from tonebench.store.bias_store import add_study
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import BiasFinding as StoredFinding
 from tonebench.store.models import Point, Run
-from tonebench.units import KELVIN_AT_0C
+from tonebench.units import KELVIN_AT_0C, format_freq
 
 _TABLE_HEADER = re.compile(r"^\s*\[+\s*([A-Za-z0-9_.\-\" ]+?)\s*\]+\s*(#.*)?$")
 _TEMPERATURES_LINE = re.compile(r"^\s*temperatures_c\s*=\s*([^#]*)")
@@ -283,6 +284,7 @@ def _finding(found: SweetSpotFinding | None, offset_db: float | None, temp_k: fl
 
 def page_data(series: BiasSeries, plan: LoadedPlan, bias) -> BiasPageData:
     device = plan.settings.device
+    center_hz = plan.settings.sweep.center_freqs_hz[0]
     studies = series.studies
     first = studies[0]
     summary = {
@@ -316,5 +318,6 @@ def page_data(series: BiasSeries, plan: LoadedPlan, bias) -> BiasPageData:
                                s.points.at_floor) for s in studies],
         findings=[f for s in studies for f in _finding(s.predicted, None, s.temp_k)
                   + _finding(s.measured, s.input_offset_db, s.temp_k)],
-        what_if_ohm=(("5 ohm", 5.0), ("10 ohm", 10.0)),
+        what_if_ohm=(("5 ohm", 5.0), ("10 ohm", 10.0),
+                     (f"1 nH at {format_freq(center_hz)}", inductor_ohm(1e-9, center_hz))),
     )
