@@ -46,3 +46,16 @@ def format_freq(freq_hz: float, decimals: int | None = None) -> str:
     else:
         value, unit = freq_hz, "Hz"
     return f"{value:.{decimals}f} {unit}" if decimals is not None else f"{value:g} {unit}"
+
+
+def format_duration(seconds: float) -> str:
+    """A time span as one reads it: '25 ms', '7.2 s', '12 min 5 s', '3 h 20 min'."""
+    if seconds < 1.0:
+        return f"{seconds * 1e3:.3g} ms"
+    if seconds < 60.0:
+        return f"{seconds:.3g} s"
+    minutes, rest_s = divmod(round(seconds), 60)
+    if minutes < 60:
+        return f"{minutes} min {rest_s} s" if rest_s else f"{minutes} min"
+    hours, minutes = divmod(minutes, 60)
+    return f"{hours} h {minutes} min" if minutes else f"{hours} h"

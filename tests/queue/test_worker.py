@@ -59,9 +59,9 @@ def sessions_for(url: str):
 
 def test_add_list_cancel_and_claim_order(tmp_path, sqlite_url):
     sessions = sessions_for(sqlite_url)
-    first = add_job(sessions, small_plan(tmp_path, "first"), BENCH)
-    urgent = add_job(sessions, small_plan(tmp_path, "urgent"), BENCH, priority=5)
-    dropped = add_job(sessions, small_plan(tmp_path, "dropped"), BENCH)
+    first, _ = add_job(sessions, small_plan(tmp_path, "first"), BENCH)
+    urgent, _ = add_job(sessions, small_plan(tmp_path, "urgent"), BENCH, priority=5)
+    dropped, _ = add_job(sessions, small_plan(tmp_path, "dropped"), BENCH)
     assert [job.plan_name for job in list_jobs(sessions)] == ["urgent", "first", "dropped"]
     assert cancel_job(sessions, dropped.guid[:8]).status == "cancelled"
     with pytest.raises(InputError, match="already cancelled"):
@@ -96,7 +96,7 @@ def test_cli_queue_commands(tmp_path, sqlite_url):
 
 def test_worker_runs_the_queue_in_order_and_links_each_run(tmp_path, sqlite_url):
     sessions = sessions_for(sqlite_url)
-    jobs = [add_job(sessions, small_plan(tmp_path, f"night-{n}"), BENCH) for n in range(2)]
+    jobs = [add_job(sessions, small_plan(tmp_path, f"night-{n}"), BENCH)[0] for n in range(2)]
     seen = []
     worker = Worker(sqlite_url, BENCH, on_job=lambda what, job, detail: seen.append((what, job.guid)),
                     report_dir=tmp_path)
@@ -127,7 +127,7 @@ def test_one_worker_per_sqlite_file(tmp_path, sqlite_url):
 
 def test_cancelling_a_running_job_stops_its_run(tmp_path, sqlite_url):
     sessions = sessions_for(sqlite_url)
-    job = add_job(sessions, small_plan(tmp_path, "long", start=-40.0, stop=-8.0), BENCH)
+    job, _ = add_job(sessions, small_plan(tmp_path, "long", start=-40.0, stop=-8.0), BENCH)
     worker = Worker(sqlite_url, BENCH)
     thread = threading.Thread(target=worker.run, kwargs={"until_empty": True})
     thread.start()
@@ -182,7 +182,7 @@ def test_racing_claimers_on_postgresql_never_share_a_job(tmp_path, postgres_url)
 
 def test_two_worker_processes_on_postgresql_run_each_job_once(tmp_path, postgres_url):
     sessions = sessions_for(postgres_url)
-    jobs = [add_job(sessions, small_plan(tmp_path, f"pg-{n}"), BENCH) for n in range(6)]
+    jobs = [add_job(sessions, small_plan(tmp_path, f"pg-{n}"), BENCH)[0] for n in range(6)]
     command = [sys.executable, "-m", "tonebench", "worker", "--bench", str(BENCH), "--db", postgres_url,
                "--until-empty", "--reports", str(tmp_path)]
     workers = [subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True) for _ in range(2)]
@@ -204,7 +204,7 @@ def test_a_worker_killed_mid_run_is_taken_over_and_its_run_resumed(tmp_path, sql
     import signal
 
     sessions = sessions_for(sqlite_url)
-    job = add_job(sessions, small_plan(tmp_path, "overnight", start=-40.0, stop=-8.0), BENCH)
+    job, _ = add_job(sessions, small_plan(tmp_path, "overnight", start=-40.0, stop=-8.0), BENCH)
     killed = subprocess.Popen([sys.executable, "-m", "tonebench", "worker", "--bench", str(BENCH), "--db", sqlite_url,
                                "--until-empty"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     deadline = time.monotonic() + 120

@@ -11,6 +11,7 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass
 
+import numpy as np
 import pytest
 from conftest import SAMPLE_RUNS
 
@@ -200,9 +201,8 @@ def test_state_is_kept_per_sweep(outcome):
     assert set(sweeps) == {(None, center_hz, 1.0e6, None) for center_hz in CENTERS_HZ}
     for (_, center_hz, spacing_hz, _), state in sweeps.items():
         assert state.top_dbm == -26.0 and state.step_levels_dbm == frozenset({-28.0, -26.0})
-        top = next(r for r in outcome.records.values() if r.center_hz == center_hz and r.tone_dbm == -26.0)
-        below = next(r for r in outcome.records.values() if r.center_hz == center_hz and r.tone_dbm == -28.0)
-        assert state.accepted == [(below.raw_f1_dbm, below.raw_f2_dbm, -28.0), (top.raw_f1_dbm, top.raw_f2_dbm, -26.0)]
+        records = sorted((r for r in outcome.records.values() if r.center_hz == center_hz), key=lambda r: r.tone_dbm)
+        assert state.accepted == [(r.raw_f1_dbm, r.raw_f2_dbm, r.tone_dbm) for r in records]  # -30, -28, -26 dBm
 
 
 def test_sweep_states_group_by_sweep_and_pick_the_top_levels():
@@ -224,7 +224,29 @@ def test_a_sweep_predicts_its_next_tones_from_its_last_two_points():
     state.accept(-0.5, -1.0, -18.0)  # f1 grew 1.5 dB, f2 2 dB over the 2 dB step
     assert state.expected_tones_dbm(-16.0) == (1.0, 1.0)
     state.accept(0.5, 0.0, -16.0)
-    assert state.accepted == [(-0.5, -1.0, -18.0), (0.5, 0.0, -16.0)]  # the last two only
+    # Three points: the parabola through them (f1 gains 1.5 then 1 dB per 2 dB: bending over).
+    assert state.expected_tones_dbm(-14.0) == pytest.approx((1.0, 0.0))
+    state.accept(1.0, 0.0, -14.0)
+    assert state.accepted == [(-0.5, -1.0, -18.0), (0.5, 0.0, -16.0), (1.0, 0.0, -14.0)]  # the last three only
+
+
+def test_a_compressing_sweep_is_followed_without_repeat_reads():
+    """Tones through a smooth compression curve (Rapp-like, from memory: Pout = Pin + G -
+    10 log10(1 + 10^((Pin - Psat)/10))): beyond the third point the parabola predicts each next
+    reading within 0.1 dB at 2 dB steps, where the line through two would miss by more."""
+    def out_dbm(pin_dbm):
+        return pin_dbm + 15.0 - 10 * np.log10(1 + 10 ** ((pin_dbm + 17.0) / 10))
+    state = SweepState(top_dbm=0.0, step_levels_dbm=frozenset())
+    misses_line = 0
+    for pin in np.arange(-30.0, -6.0, 2.0):
+        expected = state.expected_tones_dbm(pin)
+        if len(state.accepted) == 3:
+            assert abs(expected[0] - out_dbm(pin)) < 0.1
+            (_, _, t1), (f1b, _, t2) = state.accepted[-2], state.accepted[-1]
+            line = f1b + (f1b - state.accepted[-2][0]) / (t2 - t1) * (pin - t2)
+            misses_line += abs(line - out_dbm(pin)) > 0.1
+        state.accept(out_dbm(pin), out_dbm(pin), pin)
+    assert misses_line >= 3
 
 
 def test_plan_order_is_sweep_by_sweep(outcome):

@@ -77,13 +77,14 @@ def test_new_database_gets_all_tables_and_head(engine):
     assert database_revision(engine) == schema_head()
 
 
-def test_sqlite_runs_in_wal_mode_with_foreign_keys(engine):
+def test_sqlite_runs_in_wal_mode_with_foreign_keys_and_normal_sync(engine):
     if engine.dialect.name != "sqlite":
         pytest.skip("SQLite pragmas")
     with engine.connect() as connection:
         assert connection.exec_driver_sql("PRAGMA journal_mode").scalar() == "wal"
         assert connection.exec_driver_sql("PRAGMA foreign_keys").scalar() == 1
         assert connection.exec_driver_sql("PRAGMA busy_timeout").scalar() > 0
+        assert connection.exec_driver_sql("PRAGMA synchronous").scalar() == 1  # NORMAL
 
 
 def test_migration_matches_models(engine):

@@ -11,9 +11,16 @@ from rich.text import Text
 from tonebench.cli.bench import register_bench_commands
 from tonebench.cli.bias import register_bias_commands
 from tonebench.cli.calibration import cal_app
-from tonebench.cli.progress import StepProgress
 from tonebench.cli.catalog import register_catalog_commands
-from tonebench.cli.common import DbOption, configure_logging, database, err, one_line_errors, out
+from tonebench.cli.common import (
+    DbOption,
+    configure_logging,
+    database,
+    err,
+    one_line_errors,
+    out,
+)
+from tonebench.cli.progress import StepProgress
 from tonebench.cli.queue import register_queue_commands
 from tonebench.config.database_location import describe as describe_database
 from tonebench.errors import InputError
@@ -77,7 +84,9 @@ def _run_with_progress(plan: Path, bench: Path, db_url: str, report: Path | None
     from tonebench.run.start import execute_run
 
     return _with_progress(lambda advance: execute_run(plan, bench, db_url, report, advance, on_sim_started,
-                                                      cal_name=cal_name, on_warning=_warn, held_at_c=held_at_c))
+                                                      cal_name=cal_name, on_warning=_warn, held_at_c=held_at_c,
+                                                      on_estimate=lambda estimate: out.print(estimate.line(),
+                                                                                             highlight=False)))
 
 
 # Exit codes of a run that ended without an exception (README, "Exit codes").
@@ -112,6 +121,8 @@ def _say_outcome(outcome) -> None:
     out.print(f"database: {describe_database(outcome.db_url)}", highlight=False)
     if outcome.calibration:
         out.print(f"calibration: {outcome.calibration}", highlight=False)
+    if outcome.bench_time is not None:
+        out.print(outcome.bench_time.line(), highlight=False)
     if outcome.report_path is not None:
         out.print(f"report:   {outcome.report_path}")
         _print_results(outcome.results)
@@ -137,12 +148,37 @@ def run(
     db: DbOption = None,
     report: Annotated[Path | None, typer.Option(help="Write the HTML report here (default: report-<run>.html beside the database).")] = None,
     cal: CalOption = None,
+    dry_run: Annotated[bool, typer.Option("--dry-run", help="Check the plan against the bench files and print each point's settings and the bench time; connect nothing, write nothing.")] = False,
 ) -> None:
     """Measure a plan on a bench, store every point, fit intercepts and write a report."""
     with one_line_errors():
         db_url = database(db)
+        if dry_run:
+            _dry_run(plan, bench, db_url, cal)
+            return
         outcome = _run_with_progress(plan, bench, db_url, report, cal_name=cal)
         _say_outcome(outcome)
+
+
+def _dry_run(plan_path: Path, bench_path: Path, db_url: str, cal_name: str | None) -> None:
+    from tonebench.config.bench_file import load_bench
+    from tonebench.config.plan_file import load_plan
+    from tonebench.report.terminal import fitted_table
+    from tonebench.run.preflight import point_settings, preflight
+    from tonebench.store.database import open_database, session_factory
+
+    plan, bench = load_plan(plan_path), load_bench(bench_path)
+    sessions = None
+    if cal_name or bench.settings.bench.calibration:  # a stored calibration set: read, never written
+        sessions = session_factory(open_database(db_url, upgrade=False, read_only=True))
+    checked = preflight(plan, bench, sessions, cal_name)
+    rows = point_settings(checked)
+    priorities = {"Point": 10, "Source 1 dBm": 6, "Source 2 dBm": 5, "Analyzer in dBm": 7, "Atten dB": 8,
+                  "RBW Hz": 8, "Sweeps": 9, "Sweep time": 9}
+    out.print(fitted_table(out, f"{plan.settings.plan.name} on {bench.settings.bench.name}: {len(rows)} points, "
+                                "settings predicted from the expected gain", rows, priorities))
+    out.print(checked.estimate().line(), highlight=False)
+    out.print("dry run: nothing connected, nothing switched on, nothing written", highlight=False)
 
 
 @app.command()

@@ -39,8 +39,9 @@ def _register_job_commands(queue_app: typer.Typer) -> None:
         from tonebench.queue.jobs import add_job
 
         with one_line_errors():
-            job = add_job(_sessions(db), plan, bench, priority)
+            job, estimate = add_job(_sessions(db), plan, bench, priority)
             out.print(f"job {job.guid} queued for bench {job.bench_name}: {job.plan_name}", highlight=False)
+            out.print(estimate.line(), highlight=False)
 
     @queue_app.command("list")
     def queue_list(

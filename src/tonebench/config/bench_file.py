@@ -173,6 +173,9 @@ class ChamberLimits(StrictModel):
     dwell_s: float = Field(default=300.0, ge=0.0, le=86400.0)
     timeout_s: float = Field(default=3600.0, gt=0.0, le=7 * 86400.0)
     poll_s: float = Field(default=10.0, gt=0.0, le=600.0)
+    # How fast the chamber gets to a new set point, for the bench-time estimate only (the soak
+    # itself waits for the reading); left out, the estimate counts the dwells alone.
+    ramp_c_per_min: float | None = Field(default=None, gt=0.0, le=100.0)
 
     @model_validator(mode="after")
     def _ordered(self) -> "ChamberLimits":

@@ -22,6 +22,8 @@ KNOWN_LIMITS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
 # keys (config/bench_file.py reads ANALYZER_PERFORMANCE_KEYS).
 KNOWN_PERFORMANCE: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "analyzer": (("mixer_toi_dbm", "danl_dbm_per_hz", "sweep_time_factor"), ("level_accuracy_db",)),
+    # How long a new frequency or level takes to be in force: the bench-time estimate's share.
+    "source": ((), ("settle_time_s",)),
 }
 ANALYZER_PERFORMANCE_KEYS: tuple[str, ...] = sum(KNOWN_PERFORMANCE["analyzer"], ())
 KNOWN_STATUS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {"analyzer": (("overload_bit",), ())}

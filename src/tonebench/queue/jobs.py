@@ -18,11 +18,8 @@ from sqlalchemy.orm import Session, sessionmaker
 from tonebench.config.bench_file import load_bench
 from tonebench.config.plan_file import load_plan
 from tonebench.errors import InputError
-from tonebench.instruments.dialect import load_dialect
-from tonebench.instruments.open_bench import bench_freq_ranges
-from tonebench.plan.limits import SourceRange, check_plan, check_plan_parts, check_plan_frequencies
-from tonebench.plan.points import expand
-from tonebench.run.calibration_choice import choose_calibration
+from tonebench.run.bench_time import BenchTimeEstimate
+from tonebench.run.preflight import preflight
 from tonebench.store.models import Job, Run, utc_now
 from tonebench.store.ownership import owner_is_alive
 
@@ -62,11 +59,14 @@ def _view(job: Job) -> JobView:
                    job.claimed_by, job.run.guid if job.run else None, job.message)
 
 
-def add_job(sessions: sessionmaker, plan_path: Path, bench_path: Path, priority: int = 0) -> JobView:
-    """Queue `plan_path` for the bench named in `bench_path`; both files are checked first."""
+def add_job(sessions: sessionmaker, plan_path: Path, bench_path: Path,
+            priority: int = 0) -> tuple[JobView, BenchTimeEstimate]:
+    """Queue `plan_path` for the bench named in `bench_path`; both files are checked first (the
+    run's pre-flight checks from the files: a plan that would be refused at run time is refused
+    now, not at 3 am). Returns the job and the bench time its plan takes."""
     plan = load_plan(plan_path)
     bench = load_bench(bench_path)
-    _check_limits(plan, bench, sessions)
+    estimate = preflight(plan, bench, sessions).estimate()
     with sessions.begin() as session:
         job = Job(
             guid=str(uuid.uuid4()),
@@ -81,25 +81,7 @@ def add_job(sessions: sessionmaker, plan_path: Path, bench_path: Path, priority:
         )
         session.add(job)
         session.flush()
-        return _view(job)
-
-
-def _check_limits(plan, bench, sessions: sessionmaker) -> None:
-    """The pre-flight checks of a run, from the dialect files (no bench connection here): power
-    limits with the path losses the run will use (the bench file's [bench] calibration set, else
-    its [offsets], as `tonebench run` picks them) and every instrument's frequency range. A plan
-    that would be refused at run time is refused now, not at 3 am."""
-    dialects = {role: load_dialect(entry.dialect) for role, entry in bench.settings.instruments.items()}
-    ranges = tuple(
-        SourceRange(role, dialects[role].limits["min_power_dbm"], dialects[role].limits["max_power_dbm"])
-        for role in ("source1", "source2")
-    )
-    points = expand(plan.settings)
-    origin = f"plan {plan.path}"
-    check_plan_frequencies(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings), origin)
-    check_plan_parts(points, plan.settings, bench.settings, origin)
-    chosen = choose_calibration(bench, bench.settings.bench.calibration, sessions, points, origin)
-    check_plan(points, chosen.tables, bench.settings.limits, ranges, dialects["analyzer"].limits.get("damage_dbm"), origin)
+        return _view(job), estimate
 
 
 def list_jobs(sessions: sessionmaker, bench_name: str | None = None, include_finished: bool = False) -> list[JobView]:

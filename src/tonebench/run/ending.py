@@ -45,6 +45,26 @@ class RunOutcome:
     rf_confirmed: bool = True  # False when a source could not be read back off
     points_measured: int = 0
     points_failed: int = 0
+    bench_time: "BenchTimeTaken | None" = None
+
+
+@dataclass(frozen=True)
+class BenchTimeTaken:
+    """The bench time estimated before RF went on, and what the run took by `clock`: the
+    simulated bench's virtual clock (its instruments' own time), else the wall clock (software
+    and command latency included)."""
+
+    estimated_s: float
+    taken_s: float
+    clock: str  # "virtual" or "wall"
+
+    def line(self) -> str:
+        from tonebench.units import format_duration
+
+        change = 100.0 * (self.taken_s / self.estimated_s - 1.0) if self.estimated_s > 0 else 0.0
+        where = "the simulated bench's virtual clock" if self.clock == "virtual" else "wall clock, software included"
+        return (f"bench time: {format_duration(self.taken_s)} taken, {format_duration(self.estimated_s)} estimated "
+                f"({change:+.0f} %, {where})")
 
 
 def default_report_path(db_url: str, guid: str) -> Path:

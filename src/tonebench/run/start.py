@@ -3,6 +3,7 @@ written or RF goes on, store the run, then drive it (tonebench.run.drive)."""
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable
 from contextlib import ExitStack
 from dataclasses import dataclass
@@ -13,12 +14,13 @@ from sqlalchemy.orm import sessionmaker
 from tonebench.calibration.leveling import Leveler
 from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
-from tonebench.instruments.open_bench import OpenBench, bench_freq_ranges
+from tonebench.instruments.open_bench import OpenBench, bench_freq_ranges, role_dialects
 from tonebench.instruments.supervision import Supervision
-from tonebench.plan.limits import check_plan, check_plan_parts, check_plan_frequencies
+from tonebench.plan.limits import check_plan, check_plan_frequencies, check_plan_parts
 from tonebench.plan.points import PlannedPoint, expand
 from tonebench.report.run_report import check_report_path
 from tonebench.run.bench_connection import connect_bench, print_warning
+from tonebench.run.bench_time import BenchTimeEstimate, estimate_bench_time
 from tonebench.run.calibration_choice import (
     ChosenCalibration,
     calibration_set_id,
@@ -26,7 +28,7 @@ from tonebench.run.calibration_choice import (
     offsets_from_bench,  # re-exported: tests/config import it from here
 )
 from tonebench.run.drive import drive
-from tonebench.run.ending import RunOutcome
+from tonebench.run.ending import BenchTimeTaken, RunOutcome
 from tonebench.run.event_log import RunLog, log_path_for
 from tonebench.run.events import EventRelay
 from tonebench.run.leveler_setup import make_leveler
@@ -51,11 +53,14 @@ def execute_run(
     on_warning: Callable[[str], None] | None = None,
     on_run_started: Callable[[str], None] | None = None,
     held_at_c: float | None = None,
+    on_estimate: Callable[[BenchTimeEstimate], None] | None = None,
 ) -> RunOutcome:
     """Measure a plan on a bench. cal_name picks a calibration set (else the bench file's
     [bench] calibration, else its [offsets]); on_warning gets warnings before the run starts
     (default: one line on stderr); on_run_started gets the run's GUID once it is stored;
-    held_at_c: the chamber temperature the caller has just soaked at (Sequencer).
+    held_at_c: the chamber temperature the caller has just soaked at (Sequencer); on_estimate
+    gets the bench-time estimate before RF goes on (it is stored with the run, and what the run
+    took beside it at the end).
 
     A run stopped by the bench file's on_point_failure policy or by the watchdog returns with
     status 'paused' or 'aborted' (RF off, the reason stored); Ctrl-C, SIGTERM and errors raise;
@@ -63,10 +68,26 @@ def execute_run(
     if report_path is not None:  # refused before the database is written and RF goes on
         check_report_path(report_path)
     files = _RunFiles(plan_path, bench_path, load_plan(plan_path), load_bench(bench_path))
+    sims = []
+
+    def started(sim) -> None:
+        sims.append(sim)
+        if on_sim_started:
+            on_sim_started(sim)
+
     with ExitStack() as stack:
-        checked = _check_and_connect(stack, files, db_url, cal_name, on_sim_started, on_warning or print_warning)
-        prepared = _store_start(stack, files, checked, db_url, report_path, on_warning or print_warning)
-        return drive(prepared, on_progress, on_run_started, held_at_c)
+        checked = _check_and_connect(stack, files, db_url, cal_name, started, on_warning or print_warning)
+        estimate = estimate_bench_time(checked.points, files.plan.settings, files.bench.settings,
+                                       role_dialects(files.bench.settings))
+        prepared = _store_start(stack, files, checked, db_url, report_path, on_warning or print_warning, estimate)
+        if on_estimate:
+            on_estimate(estimate)
+        clock = (lambda: sims[0].bench.clock_s) if sims else time.monotonic
+        start_s = clock()
+        outcome = drive(prepared, on_progress, on_run_started, held_at_c)
+        outcome.bench_time = BenchTimeTaken(estimate.total_s, clock() - start_s, "virtual" if sims else "wall")
+        prepared.recorder.add_metadata(bench_time_s=outcome.bench_time.taken_s, bench_time_clock=outcome.bench_time.clock)
+        return outcome
 
 
 @dataclass
@@ -124,7 +145,7 @@ def _open_sessions(stack: ExitStack, db_url: str) -> sessionmaker:
 
 
 def _store_start(stack: ExitStack, files: _RunFiles, checked: _Checked, db_url: str,
-                 report_path: Path | None, warn: Callable[[str], None]) -> PreparedRun:
+                 report_path: Path | None, warn: Callable[[str], None], estimate: BenchTimeEstimate) -> PreparedRun:
     """Hold the bench, store the run with what it is measured with, open its log."""
     plan, bench, chosen = files.plan, files.bench, checked.chosen
     sessions = checked.sessions or _open_sessions(stack, db_url)
@@ -136,7 +157,7 @@ def _store_start(stack: ExitStack, files: _RunFiles, checked: _Checked, db_url: 
                     f"{'; '.join(differs)}; the run is stored against the registry's device") if differs else None
     if differs_line:
         warn(differs_line)
-    recorder = hold.commit(_start_recorder(hold.sessions, files, checked))
+    recorder = hold.commit(_start_recorder(hold.sessions, files, checked, estimate))
     if differs_line:
         recorder.event("warning", "device-differs", differs_line)
     with sessions.begin() as session:
@@ -154,7 +175,8 @@ def _store_start(stack: ExitStack, files: _RunFiles, checked: _Checked, db_url: 
     )
 
 
-def _start_recorder(sessions: sessionmaker, files: _RunFiles, checked: _Checked) -> RunRecorder:
+def _start_recorder(sessions: sessionmaker, files: _RunFiles, checked: _Checked,
+                    estimate: BenchTimeEstimate) -> RunRecorder:
     plan, bench = files.plan, files.bench
     return RunRecorder.start(
         sessions,
@@ -178,6 +200,7 @@ def _start_recorder(sessions: sessionmaker, files: _RunFiles, checked: _Checked)
             "plan_file": str(files.plan_path), "bench_file": str(files.bench_path),
             "points_planned": len(checked.points), "leveling": checked.leveler is not None,
             "analyzer": analyzer_figures(checked.instruments),
+            "bench_time_estimate": estimate.as_dict(),
         },
     )
 

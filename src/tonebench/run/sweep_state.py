@@ -1,6 +1,6 @@
 """What the sequencer keeps per sweep (all points that differ only in tone power), in one object
 keyed by the planned point's sweep key: the leveling reference, which tone powers get the
-attenuation-step check, and the tone readings of the sweep's last two accepted points."""
+attenuation-step check, and the tone readings of the sweep's last three accepted points."""
 
 from __future__ import annotations
 
@@ -14,24 +14,27 @@ from tonebench.plan.points import PlannedPoint
 class SweepState:
     top_dbm: float  # the sweep's highest tone power: both tones are leveled there
     step_levels_dbm: frozenset[float]  # tone powers whose IM3 is read again with more attenuation
-    # (f1 dBm, f2 dBm, tone_dbm) of the last two accepted points, oldest first (raw readings)
+    # (f1 dBm, f2 dBm, tone_dbm) of the last three accepted points, oldest first (raw readings)
     accepted: list[tuple[float, float, float]] = field(default_factory=list)
 
     def accept(self, f1_dbm: float, f2_dbm: float, tone_dbm: float) -> None:
-        self.accepted[:] = [*self.accepted[-1:], (f1_dbm, f2_dbm, tone_dbm)]
+        self.accepted[:] = [*self.accepted[-2:], (f1_dbm, f2_dbm, tone_dbm)]
 
     def expected_tones_dbm(self, tone_dbm: float) -> tuple[float, float] | None:
-        """Tone readings (f1, f2 dBm) expected at tone_dbm on the line through the last two
-        accepted points (slope 1 through the last one when there is only one); None before any."""
+        """Tone readings (f1, f2 dBm) expected at tone_dbm: on the parabola through the last three
+        accepted points (it follows the bend of compression, where a line would call every point
+        unsettled), the line through the last two, or slope 1 through the only one; None before any."""
         if not self.accepted:
             return None
-        f1_dbm, f2_dbm, last_dbm = self.accepted[-1]
-        slopes = (1.0, 1.0)
-        if len(self.accepted) == 2 and self.accepted[0][2] != last_dbm:
-            before = self.accepted[0]
-            slopes = ((f1_dbm - before[0]) / (last_dbm - before[2]), (f2_dbm - before[1]) / (last_dbm - before[2]))
-        step_db = tone_dbm - last_dbm
-        return f1_dbm + slopes[0] * step_db, f2_dbm + slopes[1] * step_db
+        tones = [tone for _f1, _f2, tone in self.accepted]
+        if len(set(tones)) < len(tones):  # a repeated tone power: no curve through them
+            tones, used = tones[-1:], self.accepted[-1:]
+        else:
+            used = self.accepted
+        if len(used) == 1:
+            f1_dbm, f2_dbm, last_dbm = used[0]
+            return f1_dbm + tone_dbm - last_dbm, f2_dbm + tone_dbm - last_dbm
+        return tuple(_lagrange(tones, [reading[index] for reading in used], tone_dbm) for index in (0, 1))
 
     def predicted_tone_dbm(self, tone_dbm: float) -> float | None:
         """Tone level at the analyzer input (mean of both, dBm) expected at tone_dbm: slope 1 from
@@ -40,6 +43,18 @@ class SweepState:
             return None
         f1_dbm, f2_dbm, last_dbm = self.accepted[-1]
         return (f1_dbm + f2_dbm) / 2.0 + tone_dbm - last_dbm
+
+
+def _lagrange(xs: list[float], ys: list[float], x: float) -> float:
+    """The polynomial through (xs, ys), of degree len(xs) - 1, at x."""
+    total = 0.0
+    for i, (xi, yi) in enumerate(zip(xs, ys)):
+        term = yi
+        for j, xj in enumerate(xs):
+            if j != i:
+                term *= (x - xj) / (xi - xj)
+        total += term
+    return total
 
 
 def sweep_states(points: list[PlannedPoint], step_top_points: int) -> dict[SweepKey, SweepState]:

@@ -118,6 +118,12 @@ class RunRecorder:
             run_id = run.id
         return cls(sessions, run_id, guid)
 
+    def add_metadata(self, **values) -> None:
+        """Merge values into the run's metadata (e.g. the bench time it took)."""
+        with self.sessions.begin() as session:
+            run = session.get(Run, self.run_id)
+            run.metadata_json = {**(run.metadata_json or {}), **values}
+
     def event(self, level: str, kind: str, message: str, details: dict | None = None) -> None:
         with self.sessions.begin() as session:
             session.add(Event(run_id=self.run_id, at=utc_now(), level=level, kind=kind, message=message, details_json=details or {}))

@@ -1,0 +1,117 @@
+"""How long a plan keeps the bench busy, predicted before anything is switched on.
+
+Bench time is the instruments' own time: analyzer sweeps (the dialect's sweep-time model, k *
+span / RBW^2, with the bench file's override of k), source settling (the source dialect's
+settle_time_s, once per source per point: each waits for its own *OPC?), gate changes (ramp and
+settle), and the chamber's way to each new temperature: the ramp at the bench file's
+ramp_c_per_min (from ROOM_C for the first; left out, none) and the dwell. Software and command
+latency are not in it.
+
+The sweeps per point follow the sequencer (run/sequencer.py): four reads (both tones, both IM3
+products); the IM3 pair again at each sweep's step_top_points highest tone powers (the
+attenuation-step check); both tones again at each sweep's first point (the settle check, no line
+to compare with yet); f2-f1 and f1+f2 when the plan asks for second order. What only the readings
+decide (a step check because the analyzer's own IM3 came near, a settle check because a level
+moved) is not counted: the estimate is that of a well-behaved device, and the run says afterwards
+how far off it was.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from tonebench.config.bench_file import BenchFile
+from tonebench.config.plan_file import PlanFile
+from tonebench.instruments.dialect import Dialect
+from tonebench.plan.points import PlannedPoint
+from tonebench.units import format_duration
+
+DEFAULT_SETTLE_TIME_S = 0.005  # a synthesized source's level and frequency settling (common practice)
+ROOM_C = 23.0  # where the chamber is taken to start (it stays at the last set point of a command)
+
+
+@dataclass(frozen=True)
+class BenchTimeEstimate:
+    points: int
+    sweeps: int
+    sweep_time_s: float  # one sweep at the plan's span and RBW
+    sweeps_s: float
+    settle_s: float
+    bias_s: float
+    soak_s: float
+
+    @property
+    def total_s(self) -> float:
+        return self.sweeps_s + self.settle_s + self.bias_s + self.soak_s
+
+    def line(self) -> str:
+        """One line: the total and where it goes."""
+        parts = [f"{self.sweeps} sweeps of {format_duration(self.sweep_time_s)} ({format_duration(self.sweeps_s)})",
+                 f"source settling {format_duration(self.settle_s)}"]
+        if self.bias_s:
+            parts.append(f"gate changes {format_duration(self.bias_s)}")
+        if self.soak_s:
+            parts.append(f"chamber {format_duration(self.soak_s)}")
+        return (f"bench time estimate: {format_duration(self.total_s)} for {self.points} points ("
+                + ", ".join(parts) + ")")
+
+    def as_dict(self) -> dict:
+        return {"total_s": self.total_s, "points": self.points, "sweeps": self.sweeps,
+                "sweep_time_s": self.sweep_time_s, "sweeps_s": self.sweeps_s, "settle_s": self.settle_s,
+                "bias_s": self.bias_s, "soak_s": self.soak_s}
+
+
+def sweep_time_s(plan: PlanFile, bench: BenchFile, analyzer: Dialect) -> float:
+    """One sweep at the plan's span and RBW, by the analyzer's model (bench-file k first)."""
+    factor = bench.instruments["analyzer"].performance.get("sweep_time_factor",
+                                                           analyzer.performance["sweep_time_factor"])
+    settings = plan.analyzer
+    return factor * settings.effective_span_hz / settings.rbw_hz ** 2
+
+
+def sweeps_per_point(points: list[PlannedPoint], plan: PlanFile, todo: list[PlannedPoint],
+                     settle_check: bool = True) -> list[int]:
+    """The sweeps each point of `todo` takes on a well-behaved device (see the module
+    docstring); the step-checked tone powers are those of each whole sweep in `points`."""
+    levels: dict = {}
+    for point in points:
+        levels.setdefault(point.sweep_key, set()).add(point.tone_dbm)
+    top = plan.analyzer.step_top_points
+    stepped = {key: set(sorted(values)[-top:]) if top else set() for key, values in levels.items()}
+    seen: set = set()
+    counts = []
+    for point in todo:
+        sweeps = 4
+        if point.tone_dbm in stepped[point.sweep_key]:
+            sweeps += 2
+        if point.sweep_key not in seen:  # a resumed sweep starts with no line to compare with either
+            seen.add(point.sweep_key)
+            sweeps += 2 if settle_check else 0
+        if plan.sweep.second_order:
+            sweeps += 2
+        counts.append(sweeps)
+    return counts
+
+
+def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: BenchFile,
+                        dialects: dict[str, Dialect], done_keys: frozenset[str] = frozenset()) -> BenchTimeEstimate:
+    """The bench time of the points not yet measured (a resumed run leaves out `done_keys`)."""
+    todo = [point for point in points if point.key not in done_keys]
+    one_sweep_s = sweep_time_s(plan, bench, dialects["analyzer"])
+    sweeps = sum(sweeps_per_point(points, plan, todo, bench.unattended.settle_tolerance_db > 0))
+    settle_s = sum(dialects[role].performance.get("settle_time_s", DEFAULT_SETTLE_TIME_S)
+                   for role in ("source1", "source2")) * len(todo)
+    bias_s, soak_s = 0.0, 0.0
+    if bench.bias is not None:
+        gates = [point.bias_v for point in todo if point.bias_v is not None]
+        changes = sum(1 for before, after in zip(gates, gates[1:]) if before != after)
+        travel_v = sum(abs(after - before) for before, after in zip(gates, gates[1:]))
+        bias_s = travel_v / bench.bias.ramp_v_per_s + changes * bench.bias.settle_s
+    temperatures = list(dict.fromkeys(point.temperature_c for point in todo if point.temperature_c is not None))
+    chamber = bench.chamber
+    if temperatures and chamber is not None:
+        soak_s = len(temperatures) * chamber.dwell_s
+        if chamber.ramp_c_per_min is not None:
+            path_c = [ROOM_C, *temperatures]
+            soak_s += 60.0 * sum(abs(b - a) for a, b in zip(path_c, path_c[1:])) / chamber.ramp_c_per_min
+    return BenchTimeEstimate(len(todo), sweeps, one_sweep_s, sweeps * one_sweep_s, settle_s, bias_s, soak_s)

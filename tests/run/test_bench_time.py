@@ -1,0 +1,93 @@
+"""The bench-time estimate (run/bench_time.py): counted by hand on a small plan, and within 10 %
+of the simulated bench's own virtual clock (sweeps, source settling, chamber) for the sample
+plans; stored with the run beside what it took; `run --dry-run` prints it with each point's
+settings and connects and writes nothing; `queue add` prints it."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+from cli_invoke import invoke
+from conftest import SAMPLE_RUNS
+from sqlalchemy import create_engine, select
+from sqlalchemy.orm import Session
+
+from tonebench.config.bench_file import load_bench
+from tonebench.config.plan_file import load_plan
+from tonebench.instruments.open_bench import role_dialects
+from tonebench.plan.points import expand
+from tonebench.run.bench_time import estimate_bench_time, sweeps_per_point
+from tonebench.run.start import execute_run
+from tonebench.store.models import Run
+from tonebench.units import format_duration
+
+
+def test_sweeps_counted_by_hand():
+    """demo_plan: 3 centres x 17 tone powers; each point 4 reads, the two top powers of each
+    sweep 2 more (the step check), each sweep's first point 2 more (the settle check)."""
+    plan = load_plan(SAMPLE_RUNS / "demo_plan.toml").settings
+    bench = load_bench(SAMPLE_RUNS / "sim_bench.toml").settings
+    points = expand(plan)
+    assert sum(sweeps_per_point(points, plan, points)) == 51 * 4 + 3 * 2 * 2 + 3 * 2
+    estimate = estimate_bench_time(points, plan, bench, role_dialects(bench))
+    # 2.5 * span / RBW^2 (generic-analyzer k), span 10 RBW at the plan's RBW; 5 ms per source per point.
+    rbw_hz, span_hz = plan.analyzer.rbw_hz, plan.analyzer.effective_span_hz
+    assert estimate.sweep_time_s == pytest.approx(2.5 * span_hz / rbw_hz ** 2)
+    assert estimate.total_s == pytest.approx(222 * estimate.sweep_time_s + 51 * 2 * 0.005)
+    done = frozenset(p.key for p in points[:17])  # a resumed run: the first sweep done
+    assert estimate_bench_time(points, plan, bench, role_dialects(bench), done).sweeps == 222 - (17 * 4 + 4 + 2)
+
+
+@pytest.mark.parametrize("plan, bench", [("demo_plan.toml", "sim_bench.toml"), ("bias_plan.toml", "bias_bench.toml"),
+                                         ("bias_temperature_plan.toml", "bias_chamber_bench.toml")])
+def test_the_estimate_is_within_ten_percent_of_the_simulated_bench_time(tmp_path, plan, bench):
+    sims, estimates = [], []
+    db_url = f"sqlite:///{tmp_path / 'tb.db'}"
+    outcome = execute_run(SAMPLE_RUNS / plan, SAMPLE_RUNS / bench, db_url, None, on_sim_started=sims.append,
+                          on_estimate=estimates.append)
+    assert outcome.status == "complete", outcome.reason
+    virtual_s = sims[0].bench.clock_s
+    assert outcome.bench_time.clock == "virtual"
+    assert outcome.bench_time.taken_s == pytest.approx(virtual_s, rel=0.01)
+    assert estimates[0].total_s == pytest.approx(virtual_s, rel=0.10)
+    with Session(create_engine(db_url)) as session:
+        metadata = session.scalars(select(Run)).one().metadata_json
+    assert metadata["bench_time_estimate"]["total_s"] == estimates[0].total_s
+    assert metadata["bench_time_s"] == outcome.bench_time.taken_s and metadata["bench_time_clock"] == "virtual"
+
+
+def test_dry_run_prints_settings_and_estimate_and_touches_nothing(tmp_path):
+    db = tmp_path / "tb.db"
+    result = invoke("run", SAMPLE_RUNS / "demo_plan.toml", "--bench", SAMPLE_RUNS / "sim_bench.toml", "--db", db,
+                    "--dry-run")
+    assert result.exit_code == 0, result.output
+    assert "2.4 GHz, spacing 1 MHz, -40.00 dBm per tone" in result.output
+    assert "bench time estimate: 6.06 s for 51 points (222 sweeps of 25 ms" in result.output
+    assert "nothing connected, nothing switched on, nothing written" in result.output
+    assert not db.exists()
+    bad = invoke("run", SAMPLE_RUNS / "demo_plan.toml", "--bench", SAMPLE_RUNS / "nope.toml", "--db", db, "--dry-run")
+    assert bad.exit_code == 2 and len(bad.output.strip().splitlines()) == 1 and not db.exists()
+
+
+def test_queue_add_says_the_bench_time(tmp_path):
+    result = invoke("queue", "add", SAMPLE_RUNS / "demo_plan.toml", "--bench", SAMPLE_RUNS / "sim_bench.toml",
+                    "--db", tmp_path / "tb.db")
+    assert result.exit_code == 0, result.output
+    assert "bench time estimate: 6.06 s for 51 points" in result.output
+
+
+@pytest.mark.parametrize("seconds, text", [(0.025, "25 ms"), (7.234, "7.23 s"), (725.0, "12 min 5 s"),
+                                           (3600.0, "1 h"), (12000.0, "3 h 20 min")])
+def test_durations_read_as_one_would_say_them(seconds, text):
+    assert format_duration(seconds) == text
+
+
+def test_a_chamber_ramp_adds_the_way_there(tmp_path):
+    plan = load_plan(SAMPLE_RUNS / "bias_temperature_plan.toml").settings
+    bench = load_bench(SAMPLE_RUNS / "bias_chamber_bench.toml").settings
+    points = expand(plan)
+    estimate = estimate_bench_time(points, plan, bench, role_dialects(bench))
+    # From 23 degC to -20, 25 and 85 degC: 43 + 45 + 60 degC at 5.4 degC/min, and three dwells of 300 s.
+    assert estimate.soak_s == pytest.approx(60 * 148 / 5.4 + 3 * 300)
+    assert json.dumps(estimate.as_dict())  # stored with the run as JSON
