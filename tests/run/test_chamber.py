@@ -199,8 +199,11 @@ def test_the_sweet_spot_drift_over_three_temperatures_matches_the_simulated_fet(
     assert len({r["series"] for r in rows}) == 1 and rows[0]["part_number"] == "TBF-77"
     two_tone_85 = next(r for r in rows if r["temperature_c"] == 85.0 and r["kind"] == "two-tone")
     assert f"{two_tone_85['sweet_spot_v']:.4f}" == f"{spots[2]:.4f}"
-    refused = invoke("find", "--sweet-spots", "--verdict", "pass", "--db", tmp_path / "tb.db")
+    refused = invoke("find", "--sweet-spots", "--flag", "slope", "--db", tmp_path / "tb.db")
     assert refused.exit_code == 2 and "apply to results, not sweet spots" in refused.output
+    # No spec limit on TBF-77 here: measured findings are judged 'no-limit', predictions not at all.
+    judged = json.loads(invoke("find", "--sweet-spots", "--json", "--verdict", "no-limit", "--db", tmp_path / "tb.db").output)
+    assert len(judged) == 3 and {r["kind"] for r in judged} == {"two-tone"}
 
 
 def chamber_lab(folder, start_c: float):

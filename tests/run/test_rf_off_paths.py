@@ -413,7 +413,9 @@ def test_a_run_whose_every_point_failed_is_failed_with_exit_1(tmp_path):
 def test_a_run_with_failed_points_is_failed_with_exit_4_and_resume_measures_them(tmp_path):
     attempts = 2
     bench = write_bench(tmp_path, unattended={"point_attempts": attempts}, faults=[
-        {"instrument": "analyzer", "kind": "error", "on": "CALC:MARK1:Y?", "nth": 1, "repeat": attempts, "code": -222}])
+        # The error queue is read once per point's reads: the fault lasts through both attempts'
+        # six marker reads (two tones, two products each with its noise marker).
+        {"instrument": "analyzer", "kind": "error", "on": "CALC:MARK1:Y?", "nth": 1, "repeat": 6 * attempts, "code": -222}])
     db_url = f"sqlite:///{tmp_path / 't.db'}"
     result = _cli("run", write_plan(tmp_path, SHORT_PLAN), "--bench", bench, "--db", db_url)
     guid, status, reason, _events, points = stored_run(db_url)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -64,7 +65,19 @@ class SpectrumAnalyzer(RoleDriver):
         self.last_setup: AnalyzerSetup | None = None
         # The sweep time first reported for each setup: its signature (see _settings_lost).
         self._sweep_time_by_setup: dict[AnalyzerSetup, float] = {}
+        self._errors_deferred = False  # inside errors_read_once()
         instrument.add_restore_hook(self.restore)
+
+    @contextlib.contextmanager
+    def errors_read_once(self):
+        """Reads inside leave the error queue alone; it is drained once at the end (one point's
+        reads: an error there makes the point measured again, as an error of any read would)."""
+        self._errors_deferred = True
+        try:
+            yield
+        finally:
+            self._errors_deferred = False
+        self.instrument.check_errors()
 
     def prepare(self) -> None:
         """Clear status and switch to single sweeps; the instrument state is then unknown."""
@@ -128,7 +141,8 @@ class SpectrumAnalyzer(RoleDriver):
             for freq_hz in marker_freqs_hz:
                 inst.call("set_marker_freq", freq_hz=freq_hz)
                 powers_dbm.append(self.judge_marker_dbm(inst.call("read_marker_power"), freq_hz))
-            inst.check_errors()
+            if not self._errors_deferred:
+                inst.check_errors()
             # Asked again at the end: settings lost at any moment of the read show here.
             if inst.epoch == epoch and not self._settings_lost(inst.call("read_sweep_time")):
                 return MarkerReading(tuple(powers_dbm), overload, sweep_time_s)
@@ -180,7 +194,11 @@ class SpectrumAnalyzer(RoleDriver):
         """One single sweep at `center_hz` (Hz), waited for; returns the sweep time (s)."""
         inst = self.instrument
         self._send_changed([("set_center", "freq_hz", center_hz)], drain=False)
-        sweep_time_s = inst.call("read_sweep_time")
+        # Known for this setup after its first sweep (the sweep time follows span and RBW); the
+        # query after every read (read_markers) still tells a lost setup.
+        sweep_time_s = self._sweep_time_by_setup.get(self.last_setup) if self.last_setup is not None else None
+        if sweep_time_s is None:
+            sweep_time_s = inst.call("read_sweep_time")
         inst.call("start_sweep")
         inst.wait_complete(2 * sweep_time_s + inst.dialect.io.query_timeout_s)
         return sweep_time_s

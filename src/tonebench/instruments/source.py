@@ -40,6 +40,9 @@ class SignalSource(RoleDriver):
         self.wanted = SourceState(rf_on=False)
         # A run's limits on the power into the DUT and the analyzer, in force from the first command.
         self.power_guard = power_guard
+        # Frequency and power known to be in force (sent and *OPC? answered): only changes are
+        # sent. Unknown (None) after a failed command; restore() sends everything again.
+        self._in_force = SourceState()
         instrument.add_restore_hook(self.restore)
 
     def _wait_s(self) -> float:
@@ -62,12 +65,21 @@ class SignalSource(RoleDriver):
         if self.power_guard is not None:
             self.power_guard(self.label, freq_hz, power_dbm)
         self.wanted = replace(self.wanted, freq_hz=freq_hz, power_dbm=power_dbm)
-        # Nothing orders commands across instruments: only this source's own *OPC? tells the
-        # analyzer that the new power is in force (design section 5).
-        self.instrument.configure(
-            [("set_frequency", {"freq_hz": freq_hz}), ("set_power", {"power_dbm": power_dbm})],
-            wait_s=self._wait_s(),
-        )
+        steps = [(operation, {field: value}) for operation, field, value, before in (
+                 ("set_frequency", "freq_hz", freq_hz, self._in_force.freq_hz),
+                 ("set_power", "power_dbm", power_dbm, self._in_force.power_dbm)) if value != before]
+        if steps:
+            # Nothing orders commands across instruments: only this source's own *OPC? tells the
+            # analyzer that the new power is in force (design section 5).
+            self._configure_tone(steps)
+
+    def _configure_tone(self, steps: list[tuple[str, dict]]) -> None:
+        try:
+            self.instrument.configure(steps, wait_s=self._wait_s())
+        except BaseException:
+            self._in_force = SourceState()
+            raise
+        self._in_force = SourceState(freq_hz=self.wanted.freq_hz, power_dbm=self.wanted.power_dbm)
 
     def rf_on(self) -> None:
         supervision = self.instrument.supervision
@@ -127,7 +139,7 @@ class SignalSource(RoleDriver):
         supervision = self.instrument.supervision
         stopping = supervision is not None and supervision.stop.is_set()
         steps.append(("rf_on", {}) if wanted.rf_on and not stopping else ("rf_off", {}))
-        self.instrument.configure(steps, wait_s=self._wait_s())
+        self._configure_tone(steps)
 
     def force_rf_off(self, lock_wait_s: float = 0.5) -> str:
         """RF off from another thread (the watchdog), even while the run's thread is stuck in a

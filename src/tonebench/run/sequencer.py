@@ -284,9 +284,10 @@ class Sequencer:
         setup, choice = self.attenuation.setup_for(lambda: self._predicted_tone_dbm(point, sweep))
         analyzer = self.bench.analyzer
         analyzer.apply(setup)
-        readings = read_point(analyzer, point, self.analyzer_settings.noise_offset_hz)
-        second = self._read_second_order(point) if self.second_order else None
-        step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings)
+        with analyzer.errors_read_once():
+            readings = read_point(analyzer, point, self.analyzer_settings.noise_offset_hz)
+            second = self._read_second_order(point) if self.second_order else None
+            step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings)
         chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
         return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c)
 

@@ -1,20 +1,18 @@
 """Open a tonebench database: check its URL, bring its schema to this code's revision.
 
 Alembic is configured in code (there is no alembic.ini); the migration scripts live in the
-project's migrations/ folder, or in tonebench/_data/migrations inside an installed wheel.
+project's migrations/ folder, or in tonebench/_data/migrations inside an installed wheel. Alembic
+is imported only to migrate: the revisions are read from the scripts' own `revision =` lines and
+the database's from its alembic_version table (a tenth of a second saved on every command).
 """
 
 from __future__ import annotations
 
+import functools
 import re
 from pathlib import Path
 
 import sqlalchemy as sa
-from alembic import command
-from alembic.config import Config
-from alembic.runtime.migration import MigrationContext
-from alembic.script import ScriptDirectory
-from alembic.util.exc import CommandError
 from sqlalchemy import event
 from sqlalchemy.engine import make_url
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError
@@ -41,8 +39,10 @@ def migrations_dir() -> Path:
     return data_dir("migrations")
 
 
-def alembic_config(connection: sa.Connection | None = None) -> Config:
+def alembic_config(connection: sa.Connection | None = None):
     """Alembic configuration for tonebench's migrations; env.py uses `connection` when given."""
+    from alembic.config import Config
+
     config = Config()
     # ConfigParser interpolates '%', so a path holding one must be escaped.
     config.set_main_option("script_location", str(migrations_dir()).replace("%", "%%"))
@@ -52,18 +52,35 @@ def alembic_config(connection: sa.Connection | None = None) -> Config:
     return config
 
 
+_REVISION_LINE = re.compile(r"^(revision|down_revision)\s*=\s*(?:None|['\"]([^'\"]+)['\"])", re.MULTILINE)
+
+
+@functools.cache
+def _revisions() -> dict[str, str | None]:
+    """revision -> the revision it follows, from the migration scripts."""
+    revisions = {}
+    for script in sorted((migrations_dir() / "versions").glob("*.py")):
+        found = dict((name, value or None) for name, value in _REVISION_LINE.findall(script.read_text(encoding="utf-8")))
+        if found.get("revision"):
+            revisions[found["revision"]] = found.get("down_revision")
+    return revisions
+
+
 def schema_head() -> str:
-    """The newest schema revision this code knows."""
-    head = ScriptDirectory.from_config(alembic_config()).get_current_head()
-    if head is None:
-        raise DatabaseError(f"no migration scripts found in {migrations_dir()}")
-    return head
+    """The newest schema revision this code knows: the one no other script follows."""
+    revisions = _revisions()
+    heads = set(revisions) - set(revisions.values())
+    if len(heads) != 1:
+        raise DatabaseError(f"migration scripts in {migrations_dir()}: {len(heads)} heads; expected one")
+    return heads.pop()
 
 
 def database_revision(engine: sa.Engine) -> str | None:
     """Schema revision stamped in the database, None for a database tonebench never touched."""
     with engine.connect() as connection:
-        heads = MigrationContext.configure(connection).get_current_heads()
+        if not sa.inspect(connection).has_table("alembic_version"):
+            return None
+        heads = connection.execute(sa.text("SELECT version_num FROM alembic_version")).scalars().all()
     return heads[0] if heads else None
 
 
@@ -289,17 +306,17 @@ def _check_reachable(engine: sa.Engine, shown: str) -> None:
 
 
 def _is_known(revision: str) -> bool:
-    script = ScriptDirectory.from_config(alembic_config())
-    try:
-        return script.get_revision(revision) is not None
-    except CommandError:
-        return False
+    return revision in _revisions()
 
 
 def _upgrade(parsed: sa.URL, shown: str) -> None:
     # Migrations get their own engine: on SQLite foreign keys must be off while batch mode
     # copies and drops tables (a DROP would otherwise cascade into child rows), and the whole
     # upgrade runs in one explicit transaction so a crash leaves the old schema, not half of one.
+    from alembic import command
+    from alembic.runtime.migration import MigrationContext
+    from alembic.util.exc import CommandError
+
     engine = _create_engine(parsed, shown, foreign_keys=False)
     if engine.dialect.name == "sqlite":
         _use_explicit_sqlite_transactions(engine)
