@@ -239,6 +239,9 @@ class AnalyzerSettings(StrictModel):
     # predicted within 20 dB of the reading).
     step_atten_db: float = Field(default=10.0, ge=4.0, le=30.0)
     step_top_points: int = Field(default=2, ge=0, le=50)
+    # IM3 products under 10 dB over their noise are read again at a narrower RBW, their sweeps
+    # held to this many seconds per point (run/narrowing.py). Left out: read at rbw_hz only.
+    narrowing_budget_s: float | None = Field(default=None, gt=0.0, le=3600.0)
 
     @property
     def auto_atten(self) -> bool:

@@ -124,7 +124,7 @@ def connect(resource: str, dialect: Dialect, label: str, visa_library: str = "")
         needs = _reason(exc).split(". ", 1)[0].rstrip(".")
         raise InputError(f"cannot open {where} with VISA library {_spec_of(rm)!r}: {needs}; or set [bench] "
                          "visa_library to one that can (e.g. '@ivi' for an installed vendor VISA)") from None
-    _disable_nagle(handle)
+    disable_nagle(handle)
     if scpi_trace.isEnabledFor(logging.DEBUG):
         _trace(handle, label)
     try:
@@ -162,7 +162,7 @@ def _trace(handle, label: str) -> None:
     handle.write, handle.read = traced_write, traced_read
 
 
-def _disable_nagle(handle) -> None:
+def disable_nagle(handle) -> None:
     """Send each command at once on a raw socket.
 
     With Nagle's algorithm on, a short command followed by `*OPC?` waits for the instrument's

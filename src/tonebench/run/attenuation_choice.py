@@ -16,6 +16,7 @@ from tonebench.analysis.flags import SYSTEM_MARGIN_DB
 from tonebench.config.plan_file import AnalyzerSettings
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.plan.points import PlannedPoint
+from tonebench.run.narrowing import narrowed
 from tonebench.run.readings import Readings, StepReadings, step_readings
 
 SayOnce = Callable[[str, str, str, str], None]  # (once-key, level, kind, message)
@@ -45,16 +46,19 @@ class AttenuationChoice:
         ref_dbm = self.settings.ref_level_dbm + atten_db - self.settings.atten_db
         return min(ref_dbm, self.analyzer.limits.get("damage_dbm", ref_dbm))
 
-    def setup_for(self, predicted_tone_dbm: Callable[[], float]) -> tuple[AnalyzerSetup, str]:
-        """The analyzer setup of a point and how its attenuation was chosen."""
+    def setup_for(self, predicted_tone_dbm: Callable[[], float],
+                  rbw_hz: float | None = None) -> tuple[AnalyzerSetup, str]:
+        """The analyzer setup of a point and how its attenuation was chosen; with rbw_hz, that
+        of a narrower read (span and VBW narrowed with it, the optimum at its lower noise)."""
+        base = self.setup if rbw_hz is None else narrowed(self.setup, rbw_hz)
         if not self.settings.auto_atten:
-            return self.setup, "fixed"
+            return base, "fixed"
         perf, lim = self.analyzer.performance, self.analyzer.limits
         choice = optimum_atten_db(
-            predicted_tone_dbm(), perf["mixer_toi_dbm"], perf["danl_dbm_per_hz"], self.setup.rbw_hz,
+            predicted_tone_dbm(), perf["mixer_toi_dbm"], perf["danl_dbm_per_hz"], base.rbw_hz,
             lim["min_atten_db"], lim["max_atten_db"], lim.get("atten_step_db", 1.0), lim.get("max_mixer_dbm"),
         )
-        setup = replace(self.setup, atten_db=choice.atten_db, ref_level_dbm=self.ref_level_dbm(choice.atten_db))
+        setup = replace(base, atten_db=choice.atten_db, ref_level_dbm=self.ref_level_dbm(choice.atten_db))
         return setup, choice.limited_by
 
     def step_reason(self, is_top: bool, setup: AnalyzerSetup, readings: Readings) -> str | None:

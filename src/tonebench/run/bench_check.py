@@ -15,8 +15,17 @@ from dataclasses import dataclass, field
 
 from tonebench.config.bench_file import OPTIONAL_ROLES, REQUIRED_ROLES, LoadedBench
 from tonebench.errors import InputError, TonebenchError
-from tonebench.instruments.open_bench import ROLE_KINDS, OpenBench, role_dialects, visa_library
-from tonebench.instruments.role_check import check_distinct_resources, check_role, shared_supply
+from tonebench.instruments.open_bench import (
+    ROLE_KINDS,
+    OpenBench,
+    role_dialects,
+    visa_library,
+)
+from tonebench.instruments.role_check import (
+    check_distinct_resources,
+    check_role,
+    shared_supply,
+)
 from tonebench.instruments.scpi import ScpiInstrument
 from tonebench.instruments.scpi_errors import ScpiErrors
 from tonebench.instruments.transport import library_in_use, open_resource

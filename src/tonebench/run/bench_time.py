@@ -12,7 +12,7 @@ products); the IM3 pair again at each sweep's step_top_points highest tone power
 attenuation-step check); both tones again at each sweep's first point (the settle check, no line
 to compare with yet); f2-f1 and f1+f2 when the plan asks for second order. What only the readings
 decide (a step check because the analyzer's own IM3 came near, a settle check because a level
-moved) is not counted: the estimate is that of a well-behaved device, and the run says afterwards
+moved, narrow IM3 reads: only their budget's upper bound is said) is not counted: the estimate is that of a well-behaved device, and the run says afterwards
 how far off it was.
 """
 
@@ -39,6 +39,7 @@ class BenchTimeEstimate:
     settle_s: float
     bias_s: float
     soak_s: float
+    narrowing_max_s: float = 0.0  # at most this more for narrow IM3 reads (not in the total)
 
     @property
     def total_s(self) -> float:
@@ -52,13 +53,16 @@ class BenchTimeEstimate:
             parts.append(f"gate changes {format_duration(self.bias_s)}")
         if self.soak_s:
             parts.append(f"chamber {format_duration(self.soak_s)}")
-        return (f"bench time estimate: {format_duration(self.total_s)} for {self.points} points ("
+        line = (f"bench time estimate: {format_duration(self.total_s)} for {self.points} points ("
                 + ", ".join(parts) + ")")
+        if self.narrowing_max_s:
+            line += f"; narrow IM3 reads up to {format_duration(self.narrowing_max_s)} more"
+        return line
 
     def as_dict(self) -> dict:
         return {"total_s": self.total_s, "points": self.points, "sweeps": self.sweeps,
                 "sweep_time_s": self.sweep_time_s, "sweeps_s": self.sweeps_s, "settle_s": self.settle_s,
-                "bias_s": self.bias_s, "soak_s": self.soak_s}
+                "bias_s": self.bias_s, "soak_s": self.soak_s, "narrowing_max_s": self.narrowing_max_s}
 
 
 def sweep_time_s(plan: PlanFile, bench: BenchFile, analyzer: Dialect) -> float:
@@ -114,4 +118,6 @@ def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: Bench
         if chamber.ramp_c_per_min is not None:
             path_c = [ROOM_C, *temperatures]
             soak_s += 60.0 * sum(abs(b - a) for a, b in zip(path_c, path_c[1:])) / chamber.ramp_c_per_min
-    return BenchTimeEstimate(len(todo), sweeps, one_sweep_s, sweeps * one_sweep_s, settle_s, bias_s, soak_s)
+    narrowing_max_s = (plan.analyzer.narrowing_budget_s or 0.0) * len(todo)
+    return BenchTimeEstimate(len(todo), sweeps, one_sweep_s, sweeps * one_sweep_s, settle_s, bias_s, soak_s,
+                             narrowing_max_s)

@@ -65,7 +65,7 @@ def measured_record(point: PlannedPoint, measured: Measured, elapsed_s: float, t
     if measured.bias is not None:
         fields.update(vars(measured.bias))  # gate_read_v, gate_current_a, drain_read_v, drain_current_a
     fields["chamber_read_c"] = measured.chamber_c
-    extra_time_s = sum(r.sweep_time_s for r in (measured.step, measured.second) if r is not None)
+    extra_time_s = sum(r.sweep_time_s for r in (measured.step, measured.second, measured.narrow) if r is not None)
     fields["sweep_time_s"] = readings.sweep_time_s + extra_time_s
     fields["extra_json"] = _extra(measured, drift)
     return PointRecord(**fields)
@@ -104,4 +104,8 @@ def _extra(measured: Measured, drift: str | None) -> dict:
         extra.update(raw_noise_diff_dbm=second.noise_diff_dbm, raw_noise_sum_dbm=second.noise_sum_dbm)
     if drift:
         extra["source_drift"] = drift
+    narrow = measured.narrow
+    if narrow is not None:  # the IM3 columns hold this narrower read
+        extra.update(im3_rbw_hz=narrow.rbw_hz, im3_sweep_time_s=narrow.sweep_time_s,
+                     im3_snr_at_plan_rbw_db=narrow.snr_before_db)
     return extra

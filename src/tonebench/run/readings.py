@@ -63,6 +63,7 @@ class Measured:
     second: SecondOrderReadings | None
     bias: BiasReading | None = None  # the gate and drain supplies' read-back, on a bias bench
     chamber_c: float | None = None  # the chamber's reading, on a point with a temperature
+    narrow: object | None = None  # run/narrowing.NarrowRead: the IM3 read again narrower
 
 
 def read_point(analyzer, point: PlannedPoint, noise_offset_hz: float) -> Readings:

@@ -14,7 +14,7 @@ from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan, plan_from_text
 from tonebench.errors import InputError
 from tonebench.instruments.open_bench import bench_freq_ranges
-from tonebench.plan.limits import check_plan, check_plan_parts, check_plan_frequencies
+from tonebench.plan.limits import check_plan, check_plan_frequencies, check_plan_parts
 from tonebench.plan.points import expand
 from tonebench.planes.loss_table import LossTable
 from tonebench.report.run_report import check_report_path

@@ -33,6 +33,7 @@ from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.drift import DriftTracker
+from tonebench.run.narrowing import read_narrow
 from tonebench.run.point_build import failed_record, measured_record
 from tonebench.run.point_guard import BenchFault, PointFailed, PointGuard, settle_check
 from tonebench.run.readings import (
@@ -284,12 +285,18 @@ class Sequencer:
         setup, choice = self.attenuation.setup_for(lambda: self._predicted_tone_dbm(point, sweep))
         analyzer = self.bench.analyzer
         analyzer.apply(setup)
+        settings = self.analyzer_settings
+        narrow = None
         with analyzer.errors_read_once():
-            readings = read_point(analyzer, point, self.analyzer_settings.noise_offset_hz)
+            readings = read_point(analyzer, point, settings.noise_offset_hz)
+            if settings.narrowing_budget_s is not None:
+                readings, narrow = read_narrow(
+                    analyzer, point, setup, readings, settings.noise_offset_hz, settings.narrowing_budget_s,
+                    lambda rbw_hz: self.attenuation.setup_for(lambda: self._predicted_tone_dbm(point, sweep), rbw_hz)[0])
             second = self._read_second_order(point) if self.second_order else None
             step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings)
         chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
-        return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c)
+        return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c, narrow)
 
     def _settled(self, point: PlannedPoint, measured: Measured) -> str | None:
         """Why the tone levels may still have been moving during the point, or None.

@@ -1,0 +1,178 @@
+"""Speed figures of tonebench, printed (not asserted: timings belong to a benchmark, not a test).
+
+    python tests/benchmarks/bench_speed.py            # about a minute on two cores
+
+1. Bench time of the demo plan (51 points, three frequencies) on the simulated bench's virtual
+   clock: tonebench as it runs, its own estimate, a floor for its fixed settings (four reads per
+   point and nothing else), and a hand-written script that reads all four products in one wide
+   span at a fixed 1 kHz RBW (the common way; the same signal-to-noise for the products needs the
+   same RBW, but the span must hold both tones and both products).
+2. Wall time per point: `tonebench run` against a raw pyvisa loop sending the same reads (both
+   sources set, four single sweeps with markers) to the same simulated bench.
+3. Points committed per second into SQLite (one plain transaction per point, WAL, synchronous=NORMAL).
+4. Re-analysis time of one stored run (`analyze_run`), best of five.
+5. Import time of the command line.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import pyvisa
+from sqlalchemy import select
+
+ROOT = Path(__file__).resolve().parents[2]
+SAMPLE_RUNS = ROOT / "sample_runs"
+PLAN, BENCH = SAMPLE_RUNS / "demo_plan.toml", SAMPLE_RUNS / "sim_bench.toml"
+
+
+def run_tonebench(folder: Path):
+    from tonebench.run.start import execute_run
+
+    sims, estimates = [], []
+    started_s = time.perf_counter()
+    outcome = execute_run(PLAN, BENCH, f"sqlite:///{folder / 'bench.db'}", folder / "report.html",
+                          on_sim_started=sims.append, on_estimate=estimates.append)
+    return outcome, sims[0], estimates[0], time.perf_counter() - started_s
+
+
+def raw_loop(points, wide_span: bool) -> tuple[float, float]:
+    """(virtual bench s, wall s) of a plain pyvisa loop: per point both sources set, then either
+    four narrow reads at the plan's RBW (the same reads tonebench makes) or one wide sweep at
+    1 kHz RBW holding all four products (the hand-written script)."""
+    from tonebench.config.bench_file import load_bench
+    from tonebench.config.plan_file import load_plan
+    from tonebench.instruments.transport import disable_nagle
+    from tonebench.plan.limits import predict_levels
+    from tonebench.run.calibration_choice import offsets_from_bench
+    from tonebench.sim.launch import start_sim_bench
+
+    bench, plan = load_bench(BENCH), load_plan(PLAN).settings
+    offsets = offsets_from_bench(bench)
+    manager = pyvisa.ResourceManager("@py")
+    with start_sim_bench(bench.scenario) as sim:
+        handles = {role: manager.open_resource(sim.resources[role], read_termination="\n", write_termination="\n")
+                   for role in ("source1", "source2", "analyzer")}
+        for handle in handles.values():
+            disable_nagle(handle)  # as tonebench does: no 40 ms delayed-ACK wait per query
+        analyzer = handles["analyzer"]
+        rbw_hz = 1e3 if wide_span else plan.analyzer.rbw_hz
+        analyzer.write("INIT:CONT OFF")
+        analyzer.write(f"BAND {rbw_hz:.3f}")
+        analyzer.write(f"INP:ATT {plan.analyzer.atten_db:.1f}")
+        for role in ("source1", "source2"):
+            handles[role].write("OUTP ON")
+        started_s, clock_s = time.perf_counter(), sim.bench.clock_s
+        for point in points:
+            levels = predict_levels(point, offsets, bench.settings.limits)
+            for role, freq_hz, power_dbm in (("source1", point.f1_hz, levels.source1_dbm),
+                                             ("source2", point.f2_hz, levels.source2_dbm)):
+                handles[role].write(f"SOUR:FREQ {freq_hz:.3f}")
+                handles[role].write(f"SOUR:POW {power_dbm:.2f}")
+                handles[role].query("*OPC?")
+            if wide_span:
+                reads = [(point.center_hz, 4 * point.spacing_hz,
+                          (point.lower_hz, point.f1_hz, point.f2_hz, point.upper_hz))]
+            else:
+                reads = [(freq_hz, 10 * rbw_hz, (freq_hz,)) for freq_hz in (point.f1_hz, point.f2_hz, point.lower_hz,
+                                                                             point.upper_hz)]
+            for center_hz, span_hz, markers_hz in reads:
+                analyzer.write(f"FREQ:SPAN {span_hz:.3f}")
+                analyzer.write(f"FREQ:CENT {center_hz:.3f}")
+                analyzer.write("INIT:IMM")
+                analyzer.query("*OPC?")
+                for marker_hz in markers_hz:
+                    analyzer.write(f"CALC:MARK1:X {marker_hz:.3f}")
+                    float(analyzer.query("CALC:MARK1:Y?"))
+        wall_s, virtual_s = time.perf_counter() - started_s, sim.bench.clock_s - clock_s
+        for role in ("source1", "source2"):
+            handles[role].write("OUTP OFF")
+        for handle in handles.values():
+            handle.close()
+    return virtual_s, wall_s
+
+
+def commits_per_second(db_url: str, count: int = 2000) -> float:
+    from tonebench.store.database import open_database, session_factory
+    from tonebench.store.models import Point, Run
+    from tonebench.store.point_record import PointRecord
+    from tonebench.store.point_writer import store_point
+
+    sessions = session_factory(open_database(db_url))
+    with sessions() as session:
+        run = session.scalars(select(Run)).first()
+        template = session.scalars(select(Point).where(Point.run_id == run.id, Point.status == "measured")).first()
+        values = {f.name: getattr(template, f.name) for f in dataclasses.fields(PointRecord) if hasattr(template, f.name)}
+    started_s = time.perf_counter()
+    for n in range(count):
+        store_point(sessions, run.id, PointRecord(**{**values, "point_key": f"bench/{n}", "seq": 10_000 + n}))
+    return count / (time.perf_counter() - started_s)
+
+
+def loop_ms_per_point(db_url: str) -> float:
+    """From the stored points' commit times: the sequencer's own rate, set-up and report left out."""
+    from tonebench.store.database import open_database, session_factory
+    from tonebench.store.models import Point
+
+    with session_factory(open_database(db_url))() as session:
+        times = sorted(session.scalars(select(Point.measured_at)))
+    return 1e3 * (times[-1] - times[0]).total_seconds() / (len(times) - 1)
+
+
+def reanalysis_s(db_url: str, guid: str) -> float:
+    from tonebench.results.stored_results import analyze_run
+    from tonebench.store.database import open_database, session_factory
+
+    sessions = session_factory(open_database(db_url))
+    times = []
+    for _ in range(5):
+        started_s = time.perf_counter()
+        analyze_run(sessions, guid)
+        times.append(time.perf_counter() - started_s)
+    return min(times)
+
+
+def import_s() -> float:
+    code = "import time; t = time.perf_counter(); import tonebench.cli.main; print(time.perf_counter() - t)"
+    return min(float(subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout)
+               for _ in range(3))
+
+
+def main() -> None:
+    from tonebench.config.plan_file import load_plan
+    from tonebench.plan.points import expand
+    from tonebench.run.bench_time import sweep_time_s
+    from tonebench.config.bench_file import load_bench
+    from tonebench.instruments.open_bench import role_dialects
+
+    points = expand(load_plan(PLAN).settings)
+    with tempfile.TemporaryDirectory() as folder:
+        outcome, sim, estimate, run_wall_s = run_tonebench(Path(folder))
+        lines = len(sim.bench.command_log)
+        raw_virtual_s, raw_wall_s = raw_loop(points, wide_span=False)
+        script_virtual_s, _ = raw_loop(points, wide_span=True)
+        plan, bench = load_plan(PLAN).settings, load_bench(BENCH).settings
+        floor_s = len(points) * (4 * sweep_time_s(plan, bench, role_dialects(bench)["analyzer"]) + 2 * 0.005)
+        db_url = f"sqlite:///{Path(folder) / 'bench.db'}"
+        print(f"demo plan, {len(points)} points, simulated bench (virtual clock = the instruments' own time)")
+        print(f"  bench time  tonebench {outcome.bench_time.taken_s:8.2f} s   estimate {estimate.total_s:8.2f} s")
+        print(f"              four reads per point, nothing else {floor_s:8.2f} s (tonebench / this: "
+              f"{outcome.bench_time.taken_s / floor_s:.2f})")
+        print(f"              one wide span at 1 kHz RBW (hand-written script) {script_virtual_s:8.1f} s "
+              f"({script_virtual_s / outcome.bench_time.taken_s:.0f} x tonebench)")
+        print(f"  commands    {lines / len(points):.1f} lines per point sent to the instruments")
+        print(f"  wall time   tonebench {loop_ms_per_point(db_url):6.1f} ms per point in its loop "
+              f"({1e3 * run_wall_s / len(points):.1f} ms with connecting, analysis and report); "
+              f"raw pyvisa loop, four reads per point {1e3 * raw_wall_s / len(points):6.1f} ms")
+        print(f"  commits     {commits_per_second(db_url):8.0f} points per second into SQLite")
+        print(f"  re-analysis {1e3 * reanalysis_s(db_url, outcome.guid):8.1f} ms per run ({len(points)} points)")
+    print(f"  import      {import_s():8.2f} s for the command line")
+
+
+if __name__ == "__main__":
+    main()
