@@ -251,19 +251,45 @@ def show(
 
 @app.command()
 def analyze(
-    run_id: Annotated[str, typer.Argument(metavar="RUN", help="Run GUID or a unique prefix of it.")],
+    run_id: Annotated[str | None, typer.Argument(metavar="[RUN]", help="Run GUID or a unique prefix of it.")] = None,
     db: DbOption = None,
     cal: Annotated[str | None, typer.Option("--cal", help="Re-refer the stored raw readings to this calibration set (no measuring).")] = None,
+    all_runs: Annotated[bool, typer.Option("--all", help="Every finished run (or those of --part/--lot), with a progress bar.")] = False,
+    parts: Annotated[list[str] | None, typer.Option("--part", help="With --all: only this part number (repeatable).")] = None,
+    lots: Annotated[list[str] | None, typer.Option("--lot", help="With --all: only this lot (repeatable).")] = None,
 ) -> None:
-    """Fit intercepts again from the stored points of a run and store the results."""
+    """Fit intercepts again from the stored points of a run (or of many) and store the results."""
     from tonebench.results.stored_results import analyze_run
     from tonebench.store.database import open_database, session_factory
 
     with one_line_errors():
-        results = analyze_run(session_factory(open_database(database(db))), run_id, cal)
+        if (run_id is None) == (not all_runs and not parts and not lots):
+            raise InputError("analyze: give a RUN, or --all (optionally with --part/--lot), not both")
+        sessions = session_factory(open_database(database(db)))
+        if run_id is None:
+            _analyze_many(sessions, cal, tuple(parts or ()), tuple(lots or ()))
+            return
+        results = analyze_run(sessions, run_id, cal)
         if cal:
             out.print(f"results referred to calibration set {cal}", highlight=False)
         _print_results(results)
+
+
+def _analyze_many(sessions, cal: str | None, parts: tuple[str, ...], lots: tuple[str, ...]) -> None:
+    import time
+
+    from tonebench.results.stored_results import analyze_run, finished_runs
+
+    guids = finished_runs(sessions, parts, lots)
+    started_s = time.perf_counter()
+    results = 0
+    with StepProgress("analysing", "runs") as bar:
+        for done, guid in enumerate(guids, start=1):
+            results += len(analyze_run(sessions, guid, cal))
+            bar.advance(done, len(guids))
+    took_s = time.perf_counter() - started_s
+    out.print(f"{len(guids)} runs analysed in {took_s:.1f} s ({1e3 * took_s / max(len(guids), 1):.0f} ms per run), "
+              f"{results} results stored" + (f", referred to calibration set {cal}" if cal else ""), highlight=False)
 
 
 @app.command()

@@ -14,10 +14,12 @@ from tonebench.analysis.assess import (
 )
 from tonebench.catalog.limits import apply_verdicts
 from tonebench.store.models import (
+    Device,
     Point,
     PointFlag,
     Result,
     ResultFlag,
+    Run,
     utc_now,
 )
 
@@ -47,6 +49,20 @@ def _details(a: SweepAssessment) -> dict:
         "second_order": None if second is None else {
             "bound_db": second.bound_db, "reason": second.reason, "per_product": second.per_product},
     }
+
+
+def finished_runs(sessions: sessionmaker, parts: tuple[str, ...] = (), lots: tuple[str, ...] = ()) -> list[str]:
+    """GUIDs of the runs with measured points that no process is measuring (oldest first), of
+    these part numbers and lots when given: what `analyze --all` goes through."""
+    query = (select(Run.guid).join(Device, Device.id == Run.device_id).where(Run.status != "running")
+             .where(select(Point.id).where(Point.run_id == Run.id, Point.status == "measured").exists())
+             .order_by(Run.id))
+    if parts:
+        query = query.where(Device.part_number.in_(parts))
+    if lots:
+        query = query.where(Device.lot.in_(lots))
+    with sessions() as session:
+        return list(session.scalars(query))
 
 
 def analyze_run(sessions: sessionmaker, run_guid: str, cal_name: str | None = None) -> list[Result]:
