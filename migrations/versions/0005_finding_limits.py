@@ -1,6 +1,6 @@
 """Spec limits on sweet-spot findings: the findings' verdicts, the studies' centre frequency, the
 new limit parameters (sweet spot, window width, IIP3 at the sweet spot) and a chamber
-temperature range on limits.
+temperature range on limits; indexes for the result filters of `find` (spacing, bias, verdict).
 
 Revision ID: 0005
 Revises: 0004
@@ -25,7 +25,12 @@ def _in(column: str, allowed: tuple[str, ...]) -> str:
     return f"{column} IN ({', '.join(repr(a) for a in allowed)})"
 
 
+RESULT_INDEXES = (('ix_results_spacing', 'spacing_hz'), ('ix_results_bias', 'bias_v'), ('ix_results_verdict', 'verdict'))
+
+
 def upgrade() -> None:
+    for name, column in RESULT_INDEXES:
+        op.create_index(name, 'results', [column], unique=False)
     with op.batch_alter_table('spec_limits', schema=None) as batch_op:
         batch_op.add_column(sa.Column('temp_min_c', sa.Double(), nullable=True))
         batch_op.add_column(sa.Column('temp_max_c', sa.Double(), nullable=True))
@@ -41,6 +46,8 @@ def upgrade() -> None:
 
 
 def downgrade() -> None:
+    for name, _column in RESULT_INDEXES:
+        op.drop_index(name, table_name='results')
     with op.batch_alter_table('bias_findings', schema=None) as batch_op:
         batch_op.drop_constraint(batch_op.f('ck_bias_findings_verdict'), type_='check')
         batch_op.drop_column('verdict_detail')

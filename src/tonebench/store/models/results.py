@@ -39,6 +39,10 @@ class Result(Base):
         sa.UniqueConstraint("run_id", "group_key"),
         sa.CheckConstraint(f"verdict IS NULL OR {in_list('verdict', VERDICTS)}", name="verdict"),
         sa.Index("ix_results_center_spacing", "center_hz", "spacing_hz"),
+        # The other filters of `find` (checked with each backend's planner, tests/catalog).
+        sa.Index("ix_results_spacing", "spacing_hz"),
+        sa.Index("ix_results_bias", "bias_v"),
+        sa.Index("ix_results_verdict", "verdict"),
     )
 
     id: Mapped[int] = mapped_column(primary_key=True)
