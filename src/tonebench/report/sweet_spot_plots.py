@@ -57,8 +57,10 @@ def sweet_spot_figure(spots: list[dict], limits: dict[str, list[LimitRule]] | No
                 error_y=dict(type="data", array=[s["sweet_spot_bound_v"] for s in members], color=color),
                 hovertext=[_hover(s) for s in members], hovertemplate="%{hovertext}<extra></extra>"))
     _limit_lines(fig, limits or {}, {part for part, _lot, _serial in devices})
+    judged = any(s["verdict"] in VERDICT_OUTLINES for s in spots)
     fig.update_layout(
-        title="Sweet spot (gate voltage where g3 crosses zero), its bound, and its window (bar) per device",
+        title="Sweet spot (gate voltage where g3 crosses zero), its bound, and its window (bar) per device"
+              + ("<br><sup>outline of a measured spot: its spec verdict, green pass, red fail</sup>" if judged else ""),
         template="plotly_white", height=480, barmode="overlay", yaxis_title="gate voltage (V)",
         xaxis=dict(tickmode="array", tickvals=list(range(len(devices))), title="device (serial, lot)",
                    ticktext=[f"{html.escape(serial)}<br>{html.escape(lot)}" for _part, lot, serial in devices]),
@@ -74,7 +76,7 @@ def _limit_lines(fig: go.Figure, limits: dict[str, list[LimitRule]], parts: set[
                 continue
             for name, value in (("min", rule.min_value), ("max", rule.max_value)):
                 if value is not None:
-                    label = f"{html.escape(part)} spec {name} {value:.3f} V" if len(parts) > 1 else f"spec {name} {value:.3f} V"
+                    label = f"{html.escape(part)} spec {name} {value:.4f} V" if len(parts) > 1 else f"spec {name} {value:.4f} V"
                     fig.add_hline(y=value, line=dict(color=LIMIT_COLOR, dash="dash", width=1.5),
                                   annotation_text=label, annotation_font_color=LIMIT_COLOR)
 
