@@ -19,7 +19,7 @@ from tonebench.instruments.open_bench import role_dialects
 from tonebench.plan.points import expand
 from tonebench.run.bench_time import estimate_bench_time, sweeps_per_point
 from tonebench.run.start import execute_run
-from tonebench.store.models import Run
+from tonebench.store.models import Point, Run
 from tonebench.units import format_duration
 
 
@@ -29,7 +29,9 @@ def test_sweeps_counted_by_hand():
     plan = load_plan(SAMPLE_RUNS / "demo_plan.toml").settings
     bench = load_bench(SAMPLE_RUNS / "sim_bench.toml").settings
     points = expand(plan)
-    assert sum(sweeps_per_point(points, plan, points)) == 51 * 4 + 3 * 2 * 2 + 3 * 2
+    counts = sweeps_per_point(points, plan, points)
+    assert sum(t for t, _ in counts) == 51 * 2 + 3 * 2  # the tones, and again at each sweep's first point
+    assert sum(p for _, p in counts) == 51 * 2 + 3 * 2 * 2  # the products, and again at the top two powers
     estimate = estimate_bench_time(points, plan, bench, role_dialects(bench))
     # 2.5 * span / RBW^2 (generic-analyzer k), span 10 RBW at the plan's RBW; 5 ms per source per point.
     rbw_hz, span_hz = plan.analyzer.rbw_hz, plan.analyzer.effective_span_hz
@@ -91,3 +93,28 @@ def test_a_chamber_ramp_adds_the_way_there(tmp_path):
     # From 23 degC to -20, 25 and 85 degC: 43 + 45 + 60 degC at 5.4 degC/min, and three dwells of 300 s.
     assert estimate.soak_s == pytest.approx(60 * 148 / 5.4 + 3 * 300)
     assert json.dumps(estimate.as_dict())  # stored with the run as JSON
+
+
+def test_tones_read_wider_take_less_bench_time_and_give_the_same_intercepts(tmp_path):
+    """`[analyzer] tone_rbw_hz`: the tones at 30 kHz (span 300 kHz, under the 1 MHz spacing) and
+    the products at the plan's 1 kHz. A tone is a line far over the noise: its reading does not
+    depend on the RBW, the sweep time falls with it (k * 10 / RBW). Same seed, same device."""
+    text = (SAMPLE_RUNS / "demo_plan.toml").read_text()
+    wide = tmp_path / "wide.toml"
+    wide.write_text(text.replace("rbw_hz = 1000.0", "rbw_hz = 1000.0\ntone_rbw_hz = 30000.0", 1))
+    outcomes = {}
+    for name, plan in (("plan", SAMPLE_RUNS / "demo_plan.toml"), ("wide", wide)):
+        estimates = []
+        outcomes[name] = (execute_run(plan, SAMPLE_RUNS / "sim_bench.toml", f"sqlite:///{tmp_path / name}.db", None,
+                                      on_estimate=estimates.append), estimates[0])
+    (plan_run, _), (wide_run, wide_estimate) = outcomes["plan"], outcomes["wide"]
+    for a, b in zip(sorted(plan_run.results, key=lambda r: r.center_hz), sorted(wide_run.results, key=lambda r: r.center_hz)):
+        assert b.iip3_dbm == pytest.approx(a.iip3_dbm, abs=0.05)
+    assert wide_run.bench_time.taken_s < 0.6 * plan_run.bench_time.taken_s
+    assert wide_estimate.total_s == pytest.approx(wide_run.bench_time.taken_s, rel=0.10)
+    with Session(create_engine(f"sqlite:///{tmp_path / 'wide'}.db")) as session:
+        assert {p.extra_json["tone_rbw_hz"] for p in session.scalars(select(Point))} == {30000.0}
+    too_wide = tmp_path / "too_wide.toml"
+    too_wide.write_text(text.replace("rbw_hz = 1000.0", "rbw_hz = 1000.0\ntone_rbw_hz = 100000.0", 1))
+    refused = invoke("run", too_wide, "--bench", SAMPLE_RUNS / "sim_bench.toml", "--dry-run")
+    assert refused.exit_code == 2 and "tone_rbw_hz 100000 Hz: its span (ten of it) must be narrower" in refused.output

@@ -242,6 +242,10 @@ class AnalyzerSettings(StrictModel):
     # IM3 products under 10 dB over their noise are read again at a narrower RBW, their sweeps
     # held to this many seconds per point (run/narrowing.py). Left out: read at rbw_hz only.
     narrowing_budget_s: float | None = Field(default=None, gt=0.0, le=3600.0)
+    # The two tones read at this RBW (span ten of it), far wider than the products need: a tone
+    # is 60 dB or more over the noise, and its sweep time falls with the RBW squared. Left out:
+    # the tones are read at rbw_hz like the products.
+    tone_rbw_hz: float | None = Field(default=None, gt=0.0, le=10e6)
 
     @property
     def auto_atten(self) -> bool:
@@ -276,6 +280,12 @@ class PlanFile(StrictModel):
             raise ValueError(
                 f"analyzer span {self.analyzer.effective_span_hz} Hz must be narrower than the tone "
                 f"spacing {narrowest_hz} Hz, so each read sees one product only"
+            )
+        tone_rbw_hz = self.analyzer.tone_rbw_hz
+        if tone_rbw_hz is not None and 10 * tone_rbw_hz >= narrowest_hz:
+            raise ValueError(
+                f"analyzer tone_rbw_hz {tone_rbw_hz:g} Hz: its span (ten of it) must be narrower than the tone "
+                f"spacing {narrowest_hz:g} Hz, so each tone is read alone; give at most {narrowest_hz / 10:g} Hz less a step"
             )
         return self
 

@@ -61,6 +61,15 @@ class AttenuationChoice:
         setup = replace(base, atten_db=choice.atten_db, ref_level_dbm=self.ref_level_dbm(choice.atten_db))
         return setup, choice.limited_by
 
+    def tone_setup(self, setup: AnalyzerSetup) -> AnalyzerSetup:
+        """Where the tones of a point with `setup` are read: at the plan's tone_rbw_hz (span and
+        VBW with it, attenuation and reference level as the products'), else at `setup` itself."""
+        tone_rbw_hz = self.settings.tone_rbw_hz
+        if tone_rbw_hz is None:
+            return setup
+        return replace(setup, rbw_hz=tone_rbw_hz, vbw_hz=tone_rbw_hz * setup.vbw_hz / setup.rbw_hz,
+                       span_hz=10.0 * tone_rbw_hz)
+
     def step_reason(self, is_top: bool, setup: AnalyzerSetup, readings: Readings) -> str | None:
         """Why the IM3 is read again with more attenuation ("top" or "near"), or None."""
         if is_top:

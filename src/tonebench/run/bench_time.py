@@ -7,8 +7,8 @@ settle), and the chamber's way to each new temperature: the ramp at the bench fi
 ramp_c_per_min (from ROOM_C for the first; left out, none) and the dwell. Software and command
 latency are not in it.
 
-The sweeps per point follow the sequencer (run/sequencer.py): four reads (both tones, both IM3
-products); the IM3 pair again at each sweep's step_top_points highest tone powers (the
+The sweeps per point follow the sequencer (run/sequencer.py): four reads (both tones, at the
+plan's tone_rbw_hz when it has one, and both IM3 products); the IM3 pair again at each sweep's step_top_points highest tone powers (the
 attenuation-step check); both tones again at each sweep's first point (the settle check, no line
 to compare with yet); f2-f1 and f1+f2 when the plan asks for second order. What only the readings
 decide (a step check because the analyzer's own IM3 came near, a settle check because a level
@@ -33,13 +33,15 @@ ROOM_C = 23.0  # where the chamber is taken to start (it stays at the last set p
 @dataclass(frozen=True)
 class BenchTimeEstimate:
     points: int
-    sweeps: int
-    sweep_time_s: float  # one sweep at the plan's span and RBW
-    sweeps_s: float
+    sweeps: int  # product sweeps at the plan's span and RBW
+    sweep_time_s: float  # one of them
+    sweeps_s: float  # every sweep, the tones' included
     settle_s: float
     bias_s: float
     soak_s: float
     narrowing_max_s: float = 0.0  # at most this more for narrow IM3 reads (not in the total)
+    tone_sweeps: int = 0  # at the plan's tone_rbw_hz (none without it: counted in sweeps)
+    tone_sweep_time_s: float = 0.0
 
     @property
     def total_s(self) -> float:
@@ -47,7 +49,9 @@ class BenchTimeEstimate:
 
     def line(self) -> str:
         """One line: the total and where it goes."""
-        parts = [f"{self.sweeps} sweeps of {format_duration(self.sweep_time_s)} ({format_duration(self.sweeps_s)})",
+        parts = [f"{self.sweeps} sweeps of {format_duration(self.sweep_time_s)}"
+                 + (f" and {self.tone_sweeps} tone sweeps of {format_duration(self.tone_sweep_time_s)}"
+                    if self.tone_sweeps else "") + f" ({format_duration(self.sweeps_s)})",
                  f"source settling {format_duration(self.settle_s)}"]
         if self.bias_s:
             parts.append(f"gate changes {format_duration(self.bias_s)}")
@@ -62,21 +66,25 @@ class BenchTimeEstimate:
     def as_dict(self) -> dict:
         return {"total_s": self.total_s, "points": self.points, "sweeps": self.sweeps,
                 "sweep_time_s": self.sweep_time_s, "sweeps_s": self.sweeps_s, "settle_s": self.settle_s,
-                "bias_s": self.bias_s, "soak_s": self.soak_s, "narrowing_max_s": self.narrowing_max_s}
+                "bias_s": self.bias_s, "soak_s": self.soak_s, "narrowing_max_s": self.narrowing_max_s,
+                "tone_sweeps": self.tone_sweeps, "tone_sweep_time_s": self.tone_sweep_time_s}
 
 
-def sweep_time_s(plan: PlanFile, bench: BenchFile, analyzer: Dialect) -> float:
-    """One sweep at the plan's span and RBW, by the analyzer's model (bench-file k first)."""
+def sweep_time_s(plan: PlanFile, bench: BenchFile, analyzer: Dialect, tones: bool = False) -> float:
+    """One sweep at the plan's span and RBW (tones: at its tone_rbw_hz, span ten of it, when it
+    has one), by the analyzer's model (bench-file k first)."""
     factor = bench.instruments["analyzer"].performance.get("sweep_time_factor",
                                                            analyzer.performance["sweep_time_factor"])
     settings = plan.analyzer
+    if tones and settings.tone_rbw_hz is not None:
+        return factor * 10.0 / settings.tone_rbw_hz
     return factor * settings.effective_span_hz / settings.rbw_hz ** 2
 
 
 def sweeps_per_point(points: list[PlannedPoint], plan: PlanFile, todo: list[PlannedPoint],
-                     settle_check: bool = True) -> list[int]:
-    """The sweeps each point of `todo` takes on a well-behaved device (see the module
-    docstring); the step-checked tone powers are those of each whole sweep in `points`."""
+                     settle_check: bool = True) -> list[tuple[int, int]]:
+    """(tone sweeps, product sweeps) each point of `todo` takes on a well-behaved device (see
+    the module docstring); the step-checked tone powers are those of each whole sweep in `points`."""
     levels: dict = {}
     for point in points:
         levels.setdefault(point.sweep_key, set()).add(point.tone_dbm)
@@ -85,15 +93,15 @@ def sweeps_per_point(points: list[PlannedPoint], plan: PlanFile, todo: list[Plan
     seen: set = set()
     counts = []
     for point in todo:
-        sweeps = 4
+        tones, products = 2, 2
         if point.tone_dbm in stepped[point.sweep_key]:
-            sweeps += 2
+            products += 2
         if point.sweep_key not in seen:  # a resumed sweep starts with no line to compare with either
             seen.add(point.sweep_key)
-            sweeps += 2 if settle_check else 0
+            tones += 2 if settle_check else 0
         if plan.sweep.second_order:
-            sweeps += 2
-        counts.append(sweeps)
+            products += 2
+        counts.append((tones, products))
     return counts
 
 
@@ -102,7 +110,11 @@ def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: Bench
     """The bench time of the points not yet measured (a resumed run leaves out `done_keys`)."""
     todo = [point for point in points if point.key not in done_keys]
     one_sweep_s = sweep_time_s(plan, bench, dialects["analyzer"])
-    sweeps = sum(sweeps_per_point(points, plan, todo, bench.unattended.settle_tolerance_db > 0))
+    tone_s = sweep_time_s(plan, bench, dialects["analyzer"], tones=True)
+    counts = sweeps_per_point(points, plan, todo, bench.unattended.settle_tolerance_db > 0)
+    tone_sweeps, product_sweeps = sum(t for t, _ in counts), sum(p for _, p in counts)
+    if plan.analyzer.tone_rbw_hz is None:  # one kind of sweep
+        tone_sweeps, product_sweeps = 0, tone_sweeps + product_sweeps
     settle_s = sum(dialects[role].performance.get("settle_time_s", DEFAULT_SETTLE_TIME_S)
                    for role in ("source1", "source2")) * len(todo)
     bias_s, soak_s = 0.0, 0.0
@@ -119,5 +131,5 @@ def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: Bench
             path_c = [ROOM_C, *temperatures]
             soak_s += 60.0 * sum(abs(b - a) for a, b in zip(path_c, path_c[1:])) / chamber.ramp_c_per_min
     narrowing_max_s = (plan.analyzer.narrowing_budget_s or 0.0) * len(todo)
-    return BenchTimeEstimate(len(todo), sweeps, one_sweep_s, sweeps * one_sweep_s, settle_s, bias_s, soak_s,
-                             narrowing_max_s)
+    return BenchTimeEstimate(len(todo), product_sweeps, one_sweep_s, product_sweeps * one_sweep_s + tone_sweeps * tone_s,
+                             settle_s, bias_s, soak_s, narrowing_max_s, tone_sweeps, tone_s)

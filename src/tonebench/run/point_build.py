@@ -104,6 +104,8 @@ def _extra(measured: Measured, drift: str | None) -> dict:
         extra.update(raw_noise_diff_dbm=second.noise_diff_dbm, raw_noise_sum_dbm=second.noise_sum_dbm)
     if drift:
         extra["source_drift"] = drift
+    if measured.tone_rbw_hz is not None:  # rbw_hz and span_hz are the products'
+        extra["tone_rbw_hz"] = measured.tone_rbw_hz
     narrow = measured.narrow
     if narrow is not None:  # the IM3 columns hold this narrower read
         extra.update(im3_rbw_hz=narrow.rbw_hz, im3_sweep_time_s=narrow.sweep_time_s,

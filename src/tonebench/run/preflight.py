@@ -79,14 +79,16 @@ def point_settings(pre: Preflight) -> list[dict[str, str]]:
     choice = AttenuationChoice(analyzer, plan.analyzer, lambda *_: None)
     sweeps = sweeps_per_point(pre.points, plan, pre.points, bench.unattended.settle_tolerance_db > 0)
     one_sweep_s = sweep_time_s(plan, bench, pre.dialects["analyzer"])
+    tone_s = sweep_time_s(plan, bench, pre.dialects["analyzer"], tones=True)
     rows = []
-    for point, count in zip(pre.points, sweeps):
+    for point, (tones, products) in zip(pre.points, sweeps):
         levels = predict_levels(point, pre.offsets, bench.limits)
         tone_dbm = arithmetic.analyzer_input_dbm(point.tone_dbm + bench.limits.expected_gain_db,
                                                  pre.offsets["out"].loss_db(point.f1_hz))
         setup, how = choice.setup_for(lambda: tone_dbm)
         rows.append({"Point": point.name, "Source 1 dBm": f"{levels.source1_dbm:.2f}",
                      "Source 2 dBm": f"{levels.source2_dbm:.2f}", "Analyzer in dBm": f"{tone_dbm:.1f}",
-                     "Atten dB": f"{setup.atten_db:g} ({how})", "RBW Hz": f"{setup.rbw_hz:g}",
-                     "Sweeps": str(count), "Sweep time": f"{count * one_sweep_s:.3g} s"})
+                     "Atten dB": f"{setup.atten_db:g} ({how})", "RBW Hz": f"{setup.rbw_hz:g}"
+                     + ("" if plan.analyzer.tone_rbw_hz is None else f" (tones {plan.analyzer.tone_rbw_hz:g})"),
+                     "Sweeps": str(tones + products), "Sweep time": f"{tones * tone_s + products * one_sweep_s:.3g} s"})
     return rows

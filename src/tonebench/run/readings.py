@@ -64,13 +64,16 @@ class Measured:
     bias: BiasReading | None = None  # the gate and drain supplies' read-back, on a bias bench
     chamber_c: float | None = None  # the chamber's reading, on a point with a temperature
     narrow: object | None = None  # run/narrowing.NarrowRead: the IM3 read again narrower
+    tone_rbw_hz: float | None = None  # the tones' RBW, when not the products' (setup)
 
 
-def read_point(analyzer, point: PlannedPoint, noise_offset_hz: float) -> Readings:
-    """Four narrow-span reads, one per product; the noise floor is read beside each IM3 product,
-    on the side away from the tones."""
-    f1 = analyzer.read_markers(point.f1_hz, [point.f1_hz])
-    f2 = analyzer.read_markers(point.f2_hz, [point.f2_hz])
+def read_point(analyzer, point: PlannedPoint, noise_offset_hz: float, setup: AnalyzerSetup,
+               tone_setup: AnalyzerSetup) -> Readings:
+    """Four narrow-span reads, one per product, the tones at tone_setup and the products at
+    setup (the same unless the plan reads tones wider); the noise floor is read beside each IM3
+    product, on the side away from the tones."""
+    f1, f2 = _tones(analyzer, point, tone_setup)
+    analyzer.apply(setup)
     lower, upper = read_im3(analyzer, point, noise_offset_hz)
     reads = (f1, f2, lower, upper)
     return Readings(
@@ -85,10 +88,16 @@ def read_point(analyzer, point: PlannedPoint, noise_offset_hz: float) -> Reading
     )
 
 
-def read_tones_dbm(analyzer, point: PlannedPoint) -> tuple[float, float]:
+def read_tones_dbm(analyzer, point: PlannedPoint, tone_setup: AnalyzerSetup) -> tuple[float, float]:
     """Both tones read again (the settle check)."""
-    return (analyzer.read_markers(point.f1_hz, [point.f1_hz]).powers_dbm[0],
-            analyzer.read_markers(point.f2_hz, [point.f2_hz]).powers_dbm[0])
+    f1, f2 = _tones(analyzer, point, tone_setup)
+    return f1.powers_dbm[0], f2.powers_dbm[0]
+
+
+def _tones(analyzer, point: PlannedPoint, tone_setup: AnalyzerSetup) -> tuple[MarkerReading, MarkerReading]:
+    analyzer.apply(tone_setup)
+    return (analyzer.read_markers(point.f1_hz, [point.f1_hz]),
+            analyzer.read_markers(point.f2_hz, [point.f2_hz]))
 
 
 def read_im3(analyzer, point: PlannedPoint, noise_offset_hz: float) -> tuple[MarkerReading, MarkerReading]:

@@ -283,12 +283,11 @@ class Sequencer:
                 self._rf_said = True
                 self.log.event("info", "rf-on", "RF on at both sources")
         setup, choice = self.attenuation.setup_for(lambda: self._predicted_tone_dbm(point, sweep))
-        analyzer = self.bench.analyzer
-        analyzer.apply(setup)
+        analyzer, tone_setup = self.bench.analyzer, self.attenuation.tone_setup(setup)
         settings = self.analyzer_settings
         narrow = None
         with analyzer.errors_read_once():
-            readings = read_point(analyzer, point, settings.noise_offset_hz)
+            readings = read_point(analyzer, point, settings.noise_offset_hz, setup, tone_setup)
             if settings.narrowing_budget_s is not None:
                 readings, narrow = read_narrow(
                     analyzer, point, setup, readings, settings.noise_offset_hz, settings.narrowing_budget_s,
@@ -296,7 +295,8 @@ class Sequencer:
             second = self._read_second_order(point) if self.second_order else None
             step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings)
         chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
-        return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c, narrow)
+        return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c, narrow,
+                        None if tone_setup == setup else tone_setup.rbw_hz)
 
     def _settled(self, point: PlannedPoint, measured: Measured) -> str | None:
         """Why the tone levels may still have been moving during the point, or None.
@@ -314,9 +314,9 @@ class Sequencer:
         predicted = self.sweeps[point.sweep_key].expected_tones_dbm(point.tone_dbm)
         if predicted is not None and all(abs(read - want) <= tolerance_db for read, want in zip(first, predicted)):
             return None
-        analyzer = self.bench.analyzer
-        analyzer.apply(measured.setup)  # the step check may have left more attenuation
-        return settle_check(first, read_tones_dbm(analyzer, point), tolerance_db)
+        # Read where the point's tones were (the step check may have left more attenuation).
+        again = read_tones_dbm(self.bench.analyzer, point, self.attenuation.tone_setup(measured.setup))
+        return settle_check(first, again, tolerance_db)
 
     def _fail(self, point: PlannedPoint, reason: str, elapsed_s: float) -> None:
         """Store the point as failed with its reason, then apply the on_point_failure policy."""
