@@ -70,8 +70,9 @@ class SpectrumAnalyzer(RoleDriver):
 
     @contextlib.contextmanager
     def errors_read_once(self):
-        """Reads inside leave the error queue alone; it is drained once at the end (one point's
-        reads: an error there makes the point measured again, as an error of any read would)."""
+        """Reads and settings inside leave the error queue alone; it is drained once at the end
+        (one point's reads: an error there makes the point measured again, and the retry's
+        restore sends every setting anew, so a refused one is not taken as in force)."""
         self._errors_deferred = True
         try:
             yield
@@ -215,7 +216,7 @@ class SpectrumAnalyzer(RoleDriver):
                     self._sent.pop(operation, None)
                     self.instrument.call(operation, **{field: value})
                     self._sent[operation] = value
-            if drain:
+            if drain and not self._errors_deferred:
                 self.instrument.check_errors()
         except Exception:
             # A rejected setting leaves the instrument in an unknown state; send all next time.
