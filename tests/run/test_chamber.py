@@ -137,6 +137,7 @@ def test_a_chamber_held_at_the_callers_soak_is_not_dwelt_in_again(tmp_path, star
         reads = [p.chamber_read_c for p in session.scalars(select(Point).where(Point.temperature_c == 85.0))]
     kinds = [kind for kind, _ in events]
     assert kinds.count("soak-start") == (2 if soaked else 1) and kinds.count("soak-held") == (0 if soaked else 1)
+    assert rf_is_off(started[0])  # read from the simulated sources themselves
     assert all(abs(read_c - 85.0) <= 0.5 for read_c in reads)
     if not soaked:
         assert "held at 85 degC since the last soak, reads 85.00 degC" in dict(events)["soak-held"]

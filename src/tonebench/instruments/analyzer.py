@@ -31,6 +31,12 @@ ABOVE_DAMAGE_DB = 3.0
 BELOW_THERMAL_DB = 50.0
 
 
+def sweep_time_model_s(factor: float, span_hz: float, rbw_hz: float) -> float:
+    """Swept-analyzer sweep time k * span / RBW^2 (design section 5): the one model, for a run's
+    timeouts and for the bench-time estimate made before anything is connected."""
+    return factor * span_hz / rbw_hz**2
+
+
 @dataclass(frozen=True)
 class AnalyzerSetup:
     """Analyzer settings that do not change with the tone frequencies."""
@@ -205,8 +211,8 @@ class SpectrumAnalyzer(RoleDriver):
         return sweep_time_s
 
     def predicted_sweep_time_s(self, setup: AnalyzerSetup) -> float:
-        """Swept-analyzer sweep time k * span / RBW^2 (design section 5), k from the dialect."""
-        return self.performance["sweep_time_factor"] * setup.span_hz / setup.rbw_hz**2
+        """The sweep time of `setup` by sweep_time_model_s, k from the dialect (or bench file)."""
+        return sweep_time_model_s(self.performance["sweep_time_factor"], setup.span_hz, setup.rbw_hz)
 
     def _send_changed(self, steps: list[tuple[str, str, float]], drain: bool = True) -> None:
         try:

@@ -85,6 +85,12 @@ def predicted_analyzer_input_dbm(tones: Iterable[tuple[float, float]], gain_db: 
     )
 
 
+def expected_tone_dbm(point: PlannedPoint, offsets: dict[str, LossTable], limits: BenchLimits) -> float:
+    """One tone's level expected at the analyzer input (dBm): the expected gain less the output
+    loss at f1, before any point of its sweep has been read."""
+    return arithmetic.analyzer_input_dbm(point.tone_dbm + limits.expected_gain_db, offsets["out"].loss_db(point.f1_hz))
+
+
 def predict_levels(point: PlannedPoint, offsets: dict[str, LossTable], limits: BenchLimits) -> PointLevels:
     """Both source settings of a point (open loop) and the power predicted at the analyzer input."""
     source1_dbm = arithmetic.source_setting_dbm(point.tone_dbm, offsets["in1"].loss_db(point.f1_hz))

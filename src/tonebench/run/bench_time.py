@@ -22,6 +22,7 @@ from dataclasses import dataclass
 
 from tonebench.config.bench_file import BenchFile
 from tonebench.config.plan_file import PlanFile
+from tonebench.instruments.analyzer import sweep_time_model_s
 from tonebench.instruments.dialect import Dialect
 from tonebench.plan.points import PlannedPoint
 from tonebench.units import format_duration
@@ -77,8 +78,8 @@ def sweep_time_s(plan: PlanFile, bench: BenchFile, analyzer: Dialect, tones: boo
                                                            analyzer.performance["sweep_time_factor"])
     settings = plan.analyzer
     if tones and settings.tone_rbw_hz is not None:
-        return factor * 10.0 / settings.tone_rbw_hz
-    return factor * settings.effective_span_hz / settings.rbw_hz ** 2
+        return sweep_time_model_s(factor, 10.0 * settings.tone_rbw_hz, settings.tone_rbw_hz)
+    return sweep_time_model_s(factor, settings.effective_span_hz, settings.rbw_hz)
 
 
 def sweeps_per_point(points: list[PlannedPoint], plan: PlanFile, todo: list[PlannedPoint],

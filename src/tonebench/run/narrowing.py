@@ -51,13 +51,6 @@ def step_down_hz(rbw_hz: float) -> float:
     return max(decade * m for m in RBW_STEPS if decade * m <= rbw_hz * (1 + 1e-9))
 
 
-def step_up_hz(rbw_hz: float) -> float:
-    """The next 1-2-5 step above a 1-2-5 step rbw_hz."""
-    decade = 10.0 ** math.floor(math.log10(rbw_hz) + 1e-9)
-    mantissa = rbw_hz / decade
-    return decade * next(m for m in (*RBW_STEPS, 10.0) if m > mantissa * (1 + 1e-9))
-
-
 def narrow_rbw_hz(current: AnalyzerSetup, snr_now_db: float, budget_s: float, sweep_time_s,
                   setup_at: Callable[[float], AnalyzerSetup]) -> float | None:
     """The RBW to read the products again at, or None (no need, or no narrower step affordable):

@@ -17,10 +17,10 @@ from tonebench.plan.limits import (
     check_plan,
     check_plan_frequencies,
     check_plan_parts,
+    expected_tone_dbm,
     predict_levels,
 )
 from tonebench.plan.points import PlannedPoint, expand
-from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.bench_time import (
@@ -83,8 +83,7 @@ def point_settings(pre: Preflight) -> list[dict[str, str]]:
     rows = []
     for point, (tones, products) in zip(pre.points, sweeps):
         levels = predict_levels(point, pre.offsets, bench.limits)
-        tone_dbm = arithmetic.analyzer_input_dbm(point.tone_dbm + bench.limits.expected_gain_db,
-                                                 pre.offsets["out"].loss_db(point.f1_hz))
+        tone_dbm = expected_tone_dbm(point, pre.offsets, bench.limits)
         setup, how = choice.setup_for(lambda: tone_dbm)
         rows.append({"Point": point.name, "Source 1 dBm": f"{levels.source1_dbm:.2f}",
                      "Source 2 dBm": f"{levels.source2_dbm:.2f}", "Analyzer in dBm": f"{tone_dbm:.1f}",

@@ -27,9 +27,8 @@ from tonebench.instruments.open_bench import OpenBench
 from tonebench.instruments.rf_guard import RfOffReport, raise_if_stopping, shielded
 from tonebench.instruments.supply import SupplyTripped
 from tonebench.plan.axes import SweepKey
-from tonebench.plan.limits import check_source_power, predict_levels
+from tonebench.plan.limits import check_source_power, expected_tone_dbm, predict_levels
 from tonebench.plan.points import PlannedPoint
-from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.drift import DriftTracker
@@ -354,8 +353,7 @@ class Sequencer:
         predicted = sweep.predicted_tone_dbm(point.tone_dbm)
         if predicted is not None:
             return predicted
-        return arithmetic.analyzer_input_dbm(point.tone_dbm + self.limits.expected_gain_db,
-                                             self.offsets["out"].loss_db(point.f1_hz))
+        return expected_tone_dbm(point, self.offsets, self.limits)
 
     def _read_second_order(self, point: PlannedPoint):
         blocked = second_order_blocked(self.bench.analyzer.limits, self.setup.span_hz, self.offsets["out"], point)
