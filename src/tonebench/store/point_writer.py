@@ -7,6 +7,7 @@ from sqlalchemy import delete, insert, select
 from sqlalchemy.orm import sessionmaker
 
 from tonebench.errors import InputError
+from tonebench.instruments.rf_guard import shielded
 from tonebench.store.models import Point, utc_now
 from tonebench.store.point_record import PointRecord, point_columns
 from tonebench.plan.axes import point_name_of_key
@@ -19,7 +20,7 @@ def store_point(sessions: sessionmaker, run_id: int, record: PointRecord) -> Non
     again), a measured one never is."""
     # Plain statements in the engine's own transaction: no session and no ORM object for a row
     # that is only ever written here (3300 rather than 1100 commits per second on SQLite).
-    with sessions.kw["bind"].begin() as connection:
+    with shielded(), sessions.kw["bind"].begin() as connection:  # a stop waits for the commit
         existing = connection.execute(
             select(_POINTS.c.id, _POINTS.c.status).where(_POINTS.c.run_id == run_id,
                                                          _POINTS.c.point_key == record.point_key)

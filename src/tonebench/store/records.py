@@ -12,6 +12,7 @@ from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session, sessionmaker
 
+from tonebench.instruments.rf_guard import shielded
 from tonebench.version import __version__
 from tonebench.store.database import DiskFull
 from tonebench.store.models import (
@@ -125,7 +126,9 @@ class RunRecorder:
             run.metadata_json = {**(run.metadata_json or {}), **values}
 
     def event(self, level: str, kind: str, message: str, details: dict | None = None) -> None:
-        with self.sessions.begin() as session:
+        # A Ctrl-C or SIGTERM raised inside the commit would leave SQLAlchemy's transaction half
+        # closed (ResourceClosedError instead of the stop): it is raised right after it instead.
+        with shielded(), self.sessions.begin() as session:
             session.add(Event(run_id=self.run_id, at=utc_now(), level=level, kind=kind, message=message, details_json=details or {}))
 
     def finish(self, status: str, end_reason: str) -> None:
