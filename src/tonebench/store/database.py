@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import functools
 import re
+import sqlite3
+import time
 from pathlib import Path
 
 import sqlalchemy as sa
@@ -287,7 +289,7 @@ def _add_sqlite_pragmas(engine: sa.Engine, *, foreign_keys: bool) -> None:
         # busy_timeout first: switching a fresh file to WAL takes a lock another process may hold.
         cursor = dbapi_connection.cursor()
         cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
-        cursor.execute("PRAGMA journal_mode=WAL")
+        _switch_to_wal(cursor)
         # The usual choice for an append-only log in WAL mode (SQLite's PRAGMA synchronous
         # documentation): a crashed process loses nothing committed; a power cut can lose the
         # last commits since the last checkpoint, never the file's consistency.
@@ -296,12 +298,32 @@ def _add_sqlite_pragmas(engine: sa.Engine, *, foreign_keys: bool) -> None:
         cursor.close()
 
 
+def _switch_to_wal(cursor) -> None:
+    """PRAGMA journal_mode=WAL, retried while another process holds the lock it needs.
+
+    On a fresh file that switch answers "database is locked" at once, without waiting out the
+    busy timeout (SQLite's deadlock rule: it holds a read lock and wants the write lock); four
+    processes opening one fresh file hit it about 1 open in 17 (measured, raw sqlite3)."""
+    deadline = time.monotonic() + SQLITE_BUSY_TIMEOUT_MS / 1000
+    while True:
+        try:
+            cursor.execute("PRAGMA journal_mode=WAL")
+            return
+        except sqlite3.OperationalError as exc:
+            if "locked" not in str(exc) or time.monotonic() > deadline:
+                raise
+            time.sleep(0.005)
+
+
 def _check_reachable(engine: sa.Engine, shown: str) -> None:
     try:
         with engine.connect() as connection:
             connection.exec_driver_sql("SELECT 1")
     except sa.exc.DBAPIError as exc:
         reason = str(exc.orig).strip() or type(exc.orig).__name__
+        if "database is locked" in reason:  # the URL is fine: another process holds the file
+            raise DatabaseError(f"database {shown} stayed locked by another process for "
+                                f"{SQLITE_BUSY_TIMEOUT_MS // 1000} s; try again when it is done") from None
         raise _bad_url(shown, reason.splitlines()[0]) from None
 
 
