@@ -19,8 +19,8 @@ import pytest
 import sqlalchemy as sa
 from conftest import SAMPLE_RUNS
 
-from tonebench.queue.worker_lock import SqliteWorkerLock
 from tonebench.errors import DatabaseError
+from tonebench.queue.worker_lock import SqliteWorkerLock
 from tonebench.store.database import open_database, schema_head
 
 SIM_BENCH = SAMPLE_RUNS / "sim_bench.toml"

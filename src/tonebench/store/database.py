@@ -62,7 +62,7 @@ def _revisions() -> dict[str, str | None]:
     """revision -> the revision it follows, from the migration scripts."""
     revisions = {}
     for script in sorted((migrations_dir() / "versions").glob("*.py")):
-        found = dict((name, value or None) for name, value in _REVISION_LINE.findall(script.read_text(encoding="utf-8")))
+        found = {name: value or None for name, value in _REVISION_LINE.findall(script.read_text(encoding="utf-8"))}
         if found.get("revision"):
             revisions[found["revision"]] = found.get("down_revision")
     return revisions
