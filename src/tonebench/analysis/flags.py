@@ -136,3 +136,8 @@ def noise_error_db(snr) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         size = -10.0 * np.log10(1.0 - 10.0 ** (-snr / 10.0))
     return np.where(snr > NOISE_CORRECT_MIN_DB, size / 2.0, np.inf)
+
+
+def snr_for_noise_error_db(error_db: float) -> float:
+    """The signal-to-noise (dB) at which noise_error_db is error_db: its inverse."""
+    return -10.0 * math.log10(1.0 - 10.0 ** (-2.0 * error_db / 10.0))

@@ -174,7 +174,7 @@ def _dry_run(plan_path: Path, bench_path: Path, db_url: str, cal_name: str | Non
     checked = preflight(plan, bench, sessions, cal_name)
     rows = point_settings(checked)
     priorities = {"Point": 10, "Source 1 dBm": 6, "Source 2 dBm": 5, "Analyzer in dBm": 7, "Atten dB": 8,
-                  "RBW Hz": 8, "Sweeps": 9, "Sweep time": 9}
+                  "RBW Hz": 9, "Sweeps": 8, "Sweep time": 9}
     out.print(fitted_table(out, f"{plan.settings.plan.name} on {bench.settings.bench.name}: {len(rows)} points, "
                                 "settings predicted from the expected gain", rows, priorities))
     out.print(checked.estimate().line(), highlight=False)

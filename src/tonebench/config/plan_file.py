@@ -246,6 +246,29 @@ class AnalyzerSettings(StrictModel):
     # is 60 dB or more over the noise, and its sweep time falls with the RBW squared. Left out:
     # the tones are read at rbw_hz like the products.
     tone_rbw_hz: float | None = Field(default=None, gt=0.0, le=10e6)
+    # Settings chosen per read for an accuracy (run/read_settings.py): each IM3 product read at
+    # the widest RBW predicted to put it product_snr_db over its noise, or the SNR that keeps the
+    # noise's share of each point's IIP3 error within iip3_accuracy_db (one of the two). The
+    # tones are then read at the widest RBW the spacing allows, unless tone_rbw_hz says. Never
+    # narrower than rbw_hz, unless narrowing_budget_s pays for it. iip3_guess_dbm predicts each
+    # sweep's first products and the bench time.
+    product_snr_db: float | None = Field(default=None, ge=10.0, le=40.0)
+    iip3_accuracy_db: float | None = Field(default=None, ge=0.01, le=1.0)
+    iip3_guess_dbm: float | None = Field(default=None, ge=-60.0, le=70.0)
+
+    @model_validator(mode="after")
+    def _one_target(self) -> "AnalyzerSettings":
+        if self.product_snr_db is not None and self.iip3_accuracy_db is not None:
+            raise ValueError("give product_snr_db or iip3_accuracy_db, not both (the SNR follows from the accuracy)")
+        if self.reads_to_target and self.iip3_guess_dbm is None:
+            raise ValueError("product_snr_db and iip3_accuracy_db need iip3_guess_dbm, a first guess of the "
+                             "device's IIP3 (dBm) for each sweep's first point and the bench-time estimate")
+        return self
+
+    @property
+    def reads_to_target(self) -> bool:
+        """The RBW is chosen per read for an accuracy (product_snr_db or iip3_accuracy_db)."""
+        return self.product_snr_db is not None or self.iip3_accuracy_db is not None
 
     @property
     def auto_atten(self) -> bool:

@@ -61,15 +61,6 @@ class AttenuationChoice:
         setup = replace(base, atten_db=choice.atten_db, ref_level_dbm=self.ref_level_dbm(choice.atten_db))
         return setup, choice.limited_by
 
-    def tone_setup(self, setup: AnalyzerSetup) -> AnalyzerSetup:
-        """Where the tones of a point with `setup` are read: at the plan's tone_rbw_hz (span and
-        VBW with it, attenuation and reference level as the products'), else at `setup` itself."""
-        tone_rbw_hz = self.settings.tone_rbw_hz
-        if tone_rbw_hz is None:
-            return setup
-        return replace(setup, rbw_hz=tone_rbw_hz, vbw_hz=tone_rbw_hz * setup.vbw_hz / setup.rbw_hz,
-                       span_hz=10.0 * tone_rbw_hz)
-
     def step_reason(self, is_top: bool, setup: AnalyzerSetup, readings: Readings) -> str | None:
         """Why the IM3 is read again with more attenuation ("top" or "near"), or None."""
         if is_top:
@@ -79,8 +70,8 @@ class AttenuationChoice:
         margin_db = min(readings.lower_dbm - float(predicted[0]), readings.upper_dbm - float(predicted[1]))
         return "near" if margin_db < SYSTEM_MARGIN_DB else None
 
-    def step_check(self, point: PlannedPoint, is_top: bool, setup: AnalyzerSetup,
-                   readings: Readings) -> StepReadings | None:
+    def step_check(self, point: PlannedPoint, is_top: bool, setup: AnalyzerSetup, readings: Readings,
+                   noise_offset_hz: float) -> StepReadings | None:
         """Read the IM3 products again with more attenuation where the step check is due."""
         reason = self.step_reason(is_top, setup, readings)
         if reason is None:
@@ -94,4 +85,4 @@ class AttenuationChoice:
                           f"{wanted_db / 2.0:g} dB of the analyzer's maximum")
             return None
         self.analyzer.apply(replace(setup, atten_db=atten_db, ref_level_dbm=self.ref_level_dbm(atten_db)))
-        return step_readings(self.analyzer, point, self.settings.noise_offset_hz, step_db, reason)
+        return step_readings(self.analyzer, point, noise_offset_hz, step_db, reason)

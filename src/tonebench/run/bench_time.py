@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 from tonebench.config.bench_file import BenchFile
 from tonebench.config.plan_file import PlanFile
-from tonebench.instruments.analyzer import sweep_time_model_s
+from tonebench.instruments.analyzer import AnalyzerSetup, sweep_time_model_s
 from tonebench.instruments.dialect import Dialect
 from tonebench.plan.points import PlannedPoint
 from tonebench.units import format_duration
@@ -34,15 +34,16 @@ ROOM_C = 23.0  # where the chamber is taken to start (it stays at the last set p
 @dataclass(frozen=True)
 class BenchTimeEstimate:
     points: int
-    sweeps: int  # product sweeps at the plan's span and RBW
-    sweep_time_s: float  # one of them
+    sweeps: int  # product sweeps (every sweep when the tones are read at the products' setup)
+    sweep_time_s: float  # the longest of them
     sweeps_s: float  # every sweep, the tones' included
     settle_s: float
     bias_s: float
     soak_s: float
     narrowing_max_s: float = 0.0  # at most this more for narrow IM3 reads (not in the total)
-    tone_sweeps: int = 0  # at the plan's tone_rbw_hz (none without it: counted in sweeps)
-    tone_sweep_time_s: float = 0.0
+    tone_sweeps: int = 0  # at the tones' own setup (none when the products': counted in sweeps)
+    tone_sweep_time_s: float = 0.0  # the longest of them
+    shortest_sweep_time_s: float | None = None  # of the product sweeps, when they differ (accuracy target)
 
     @property
     def total_s(self) -> float:
@@ -50,7 +51,10 @@ class BenchTimeEstimate:
 
     def line(self) -> str:
         """One line: the total and where it goes."""
-        parts = [f"{self.sweeps} sweeps of {format_duration(self.sweep_time_s)}"
+        shortest = self.shortest_sweep_time_s
+        products = (f"{format_duration(self.sweep_time_s)}" if shortest is None
+                    else f"{format_duration(shortest)} to {format_duration(self.sweep_time_s)}")
+        parts = [f"{self.sweeps} sweeps of {products}"
                  + (f" and {self.tone_sweeps} tone sweeps of {format_duration(self.tone_sweep_time_s)}"
                     if self.tone_sweeps else "") + f" ({format_duration(self.sweeps_s)})",
                  f"source settling {format_duration(self.settle_s)}"]
@@ -68,14 +72,19 @@ class BenchTimeEstimate:
         return {"total_s": self.total_s, "points": self.points, "sweeps": self.sweeps,
                 "sweep_time_s": self.sweep_time_s, "sweeps_s": self.sweeps_s, "settle_s": self.settle_s,
                 "bias_s": self.bias_s, "soak_s": self.soak_s, "narrowing_max_s": self.narrowing_max_s,
-                "tone_sweeps": self.tone_sweeps, "tone_sweep_time_s": self.tone_sweep_time_s}
+                "tone_sweeps": self.tone_sweeps, "tone_sweep_time_s": self.tone_sweep_time_s,
+                "shortest_sweep_time_s": self.shortest_sweep_time_s}
+
+
+def sweep_time_factor(bench: BenchFile, analyzer: Dialect) -> float:
+    """The analyzer's k in k * span / RBW^2: the bench file's, else its dialect's."""
+    return bench.instruments["analyzer"].performance.get("sweep_time_factor", analyzer.performance["sweep_time_factor"])
 
 
 def sweep_time_s(plan: PlanFile, bench: BenchFile, analyzer: Dialect, tones: bool = False) -> float:
     """One sweep at the plan's span and RBW (tones: at its tone_rbw_hz, span ten of it, when it
     has one), by the analyzer's model (bench-file k first)."""
-    factor = bench.instruments["analyzer"].performance.get("sweep_time_factor",
-                                                           analyzer.performance["sweep_time_factor"])
+    factor = sweep_time_factor(bench, analyzer)
     settings = plan.analyzer
     if tones and settings.tone_rbw_hz is not None:
         return sweep_time_model_s(factor, 10.0 * settings.tone_rbw_hz, settings.tone_rbw_hz)
@@ -107,15 +116,30 @@ def sweeps_per_point(points: list[PlannedPoint], plan: PlanFile, todo: list[Plan
 
 
 def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: BenchFile,
-                        dialects: dict[str, Dialect], done_keys: frozenset[str] = frozenset()) -> BenchTimeEstimate:
-    """The bench time of the points not yet measured (a resumed run leaves out `done_keys`)."""
-    todo = [point for point in points if point.key not in done_keys]
-    one_sweep_s = sweep_time_s(plan, bench, dialects["analyzer"])
-    tone_s = sweep_time_s(plan, bench, dialects["analyzer"], tones=True)
+                        dialects: dict[str, Dialect], done_keys: frozenset[str] = frozenset(),
+                        setups: list[tuple[AnalyzerSetup, AnalyzerSetup]] | None = None) -> BenchTimeEstimate:
+    """The bench time of the points not yet measured (a resumed run leaves out `done_keys`).
+    setups: (tones' setup, products' setup) of each point of `points`, as the sequencer will
+    choose them (run/preflight.planned_setups); left out, the plan's for every point."""
+    todo_index = [i for i, point in enumerate(points) if point.key not in done_keys]
+    todo = [points[i] for i in todo_index]
+    factor = sweep_time_factor(bench, dialects["analyzer"])
     counts = sweeps_per_point(points, plan, todo, bench.unattended.settle_tolerance_db > 0)
+    if setups is None:
+        tone_times = [sweep_time_s(plan, bench, dialects["analyzer"], tones=True)] * len(todo)
+        product_times = [sweep_time_s(plan, bench, dialects["analyzer"])] * len(todo)
+        apart = plan.analyzer.tone_rbw_hz is not None
+    else:
+        chosen = [setups[i] for i in todo_index]
+        tone_times = [sweep_time_model_s(factor, tone.span_hz, tone.rbw_hz) for tone, _ in chosen]
+        product_times = [sweep_time_model_s(factor, products.span_hz, products.rbw_hz) for _, products in chosen]
+        apart = any((tone.rbw_hz, tone.span_hz) != (products.rbw_hz, products.span_hz) for tone, products in chosen)
+    sweeps_s = sum(t * tone_s + p * product_s for (t, p), tone_s, product_s in zip(counts, tone_times, product_times))
     tone_sweeps, product_sweeps = sum(t for t, _ in counts), sum(p for _, p in counts)
-    if plan.analyzer.tone_rbw_hz is None:  # one kind of sweep
+    if not apart:  # one kind of sweep
         tone_sweeps, product_sweeps = 0, tone_sweeps + product_sweeps
+    longest_s = max(product_times, default=0.0)
+    shortest_s = min(product_times, default=0.0)
     settle_s = sum(dialects[role].performance.get("settle_time_s", DEFAULT_SETTLE_TIME_S)
                    for role in ("source1", "source2")) * len(todo)
     bias_s, soak_s = 0.0, 0.0
@@ -132,5 +156,6 @@ def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: Bench
             path_c = [ROOM_C, *temperatures]
             soak_s += 60.0 * sum(abs(b - a) for a, b in zip(path_c, path_c[1:])) / chamber.ramp_c_per_min
     narrowing_max_s = (plan.analyzer.narrowing_budget_s or 0.0) * len(todo)
-    return BenchTimeEstimate(len(todo), product_sweeps, one_sweep_s, product_sweeps * one_sweep_s + tone_sweeps * tone_s,
-                             settle_s, bias_s, soak_s, narrowing_max_s, tone_sweeps, tone_s)
+    return BenchTimeEstimate(len(todo), product_sweeps, longest_s, sweeps_s, settle_s, bias_s, soak_s, narrowing_max_s,
+                             tone_sweeps, max(tone_times, default=0.0) if tone_sweeps else 0.0,
+                             shortest_s if shortest_s < longest_s * (1 - 1e-9) else None)

@@ -34,7 +34,9 @@ def plan_drain_v(plan_settings) -> float | None:
 def watchdog_seconds(run: PreparedRun) -> float:
     """The bench file's watchdog_s, raised if one sweep may legitimately take longer (narrow RBW)."""
     analyzer = run.instruments.analyzer
-    sweep_s = analyzer.predicted_sweep_time_s(sweep_setup(run.plan.settings.analyzer))
+    settings = run.plan.settings.analyzer
+    # A narrow IM3 read may take up to half the point's narrowing budget.
+    sweep_s = max(analyzer.predicted_sweep_time_s(sweep_setup(settings)), (settings.narrowing_budget_s or 0.0) / 2)
     longest_wait_s = 2 * sweep_s + analyzer.instrument.dialect.io.query_timeout_s
     return max(run.bench.settings.unattended.watchdog_s, 2 * longest_wait_s)
 

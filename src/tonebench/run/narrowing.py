@@ -52,14 +52,19 @@ def step_down_hz(rbw_hz: float) -> float:
 
 
 def narrow_rbw_hz(current: AnalyzerSetup, snr_now_db: float, budget_s: float, sweep_time_s,
-                  setup_at: Callable[[float], AnalyzerSetup]) -> float | None:
+                  setup_at: Callable[[float], AnalyzerSetup], target_db: float | None = None) -> float | None:
     """The RBW to read the products again at, or None (no need, or no narrower step affordable):
     the widest 1-2-5 step under current.rbw_hz whose noise, with the attenuation setup_at gives it,
     lies far enough under the present one, else the narrowest the budget pays for two sweeps.
-    sweep_time_s(setup) is the analyzer's predicted sweep time."""
-    wanted_db = IM3_OVER_NOISE_MIN_DB + MARGIN_DB - snr_now_db
-    if wanted_db <= 0:
+    sweep_time_s(setup) is the analyzer's predicted sweep time. With target_db (the plan's accuracy
+    target) a read under it is read again, aimed MARGIN_DB over it."""
+    if target_db is None:
+        needed_db = aim_db = IM3_OVER_NOISE_MIN_DB + MARGIN_DB
+    else:
+        needed_db, aim_db = target_db, target_db + MARGIN_DB
+    if snr_now_db >= needed_db:
         return None
+    wanted_db = aim_db - snr_now_db
     best = None
     rbw_hz = step_down_hz(current.rbw_hz * (1 - 1e-6))
     while rbw_hz >= MIN_RBW_HZ * (1 - 1e-9):
@@ -81,7 +86,8 @@ def narrowed(setup: AnalyzerSetup, rbw_hz: float) -> AnalyzerSetup:
 
 
 def read_narrow(analyzer, point: PlannedPoint, setup: AnalyzerSetup, readings: Readings, noise_offset_hz: float,
-                budget_s: float, setup_at: Callable[[float], AnalyzerSetup]) -> tuple[Readings, NarrowRead | None]:
+                budget_s: float, setup_at: Callable[[float], AnalyzerSetup],
+                target_db: float | None = None) -> tuple[Readings, NarrowRead | None]:
     """The readings with their IM3 products (and noise markers) read again narrower where the
     weaker is under IM3_OVER_NOISE_MIN_DB over its noise, as long as the budget lasts (a read that
     still falls short, its noise marker being one noisy sample, is followed by a narrower one);
@@ -91,7 +97,7 @@ def read_narrow(analyzer, point: PlannedPoint, setup: AnalyzerSetup, readings: R
     current = setup
     for _ in range(MAX_READS):
         rbw_hz = narrow_rbw_hz(current, snr_db(readings), budget_s - spent_s, analyzer.predicted_sweep_time_s,
-                               setup_at)
+                               setup_at, target_db)
         if rbw_hz is None:
             break
         current = setup_at(rbw_hz)

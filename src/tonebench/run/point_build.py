@@ -106,6 +106,8 @@ def _extra(measured: Measured, drift: str | None) -> dict:
         extra["source_drift"] = drift
     if measured.tone_rbw_hz is not None:  # rbw_hz and span_hz are the products'
         extra["tone_rbw_hz"] = measured.tone_rbw_hz
+    if measured.target is not None:  # the products' RBW chosen per point for the plan's accuracy
+        extra["predicted_snr_db"] = round(measured.target.predicted_snr_db, 2)
     narrow = measured.narrow
     if narrow is not None:  # the IM3 columns hold this narrower read
         extra.update(im3_rbw_hz=narrow.rbw_hz, im3_sweep_time_s=narrow.sweep_time_s,

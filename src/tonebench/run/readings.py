@@ -65,6 +65,7 @@ class Measured:
     chamber_c: float | None = None  # the chamber's reading, on a point with a temperature
     narrow: object | None = None  # run/narrowing.NarrowRead: the IM3 read again narrower
     tone_rbw_hz: float | None = None  # the tones' RBW, when not the products' (setup)
+    target: object | None = None  # run/read_settings.ProductChoice: the RBW chosen for an accuracy
 
 
 def read_point(analyzer, point: PlannedPoint, noise_offset_hz: float, setup: AnalyzerSetup,

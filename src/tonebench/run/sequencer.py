@@ -33,6 +33,7 @@ from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.drift import DriftTracker
 from tonebench.run.narrowing import read_narrow
+from tonebench.run.read_settings import TargetReads, tone_setup_for
 from tonebench.run.point_build import failed_record, measured_record
 from tonebench.run.point_guard import BenchFault, PointFailed, PointGuard, settle_check
 from tonebench.run.readings import (
@@ -98,6 +99,8 @@ class Sequencer:
         self.leveling = ToneLeveling(bench, offsets, leveler, self.rf, self.log) if leveler is not None else None
         self.attenuation = AttenuationChoice(bench.analyzer, analyzer_settings, self._say_once)
         self.setup = self.attenuation.setup  # the plan's analyzer setup
+        self.target_reads = (TargetReads(self.attenuation, bench.analyzer.predicted_sweep_time_s)
+                             if analyzer_settings.reads_to_target else None)
         self.failed_keys: list[str] = []
         self.rf_report: RfOffReport | None = None  # how RF went off at the end of run()
         self.sweeps: dict[SweepKey, SweepState] = {}
@@ -238,7 +241,11 @@ class Sequencer:
     def _accept(self, point: PlannedPoint, measured: Measured, elapsed_s: float) -> None:
         """Keep the point's tone readings for its sweep and store its record."""
         readings = measured.readings
-        self.sweeps[point.sweep_key].accept(readings.f1_dbm, readings.f2_dbm, point.tone_dbm)
+        sweep = self.sweeps[point.sweep_key]
+        sweep.accept(readings.f1_dbm, readings.f2_dbm, point.tone_dbm)
+        products_rbw_hz = measured.setup.rbw_hz if measured.narrow is None else measured.narrow.rbw_hz
+        sweep.accept_products(readings.lower_dbm, readings.upper_dbm, readings.noise_lower_dbm,
+                              readings.noise_upper_dbm, products_rbw_hz, point.tone_dbm)
         levels = (self._correction(1, point.f1_hz), self._correction(2, point.f2_hz))
         drift = self.drift.observe(point, readings.f1_dbm, readings.f2_dbm)
         record = measured_record(point, measured, elapsed_s, self.offsets, self._source_settings_dbm(point),
@@ -281,21 +288,32 @@ class Sequencer:
             if not self._rf_said:
                 self._rf_said = True
                 self.log.event("info", "rf-on", "RF on at both sources")
-        setup, choice = self.attenuation.setup_for(lambda: self._predicted_tone_dbm(point, sweep))
-        analyzer, tone_setup = self.bench.analyzer, self.attenuation.tone_setup(setup)
-        settings = self.analyzer_settings
+        def predicted_tone_dbm() -> float:
+            return self._predicted_tone_dbm(point, sweep)
+
+        settings, target = self.analyzer_settings, None
+        if self.target_reads is not None:
+            setup, choice, target = self.target_reads.setup_for(point, predicted_tone_dbm,
+                                                                sweep.predicted_product(point.tone_dbm))
+        else:
+            setup, choice = self.attenuation.setup_for(predicted_tone_dbm)
+        analyzer, tone_setup = self.bench.analyzer, tone_setup_for(settings, setup, point.spacing_hz)
+        # The noise markers stay the same fraction of the span away, whatever the RBW.
+        noise_offset_hz = settings.noise_offset_hz * setup.span_hz / self.setup.span_hz
         narrow = None
         with analyzer.errors_read_once():
-            readings = read_point(analyzer, point, settings.noise_offset_hz, setup, tone_setup)
+            readings = read_point(analyzer, point, noise_offset_hz, setup, tone_setup)
             if settings.narrowing_budget_s is not None:
                 readings, narrow = read_narrow(
-                    analyzer, point, setup, readings, settings.noise_offset_hz, settings.narrowing_budget_s,
-                    lambda rbw_hz: self.attenuation.setup_for(lambda: self._predicted_tone_dbm(point, sweep), rbw_hz)[0])
-            second = self._read_second_order(point) if self.second_order else None
-            step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings)
+                    analyzer, point, setup, readings, noise_offset_hz, settings.narrowing_budget_s,
+                    lambda rbw_hz: self.attenuation.setup_for(predicted_tone_dbm, rbw_hz)[0],
+                    None if target is None else self.target_reads.target_db)
+            second = self._read_second_order(point, noise_offset_hz) if self.second_order else None
+            step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings,
+                                               noise_offset_hz)
         chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
         return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c, narrow,
-                        None if tone_setup == setup else tone_setup.rbw_hz)
+                        None if tone_setup == setup else tone_setup.rbw_hz, target)
 
     def _settled(self, point: PlannedPoint, measured: Measured) -> str | None:
         """Why the tone levels may still have been moving during the point, or None.
@@ -314,7 +332,8 @@ class Sequencer:
         if predicted is not None and all(abs(read - want) <= tolerance_db for read, want in zip(first, predicted)):
             return None
         # Read where the point's tones were (the step check may have left more attenuation).
-        again = read_tones_dbm(self.bench.analyzer, point, self.attenuation.tone_setup(measured.setup))
+        again = read_tones_dbm(self.bench.analyzer, point,
+                               tone_setup_for(self.analyzer_settings, measured.setup, point.spacing_hz))
         return settle_check(first, again, tolerance_db)
 
     def _fail(self, point: PlannedPoint, reason: str, elapsed_s: float) -> None:
@@ -355,13 +374,13 @@ class Sequencer:
             return predicted
         return expected_tone_dbm(point, self.offsets, self.limits)
 
-    def _read_second_order(self, point: PlannedPoint):
+    def _read_second_order(self, point: PlannedPoint, noise_offset_hz: float):
         blocked = second_order_blocked(self.bench.analyzer.limits, self.setup.span_hz, self.offsets["out"], point)
         if blocked is not None:
             self._say_once(f"second-order {point.center_hz} {point.spacing_hz}", "warning", "second-order-skipped",
                            f"second order not read at {format_freq(point.center_hz)} / {format_freq(point.spacing_hz)}: {blocked}")
             return None
-        return read_second_order(self.bench.analyzer, point, self.analyzer_settings.noise_offset_hz)
+        return read_second_order(self.bench.analyzer, point, noise_offset_hz)
 
     def _say_once(self, key: str, level: str, kind: str, message: str) -> None:
         if key not in self._said:

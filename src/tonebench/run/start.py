@@ -21,6 +21,7 @@ from tonebench.plan.points import PlannedPoint, expand
 from tonebench.report.run_report import check_report_path
 from tonebench.run.bench_connection import connect_bench, print_warning
 from tonebench.run.bench_time import BenchTimeEstimate, estimate_bench_time
+from tonebench.run.preflight import planned_setups
 from tonebench.run.calibration_choice import (
     ChosenCalibration,
     calibration_set_id,
@@ -77,8 +78,11 @@ def execute_run(
 
     with ExitStack() as stack:
         checked = _check_and_connect(stack, files, db_url, cal_name, started, on_warning or print_warning)
-        estimate = estimate_bench_time(checked.points, files.plan.settings, files.bench.settings,
-                                       role_dialects(files.bench.settings))
+        dialects = role_dialects(files.bench.settings)
+        setups = planned_setups(checked.points, files.plan.settings, files.bench.settings, dialects,
+                                checked.chosen.tables)
+        estimate = estimate_bench_time(checked.points, files.plan.settings, files.bench.settings, dialects,
+                                       setups=[(planned.tone_setup, planned.setup) for planned in setups])
         prepared = _store_start(stack, files, checked, db_url, report_path, on_warning or print_warning, estimate)
         if on_estimate:
             on_estimate(estimate)
