@@ -14,6 +14,7 @@ from tonebench.plan.points import PlannedPoint
 from tonebench.planes import arithmetic
 from tonebench.planes.loss_table import LossTable
 from tonebench.planes.referral import point_offsets, referred_values
+from tonebench.run.narrowing import snr_db
 from tonebench.run.readings import Measured, SecondOrderReadings, StepReadings
 from tonebench.store.point_record import PointRecord
 
@@ -106,8 +107,11 @@ def _extra(measured: Measured, drift: str | None) -> dict:
         extra["source_drift"] = drift
     if measured.tone_rbw_hz is not None:  # rbw_hz and span_hz are the products'
         extra["tone_rbw_hz"] = measured.tone_rbw_hz
-    if measured.target is not None:  # the products' RBW chosen per point for the plan's accuracy
-        extra["predicted_snr_db"] = round(measured.target.predicted_snr_db, 2)
+    target = measured.target
+    if target is not None:  # the products' RBW chosen per point for the plan's accuracy
+        extra["predicted_snr_db"] = round(target.predicted_snr_db, 2)
+        if snr_db(measured.readings) < target.target_db:  # not even at the narrowest RBW allowed
+            extra["short_of_target"] = True
     narrow = measured.narrow
     if narrow is not None:  # the IM3 columns hold this narrower read
         extra.update(im3_rbw_hz=narrow.rbw_hz, im3_sweep_time_s=narrow.sweep_time_s,

@@ -24,9 +24,14 @@ from tonebench.plan.limits import (
 from tonebench.plan.points import PlannedPoint, expand
 from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
-from tonebench.run.bench_time import BenchTimeEstimate, estimate_bench_time, sweep_time_factor, sweeps_per_point
-from tonebench.run.read_settings import ProductChoice, TargetReads, tone_setup_for
+from tonebench.run.bench_time import (
+    BenchTimeEstimate,
+    estimate_bench_time,
+    sweep_time_factor,
+    sweeps_per_point,
+)
 from tonebench.run.calibration_choice import choose_calibration
+from tonebench.run.read_settings import ProductChoice, TargetReads, tone_setup_for
 
 
 @dataclass(frozen=True)
@@ -99,9 +104,9 @@ def planned_setups(points: list[PlannedPoint], plan: PlanFile, bench: BenchFile,
         tone_dbm = expected_tone_dbm(point, offsets, bench.limits)
         target = None
         if target_reads is not None:
-            setup, how, target = target_reads.setup_for(point, lambda: tone_dbm, None)
+            setup, how, target = target_reads.setup_for(point, lambda tone_dbm=tone_dbm: tone_dbm, None)
         else:
-            setup, how = choice.setup_for(lambda: tone_dbm)
+            setup, how = choice.setup_for(lambda tone_dbm=tone_dbm: tone_dbm)
         planned.append(PlannedSetup(setup, how, tone_setup_for(plan.analyzer, setup, point.spacing_hz), target,
                                     tone_dbm))
     return planned

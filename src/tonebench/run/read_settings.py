@@ -7,7 +7,7 @@ it the target over its noise, predicted before the read:
   or, for a sweep's first point, from the plan's iip3_guess_dbm: IM3 = tone - 2 (IIP3 - Pin);
 - the noise at a candidate RBW: the analyzer's DANL + 10 log RBW + the attenuation the optimum
   gives at that RBW (run/attenuation_choice.py), or the noise density the sweep's last point
-  measured (the device's own output noise is in it), whichever is higher;
+  measured where it lies NOISE_ABOVE_MODEL_DB over that (the device's own output noise);
 - the candidates: the 1-2-5 steps from the widest whose span (ten RBWs) stays inside the tone
   spacing, down to the plan's rbw_hz, or with narrowing_budget_s to the narrowest the budget pays
   two sweeps of; the widest that clears target + MARGIN_DB is taken, else the narrowest.
@@ -33,6 +33,9 @@ from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.narrowing import MARGIN_DB, MIN_RBW_HZ, narrowed, step_down_hz
 
 SPAN_RBWS = 10.0  # the span is ten RBWs (AnalyzerSettings.effective_span_hz)
+# A noise marker is one sample and scatters about 1 dB around the model (16 averages); only a
+# measured floor this far over the model (the device's own noise, an interferer) replaces it.
+NOISE_ABOVE_MODEL_DB = 3.0
 
 
 def target_snr_db(settings: AnalyzerSettings) -> float | None:
@@ -58,6 +61,7 @@ def guessed_product_dbm(tone_at_analyzer_dbm: float, tone_dbm: float, iip3_guess
 class ProductChoice:
     rbw_hz: float
     predicted_snr_db: float  # the weaker product's over its predicted noise at that RBW
+    target_db: float
 
 
 def choose_product_rbw(product_dbm: float, target_db: float, widest_hz: float, narrowest_hz: float,
@@ -71,11 +75,13 @@ def choose_product_rbw(product_dbm: float, target_db: float, widest_hz: float, n
         setup = setup_at(rbw_hz)
         noise_dbm = float(analyzer_noise_dbm(danl_dbm_per_hz, rbw_hz, setup.atten_db))
         if measured_noise_dbm_per_hz is not None:
-            noise_dbm = max(noise_dbm, measured_noise_dbm_per_hz + 10.0 * math.log10(rbw_hz))
+            measured_dbm = measured_noise_dbm_per_hz + 10.0 * math.log10(rbw_hz)
+            if measured_dbm > noise_dbm + NOISE_ABOVE_MODEL_DB:
+                noise_dbm = measured_dbm
         snr_db = product_dbm - noise_dbm
         narrower_hz = step_down_hz(rbw_hz * (1 - 1e-6))
         if snr_db >= target_db + MARGIN_DB or narrower_hz < narrowest_hz * (1 - 1e-9):
-            return ProductChoice(rbw_hz, snr_db)
+            return ProductChoice(rbw_hz, snr_db, target_db)
         rbw_hz = narrower_hz
 
 
