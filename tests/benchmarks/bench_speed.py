@@ -29,16 +29,60 @@ from sqlalchemy import select
 ROOT = Path(__file__).resolve().parents[2]
 SAMPLE_RUNS = ROOT / "sample_runs"
 PLAN, BENCH = SAMPLE_RUNS / "demo_plan.toml", SAMPLE_RUNS / "sim_bench.toml"
+ACCURACY_PLAN = SAMPLE_RUNS / "accuracy_plan.toml"
 
 
-def run_tonebench(folder: Path):
+def run_tonebench(folder: Path, plan: Path = PLAN, name: str = "bench"):
     from tonebench.run.start import execute_run
 
     sims, estimates = [], []
     started_s = time.perf_counter()
-    outcome = execute_run(PLAN, BENCH, f"sqlite:///{folder / 'bench.db'}", folder / "report.html",
+    outcome = execute_run(plan, BENCH, f"sqlite:///{folder / name}.db", folder / f"{name}.html",
                           on_sim_started=sims.append, on_estimate=estimates.append)
     return outcome, sims[0], estimates[0], time.perf_counter() - started_s
+
+
+def physical_bound_s(db_url: str, plan_path: Path) -> float:
+    """The least bench time for the accuracy the plan asks, knowing every product's level and
+    noise (the run's own noise-corrected readings and noise markers, per hertz): per point each
+    product at the continuous RBW that gives it exactly the target over that noise,
+    no wider than ten RBWs inside the spacing and no narrower than the budget pays for two sweeps;
+    the tones at the widest; four reads or one sweep holding all four at the narrowest RBW,
+    whichever is shorter; both sources' settling. No step or settle checks."""
+    import math
+
+    from tonebench.analysis.sweep_fit import noise_corrected_dbm
+    from tonebench.config.bench_file import load_bench
+    from tonebench.config.plan_file import load_plan
+    from tonebench.instruments.open_bench import role_dialects
+    from tonebench.run.bench_time import sweep_time_factor
+    from tonebench.run.read_settings import SPAN_RBWS, target_snr_db
+    from tonebench.store.database import open_database, session_factory
+    from tonebench.store.models import Point
+
+    plan, bench = load_plan(plan_path).settings, load_bench(BENCH).settings
+    dialect = role_dialects(bench)["analyzer"]
+    k = sweep_time_factor(bench, dialect)
+    target_db = target_snr_db(plan.analyzer)
+    budget_s = plan.analyzer.narrowing_budget_s
+    floor_hz = 2 * k * SPAN_RBWS / budget_s if budget_s else plan.analyzer.rbw_hz
+    total_s = 0.0
+    with session_factory(open_database(db_url))() as session:
+        points = session.scalars(select(Point).where(Point.status == "measured")).all()
+    for p in points:
+        widest_hz = p.spacing_hz / SPAN_RBWS
+        rbws_hz = []
+        read_rbw_hz = p.extra_json.get("im3_rbw_hz", p.rbw_hz)
+        for reading, noise in ((p.raw_lower_dbm, p.raw_noise_lower_dbm), (p.raw_upper_dbm, p.raw_noise_upper_dbm)):
+            product_dbm = float(noise_corrected_dbm(reading, noise)[0])
+            noise_1hz_dbm = noise - 10 * math.log10(read_rbw_hz)
+            rbws_hz.append(min(max(10 ** ((product_dbm - noise_1hz_dbm - target_db) / 10), floor_hz), widest_hz))
+        four_s = 2 * k * SPAN_RBWS / widest_hz + sum(k * SPAN_RBWS / rbw for rbw in rbws_hz)
+        narrowest_hz = min(rbws_hz)
+        one_s = k * (3 * p.spacing_hz + SPAN_RBWS * narrowest_hz) / narrowest_hz ** 2
+        total_s += min(four_s, one_s) + 2 * 0.005
+    assert math.isfinite(total_s)
+    return total_s
 
 
 def raw_loop(points, wide_span: bool) -> tuple[float, float]:
@@ -158,13 +202,18 @@ def main() -> None:
         script_virtual_s, _ = raw_loop(points, wide_span=True)
         plan, bench = load_plan(PLAN).settings, load_bench(BENCH).settings
         floor_s = len(points) * (4 * sweep_time_s(plan, bench, role_dialects(bench)["analyzer"]) + 2 * 0.005)
-        db_url = f"sqlite:///{Path(folder) / 'bench.db'}"
+        db_url = f"sqlite:///{Path(folder) / 'bench'}.db"
         print(f"demo plan, {len(points)} points, simulated bench (virtual clock = the instruments' own time)")
         print(f"  bench time  tonebench {outcome.bench_time.taken_s:8.2f} s   estimate {estimate.total_s:8.2f} s")
         print(f"              four reads per point, nothing else {floor_s:8.2f} s (tonebench / this: "
               f"{outcome.bench_time.taken_s / floor_s:.2f})")
         print(f"              one wide span at 1 kHz RBW (hand-written script) {script_virtual_s:8.1f} s "
               f"({script_virtual_s / outcome.bench_time.taken_s:.0f} x tonebench)")
+        accurate, _, accurate_estimate, _ = run_tonebench(Path(folder), ACCURACY_PLAN, "accuracy")
+        bound_s = physical_bound_s(f"sqlite:///{Path(folder) / 'accuracy'}.db", ACCURACY_PLAN)
+        print(f"  to accuracy (sample_runs/accuracy_plan.toml, 0.1 dB per point): tonebench "
+              f"{accurate.bench_time.taken_s:6.2f} s, estimate {accurate_estimate.total_s:6.2f} s, "
+              f"physical bound {bound_s:6.2f} s (tonebench / bound: {accurate.bench_time.taken_s / bound_s:.2f})")
         print(f"  commands    {lines / len(points):.1f} lines per point sent to the instruments")
         print(f"  wall time   tonebench {loop_ms_per_point(db_url):6.1f} ms per point in its loop "
               f"({1e3 * run_wall_s / len(points):.1f} ms with connecting, analysis and report); "
