@@ -141,9 +141,15 @@ def test_scpi_error_on_a_setting_sends_the_settings_again(bench):
     assert len(scpi_events) == 1 and "-221" in scpi_events[0].message
 
 
-def test_lost_state_is_noticed_by_read_back_and_restored(bench):
-    sim, schedule, _events, _sup, open_driver = bench
-    source = open_driver("source1")
+def test_lost_state_is_noticed_by_read_back_and_restored(bench, tmp_path):
+    sim, schedule, _events, supervision, _open_driver = bench
+    # A dialect without read_event_status: every setting is read back.
+    text = (data_dir("drivers") / "generic-source.toml").read_text()
+    path = tmp_path / "no-esr.toml"
+    path.write_text("\n".join(line for line in text.splitlines() if not line.startswith("read_event_status")))
+    dialect = load_dialect(str(path))
+    source = SignalSource(ScpiInstrument(open_resource(sim.resources["source1"], dialect, "source1"), dialect,
+                                         "source1", supervision))
     source.set_tone(2.4e9, -20.0)
     source.rf_on()
     assert source.state_lost() is None
@@ -155,6 +161,28 @@ def test_lost_state_is_noticed_by_read_back_and_restored(bench):
     assert source.state_lost() is None
     effective = sim.bench.source(1).effective
     assert (effective.power_dbm, effective.rf_on) == (-20.0, True)
+
+
+def test_a_power_cycle_or_a_preset_is_told_by_two_queries(bench):
+    """The shipped source dialect reads the event status register: its power-on bit tells a
+    switched-off-and-on source (reading it clears it), the RF state a front-panel preset."""
+    sim, schedule, _events, _sup, open_driver = bench
+    source = open_driver("source1")
+    source.clear_status()  # as a run starts
+    source.set_tone(2.4e9, -20.0)
+    source.rf_on()
+    assert source.state_lost() is None
+    schedule.add(FaultSpec(instrument="source1", kind="reboot", on="*ESR?", keep_connection=True))
+    sent_before = len(sim.bench.command_log)
+    lost = source.state_lost()
+    assert lost is not None and "power-on bit set" in lost
+    assert [line for _, who, line in sim.bench.command_log[sent_before:] if who == "source1"] == ["*ESR?"]
+    source.restore()
+    assert source.state_lost() is None  # read once, cleared; RF on again
+    sent_before = len(sim.bench.command_log)
+    sim.bench.reset_source(1)  # a front-panel preset (*RST): RF off, the power-on bit clear
+    assert "RF off, expected on (preset?)" in source.state_lost()
+    assert [line for _, who, line in sim.bench.command_log[sent_before:] if who == "source1"] == ["*ESR?", "OUTP?"]
 
 
 def test_gives_up_after_the_policy_and_says_so(bench):

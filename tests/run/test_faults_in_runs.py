@@ -89,7 +89,7 @@ DROP = [{"instrument": "analyzer", "kind": "drop", "on": "INIT:IMM", "nth": 30},
         {"instrument": "source2", "kind": "drop", "on": "SOUR:POW", "nth": 12}]
 ERROR = [{"instrument": "source1", "kind": "error", "on": "SOUR:POW", "nth": 5, "code": -221},
          {"instrument": "analyzer", "kind": "error", "on": "CALC:MARK1:X", "nth": 40, "code": -222}]
-REBOOT = [{"instrument": "source1", "kind": "reboot", "on": "SOUR:FREQ", "nth": 15},
+REBOOT = [{"instrument": "source1", "kind": "reboot", "on": "SOUR:POW", "nth": 15},
           {"instrument": "source2", "kind": "reboot", "on": "SYST:ERR?", "nth": 40, "keep_connection": True},
           {"instrument": "analyzer", "kind": "reboot", "on": "INIT:IMM", "nth": 100, "keep_connection": True},
           {"instrument": "analyzer", "kind": "reboot", "on": "CALC:MARK1:Y?", "nth": 150}]

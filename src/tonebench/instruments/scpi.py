@@ -307,6 +307,17 @@ class RoleDriver:
     def idn(self) -> str:
         return self.instrument.idn
 
+    def power_cycled(self) -> bool | None:
+        """True when the power-on bit of the standard event status register is set: the
+        instrument was switched off and on (or rebooted) since the register was last read
+        (reading clears it; IEEE 488.2, PON is bit 7, from memory). None when the dialect has
+        no read_event_status operation. One query tells what reading every setting back would."""
+        if not self.instrument.has("read_event_status"):
+            return None
+        return bool(int(self.instrument.call("read_event_status")) & POWER_ON_BIT)
+
+
+POWER_ON_BIT = 1 << 7  # PON in the standard event status register (*ESR?)
 
 __all__ = [
     "COMMAND_ERROR_CODES", "CommandRefused", "ConnectionFault", "EXPECTED_REPLIES", "IdentityChanged",

@@ -110,7 +110,8 @@ class PointGuard(Generic[T]):
         return f"connection to {', '.join(changed)} reopened during the point" if changed else None
 
     def _state_lost(self) -> str | None:
-        """Read the sources back: a reset or power cycle shows as RF off or default settings."""
+        """Ask the sources: a reset or power cycle shows as the power-on bit, RF off or default
+        settings (SignalSource.state_lost)."""
         lost = [text for text in (source.state_lost() for source in self.sources) if text]
         if not lost:
             return None

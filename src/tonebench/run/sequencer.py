@@ -124,6 +124,9 @@ class Sequencer:
                            self.unattended.point_attempts, self._kick, self._check_stop)
         try:
             self.bench.analyzer.prepare()
+            for source in self.bench.sources():
+                if source.instrument.has("read_event_status"):
+                    source.clear_status()  # the power-on bit of its last switch-on
             self.bench.analyzer.apply(self.setup)
             self._bias_up(todo)
             if self.leveling is not None:
