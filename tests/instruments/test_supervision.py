@@ -10,7 +10,13 @@ from pathlib import Path
 import pytest
 
 from tonebench.errors import InstrumentError
-from tonebench.instruments import AnalyzerSetup, SignalSource, SpectrumAnalyzer, load_dialect, open_resource
+from tonebench.instruments import (
+    AnalyzerSetup,
+    SignalSource,
+    SpectrumAnalyzer,
+    load_dialect,
+    open_resource,
+)
 from tonebench.instruments.scpi import IdentityChanged, ScpiInstrument
 from tonebench.instruments.supervision import RecoveryStopped, RetryPolicy, Supervision
 from tonebench.packaged import data_dir

@@ -8,7 +8,12 @@ from dataclasses import dataclass, replace
 import pyvisa
 
 from tonebench.errors import InstrumentError
-from tonebench.instruments.scpi import LimitError, RoleDriver, ScpiInstrument, parse_reply
+from tonebench.instruments.scpi import (
+    LimitError,
+    RoleDriver,
+    ScpiInstrument,
+    parse_reply,
+)
 from tonebench.units import format_freq
 
 # (source label, freq_hz, power_dbm) -> None, or raises LimitError: the bench's own limits,
