@@ -32,14 +32,28 @@ PLAN, BENCH = SAMPLE_RUNS / "demo_plan.toml", SAMPLE_RUNS / "sim_bench.toml"
 ACCURACY_PLAN = SAMPLE_RUNS / "accuracy_plan.toml"
 
 
-def run_tonebench(folder: Path, plan: Path = PLAN, name: str = "bench"):
+def run_tonebench(folder: Path, plan: Path = PLAN, name: str = "bench", bench: Path = BENCH):
     from tonebench.run.start import execute_run
 
     sims, estimates = [], []
     started_s = time.perf_counter()
-    outcome = execute_run(plan, BENCH, f"sqlite:///{folder / name}.db", folder / f"{name}.html",
+    outcome = execute_run(plan, bench, f"sqlite:///{folder / name}.db", folder / f"{name}.html",
                           on_sim_started=sims.append, on_estimate=estimates.append)
     return outcome, sims[0], estimates[0], time.perf_counter() - started_s
+
+
+def one_line_bench(folder: Path) -> Path:
+    """The sample bench with dialects that join each step's operations on one line ([io] one_line)."""
+    from tonebench.packaged import data_dir
+
+    text = BENCH.read_text()
+    for name in ("generic-source", "generic-analyzer"):
+        path = folder / f"{name}-one-line.toml"
+        path.write_text((data_dir("drivers") / f"{name}.toml").read_text().replace("[io]\n", "[io]\none_line = true\n", 1))
+        text = text.replace(f'dialect = "{name}"', f'dialect = "{path}"')
+    bench = folder / "one-line-bench.toml"
+    bench.write_text(text)
+    return bench
 
 
 def physical_bound_s(db_url: str, plan_path: Path) -> float:
@@ -218,6 +232,10 @@ def main() -> None:
         print(f"  wall time   tonebench {loop_ms_per_point(db_url):6.1f} ms per point in its loop "
               f"({1e3 * run_wall_s / len(points):.1f} ms with connecting, analysis and report); "
               f"raw pyvisa loop, four reads per point {1e3 * raw_wall_s / len(points):6.1f} ms")
+        _, joined_sim, _, _ = run_tonebench(Path(folder), PLAN, "one-line", one_line_bench(Path(folder)))
+        joined_lines, joined_db = len(joined_sim.bench.command_log), f"sqlite:///{Path(folder) / 'one-line.db'}"
+        print(f"  one line    with [io] one_line: {joined_lines / len(points):.1f} lines per point, "
+              f"{loop_ms_per_point(joined_db):6.1f} ms per point in its loop")
         # Re-analysis first: the commit figure adds its points to the same run.
         print(f"  re-analysis {1e3 * reanalysis_s(db_url, outcome.guid):8.1f} ms per run ({len(points)} points)")
         print(f"  commits     {commits_per_second(db_url):8.0f} points per second into SQLite")

@@ -182,7 +182,7 @@ def test_a_power_cycle_or_a_preset_is_told_by_two_queries(bench):
     sent_before = len(sim.bench.command_log)
     lost = source.state_lost()
     assert lost is not None and "power-on bit set" in lost
-    assert [line for _, who, line in sim.bench.command_log[sent_before:] if who == "source1"] == ["*ESR?"]
+    assert [line for _, who, line in sim.bench.command_log[sent_before:] if who == "source1"] == ["*ESR?", "OUTP?"]
     source.restore()
     assert source.state_lost() is None  # read once, cleared; RF on again
     sent_before = len(sim.bench.command_log)

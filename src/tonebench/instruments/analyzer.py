@@ -142,16 +142,17 @@ class SpectrumAnalyzer(RoleDriver):
             sweep_time_s = self._sweep(center_hz)
             if inst.epoch != epoch or self._settings_lost(sweep_time_s):
                 continue
-            status = inst.call("read_status")
-            overload = bool((status >> self._overload_bit) & 1)
-            powers_dbm = []
+            # Status, markers and the sweep time asked again at the end (settings lost at any
+            # moment of the read show there): one line where the dialect joins them.
+            steps = [("read_status", {})]
             for freq_hz in marker_freqs_hz:
-                inst.call("set_marker_freq", freq_hz=freq_hz)
-                powers_dbm.append(self.judge_marker_dbm(inst.call("read_marker_power"), freq_hz))
+                steps += [("set_marker_freq", {"freq_hz": freq_hz}), ("read_marker_power", {})]
+            status, *marker_dbm, sweep_time_after_s = inst.call_many([*steps, ("read_sweep_time", {})])
+            overload = bool((status >> self._overload_bit) & 1)
+            powers_dbm = [self.judge_marker_dbm(power_dbm, freq_hz) for power_dbm, freq_hz in zip(marker_dbm, marker_freqs_hz)]
             if not self._errors_deferred:
                 inst.check_errors()
-            # Asked again at the end: settings lost at any moment of the read show here.
-            if inst.epoch == epoch and not self._settings_lost(inst.call("read_sweep_time")):
+            if inst.epoch == epoch and not self._settings_lost(sweep_time_after_s):
                 return MarkerReading(tuple(powers_dbm), overload, sweep_time_s)
         raise InstrumentError(
             f"{self.label}: the connection was reopened or the settings lost during each of "
@@ -200,28 +201,36 @@ class SpectrumAnalyzer(RoleDriver):
     def _sweep(self, center_hz: float) -> float:
         """One single sweep at `center_hz` (Hz), waited for; returns the sweep time (s)."""
         inst = self.instrument
-        self._send_changed([("set_center", "freq_hz", center_hz)], drain=False)
         # Known for this setup after its first sweep (the sweep time follows span and RBW); the
         # query after every read (read_markers) still tells a lost setup.
         sweep_time_s = self._sweep_time_by_setup.get(self.last_setup) if self.last_setup is not None else None
         if sweep_time_s is None:
+            self._send_changed([("set_center", "freq_hz", center_hz)], drain=False)
             sweep_time_s = inst.call("read_sweep_time")
-        inst.call("start_sweep")
-        inst.wait_complete(2 * sweep_time_s + inst.dialect.io.query_timeout_s)
+        # The centre (when it changed), the sweep and the wait for it: one line where the dialect joins them.
+        self._send_changed([("set_center", "freq_hz", center_hz)], drain=False,
+                           then=[("start_sweep", {}), ("wait_complete", {})],
+                           timeout_s=2 * sweep_time_s + inst.dialect.io.query_timeout_s)
         return sweep_time_s
 
     def predicted_sweep_time_s(self, setup: AnalyzerSetup) -> float:
         """The sweep time of `setup` by sweep_time_model_s, k from the dialect (or bench file)."""
         return sweep_time_model_s(self.performance["sweep_time_factor"], setup.span_hz, setup.rbw_hz)
 
-    def _send_changed(self, steps: list[tuple[str, str, float]], drain: bool = True) -> None:
+    def _send_changed(self, steps: list[tuple[str, str, float]], drain: bool = True,
+                      then: list[tuple[str, dict]] = (), timeout_s: float | None = None) -> None:
+        """The settings of `steps` that changed, then the operations `then` (on one line where
+        the dialect joins them; a wait_complete in them waits up to timeout_s)."""
         try:
-            for operation, field, value in steps:
-                if self._sent.get(operation) != value:
-                    # Forget first: if the write fails the instrument's value is unknown.
-                    self._sent.pop(operation, None)
-                    self.instrument.call(operation, **{field: value})
-                    self._sent[operation] = value
+            changed = [(operation, field, value) for operation, field, value in steps
+                       if self._sent.get(operation) != value]
+            for operation, _, _ in changed:
+                self._sent.pop(operation, None)  # if the write fails the instrument's value is unknown
+            replies = self.instrument.call_many([*((op, {field: value}) for op, field, value in changed), *then],
+                                                timeout_s)
+            self._sent.update((operation, value) for operation, _, value in changed)
+            if any(op == "wait_complete" for op, _ in then) and replies[-1] != 1:
+                raise InstrumentError(f"{self.label}: wait_complete replied {replies[-1]}; expected 1")
             if drain and not self._errors_deferred:
                 self.instrument.check_errors()
         except Exception:

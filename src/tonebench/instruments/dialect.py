@@ -121,6 +121,10 @@ class IoSettings(BaseModel):
     read_termination: str = "\n"
     write_termination: str = "\n"
     query_timeout_s: float
+    # Several operations of one step on one line, joined by ';' (IEEE 488.2 program message
+    # units), their replies in one line: one round trip where there were several. Not every
+    # instrument accepts it, so off unless the dialect says.
+    one_line: bool = False
 
     @field_validator("query_timeout_s")
     @classmethod

@@ -101,6 +101,45 @@ class ScpiInstrument:
             self._sent_since_drain = [*self._sent_since_drain[-(MAX_SENT_REMEMBERED - 1):], (operation, message)]
         return self._supervised(lambda: self._exchange(operation, op, message, None))
 
+    def call_many(self, steps: list[tuple[str, dict]], timeout_s: float | None = None) -> list:
+        """Run (operation, fields) steps in order; returns the queries' parsed replies in order.
+
+        With the dialect's `[io] one_line = true` they go as one program message, units joined
+        by ';' (IEEE 488.2; each unit after the first from the root, ':', unless a common command)
+        and the queries' replies come back in one line, joined by ';': one round trip instead of
+        one per query. Queries whose reply is text (an error string may hold a ';') are never
+        joined. timeout_s: for the line's reply (a wait_complete in it), else the dialect's."""
+        ops = [(operation, self._operation(operation), fields) for operation, fields in steps]
+        if not self.dialect.io.one_line or len(ops) < 2 or any(op.reply in ("text", "error") for _, op, _ in ops):
+            replies = []
+            for operation, op, fields in ops:
+                if operation == "wait_complete" and timeout_s is not None:
+                    self.wait_complete(timeout_s)
+                    replies.append(1)
+                elif op.is_query:
+                    replies.append(self.call(operation, **fields))
+                else:
+                    self.call(operation, **fields)
+            return replies
+        units = [op.template.format(**fields) for _, op, fields in ops]
+        for (operation, _, _), unit in zip(ops, units):
+            self._sent_since_drain = [*self._sent_since_drain[-(MAX_SENT_REMEMBERED - 1):], (operation, unit)]
+        message = ";".join([units[0], *(u if u.startswith(("*", ":")) else f":{u}" for u in units[1:])])
+        queries = [(operation, op.reply) for operation, op, _ in ops if op.is_query]
+        names = "+".join(operation for operation, _, _ in ops)
+
+        def attempt():
+            reply = self._transfer(names, message, bool(queries), timeout_s)
+            if reply is None:
+                return []
+            parts = reply.split(";")
+            if len(parts) != len(queries):  # most often another query's late reply
+                raise ConnectionFault(f"{self.label}: {names} ({message!r}) replied {reply!r}; expected "
+                                      f"{len(queries)} replies joined by ';'", timed_out=True)
+            return [self._parse(operation, message, kind, part) for (operation, kind), part in zip(queries, parts)]
+
+        return self._supervised(attempt)
+
     def _operation(self, operation: str):
         op = self.dialect.operations.get(operation)
         if op is None:
@@ -117,13 +156,18 @@ class ScpiInstrument:
 
     def _exchange(self, operation: str, op, message: str, timeout_s: float | None):
         """One write (and reply) on the current connection; ConnectionFault if the link failed."""
+        reply = self._transfer(operation, message, op.is_query, timeout_s)
+        return None if reply is None else self._parse(operation, message, op.reply, reply)
+
+    def _transfer(self, operation: str, message: str, is_query: bool, timeout_s: float | None) -> str | None:
+        """Write `message`, and for a query return the reply line; ConnectionFault if the link failed."""
         where = f"{self.label}: {operation} ({message!r})"
         resource = self.resource
         previous_ms = resource.timeout if timeout_s is not None else None
         try:
             if previous_ms is not None:
                 resource.timeout = max(1, round(timeout_s * 1000))
-            if not op.is_query:
+            if not is_query:
                 resource.write(message)
                 return None
             reply = resource.query(message)
@@ -145,8 +189,12 @@ class ScpiInstrument:
                     pass  # the connection is gone; a reopened one gets the dialect's timeout
         if self.supervision is not None:
             self.supervision.activity()
+        return reply
+
+    def _parse(self, operation: str, message: str, kind: str, reply: str):
+        where = f"{self.label}: {operation} ({message!r})"
         try:
-            return parse_reply(op.reply, reply)
+            return parse_reply(kind, reply)
         except NotANumber:
             raise ImpossibleReading(f"{where} replied {reply!r}: the instrument's not-a-number "
                                     "(SCPI 9.91E37, NaN or inf), not a reading") from None
@@ -154,7 +202,7 @@ class ScpiInstrument:
             # A reply of the wrong shape is most often another query's reply arriving late:
             # worth a resynchronisation, like a timeout.
             raise ConnectionFault(
-                f"{where} replied {reply!r}; expected {EXPECTED_REPLIES[op.reply]}", timed_out=True
+                f"{where} replied {reply!r}; expected {EXPECTED_REPLIES[kind]}", timed_out=True
             ) from None
 
     def check_errors(self) -> None:
@@ -213,11 +261,11 @@ class ScpiInstrument:
         attempts = 1
         if self.supervision is not None and not self._restoring:
             attempts += self.supervision.policy.retries
+        wait = [("wait_complete", {})] if wait_s is not None else []
         for attempt in range(attempts):
-            for operation, fields in steps:
-                self.call(operation, **fields)
-            if wait_s is not None:
-                self.wait_complete(wait_s)
+            replies = self.call_many([*steps, *wait], wait_s)
+            if wait and replies[-1] != 1:
+                raise InstrumentError(f"{self.label}: wait_complete replied {replies[-1]}; expected 1")
             try:
                 self.check_errors()
                 return
@@ -307,17 +355,10 @@ class RoleDriver:
     def idn(self) -> str:
         return self.instrument.idn
 
-    def power_cycled(self) -> bool | None:
-        """True when the power-on bit of the standard event status register is set: the
-        instrument was switched off and on (or rebooted) since the register was last read
-        (reading clears it; IEEE 488.2, PON is bit 7, from memory). None when the dialect has
-        no read_event_status operation. One query tells what reading every setting back would."""
-        if not self.instrument.has("read_event_status"):
-            return None
-        return bool(int(self.instrument.call("read_event_status")) & POWER_ON_BIT)
 
-
-POWER_ON_BIT = 1 << 7  # PON in the standard event status register (*ESR?)
+# PON, bit 7 of the standard event status register (*ESR?): set at power-on, cleared by reading it
+# (IEEE 488.2, from memory).
+POWER_ON_BIT = 1 << 7
 
 __all__ = [
     "COMMAND_ERROR_CODES", "CommandRefused", "ConnectionFault", "EXPECTED_REPLIES", "IdentityChanged",

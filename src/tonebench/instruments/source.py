@@ -9,6 +9,7 @@ import pyvisa
 
 from tonebench.errors import InstrumentError
 from tonebench.instruments.scpi import (
+    POWER_ON_BIT,
     LimitError,
     RoleDriver,
     ScpiInstrument,
@@ -125,14 +126,14 @@ class SignalSource(RoleDriver):
         frequency). The tolerances only absorb an instrument's own resolution: 0.1 dB, and 1 Hz
         or 0.1 ppm of the frequency.
         """
-        cycled = self.power_cycled()
-        if cycled is not None:
+        if self.instrument.has("read_event_status"):
             # The power-on bit misses a front-panel preset, which turns RF off (on the sources we
-            # know, from memory): the RF state is read too. Two queries instead of three.
-            if cycled:
+            # know, from memory): the RF state is read with it (one line with [io] one_line).
+            status, rf_on = self.instrument.call_many([("read_event_status", {}), ("read_rf", {})])
+            if int(status) & POWER_ON_BIT:
                 return f"{self.label}: power-on bit set (switched off and on, or rebooted)"
-            if self.wanted.rf_on is not None and self.rf_is_on() != self.wanted.rf_on:
-                return f"{self.label}: RF {'off' if self.wanted.rf_on else 'on'}, expected {'on' if self.wanted.rf_on else 'off'} (preset?)"
+            if self.wanted.rf_on is not None and rf_on != self.wanted.rf_on:
+                return f"{self.label}: RF {'on' if rf_on else 'off'}, expected {'on' if self.wanted.rf_on else 'off'} (preset?)"
             return None
         wanted, actual = self.wanted, self.read_state()
         differences = []

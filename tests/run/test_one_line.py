@@ -1,0 +1,101 @@
+"""Operations joined on one line (`[io] one_line = true` in a dialect): the same run as one
+operation per line, the same stored readings, in fewer lines; faults on a joined line still
+handled; a reply with the wrong number of parts taken as a late reply."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from conftest import SAMPLE_RUNS
+from sqlalchemy import create_engine, select
+from sqlalchemy.orm import Session
+
+from tonebench.config.bench_file import load_bench
+from tonebench.instruments import load_dialect, open_resource
+from tonebench.instruments.scpi import ConnectionFault, ScpiInstrument
+from tonebench.packaged import data_dir
+from tonebench.run.start import execute_run
+from tonebench.sim.launch import start_sim_bench
+from tonebench.store.models import Point
+
+
+def one_line_bench(folder: Path, one_line: bool) -> Path:
+    """The sample simulated bench with its dialects copied, joining operations or not."""
+    text = (SAMPLE_RUNS / "sim_bench.toml").read_text()
+    for name in ("generic-source", "generic-analyzer"):
+        dialect = (data_dir("drivers") / f"{name}.toml").read_text()
+        if one_line:
+            dialect = dialect.replace("query_timeout_s = 5.0", "query_timeout_s = 5.0\none_line = true")
+        path = folder / f"{name}-{one_line}.toml"
+        path.write_text(dialect)
+        text = text.replace(f'dialect = "{name}"', f'dialect = "{path}"')
+    bench = folder / f"bench-{one_line}.toml"
+    bench.write_text(text)
+    return bench
+
+
+def test_a_run_on_one_line_stores_the_same_readings_in_fewer_lines(tmp_path):
+    runs = {}
+    for one_line in (False, True):
+        sims = []
+        db = f"sqlite:///{tmp_path / f'{one_line}.db'}"
+        outcome = execute_run(SAMPLE_RUNS / "demo_plan.toml", one_line_bench(tmp_path, one_line), db, None,
+                              on_sim_started=sims.append)
+        assert outcome.status == "complete", outcome.reason
+        with Session(create_engine(db)) as session:
+            readings = [(p.point_key, p.raw_f1_dbm, p.raw_f2_dbm, p.raw_lower_dbm, p.raw_upper_dbm, p.raw_noise_lower_dbm)
+                        for p in session.scalars(select(Point).order_by(Point.seq))]
+        lines = [line for _, _, line in sims[0].bench.command_log]
+        runs[one_line] = (readings, lines, outcome)
+    (apart, apart_lines, apart_run), (joined, joined_lines, joined_run) = runs[False], runs[True]
+    assert joined == apart  # same commands in the same order: the same simulated readings
+    assert [r.iip3_dbm for r in joined_run.results] == [r.iip3_dbm for r in apart_run.results]
+    assert len(joined_lines) < 0.6 * len(apart_lines), (len(joined_lines), len(apart_lines))
+    # Each read's status, both markers and its sweep time come back on one line.
+    assert any(line.startswith("STAT:QUES:COND?;:CALC:MARK1:X ") and line.endswith(";:SWE:TIME?")
+               for line in joined_lines)
+    assert not any(";" in line for line in apart_lines)
+
+
+def test_a_reply_with_the_wrong_number_of_parts_is_a_late_reply(tmp_path):
+    bench = load_bench(one_line_bench(tmp_path, True))
+    dialect = load_dialect(str(tmp_path / "generic-analyzer-True.toml"))
+    with start_sim_bench(bench.scenario) as sim:
+        inst = ScpiInstrument(open_resource(sim.resources["analyzer"], dialect, "analyzer"), dialect, "analyzer")
+        status, sweep_time_s = inst.call_many([("read_status", {}), ("read_sweep_time", {})])
+        assert status == 0 and sweep_time_s > 0
+        assert sim.bench.command_log[-1][2] == "STAT:QUES:COND?;:SWE:TIME?"
+        # Two queries on the line, three parts in the reply: not this line's answer.
+        inst.resource.write("*OPC?")  # its reply "1" arrives first, as a late reply would
+        with pytest.raises(ConnectionFault, match="expected 2 replies joined by ';'"):
+            inst.call_many([("read_status", {}), ("read_sweep_time", {})])
+
+
+JOINED_FAULTS = [
+    {"instrument": "analyzer", "kind": "stall", "on": "STAT:QUES:COND?", "nth": 20, "duration_s": 1.2},
+    {"instrument": "analyzer", "kind": "drop", "on": "STAT:QUES:COND?", "nth": 45},
+    {"instrument": "source1", "kind": "reboot", "on": "*ESR?", "nth": 10},
+    {"instrument": "source2", "kind": "reboot", "on": "SOUR:POW", "nth": 20, "keep_connection": True},
+    {"instrument": "analyzer", "kind": "reboot", "on": "FREQ:CENT", "nth": 60, "keep_connection": True},
+]
+
+
+def test_faults_on_joined_lines_are_recovered(tmp_path):
+    from sim_runs import rf_is_off, write_bench, write_plan
+
+    bench = write_bench(tmp_path, faults=JOINED_FAULTS)
+    for dialect in tmp_path.glob("*-fast.toml"):
+        dialect.write_text(dialect.read_text().replace("[io]\n", "[io]\none_line = true\n", 1))
+    sims = []
+    outcome = execute_run(write_plan(tmp_path), bench, f"sqlite:///{tmp_path / 't.db'}", None,
+                          on_sim_started=sims.append)
+    assert outcome.status == "complete", outcome.reason
+    sim = sims[0]
+    assert sim.faults.pending() == [] and len(sim.faults.fired) == len(JOINED_FAULTS)
+    assert any(";" in line for _, _, line in sim.bench.command_log)
+    with Session(create_engine(f"sqlite:///{tmp_path / 't.db'}")) as session:
+        points = session.scalars(select(Point)).all()
+    assert points and all(p.status == "measured" for p in points)
+    assert len({p.point_key for p in points}) == len(points)
+    assert rf_is_off(sim)
