@@ -198,7 +198,7 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
     if rings is not None:
         fig.add_trace(rings)
     fig.add_trace(go.Scatter(x=np.asarray(sweep.pin_dbm, dtype=float),
-                             y=np.asarray(sweep.noise_dbm, dtype=float), name="noise floor",
+                             y=np.asarray(sweep.noise_dbm, dtype=float), name="noise floor in the point's RBW",
                              mode="markers", marker=dict(symbol="x-thin-open", size=8,
                                                          color=_COLORS["noise"])))
 
