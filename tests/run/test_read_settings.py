@@ -19,14 +19,16 @@ from sqlalchemy import select
 
 from tonebench.analysis.flags import noise_error_db
 from tonebench.config.plan_file import AnalyzerSettings
-from tonebench.instruments.analyzer import AnalyzerSetup
+from tonebench.instruments.analyzer import AnalyzerSetup, MarkerReading
 from tonebench.run.narrowing import narrowed
 from tonebench.run.read_settings import (
+    NOISE_MARKERS,
     choose_product_rbw,
     guessed_product_dbm,
     target_snr_db,
     widest_rbw_hz,
 )
+from tonebench.run.readings import read_im3
 from tonebench.run.start import execute_run
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.signal_chain import BenchTruth
@@ -50,7 +52,7 @@ def test_the_choice_by_hand():
     assert guessed_product_dbm(-20.0, -10.0, 0.0) == -40.0
     setup = AnalyzerSetup(span_hz=1e4, rbw_hz=1e3, vbw_hz=1e3, atten_db=10.0, ref_level_dbm=0.0)
     fixed = lambda rbw_hz: narrowed(setup, rbw_hz)  # noqa: E731 - a fixed 10 dB attenuation
-    # Noise -150 + 10 + 10 log R; the product -80 dBm must clear 16 + 3 dB: R <= 12.6 kHz -> 10 kHz.
+    # Noise -150 + 10 + 10 log R; the product -80 dBm must clear 16 + 1 dB: R < 20 kHz -> 10 kHz.
     choice = choose_product_rbw(-80.0, TARGET_DB, 50e3, 1e3, fixed, -150.0)
     assert choice.rbw_hz == pytest.approx(1e4) and choice.predicted_snr_db == pytest.approx(20.0)
     # A floor measured 15 dB over the model (-125 dBm/Hz): R <= 398 Hz, held at the narrowest, 1 kHz.
@@ -62,6 +64,36 @@ def test_the_choice_by_hand():
     assert choose_product_rbw(-40.0, TARGET_DB, 50e3, 1e3, fixed, -150.0).rbw_hz == pytest.approx(50e3)
     rising = lambda rbw_hz: replace(fixed(rbw_hz), atten_db=10.0 + 10 * math.log10(rbw_hz / 1e3) / 3)  # noqa: E731
     assert choose_product_rbw(-80.0, TARGET_DB, 50e3, 1e3, rising, -150.0).rbw_hz == pytest.approx(5e3)
+
+
+class _MarkerAnalyzer:
+    """Reads -80 dBm on each product and, per noise marker, a level that follows its offset."""
+
+    def __init__(self):
+        self.asked: list[tuple[float, list[float]]] = []
+
+    def read_markers(self, center_hz, marker_freqs_hz):
+        self.asked.append((center_hz, list(marker_freqs_hz)))
+        noise_dbm = [-100.0 + 3.0 * (i % 2) for i in range(len(marker_freqs_hz) - 1)]  # -100, -97, ...
+        return MarkerReading((-80.0, *noise_dbm), False, 0.1)
+
+
+def test_a_read_to_a_target_takes_the_noise_from_six_markers_either_side():
+    point = type("P", (), {"lower_hz": 2.4489e9, "upper_hz": 2.4511e9})()
+    analyzer, offset_hz = _MarkerAnalyzer(), 400.0  # 4 RBW at 100 Hz
+    lower, upper = read_im3(analyzer, point, tuple(f * offset_hz for f in NOISE_MARKERS))
+    (_, lower_freqs), (_, upper_freqs) = analyzer.asked
+    # 3, 4 and 5 RBW to either side of each product, never nearer it than 3 RBW.
+    assert sorted(f - point.lower_hz for f in lower_freqs[1:]) == pytest.approx([-500, -400, -300, 300, 400, 500])
+    assert sorted(f - point.upper_hz for f in upper_freqs[1:]) == pytest.approx([-500, -400, -300, 300, 400, 500])
+    # The noise is the markers' mean power (three at -100 dBm, three at -97 dBm), not the first.
+    mean_dbm = 10 * math.log10((3 * 10 ** -10 + 3 * 10 ** -9.7) / 6)
+    assert lower.powers_dbm == pytest.approx((-80.0, mean_dbm)) and upper.powers_dbm == pytest.approx((-80.0, mean_dbm))
+    # With one marker (fixed settings) it is that marker, on the side away from the tones.
+    lower, upper = read_im3(analyzer, point, (offset_hz,))
+    assert analyzer.asked[-2][1] == [point.lower_hz, point.lower_hz - offset_hz]
+    assert analyzer.asked[-1][1] == [point.upper_hz, point.upper_hz + offset_hz]
+    assert lower.powers_dbm == (-80.0, -100.0)
 
 
 @pytest.mark.parametrize("extra, words", [

@@ -71,7 +71,7 @@ class AttenuationChoice:
         return "near" if margin_db < SYSTEM_MARGIN_DB else None
 
     def step_check(self, point: PlannedPoint, is_top: bool, setup: AnalyzerSetup, readings: Readings,
-                   noise_offset_hz: float) -> StepReadings | None:
+                   noise_offsets_hz: tuple[float, ...]) -> StepReadings | None:
         """Read the IM3 products again with more attenuation where the step check is due."""
         reason = self.step_reason(is_top, setup, readings)
         if reason is None:
@@ -85,4 +85,4 @@ class AttenuationChoice:
                           f"{wanted_db / 2.0:g} dB of the analyzer's maximum")
             return None
         self.analyzer.apply(replace(setup, atten_db=atten_db, ref_level_dbm=self.ref_level_dbm(atten_db)))
-        return step_readings(self.analyzer, point, noise_offset_hz, step_db, reason)
+        return step_readings(self.analyzer, point, noise_offsets_hz, step_db, reason)

@@ -10,7 +10,8 @@ it the target over its noise, predicted before the read:
   measured where it lies NOISE_ABOVE_MODEL_DB over that (the device's own output noise);
 - the candidates: the 1-2-5 steps from the widest whose span (ten RBWs) stays inside the tone
   spacing, down to the plan's rbw_hz, or with narrowing_budget_s to the narrowest the budget pays
-  two sweeps of; the widest that clears target + MARGIN_DB is taken, else the narrowest.
+  two sweeps of; the widest that clears target + TARGET_MARGIN_DB is taken, else the narrowest;
+- the noise read: the mean power of NOISE_MARKERS beside each product, not one marker.
 A read that still falls short of the target is read again narrower within the budget
 (run/narrowing.py), so a wrong prediction costs one cheap wide sweep. The tones are read at the
 widest step inside the spacing (a tone sits 60 dB or more over the noise), unless tone_rbw_hz says.
@@ -30,12 +31,18 @@ from tonebench.config.plan_file import AnalyzerSettings
 from tonebench.instruments.analyzer import AnalyzerSetup
 from tonebench.plan.points import PlannedPoint
 from tonebench.run.attenuation_choice import AttenuationChoice
-from tonebench.run.narrowing import MARGIN_DB, MIN_RBW_HZ, narrowed, step_down_hz
+from tonebench.run.narrowing import MIN_RBW_HZ, TARGET_MARGIN_DB, narrowed, step_down_hz
 
 SPAN_RBWS = 10.0  # the span is ten RBWs (AnalyzerSettings.effective_span_hz)
 # A noise marker is one sample and scatters about 1 dB around the model (16 averages); only a
 # measured floor this far over the model (the device's own noise, an interferer) replaces it.
 NOISE_ABOVE_MODEL_DB = 3.0
+# The noise markers of a read to a target, as multiples of the plan's noise offset (4 RBW): 3, 4
+# and 5 RBW to either side of the product. Its SNR decides whether the read is taken again, and
+# one marker (one sample) scatters about 1 dB; the mean power of six, a whole RBW apart (so
+# independent samples) and bracketing the product, about 0.45 dB. 3 RBW is over 100 dB down the
+# Gaussian RBW skirt; the tones lie more than 5 RBW further (the span is inside the spacing).
+NOISE_MARKERS = (0.75, 1.0, 1.25, -0.75, -1.0, -1.25)
 
 
 def target_snr_db(settings: AnalyzerSettings) -> float | None:
@@ -68,7 +75,7 @@ def choose_product_rbw(product_dbm: float, target_db: float, widest_hz: float, n
                        setup_at: Callable[[float], AnalyzerSetup], danl_dbm_per_hz: float,
                        measured_noise_dbm_per_hz: float | None = None) -> ProductChoice:
     """The widest 1-2-5 step from widest_hz down to narrowest_hz whose predicted SNR reaches
-    target_db + MARGIN_DB, else narrowest_hz (see the module docstring)."""
+    target_db + TARGET_MARGIN_DB, else narrowest_hz (see the module docstring)."""
     rbw_hz = step_down_hz(widest_hz)
     narrowest_hz = min(narrowest_hz, rbw_hz)
     while True:
@@ -80,7 +87,7 @@ def choose_product_rbw(product_dbm: float, target_db: float, widest_hz: float, n
                 noise_dbm = measured_dbm
         snr_db = product_dbm - noise_dbm
         narrower_hz = step_down_hz(rbw_hz * (1 - 1e-6))
-        if snr_db >= target_db + MARGIN_DB or narrower_hz < narrowest_hz * (1 - 1e-9):
+        if snr_db >= target_db + TARGET_MARGIN_DB or narrower_hz < narrowest_hz * (1 - 1e-9):
             return ProductChoice(rbw_hz, snr_db, target_db)
         rbw_hz = narrower_hz
 

@@ -4,14 +4,16 @@ and the second-order products. Reads only: no settings chosen here, nothing stor
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, replace
 
 from tonebench.errors import InputError
 from tonebench.instruments.analyzer import AnalyzerSetup, MarkerReading
 from tonebench.instruments.bias import BiasReading
 from tonebench.plan.points import PlannedPoint
 from tonebench.planes.loss_table import LossTable
-from tonebench.units import format_freq
+from tonebench.units import dbm_to_watt, format_freq, watt_to_dbm
 
 
 @dataclass(frozen=True)
@@ -68,14 +70,14 @@ class Measured:
     target: object | None = None  # run/read_settings.ProductChoice: the RBW chosen for an accuracy
 
 
-def read_point(analyzer, point: PlannedPoint, noise_offset_hz: float, setup: AnalyzerSetup,
+def read_point(analyzer, point: PlannedPoint, noise_offsets_hz: Sequence[float], setup: AnalyzerSetup,
                tone_setup: AnalyzerSetup) -> Readings:
     """Four narrow-span reads, one per product, the tones at tone_setup and the products at
     setup (the same unless the plan reads tones wider); the noise floor is read beside each IM3
-    product, on the side away from the tones."""
+    product (read_im3)."""
     f1, f2 = _tones(analyzer, point, tone_setup)
     analyzer.apply(setup)
-    lower, upper = read_im3(analyzer, point, noise_offset_hz)
+    lower, upper = read_im3(analyzer, point, noise_offsets_hz)
     reads = (f1, f2, lower, upper)
     return Readings(
         f1_dbm=f1.powers_dbm[0],
@@ -101,17 +103,27 @@ def _tones(analyzer, point: PlannedPoint, tone_setup: AnalyzerSetup) -> tuple[Ma
             analyzer.read_markers(point.f2_hz, [point.f2_hz]))
 
 
-def read_im3(analyzer, point: PlannedPoint, noise_offset_hz: float) -> tuple[MarkerReading, MarkerReading]:
-    """Both IM3 products, each with a noise marker on the side away from the tones."""
-    lower = analyzer.read_markers(point.lower_hz, [point.lower_hz, point.lower_hz - noise_offset_hz])
-    upper = analyzer.read_markers(point.upper_hz, [point.upper_hz, point.upper_hz + noise_offset_hz])
-    return lower, upper
+def read_im3(analyzer, point: PlannedPoint, noise_offsets_hz: Sequence[float]) -> tuple[MarkerReading, MarkerReading]:
+    """Both IM3 products, each with noise markers noise_offsets_hz away from it on the side away
+    from the tones (a negative offset: on the tones' side). Each reading's powers are the product
+    and the noise: the mean power of the markers when there are several."""
+    lower = analyzer.read_markers(point.lower_hz, [point.lower_hz, *(point.lower_hz - off for off in noise_offsets_hz)])
+    upper = analyzer.read_markers(point.upper_hz, [point.upper_hz, *(point.upper_hz + off for off in noise_offsets_hz)])
+    return _noise_averaged(lower), _noise_averaged(upper)
 
 
-def step_readings(analyzer, point: PlannedPoint, noise_offset_hz: float, step_atten_db: float,
+def _noise_averaged(reading: MarkerReading) -> MarkerReading:
+    product_dbm, *noise_dbm = reading.powers_dbm
+    if len(noise_dbm) == 1:
+        return reading
+    mean_w = math.fsum(float(dbm_to_watt(dbm)) for dbm in noise_dbm) / len(noise_dbm)
+    return replace(reading, powers_dbm=(product_dbm, float(watt_to_dbm(mean_w))))
+
+
+def step_readings(analyzer, point: PlannedPoint, noise_offsets_hz: Sequence[float], step_atten_db: float,
                   reason: str) -> StepReadings:
     """The IM3 reads again, the analyzer already set step_atten_db more attenuation."""
-    lower, upper = read_im3(analyzer, point, noise_offset_hz)
+    lower, upper = read_im3(analyzer, point, noise_offsets_hz)
     return StepReadings(step_atten_db, lower.powers_dbm[0], upper.powers_dbm[0], lower.powers_dbm[1],
                         upper.powers_dbm[1], reason, lower.sweep_time_s + upper.sweep_time_s)
 

@@ -33,7 +33,7 @@ from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.drift import DriftTracker
 from tonebench.run.narrowing import read_narrow
-from tonebench.run.read_settings import TargetReads, tone_setup_for
+from tonebench.run.read_settings import NOISE_MARKERS, TargetReads, tone_setup_for
 from tonebench.run.point_build import failed_record, measured_record
 from tonebench.run.point_guard import BenchFault, PointFailed, PointGuard, settle_check
 from tonebench.run.readings import (
@@ -303,17 +303,19 @@ class Sequencer:
         analyzer, tone_setup = self.bench.analyzer, tone_setup_for(settings, setup, point.spacing_hz)
         # The noise markers stay the same fraction of the span away, whatever the RBW.
         noise_offset_hz = settings.noise_offset_hz * setup.span_hz / self.setup.span_hz
+        noise_offsets_hz = ((noise_offset_hz,) if target is None
+                            else tuple(factor * noise_offset_hz for factor in NOISE_MARKERS))
         narrow = None
         with analyzer.errors_read_once():
-            readings = read_point(analyzer, point, noise_offset_hz, setup, tone_setup)
+            readings = read_point(analyzer, point, noise_offsets_hz, setup, tone_setup)
             if settings.narrowing_budget_s is not None:
                 readings, narrow = read_narrow(
-                    analyzer, point, setup, readings, noise_offset_hz, settings.narrowing_budget_s,
+                    analyzer, point, setup, readings, noise_offsets_hz, settings.narrowing_budget_s,
                     lambda rbw_hz: self.attenuation.setup_for(predicted_tone_dbm, rbw_hz)[0],
                     None if target is None else self.target_reads.target_db)
             second = self._read_second_order(point, noise_offset_hz) if self.second_order else None
             step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings,
-                                               noise_offset_hz)
+                                               noise_offsets_hz)
         chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
         return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c, narrow,
                         None if tone_setup == setup else tone_setup.rbw_hz, target)
