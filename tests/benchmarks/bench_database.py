@@ -31,7 +31,7 @@ import sqlalchemy as sa
 from tonebench.catalog.limits import add_limit, apply_verdicts
 from tonebench.catalog.query import ResultFilter, find_results
 from tonebench.catalog.synthetic import PARTS, TAGS, fill
-from tonebench.results.stored_results import analyze_run
+from tonebench.results.stored_results import analyze_runs
 from tonebench.store import open_database, session_factory
 from tonebench.store.models import Device, Run
 
@@ -150,14 +150,13 @@ def bench(url: str, n_devices: int, label: str, reanalyze: bool = True) -> None:
     with engine.connect() as connection:
         guids = connection.scalars(sa.select(Run.guid).order_by(Run.id)).all()
     started_s = time.perf_counter()
-    for guid in guids:
-        analyze_run(sessions, guid)
+    analyze_runs(sessions, guids)
     analysis_s = time.perf_counter() - started_s
     with sessions.begin() as session:
         started_verdicts_s = time.perf_counter()
         apply_verdicts(session)
         verdicts_s = time.perf_counter() - started_verdicts_s
-    print(f"  re-analysis of all {len(guids)} runs: {analysis_s:.1f} s ({analysis_s / len(guids) * 1e3:.1f} ms per run), "
+    print(f"  re-analysis of all {len(guids)} runs in one process (analyze_runs): {analysis_s:.1f} s ({analysis_s / len(guids) * 1e3:.1f} ms per run), "
           f"then verdicts {verdicts_s:.1f} s", flush=True)
     engine.dispose()
 

@@ -187,9 +187,10 @@ def _rules(session: Session) -> dict[str, list[LimitRule]]:
     return rules
 
 
-def apply_verdicts(session: Session, run_id: int | None = None, *, part_number: str | None = None) -> Counter:
-    """(Re)compute and store the verdict of every result (of one run, of one part number, or
-    all); returns the count per verdict.
+def apply_verdicts(session: Session, run_id: int | None = None, *, part_number: str | None = None,
+                   run_ids: list[int] | None = None) -> Counter:
+    """(Re)compute and store the verdict of every result (of one run, of these runs, of one part
+    number, or all); returns the count per verdict.
 
     Works in the caller's transaction and does not commit. Results already loaded in the
     session get the new values too.
@@ -203,6 +204,8 @@ def apply_verdicts(session: Session, run_id: int | None = None, *, part_number: 
              .order_by(Result.id).limit(_BATCH))
     if run_id is not None:
         query = query.where(Result.run_id == run_id)
+    if run_ids is not None:
+        query = query.where(Result.run_id.in_(run_ids))
     if part_number is not None:
         query = query.where(Device.part_number == part_number)
     update = (sa.update(Result.__table__).where(Result.__table__.c.id == sa.bindparam("result_id"))

@@ -278,17 +278,14 @@ def analyze(
 def _analyze_many(sessions, cal: str | None, parts: tuple[str, ...], lots: tuple[str, ...]) -> None:
     import time
 
-    from tonebench.results.stored_results import analyze_run, finished_runs
+    from tonebench.results.stored_results import analyze_runs, finished_runs
 
     guids = finished_runs(sessions, parts, lots)
     started_s = time.perf_counter()
-    results = 0
     with StepProgress("analysing", "runs") as bar:
-        for done, guid in enumerate(guids, start=1):
-            results += len(analyze_run(sessions, guid, cal))
-            bar.advance(done, len(guids))
+        results = analyze_runs(sessions, guids, cal, bar.advance)
     took_s = time.perf_counter() - started_s
-    out.print(f"{len(guids)} runs analysed in {took_s:.1f} s ({1e3 * took_s / max(len(guids), 1):.0f} ms per run), "
+    out.print(f"{len(guids)} runs analysed in {took_s:.1f} s ({1e3 * took_s / max(len(guids), 1):.1f} ms per run), "
               f"{results} results stored" + (f", referred to calibration set {cal}" if cal else ""), highlight=False)
 
 

@@ -3,16 +3,19 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
+import sqlalchemy as sa
 from sqlalchemy import delete, select
-from sqlalchemy.orm import sessionmaker
+from sqlalchemy.orm import Session, selectinload, sessionmaker
 
-from tonebench.results.sweeps import assessed_sweeps, referral_tables
-from tonebench.store.lookups import find_run
 from tonebench.analysis.assess import (
     SweepAssessment,
 )
 from tonebench.catalog.limits import apply_verdicts
+from tonebench.errors import InputError
+from tonebench.results.sweeps import analysis_points, assessed_sweeps, referral_tables
+from tonebench.store.lookups import find_run
 from tonebench.store.models import (
     Device,
     Point,
@@ -20,6 +23,7 @@ from tonebench.store.models import (
     Result,
     ResultFlag,
     Run,
+    result_group_key,
     utc_now,
 )
 
@@ -31,9 +35,8 @@ def _finite_or_none(value):
     return value if math.isfinite(value) else None
 
 
-def _flag_row(cls, flag, **key):
-    error_db = flag.error_db if flag.error_db is not None and math.isfinite(flag.error_db) else None
-    return cls(flag=flag.flag, cause=flag.cause, detail=flag.detail, error_db=error_db, **key)
+def _flag_values(flag, **key) -> dict:
+    return dict(flag=flag.flag, cause=flag.cause, detail=flag.detail, error_db=_finite_or_none(flag.error_db), **key)
 
 
 def _details(a: SweepAssessment) -> dict:
@@ -65,6 +68,9 @@ def finished_runs(sessions: sessionmaker, parts: tuple[str, ...] = (), lots: tup
         return list(session.scalars(query))
 
 
+RUNS_PER_TRANSACTION = 200  # re-analysis of many runs: one read, one write and one commit per this many
+
+
 def analyze_run(sessions: sessionmaker, run_guid: str, cal_name: str | None = None) -> list[Result]:
     """Fit every sweep of a run, flag its points and results, and replace what was stored.
 
@@ -72,50 +78,94 @@ def analyze_run(sessions: sessionmaker, run_guid: str, cal_name: str | None = No
     the results record the set they were referred with, and its system residual is the one the
     source-intermod check uses. The points themselves stay as measured; their flags are replaced.
     """
-    with sessions.begin() as session:
+    with sessions() as session:
         run = find_run(session, run_guid)
-        set_id, tables = referral_tables(session, run, cal_name)
-        point_ids = select(Point.id).where(Point.run_id == run.id)
-        result_ids = select(Result.id).where(Result.run_id == run.id)
-        session.execute(delete(PointFlag).where(PointFlag.point_id.in_(point_ids)))
-        session.execute(delete(ResultFlag).where(ResultFlag.result_id.in_(result_ids)))
-        session.execute(delete(Result).where(Result.run_id == run.id))
-        results = []
-        for group, rows, _arrays, a in assessed_sweeps(session, run, set_id, tables):
-            fit, second = a.fit, a.second_order
-            for row, flags in zip(rows, a.point_flags):
-                session.add_all(_flag_row(PointFlag, f, point_id=row.id) for f in flags)
-            result = Result(
-                run_id=run.id,
-                **group,
-                n_points=fit.n_points,
-                n_valid=fit.n_valid,
-                gain_db=_finite_or_none(fit.gain_db),
-                iip3_lower_dbm=_finite_or_none(fit.iip3_lower_dbm),
-                iip3_upper_dbm=_finite_or_none(fit.iip3_upper_dbm),
-                iip3_dbm=_finite_or_none(fit.iip3_dbm),
-                oip3_lower_dbm=_finite_or_none(fit.oip3_lower_dbm),
-                oip3_upper_dbm=_finite_or_none(fit.oip3_upper_dbm),
-                oip3_dbm=_finite_or_none(fit.oip3_dbm),
-                slope_fundamental=_finite_or_none(fit.slope_fundamental),
-                slope_im3_lower=_finite_or_none(fit.slope_im3_lower),
-                slope_im3_upper=_finite_or_none(fit.slope_im3_upper),
-                p1db_in_dbm=_finite_or_none(fit.p1db_in_dbm),
-                p1db_out_dbm=_finite_or_none(fit.p1db_out_dbm),
-                iip3_bound_db=_finite_or_none(a.iip3_bound_db),
-                iip2_dbm=None if second is None else _finite_or_none(second.iip2_dbm),
-                oip2_dbm=None if second is None else _finite_or_none(second.oip2_dbm),
-                slope_im2=None if second is None else _finite_or_none(second.slope_im2),
-                valid_tone_min_dbm=_finite_or_none(fit.valid_tone_min_dbm),
-                valid_tone_max_dbm=_finite_or_none(fit.valid_tone_max_dbm),
-                reason=fit.reason,
-                details_json=_details(a),
-                calibration_set_id=set_id,
-                created_at=utc_now(),
-            )
-            result.flags = [_flag_row(ResultFlag, f) for f in a.result_flags]
-            results.append(result)
-        session.add_all(results)
-        # Spec-limit verdicts belong to the results just stored (design: stored per result).
-        apply_verdicts(session, run.id)
-    return results
+        run_id, run_guid = run.id, run.guid
+    analyze_runs(sessions, [run_guid], cal_name)
+    with sessions() as session:
+        return list(session.scalars(select(Result).where(Result.run_id == run_id)
+                                    .options(selectinload(Result.flags)).order_by(Result.id)))
+
+
+def analyze_runs(sessions: sessionmaker, run_guids: list[str], cal_name: str | None = None,
+                 on_progress: Callable[[int, int], None] | None = None) -> int:
+    """analyze_run for many runs (full GUIDs) in one process, RUNS_PER_TRANSACTION at a time: their points
+    read in one query with only the analysis columns, results and flags written with bulk
+    inserts, verdicts judged once per batch. Returns the number of results stored;
+    on_progress(done, total) after each run."""
+    stored = 0
+    for first in range(0, len(run_guids), RUNS_PER_TRANSACTION):
+        batch = run_guids[first:first + RUNS_PER_TRANSACTION]
+        with sessions.begin() as session:
+            by_guid = {run.guid: run for run in session.scalars(select(Run).where(Run.guid.in_(batch)))}
+            missing = [guid for guid in batch if guid not in by_guid]
+            if missing:
+                raise InputError(f"run '{missing[0]}': no run with that GUID in this database (see `tonebench runs`)")
+            runs = [by_guid[guid] for guid in batch]
+            run_ids = [run.id for run in runs]
+            points = analysis_points(session, run_ids)
+            _forget_analysis(session, run_ids)
+            results, point_flags, result_flags = [], [], []
+            for done, run in enumerate(runs, start=first + 1):
+                set_id, tables = referral_tables(session, run, cal_name, points[run.id])
+                for group, stored_rows, _arrays, a in assessed_sweeps(session, run, set_id, tables, points[run.id]):
+                    for row, flags in zip(stored_rows, a.point_flags):
+                        point_flags += (_flag_values(f, point_id=row.id) for f in flags)
+                    results.append(_result_values(run.id, group, a, set_id))
+                    result_flags.append([_flag_values(f) for f in a.result_flags])
+                if on_progress is not None:
+                    on_progress(done, len(run_guids))
+            if results:
+                ids = session.scalars(sa.insert(Result).returning(Result.id, sort_by_parameter_order=True), results)
+                result_flags = [{**f, "result_id": result_id} for result_id, flags in zip(ids, result_flags)
+                                for f in flags]
+            for cls, rows in ((PointFlag, point_flags), (ResultFlag, result_flags)):
+                if rows:
+                    session.execute(sa.insert(cls), rows)
+            # Spec-limit verdicts belong to the results just stored (design: stored per result).
+            apply_verdicts(session, run_ids=run_ids)
+            stored += len(results)
+    return stored
+
+
+def _forget_analysis(session: Session, run_ids: list[int]) -> None:
+    """Delete the runs' results and point and result flags (the analysis replaces them all)."""
+    point_ids = select(Point.id).where(Point.run_id.in_(run_ids))
+    result_ids = select(Result.id).where(Result.run_id.in_(run_ids))
+    session.execute(delete(PointFlag).where(PointFlag.point_id.in_(point_ids)))
+    session.execute(delete(ResultFlag).where(ResultFlag.result_id.in_(result_ids)))
+    session.execute(delete(Result).where(Result.run_id.in_(run_ids)))
+
+
+def _result_values(run_id: int, group: dict, a: SweepAssessment, set_id: int | None) -> dict:
+    fit, second = a.fit, a.second_order
+    return dict(
+        run_id=run_id,
+        **group,
+        # The insert is a bulk one: the ORM's before-insert hook does not fill the key.
+        group_key=result_group_key(group["center_hz"], group["spacing_hz"], group["bias_v"], group["temperature_c"]),
+        n_points=fit.n_points,
+        n_valid=fit.n_valid,
+        gain_db=_finite_or_none(fit.gain_db),
+        iip3_lower_dbm=_finite_or_none(fit.iip3_lower_dbm),
+        iip3_upper_dbm=_finite_or_none(fit.iip3_upper_dbm),
+        iip3_dbm=_finite_or_none(fit.iip3_dbm),
+        oip3_lower_dbm=_finite_or_none(fit.oip3_lower_dbm),
+        oip3_upper_dbm=_finite_or_none(fit.oip3_upper_dbm),
+        oip3_dbm=_finite_or_none(fit.oip3_dbm),
+        slope_fundamental=_finite_or_none(fit.slope_fundamental),
+        slope_im3_lower=_finite_or_none(fit.slope_im3_lower),
+        slope_im3_upper=_finite_or_none(fit.slope_im3_upper),
+        p1db_in_dbm=_finite_or_none(fit.p1db_in_dbm),
+        p1db_out_dbm=_finite_or_none(fit.p1db_out_dbm),
+        iip3_bound_db=_finite_or_none(a.iip3_bound_db),
+        iip2_dbm=None if second is None else _finite_or_none(second.iip2_dbm),
+        oip2_dbm=None if second is None else _finite_or_none(second.oip2_dbm),
+        slope_im2=None if second is None else _finite_or_none(second.slope_im2),
+        valid_tone_min_dbm=_finite_or_none(fit.valid_tone_min_dbm),
+        valid_tone_max_dbm=_finite_or_none(fit.valid_tone_max_dbm),
+        reason=fit.reason,
+        details_json=_details(a),
+        calibration_set_id=set_id,
+        created_at=utc_now(),
+    )

@@ -17,20 +17,19 @@ from tonebench.analysis.assess import (
     SweepData,
     assess_sweep,
 )
+from tonebench.calibration.residual import check_shares
+from tonebench.calibration.sets import load_set
+from tonebench.plan.axes import GROUP_FIELDS, group_of, sweep_key_of
+from tonebench.planes.loss_table import LossTable
 from tonebench.planes.referral import (
     OUTPUT_COLUMNS,
     check_coverage,
     point_offsets,
     referred_values,
 )
-from tonebench.calibration.residual import check_shares
-from tonebench.calibration.sets import load_set
-from tonebench.plan.axes import group_of, sweep_key_of
-from tonebench.planes.loss_table import LossTable
 from tonebench.store.models import CalibrationSet, Point, Run
 from tonebench.store.point_record import PointRecord, record_of
 from tonebench.units import format_freq
-
 
 POINT_ARRAYS = (
     "tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
@@ -56,9 +55,19 @@ _REFERRAL_INPUTS = (
 )
 
 
+# The point columns the analysis reads (re-analysis of many runs loads only these).
+ANALYSIS_FIELDS = tuple(dict.fromkeys((
+    *GROUP_FIELDS, "tone_dbm", "f1_hz", "f2_hz", "raw_diff_dbm", "extra_json",
+    *POINT_ARRAYS, *RAW_ARRAYS, *_REFERRAL_INPUTS)))
+
+# Sweep by sweep, tone power up.
+_SWEEP_ORDER = (Point.temperature_c, Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
+
+
 @dataclass(frozen=True)
 class StoredPoint:
-    """A measured point read back: its row id (which point flags refer to) and its record."""
+    """A measured point read back: its row id (which point flags refer to) and its record (a
+    PointRecord, or for re-analysis a row holding the ANALYSIS_FIELDS)."""
 
     id: int
     record: PointRecord
@@ -67,11 +76,21 @@ class StoredPoint:
 def stored_points(session: Session, run_id: int) -> list[StoredPoint]:
     """The run's measured points, sweep by sweep, tone power up: the one way results read points."""
     rows = session.scalars(
-        select(Point)
-        .where(Point.run_id == run_id, Point.status == "measured")
-        .order_by(Point.temperature_c, Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
+        select(Point).where(Point.run_id == run_id, Point.status == "measured").order_by(*_SWEEP_ORDER)
     ).all()
     return [StoredPoint(row.id, record_of(row)) for row in rows]
+
+
+def analysis_points(session: Session, run_ids: list[int]) -> dict[int, list[StoredPoint]]:
+    """The measured points of several runs with only the columns the analysis reads, per run id,
+    in stored_points' order: one query for many runs, no ORM objects."""
+    columns = [Point.id, Point.run_id, *(getattr(Point, name) for name in ANALYSIS_FIELDS)]
+    per_run: dict[int, list[StoredPoint]] = {run_id: [] for run_id in run_ids}
+    rows = session.execute(select(*columns).where(Point.run_id.in_(run_ids), Point.status == "measured")
+                           .order_by(Point.run_id, *_SWEEP_ORDER))
+    for row in rows:
+        per_run[row.run_id].append(StoredPoint(row.id, row))
+    return per_run
 
 
 def rereferred(point: PointRecord | Point, tables: dict[str, LossTable]) -> dict[str, float | None]:
@@ -80,10 +99,12 @@ def rereferred(point: PointRecord | Point, tables: dict[str, LossTable]) -> dict
     return referred_values({name: getattr(point, name) for name in _REFERRAL_INPUTS}, offsets)
 
 
-def point_sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | None = None):
+def point_sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | None = None,
+                 points: list[StoredPoint] | None = None):
     """Per sweep, (its value on every group axis as point field -> value, stored points, arrays
-    the fit takes): as stored, or re-referred to `tables` when given."""
-    points = stored_points(session, run_id)
+    the fit takes): as stored, or re-referred to `tables` when given. `points` are the run's
+    stored points when the caller has read them already."""
+    points = stored_points(session, run_id) if points is None else points
     for key, group in groupby(points, key=lambda p: sweep_key_of(p.record)):
         stored = list(group)
         records = [p.record for p in stored]
@@ -100,7 +121,7 @@ def point_sweeps(session: Session, run_id: int, tables: dict[str, LossTable] | N
 
 
 def _nan_array(values) -> np.ndarray:
-    return np.array([np.nan if v is None else float(v) for v in values], dtype=float)
+    return np.array(list(values), dtype=float)  # None -> NaN
 
 
 def sweep_data(records: list[PointRecord], arrays: dict[str, np.ndarray]) -> SweepData:
@@ -156,21 +177,24 @@ def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, sp
     )
 
 
-def assessed_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None):
+def assessed_sweeps(session: Session, run: Run, set_id: int | None, tables: dict | None,
+                    points: list[StoredPoint] | None = None):
     """(group axis values, stored points, arrays, assessment) for each sweep of the run."""
     cal = session.get(CalibrationSet, set_id) if set_id is not None else None
-    for group, stored, arrays in point_sweeps(session, run.id, tables):
+    for group, stored, arrays in point_sweeps(session, run.id, tables, points):
         data = sweep_data([p.record for p in stored], arrays)
         assessment = assess_sweep(data, analysis_settings(run, cal, group["center_hz"], group["spacing_hz"]))
         yield group, stored, arrays, assessment
 
 
-def referral_tables(session: Session, run: Run, cal_name: str | None) -> tuple[int | None, dict | None]:
+def referral_tables(session: Session, run: Run, cal_name: str | None,
+                    points: list[StoredPoint] | None = None) -> tuple[int | None, dict | None]:
     """(calibration set id, tables to re-refer with or None to use the points as stored)."""
     if cal_name is None:
         return run.calibration_set_id, None
     view = load_set(session, cal_name)
-    pairs = sorted({(p.record.f1_hz, p.record.f2_hz) for p in stored_points(session, run.id)})
+    points = stored_points(session, run.id) if points is None else points
+    pairs = sorted({(p.record.f1_hz, p.record.f2_hz) for p in points})
     check_coverage(view.tables, pairs, f"run {run.guid[:8]}: {view.label}")
     if view.id == run.calibration_set_id:
         return view.id, None
