@@ -1,4 +1,4 @@
-"""Re-analysis of many runs at once (analyze_runs: one read, bulk inserts, one commit per batch)
+"""Re-analysis of many runs at once, on SQLite and PostgreSQL (analyze_runs: one read, bulk inserts, one commit per batch)
 stores exactly what analysing each run on its own stores, and a bad run in a batch loses nothing."""
 
 from __future__ import annotations
@@ -31,8 +31,7 @@ def _stored(engine) -> dict[str, list]:
                 for name, sql in (("results", _RESULTS), ("result flags", _RESULT_FLAGS), ("point flags", _POINT_FLAGS))}
 
 
-def test_many_runs_in_batches_store_what_one_run_at_a_time_stores(tmp_path, monkeypatch):
-    db_url = f"sqlite:///{tmp_path / 'tb.db'}"
+def test_many_runs_in_batches_store_what_one_run_at_a_time_stores(tmp_path, monkeypatch, db_url):
     engine = open_database(db_url)
     fill(engine, 3, seed=4, n_lots=2, batch_devices=3)
     # Two simulated runs whose results carry flags: the analyzer's own IM3, and noise.
@@ -58,8 +57,8 @@ def test_many_runs_in_batches_store_what_one_run_at_a_time_stores(tmp_path, monk
     assert progress == [(done, len(guids)) for done in range(1, len(guids) + 1)]
 
 
-def test_an_unknown_run_in_a_batch_is_refused_before_anything_is_replaced(tmp_path):
-    engine = open_database(f"sqlite:///{tmp_path / 'tb.db'}")
+def test_an_unknown_run_in_a_batch_is_refused_before_anything_is_replaced(db_url):
+    engine = open_database(db_url)
     fill(engine, 2, seed=5, n_lots=1, batch_devices=2)
     sessions = session_factory(engine)
     with engine.connect() as connection:

@@ -115,13 +115,16 @@ def analyze_runs(sessions: sessionmaker, run_guids: list[str], cal_name: str | N
                     result_flags.append([_flag_values(f) for f in a.result_flags])
                 if on_progress is not None:
                     on_progress(done, len(run_guids))
+            # Core inserts of whole rows: one statement per table (the ORM's bulk insert splits
+            # rows by which values are None, one statement each).
             if results:
-                ids = session.scalars(sa.insert(Result).returning(Result.id, sort_by_parameter_order=True), results)
+                table = Result.__table__
+                ids = session.scalars(sa.insert(table).returning(table.c.id, sort_by_parameter_order=True), results)
                 result_flags = [{**f, "result_id": result_id} for result_id, flags in zip(ids, result_flags)
                                 for f in flags]
             for cls, rows in ((PointFlag, point_flags), (ResultFlag, result_flags)):
                 if rows:
-                    session.execute(sa.insert(cls), rows)
+                    session.execute(sa.insert(cls.__table__), rows)
             # Spec-limit verdicts belong to the results just stored (design: stored per result).
             apply_verdicts(session, run_ids=run_ids)
             stored += len(results)
