@@ -281,11 +281,14 @@ def _analyze_many(sessions, cal: str | None, parts: tuple[str, ...], lots: tuple
     from tonebench.results.stored_results import analyze_runs, finished_runs
 
     guids = finished_runs(sessions, parts, lots)
+    if not guids:
+        out.print("0 runs analysed: no finished run with measured points matches", highlight=False)
+        return
     started_s = time.perf_counter()
     with StepProgress("analysing", "runs") as bar:
         results = analyze_runs(sessions, guids, cal, bar.advance)
     took_s = time.perf_counter() - started_s
-    out.print(f"{len(guids)} runs analysed in {took_s:.1f} s ({1e3 * took_s / max(len(guids), 1):.1f} ms per run), "
+    out.print(f"{len(guids)} runs analysed in {took_s:.1f} s ({1e3 * took_s / len(guids):.1f} ms per run), "
               f"{results} results stored" + (f", referred to calibration set {cal}" if cal else ""), highlight=False)
 
 
