@@ -8,11 +8,10 @@ from __future__ import annotations
 import datetime as dt
 
 import pytest
-import sqlalchemy as sa
 
 from tonebench.catalog.query import ResultFilter, result_query
 
-UTC = dt.timezone.utc
+UTC = dt.UTC
 FILTERS = {
     "part": (ResultFilter(parts=("KLN-2417A",)), "devices_part_number"),
     "lot": (ResultFilter(lots=("TB24-031",)), "ix_devices_lot"),
@@ -23,7 +22,9 @@ FILTERS = {
     "bias": (ResultFilter(bias_min_v=0.5, bias_max_v=0.6), "ix_results_bias"),
     "verdict": (ResultFilter(verdicts=("fail",)), "ix_results_verdict"),
     "since": (ResultFilter(since=dt.datetime(2026, 11, 1, tzinfo=UTC)), "ix_runs_started_at"),
+    "until": (ResultFilter(until=dt.datetime(2026, 11, 1, tzinfo=UTC)), "ix_runs_started_at"),
     "flag": (ResultFilter(flags=("slope",)), "ix_result_flags_result_flag"),
+    "flagged": (ResultFilter(flagged=True), "ix_result_flags_result_flag"),
 }
 
 

@@ -24,7 +24,7 @@ from tonebench.store.models import (
     Run,
 )
 
-_CHUNK = 500  # ids per IN list when fetching flags (well under SQLite's bound-parameter limit)
+_BOUND_IDS_MAX = 500  # flags of more results are fetched by the filter itself, not by bound ids
 
 
 @dataclass(frozen=True)
@@ -55,7 +55,7 @@ class ResultFilter:
     flagged: bool | None = None
     verdicts: tuple[str, ...] = ()
 
-    def check(self) -> "ResultFilter":
+    def check(self) -> ResultFilter:
         """Raise InputError (one line, naming the filter) for values no result could match."""
         for name, allowed in (("flags", FLAGS), ("verdicts", VERDICTS)):
             bad = [v for v in getattr(self, name) if v not in allowed]
@@ -198,13 +198,21 @@ def find_results(session: Session, flt: ResultFilter, limit: int | None = None) 
     if limit is not None and limit < 1:
         raise InputError(f"limit {limit}: give at least 1")
     dialect = session.get_bind().dialect.name
-    query = result_query(flt, dialect).order_by(
-        Device.part_number, Device.serial, Run.started_at, Run.guid, Result.center_hz,
-        Result.spacing_hz, sa.nulls_first(Result.bias_v))
+    order = (Device.part_number, Device.serial, Run.started_at, Run.guid, Result.center_hz,
+             Result.spacing_hz, sa.nulls_first(Result.bias_v))
+    query = result_query(flt, dialect).order_by(*order)
     if limit is not None:
         query = query.limit(limit)
     rows = [ResultRow(*row[:8], tuple(row[8] or ()), *row[9:]) for row in session.execute(query)]
-    flags = result_flags(session, [row.result_id for row in rows])
+    if len(rows) <= _BOUND_IDS_MAX:
+        ids = [row.result_id for row in rows]
+    else:  # thousands of bound ids cost more than asking the filter again
+        ids = result_query(flt, dialect, (Result.id,))
+        ids = (ids.order_by(*order).limit(limit) if limit is not None else ids).scalar_subquery()
+    flags: dict[int, set[str]] = {}
+    for result_id, flag in session.execute(
+            sa.select(ResultFlag.result_id, ResultFlag.flag).where(ResultFlag.result_id.in_(ids))):
+        flags.setdefault(result_id, set()).add(flag)
     for row in rows:
         row.flags = tuple(sorted(flags.get(row.result_id, ())))
     return rows
@@ -214,17 +222,6 @@ def count_results(session: Session, flt: ResultFilter) -> int:
     flt.check()
     dialect = session.get_bind().dialect.name
     return session.scalar(result_query(flt, dialect, (sa.func.count(Result.id),)))
-
-
-def result_flags(session: Session, result_ids: list[int]) -> dict[int, set[str]]:
-    """Flag names per result id: the result's own flags (not its points')."""
-    found: dict[int, set[str]] = {}
-    for start in range(0, len(result_ids), _CHUNK):
-        chunk = result_ids[start:start + _CHUNK]
-        for result_id, flag in session.execute(
-                sa.select(ResultFlag.result_id, ResultFlag.flag).where(ResultFlag.result_id.in_(chunk))):
-            found.setdefault(result_id, set()).add(flag)
-    return found
 
 
 def latest_per_device(rows: list[ResultRow]) -> tuple[list[ResultRow], int]:
