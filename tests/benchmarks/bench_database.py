@@ -4,6 +4,8 @@
     python tests/benchmarks/bench_database.py --devices 500 --backend sqlite     # a quick look
     python tests/benchmarks/bench_database.py --skip-reanalysis   # insert, verdicts and queries only
     python tests/benchmarks/bench_database.py --pg-url postgresql+psycopg://user@host/empty_db
+    python tests/benchmarks/bench_database.py --keep /tmp/tb-bench --skip-reanalysis  # build once, then
+        # the same command again reuses the kept databases and only times the queries
 
 With the defaults: 10,000 devices, one run each of 4 centers x 2 spacings x 25 tone steps, i.e.
 2,000,000 points and 80,000 results. Not a test: it prints figures. A temporary PostgreSQL server
@@ -39,20 +41,23 @@ QUERY_REPEATS = 25
 
 
 @contextlib.contextmanager
-def temporary_postgres():
-    """URL of an empty database on a PostgreSQL server started in a temporary folder."""
+def temporary_postgres(keep: str | None = None):
+    """URL of a database on a PostgreSQL server started in a folder: a temporary one (empty), or
+    `keep`, whose data folder is created on the first call and reused (and left) afterwards."""
     found = sorted(glob.glob("/usr/lib/postgresql/*/bin/initdb"))
     bin_dir = os.path.dirname(found[-1]) if found else os.path.dirname(shutil.which("initdb") or "")
     if not bin_dir:
         raise SystemExit("PostgreSQL server binaries not found (apt-get install postgresql)")
     as_user = ["runuser", "-u", "postgres", "--"] if os.geteuid() == 0 else []
-    folder = tempfile.mkdtemp(prefix="tonebench-bench-pg-")
+    folder = os.path.join(keep, "pg") if keep else tempfile.mkdtemp(prefix="tonebench-bench-pg-")
+    os.makedirs(folder, exist_ok=True)
     os.chmod(folder, 0o777)
     if os.geteuid() == 0:
         shutil.chown(folder, "postgres")
     data = os.path.join(folder, "data")
-    subprocess.run([*as_user, f"{bin_dir}/initdb", "-D", data, "-U", "postgres", "--auth=trust", "-E", "UTF8"],
-                   check=True, capture_output=True)
+    if not os.path.isdir(data):
+        subprocess.run([*as_user, f"{bin_dir}/initdb", "-D", data, "-U", "postgres", "--auth=trust", "-E", "UTF8"],
+                       check=True, capture_output=True)
     with socket.socket() as probe:
         probe.bind(("127.0.0.1", 0))
         port = str(probe.getsockname()[1])
@@ -62,7 +67,8 @@ def temporary_postgres():
         yield f"postgresql+psycopg://postgres@/postgres?host={folder}&port={port}"
     finally:
         subprocess.run([*as_user, f"{bin_dir}/pg_ctl", "-D", data, "-m", "fast", "stop"], capture_output=True)
-        shutil.rmtree(folder, ignore_errors=True)
+        if not keep:
+            shutil.rmtree(folder, ignore_errors=True)
 
 
 def typical_filters(engine: sa.Engine, rng: random.Random) -> dict[str, list[ResultFilter]]:
@@ -122,9 +128,21 @@ def database_size(engine: sa.Engine) -> str:
     return f"{size / 2**20:.0f} MiB"
 
 
+def is_filled(engine: sa.Engine) -> bool:
+    with engine.connect() as connection:
+        return connection.scalar(sa.select(sa.func.count(Run.id))) > 0
+
+
 def bench(url: str, n_devices: int, label: str, reanalyze: bool = True) -> None:
     print(f"{label}: {n_devices} devices", flush=True)
     engine = open_database(url)
+    if is_filled(engine):  # a kept database: time its queries as it is
+        with engine.connect() as connection:
+            n_runs = connection.scalar(sa.select(sa.func.count(Run.id)))
+        print(f"  reusing the kept database ({n_runs} runs, {database_size(engine)}); no insert", flush=True)
+        time_queries(engine)
+        engine.dispose()
+        return
     started_s = time.perf_counter()
     summary = fill(engine, n_devices, seed=1, n_lots=max(4, n_devices // 250), batch_devices=100)
     insert_s = time.perf_counter() - started_s
@@ -167,17 +185,24 @@ def main() -> None:
     parser.add_argument("--backend", choices=("sqlite", "postgresql", "both"), default="both")
     parser.add_argument("--pg-url", help="an empty PostgreSQL database to use instead of a temporary server")
     parser.add_argument("--skip-reanalysis", action="store_true", help="stop after the queries (the slowest part)")
+    parser.add_argument("--keep", metavar="FOLDER",
+                        help="build the databases in FOLDER and leave them; a later call with the same FOLDER "
+                             "reuses them and only times the queries")
     args = parser.parse_args()
     reanalyze = not args.skip_reanalysis
+    if args.keep and reanalyze:
+        parser.error("--keep needs --skip-reanalysis: re-analysis rewrites the kept results")
     if args.backend in ("sqlite", "both"):
-        with tempfile.TemporaryDirectory() as folder:
+        with contextlib.ExitStack() as stack:
+            folder = args.keep or stack.enter_context(tempfile.TemporaryDirectory())
+            os.makedirs(folder, exist_ok=True)
             bench(f"sqlite:///{folder}/bench.db", args.devices, "SQLite", reanalyze)
     if args.backend in ("postgresql", "both"):
         if args.pg_url:
             bench(args.pg_url, args.devices, "PostgreSQL", reanalyze)
         else:
-            with temporary_postgres() as url:
-                bench(url, args.devices, "PostgreSQL (temporary local server)", reanalyze)
+            with temporary_postgres(args.keep) as url:
+                bench(url, args.devices, "PostgreSQL (local server in " + (args.keep or "a temporary folder") + ")", reanalyze)
 
 
 if __name__ == "__main__":
