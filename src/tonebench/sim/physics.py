@@ -291,9 +291,20 @@ def analyzer_noise_dbm_per_hz(danl_dbm_per_hz: float, atten_db: float, arriving_
     return 10.0 * np.log10(own_w + arriving_w)
 
 
-def sweep_time_s(span_hz: float, rbw_hz: float, sweep_time_factor: float) -> float:
-    """Swept analyzer: factor * span / RBW^2, at least MIN_SWEEP_TIME_S."""
-    return max(MIN_SWEEP_TIME_S, sweep_time_factor * span_hz / rbw_hz**2)
+def sweep_time_s(span_hz: float, rbw_hz: float, sweep_time_factor: float, vbw_hz: float | None = None) -> float:
+    """Swept analyzer: factor * span / (RBW * min(RBW, VBW)), at least MIN_SWEEP_TIME_S. A video
+    filter narrower than the RBW settles RBW/VBW times slower, so the sweep lengthens by that
+    much (common practice, from memory); one at the RBW or wider costs nothing."""
+    video_hz = rbw_hz if vbw_hz is None else min(rbw_hz, vbw_hz)
+    return max(MIN_SWEEP_TIME_S, sweep_time_factor * span_hz / (rbw_hz * video_hz))
+
+
+def video_averages(noise_averages: int, rbw_hz: float, vbw_hz: float) -> float:
+    """Independent noise samples behind one trace point: the scenario's noise_averages with the
+    video filter at the RBW or wider, RBW/VBW times more below it. A video filter that much
+    narrower than the noise's bandwidth averages about RBW/VBW independent samples, so the
+    reading's scatter falls as sqrt(VBW/RBW) (common practice, from memory)."""
+    return noise_averages * max(1.0, rbw_hz / vbw_hz)
 
 
 def overload_compression_db(mixer_total_dbm: float, overload_mixer_dbm: float) -> float:
@@ -313,13 +324,15 @@ def trace_power_w(
     line_power_w: np.ndarray,
     rbw_hz: float,
     noise_dbm_per_hz,
-    noise_averages: int,
+    noise_averages: float,
     rng: np.random.Generator,
 ) -> np.ndarray:
     """Power (W) read at each trace frequency: lines through the RBW filter plus fluctuating noise.
 
     Lines at one frequency must already be summed as phasors. The averaged noise reading is a
-    Gamma(k, 1/k) multiple of the mean noise power in the noise bandwidth, k = noise_averages.
+    Gamma(k, 1/k) multiple of the mean noise power in the noise bandwidth, k = noise_averages
+    (video_averages for a video filter narrower than the RBW). Trace points are drawn
+    independently: the correlation a narrow video filter gives neighbouring points is not modelled.
     """
     trace_freq_hz = np.asarray(trace_freq_hz, dtype=float)
     noise_mean_w = 1e-3 * 10.0 ** (np.asarray(noise_dbm_per_hz, dtype=float) / 10.0) * noise_bandwidth_hz(rbw_hz)

@@ -85,7 +85,8 @@ class AnalyzerScenario(_Strict):
     level_error_db: float = Field(0.0, ge=-20.0, le=20.0)
     # Amplitude error growing linearly from 0 Hz, on top of level_error_db.
     flatness_db_per_ghz: float = Field(0.0, ge=-10.0, le=10.0)
-    # Trace/video averages: the noise reading fluctuates as a Gamma(k, 1/k) multiple of its mean.
+    # Trace/video averages with the VBW at the RBW or wider: the noise reading fluctuates as a
+    # Gamma(k, 1/k) multiple of its mean; a narrower VBW gives RBW/VBW times more (physics.video_averages).
     noise_averages: int = Field(16, ge=1, le=100_000)
     overload_mixer_dbm: float = Field(-10.0, ge=-60.0, le=40.0)
     damage_dbm: float = Field(30.0, ge=-20.0, le=60.0)

@@ -345,7 +345,8 @@ class SimBench:
 
     def sweep_time_s(self) -> float:
         state = self.analyzer
-        return physics.sweep_time_s(state.span_hz, state.rbw_hz, self.scenario.analyzer.sweep_time_factor)
+        return physics.sweep_time_s(state.span_hz, state.rbw_hz, self.scenario.analyzer.sweep_time_factor,
+                                    state.vbw_hz)
 
     def trace_freq_hz(self) -> np.ndarray:
         state = self.analyzer
@@ -368,7 +369,9 @@ class SimBench:
         noise_dbm_per_hz = physics.analyzer_noise_dbm_per_hz(settings.danl_dbm_per_hz, state.atten_db,
                                                              arriving_dbm_per_hz)
         power_w = physics.trace_power_w(freq_hz, lines.freq_hz, physics.vpeak_to_watt(lines.amp_v), state.rbw_hz,
-                                        noise_dbm_per_hz, settings.noise_averages, self._rng)
+                                        noise_dbm_per_hz,
+                                        physics.video_averages(settings.noise_averages, state.rbw_hz, state.vbw_hz),
+                                        self._rng)
         compression_db = physics.overload_compression_db(_total_dbm(lines.amp_v) - state.atten_db,
                                                          settings.overload_mixer_dbm)
         state.trace_freq_hz = freq_hz
