@@ -59,6 +59,29 @@ def test_the_estimate_is_within_ten_percent_of_the_simulated_bench_time(tmp_path
     assert metadata["bench_time_s"] == outcome.bench_time.taken_s and metadata["bench_time_clock"] == "virtual"
 
 
+def test_a_video_filter_under_the_rbw_is_in_the_estimate_and_the_dry_run(tmp_path):
+    """VBW a fifth of the RBW: each sweep takes k * span / (RBW * VBW), five times the sweep at
+    VBW = RBW (a video filter settles RBW/VBW times slower; common practice, from memory). The
+    simulated analyzer slows the same way (tests/sim/test_video_filter.py), so an estimate that
+    left the VBW out would fall about five times short of its clock."""
+    plan = tmp_path / "plan.toml"
+    plan.write_text((SAMPLE_RUNS / "demo_plan.toml").read_text().replace("rbw_hz = 1000.0",
+                                                                         "rbw_hz = 1000.0\nvbw_hz = 200.0"))
+    settings, bench = load_plan(plan).settings, load_bench(SAMPLE_RUNS / "sim_bench.toml").settings
+    estimate = estimate_bench_time(expand(settings), settings, bench, role_dialects(bench))
+    assert estimate.sweep_time_s == pytest.approx(2.5 * 10e3 / (1e3 * 200.0))
+    sims, estimates = [], []
+    outcome = execute_run(plan, SAMPLE_RUNS / "sim_bench.toml", f"sqlite:///{tmp_path / 'tb.db'}", None,
+                          on_sim_started=sims.append, on_estimate=estimates.append)
+    assert outcome.status == "complete", outcome.reason
+    assert estimates[0].total_s == pytest.approx(sims[0].bench.clock_s, rel=0.10)
+    with Session(create_engine(f"sqlite:///{tmp_path / 'tb.db'}")) as session:
+        assert {p.vbw_hz for p in session.scalars(select(Point))} == {200.0}
+    shown = invoke("run", plan, "--bench", SAMPLE_RUNS / "sim_bench.toml", "--db", tmp_path / "dry.db", "--dry-run")
+    assert shown.exit_code == 0, shown.output
+    assert "1000, VBW 200 " in shown.output and "0.75 s" in shown.output, shown.output  # 6 sweeps of 125 ms
+
+
 def test_dry_run_prints_settings_and_estimate_and_touches_nothing(tmp_path):
     db = tmp_path / "tb.db"
     result = invoke("run", SAMPLE_RUNS / "demo_plan.toml", "--bench", SAMPLE_RUNS / "sim_bench.toml", "--db", db,

@@ -1,7 +1,7 @@
 """How long a plan keeps the bench busy, predicted before anything is switched on.
 
 Bench time is the instruments' own time: analyzer sweeps (the dialect's sweep-time model, k *
-span / RBW^2, with the bench file's override of k), source settling (the source dialect's
+span / RBW^2, or k * span / (RBW * VBW) with the VBW narrower, with the bench file's override of k), source settling (the source dialect's
 settle_time_s, once per source per point: each waits for its own *OPC?), gate changes (ramp and
 settle), and the chamber's way to each new temperature: the ramp at the bench file's
 ramp_c_per_min (from ROOM_C for the first; left out, none) and the dwell. Software and command
@@ -88,7 +88,7 @@ def sweep_time_s(plan: PlanFile, bench: BenchFile, analyzer: Dialect, tones: boo
     settings = plan.analyzer
     if tones and settings.tone_rbw_hz is not None:
         return sweep_time_model_s(factor, 10.0 * settings.tone_rbw_hz, settings.tone_rbw_hz)
-    return sweep_time_model_s(factor, settings.effective_span_hz, settings.rbw_hz)
+    return sweep_time_model_s(factor, settings.effective_span_hz, settings.rbw_hz, settings.effective_vbw_hz)
 
 
 def sweeps_per_point(points: list[PlannedPoint], plan: PlanFile, todo: list[PlannedPoint],
@@ -131,8 +131,9 @@ def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: Bench
         apart = plan.analyzer.tone_rbw_hz is not None
     else:
         chosen = [setups[i] for i in todo_index]
-        tone_times = [sweep_time_model_s(factor, tone.span_hz, tone.rbw_hz) for tone, _ in chosen]
-        product_times = [sweep_time_model_s(factor, products.span_hz, products.rbw_hz) for _, products in chosen]
+        tone_times = [sweep_time_model_s(factor, tone.span_hz, tone.rbw_hz, tone.vbw_hz) for tone, _ in chosen]
+        product_times = [sweep_time_model_s(factor, products.span_hz, products.rbw_hz, products.vbw_hz)
+                         for _, products in chosen]
         apart = any((tone.rbw_hz, tone.span_hz) != (products.rbw_hz, products.span_hz) for tone, products in chosen)
     sweeps_s = sum(t * tone_s + p * product_s for (t, p), tone_s, product_s in zip(counts, tone_times, product_times))
     tone_sweeps, product_sweeps = sum(t for t, _ in counts), sum(p for _, p in counts)

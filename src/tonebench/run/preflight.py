@@ -76,7 +76,7 @@ class _FileAnalyzer:
     performance: dict
 
     def predicted_sweep_time_s(self, setup: AnalyzerSetup) -> float:
-        return sweep_time_model_s(self.performance["sweep_time_factor"], setup.span_hz, setup.rbw_hz)
+        return sweep_time_model_s(self.performance["sweep_time_factor"], setup.span_hz, setup.rbw_hz, setup.vbw_hz)
 
 
 @dataclass(frozen=True)
@@ -122,11 +122,12 @@ def point_settings(pre: Preflight) -> list[dict[str, str]]:
     for point, planned, (tones, products) in zip(pre.points, pre.setups(), sweeps):
         levels = predict_levels(point, pre.offsets, bench.limits)
         setup, tone_setup = planned.setup, planned.tone_setup
-        time_s = (tones * sweep_time_model_s(factor, tone_setup.span_hz, tone_setup.rbw_hz)
-                  + products * sweep_time_model_s(factor, setup.span_hz, setup.rbw_hz))
+        time_s = (tones * sweep_time_model_s(factor, tone_setup.span_hz, tone_setup.rbw_hz, tone_setup.vbw_hz)
+                  + products * sweep_time_model_s(factor, setup.span_hz, setup.rbw_hz, setup.vbw_hz))
         rows.append({"Point": point.name, "Source 1 dBm": f"{levels.source1_dbm:.2f}",
                      "Source 2 dBm": f"{levels.source2_dbm:.2f}", "Analyzer in dBm": f"{planned.tone_at_analyzer_dbm:.1f}",
                      "Atten dB": f"{setup.atten_db:g} ({planned.how})", "RBW Hz": f"{setup.rbw_hz:g}"
-                     + ("" if tone_setup.rbw_hz == setup.rbw_hz else f" (tones {tone_setup.rbw_hz:g})"),
+                     + ("" if tone_setup.rbw_hz == setup.rbw_hz else f" (tones {tone_setup.rbw_hz:g})")
+                     + ("" if setup.vbw_hz >= setup.rbw_hz else f", VBW {setup.vbw_hz:g}"),  # slows the sweep
                      "Sweeps": str(tones + products), "Sweep time": f"{time_s:.3g} s"})
     return rows
