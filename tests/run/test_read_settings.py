@@ -180,3 +180,52 @@ def test_the_sample_plan_is_faster_or_more_accurate_than_the_demo_and_its_estima
         assert b.n_valid >= a.n_valid
     assert accurate.bench_time.taken_s < demo.bench_time.taken_s
     assert estimates["accuracy_plan"].total_s == pytest.approx(accurate.bench_time.taken_s, rel=0.10)
+
+
+def _one_sample_bench(folder, mixer_toi_dbm):
+    """The simulated analyzer with one noise sample behind each reading (no trace or video
+    averaging at VBW = RBW): its noise markers scatter as an exponential power, 5.6 dB each."""
+    bench = write_bench(folder, mixer_toi_dbm=mixer_toi_dbm, declared_toi_dbm=mixer_toi_dbm)
+    bench.write_text(bench.read_text().replace("level_error_db = 0.4", "level_error_db = 0.4\nnoise_averages = 1"))
+    return bench
+
+
+@pytest.mark.parametrize("scenario, start_dbm, stop_dbm, mixer_toi_dbm", [
+    ("clean", -40.0, -20.0, 30.0), ("noise-limited", -48.0, -40.0, 30.0), ("analyzer-limited", -34.0, -16.0, 0.0)])
+def test_vbw_at_the_rbw_meets_the_target_even_with_one_noise_sample_per_reading(tmp_path, scenario, start_dbm,
+                                                                                 stop_dbm, mixer_toi_dbm):
+    """No narrower VBW is chosen (read_settings docstring): the target SNR already allows a
+    one-sample noise fluctuation (analysis/flags.noise_error_db), and the six-marker noise reading's
+    scatter is absorbed by the margin and the narrowing re-read."""
+    truth = BenchTruth(Scenario(dut={"iip3_dbm": -2.0})).true_iip3_dbm(CENTER_HZ)
+    bench = _one_sample_bench(tmp_path, mixer_toi_dbm)
+    outcome, session, _ = run(tmp_path, _target_plan(tmp_path, start_dbm, stop_dbm, 60.0), bench)
+    assert outcome.status == "complete", outcome.reason
+    result = session.scalars(select(Result)).one()
+    points = session.scalars(select(Point).order_by(Point.tone_dbm)).all()
+    assert all(p.vbw_hz == p.rbw_hz for p in points)
+    fitted = [p for p, valid in zip(points, result.details_json["valid_mask"]) if valid]
+    assert len(fitted) >= 3, (scenario, result.reason)
+    for p in fitted:
+        snr_db = min(p.raw_lower_dbm - p.raw_noise_lower_dbm, p.raw_upper_dbm - p.raw_noise_upper_dbm)
+        assert snr_db >= TARGET_DB, (scenario, p.tone_dbm, snr_db, p.rbw_hz)
+    assert not any(p.extra_json.get("short_of_target") for p in points)
+    assert abs(result.iip3_dbm - truth) <= result.iip3_bound_db, (scenario, result.iip3_dbm, truth)
+
+
+def test_a_narrower_vbw_costs_bench_time_and_leaves_reads_short(tmp_path):
+    """The same noise-limited sweep with VBW a tenth of the RBW (the plan's vbw_hz): each product
+    sweep takes ten times longer (k * span / (RBW * VBW)), so the 60 s budget pays fewer narrow
+    re-reads and some points end short of the target; measured over seeds 7-10 in DEVELOPERS.md."""
+    taken_s, short = {}, {}
+    for vbw_line in ("", "vbw_hz = 100.0\n"):
+        folder = tmp_path / ("narrow" if vbw_line else "at-rbw")
+        folder.mkdir()
+        plan = _target_plan(folder, -48.0, -40.0, 60.0)
+        plan.write_text(plan.read_text().replace("rbw_hz = 1000.0\n", f"rbw_hz = 1000.0\n{vbw_line}"))
+        outcome, session, _ = run(folder, plan, _one_sample_bench(folder, 30.0))
+        assert outcome.status == "complete", outcome.reason
+        taken_s[vbw_line], short[vbw_line] = outcome.bench_time.taken_s, sum(
+            bool(p.extra_json.get("short_of_target")) for p in session.scalars(select(Point)))
+    assert short[""] == 0 < short["vbw_hz = 100.0\n"]
+    assert taken_s["vbw_hz = 100.0\n"] > 1.5 * taken_s[""]

@@ -15,7 +15,11 @@ it the target over its noise, predicted before the read:
 A read that still falls short of the target is read again narrower within the budget
 (run/narrowing.py), so a wrong prediction costs one cheap wide sweep. The tones are read at the
 widest step inside the spacing (a tone sits 60 dB or more over the noise), unless tone_rbw_hz says.
-VBW and span keep their ratio to the RBW, as the plan gives them.
+VBW and span keep their ratio to the RBW, as the plan gives them (VBW = RBW when left out). No
+narrower VBW or trace averaging is chosen per read: the target SNR already allows the noise a
+one-sample fluctuation (analysis/flags.noise_error_db), the six-marker noise reading's scatter
+is absorbed by the margin and the narrowing re-read, and a VBW under the RBW costs RBW/VBW in
+sweep time for a scatter that falls only as sqrt(VBW/RBW) (measured in DEVELOPERS.md).
 """
 
 from __future__ import annotations
