@@ -102,6 +102,15 @@ def test_a_dbc_limit_at_the_stated_level_gives_a_verdict(measured):
     assert find_json(measured)[1]["verdict"] == "pass"
 
 
+def test_the_run_report_shows_the_levels_and_the_convention(measured):
+    [report] = measured.parent.glob("report-*.html")
+    page = report.read_text()
+    assert "IMD at each drive level" in page and "IM3 lower re PEP (dBc)" in page
+    assert "the worse (lower IIP3) of lower and upper" in page
+    level = find_json(measured)[0]["levels"][1]
+    assert f"<td>{level['im3_lower_dbc']:+.2f}</td><td>{level['im3_upper_dbc']:+.2f}</td>" in page
+
+
 def test_an_imd_limit_without_its_tone_level_is_one_line(measured):
     result = invoke("limit", "add", "QLN-0731B", "im3_dbc", "--max", "-40", "--freq-min-hz", "2.3e9",
                     "--freq-max-hz", "2.5e9", "--db", measured)
