@@ -11,6 +11,8 @@ and each tone a1 A (1 - 3 r) (its (9/4) a3 A^3 term), so IM3 re one tone is
 
 from __future__ import annotations
 
+import gzip
+import hashlib
 import json
 import math
 
@@ -19,6 +21,7 @@ import sqlalchemy as sa
 from cli_invoke import invoke
 from conftest import SAMPLE_RUNS
 
+from tonebench.catalog.transfer_format import canonical
 from tonebench.results.stored_results import analyze_run
 from tonebench.store.database import open_database, session_factory
 from tonebench.store.models import LevelResult, Point, Run
@@ -140,3 +143,23 @@ def test_worse_convention_reports_the_lower_intercept_of_asymmetric_stored_produ
     with sessions() as session:  # a ramp stores per-level rows only when its plan asks
         assert session.scalar(sa.select(sa.func.count(LevelResult.id))) == 0
     engine.dispose()
+
+
+def test_level_rows_travel_in_transfer_files(measured, tmp_path):
+    first, second, other = tmp_path / "a.jsonl.gz", tmp_path / "b.jsonl.gz", tmp_path / "other.db"
+    assert invoke("export", first, "--db", measured).exit_code == 0
+    assert invoke("import", first, "--db", other).exit_code == 0
+    assert invoke("export", second, "--db", other).exit_code == 0
+    assert first.read_bytes() == second.read_bytes()
+    assert [r["levels"] for r in find_json(other)] == [r["levels"] for r in find_json(measured)]
+    # A row naming no point of its run is refused in one line, nothing imported.
+    text = gzip.decompress(first.read_bytes()).decode().replace('"point_key":"c2400000000/d1000000/p-25.00","tone_dbm"',
+                                                                 '"point_key":"c1/p-99.00","tone_dbm"', 1)
+    lines = text.splitlines()
+    body = "".join(line + "\n" for line in lines[:-1])
+    trailer = json.loads(lines[-1])  # re-sealed, so only the key is wrong
+    trailer["sha256"] = hashlib.sha256(body.encode()).hexdigest()
+    damaged = tmp_path / "damaged.jsonl.gz"
+    damaged.write_bytes(gzip.compress((body + canonical(trailer) + "\n").encode(), mtime=0))
+    result = invoke("import", damaged, "--db", tmp_path / "none.db")
+    assert result.exit_code == 2 and "names no point of this run" in result.output

@@ -5,7 +5,7 @@ of a result whose plan asks for per-level results (a plan with fixed tone levels
 from __future__ import annotations
 
 import sqlalchemy as sa
-from sqlalchemy.orm import Mapped, mapped_column
+from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from tonebench.store.models.base import Base
 
@@ -34,3 +34,5 @@ class LevelResult(Base):
     oip3_dbm: Mapped[float | None]
     iip3_bound_db: Mapped[float | None]
     im3_bound_db: Mapped[float | None]
+
+    point: Mapped["Point"] = relationship()  # noqa: F821  (its key names it in transfer files)

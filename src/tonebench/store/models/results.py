@@ -88,6 +88,10 @@ class Result(Base):
     flags: Mapped[list[ResultFlag]] = relationship(
         back_populates="result", cascade="all, delete-orphan", passive_deletes=True
     )
+    # Results per drive level (store/models/levels.py), when the run's plan asks for them.
+    levels: Mapped[list["LevelResult"]] = relationship(  # noqa: F821
+        cascade="all, delete-orphan", passive_deletes=True, order_by="LevelResult.tone_dbm"
+    )
 
 
 class ResultFlag(Base):
