@@ -25,7 +25,7 @@ PRE_LAYOUT = Path(__file__).resolve().parents[1] / "data" / "pre_layout"
 def _sweep(**fields):
     """A [sweep] stand-in: lists per axis and the tone ramp, as SweepSettings gives them."""
     levels = fields.pop("levels")
-    return SimpleNamespace(tone_levels_dbm=lambda: list(levels), **fields)
+    return SimpleNamespace(tone_levels=lambda: list(levels), **fields)
 
 
 def test_the_key_is_one_part_per_axis_in_declared_order():

@@ -53,10 +53,12 @@ def without_result_times(text: str) -> str:
 
 def at_schema_now(text: str) -> str:
     """The export as the upgraded database writes it: its header names today's schema revision,
-    its points carry the columns added since (empty for these points: written as null), and the
-    trailer's digest (of everything above it) changes with them."""
+    its points carry the columns added since (empty for these points: written as null), its results
+    the intercept convention (null as stored before it, "mean" once analyzed again: what they were),
+    and the trailer's digest (of everything above it) changes with them."""
     text = text.replace('"schema":"0002"', f'"schema":"{SCHEMA_NOW}"', 1)
     text = re.sub(r'"(gate_read_v|gate_current_a|drain_read_v|drain_current_a|temperature_c|chamber_read_c)":null,', "", text)
+    text = re.sub(r'"intercept_convention":(null|"mean"),', "", text)
     return re.sub(r'"sha256":"[0-9a-f]{64}"}\n$', '"sha256":"-"}\n', text)
 
 

@@ -11,6 +11,7 @@ import plotly.graph_objects as go
 
 from tonebench.api.frames import results_frame
 from tonebench.api.run_view import RunView
+from tonebench.catalog.levels import result_extras
 from tonebench.catalog.limits import LimitRule, list_limits
 from tonebench.catalog.query import ResultFilter, find_results, latest_per_device
 from tonebench.config.database_location import choose_database
@@ -89,14 +90,20 @@ class Database:
     def find(self, part=None, lot=None, wafer=None, serial=None, tag=None, freq_hz=None, spacing_hz=None,
              bias_v=None, since=None, until=None, flag=None, flagged=None, verdict=None,
              rows: int | None = None) -> pd.DataFrame:
-        """The rows `tonebench find` gives (its CSV columns). Each of part, lot, wafer, serial, tag,
-        flag and verdict takes one value or a list; freq_hz, spacing_hz and bias_v take a (low,
-        high) pair, either end None for open; since/until are datetimes (UTC)."""
+        """The rows `tonebench find --json` gives: its CSV columns, the intercept convention and
+        the results per drive level (a list of dicts, empty for a ramp). Each of part, lot, wafer,
+        serial, tag, flag and verdict takes one value or a list; freq_hz, spacing_hz and bias_v
+        take a (low, high) pair, either end None for open; since/until are datetimes (UTC)."""
         with self.session() as session:
             flt = self._filter(part=part, lot=lot, wafer=wafer, serial=serial, tag=tag, freq_hz=freq_hz,
                                spacing_hz=spacing_hz, bias_v=bias_v, since=since, until=until, flag=flag,
                                flagged=flagged, verdict=verdict)
-            return results_frame(find_results(session, flt, rows))
+            found = find_results(session, flt, rows)
+            extras = result_extras(session, [r.result_id for r in found])
+        frame = results_frame(found)
+        frame["intercept_convention"] = [extras[r.result_id]["intercept_convention"] for r in found]
+        frame["levels"] = [extras[r.result_id]["levels"] for r in found]
+        return frame
 
     def compare(self, all_runs: bool = False, **query) -> dict[str, go.Figure]:
         """The comparison report's figures for the results find(**query) gives, by name:

@@ -7,6 +7,11 @@ and chamber temperature lie in the limit's ranges; all ranges inclusive. A resul
 applicable limit is broken or its parameter was not measured (a refused fit cannot show the part
 meets its limit), passes when all hold, and gets 'no-limit' when none applies.
 
+Limits on IMD (LEVEL_PARAMETERS: IM3 in dBc, re one tone or re the PEP) are stated at a tone
+level (tone_dbm, per tone at the DUT input) and judge a result's per-level rows
+(store/models/levels.py): the limit applies when the result has a row within
+TONE_MATCH_DB of that level (and its other ranges hold), and judges the worse of the two products.
+
 Limits on the sweet spot, its window's width and the IIP3 there judge the two-tone finding of a
 `bias search` study (at the study's centre frequency and chamber set point). The DC prediction
 is not judged: it is a gate-plane estimate, not the part measured at its input.
@@ -25,11 +30,13 @@ from sqlalchemy.orm.attributes import set_committed_value
 from tonebench.errors import InputError
 from tonebench.store.models import (
     FINDING_PARAMETERS,
+    LEVEL_PARAMETERS,
     RESULT_PARAMETERS,
     SPEC_PARAMETERS,
     BiasFinding,
     BiasStudy,
     Device,
+    LevelResult,
     Result,
     Run,
     SpecLimit,
@@ -37,9 +44,12 @@ from tonebench.store.models import (
 )
 
 _BATCH = 2000  # results judged and updated per round trip
+TONE_MATCH_DB = 0.005  # a per-level row is at a limit's tone level when this close (levels are rounded to 1e-6)
 
 
 def parameter_unit(parameter: str) -> str:
+    if parameter in LEVEL_PARAMETERS:
+        return "dBc"
     if parameter.endswith("_v"):
         return "V"
     return "dBm" if parameter.endswith("_dbm") else "dB"
@@ -64,6 +74,7 @@ def add_limit(
     bias_max_v: float | None = None,
     temp_min_c: float | None = None,
     temp_max_c: float | None = None,
+    tone_dbm: float | None = None,
     notes: str | None = None,
 ) -> SpecLimit:
     """Store a limit after checking it; values in the parameter's unit (dBm, dB or V)."""
@@ -80,7 +91,8 @@ def add_limit(
         if given:
             raise InputError(f"limit {parameter}: a sweet-spot finding has no single {given[0]}; "
                              "give its frequency and temperature ranges only")
-    values = dict(min_value=min_value, max_value=max_value, freq_min_hz=freq_min_hz,
+    _check_tone_level(parameter, tone_dbm)
+    values = dict(tone_dbm=tone_dbm, min_value=min_value, max_value=max_value, freq_min_hz=freq_min_hz,
                   freq_max_hz=freq_max_hz, spacing_min_hz=spacing_min_hz,
                   spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v,
                   temp_min_c=temp_min_c, temp_max_c=temp_max_c)
@@ -98,6 +110,14 @@ def add_limit(
     session.add(limit)
     session.flush()
     return limit
+
+
+def _check_tone_level(parameter: str, tone_dbm: float | None) -> None:
+    if parameter in LEVEL_PARAMETERS and tone_dbm is None:
+        raise InputError(f"limit {parameter}: IMD is judged at a stated tone level; give its tone_dbm "
+                         "(per tone at the DUT input)")
+    if parameter not in LEVEL_PARAMETERS and tone_dbm is not None:
+        raise InputError(f"limit {parameter}: only the IMD parameters ({', '.join(LEVEL_PARAMETERS)}) take a tone_dbm")
 
 
 def list_limits(session: Session, part_number: str | None = None) -> list[SpecLimit]:
@@ -132,12 +152,13 @@ class LimitRule:
     bias_max_v: float | None = None
     temp_min_c: float | None = None
     temp_max_c: float | None = None
+    tone_dbm: float | None = None  # IMD limits only: the stated tone level
 
     @classmethod
     def of(cls, limit: SpecLimit) -> "LimitRule":
         return cls(limit.id, limit.parameter, limit.min_value, limit.max_value, limit.freq_min_hz,
                    limit.freq_max_hz, limit.spacing_min_hz, limit.spacing_max_hz, limit.bias_min_v,
-                   limit.bias_max_v, limit.temp_min_c, limit.temp_max_c)
+                   limit.bias_max_v, limit.temp_min_c, limit.temp_max_c, limit.tone_dbm)
 
     def applies(self, center_hz: float | None, spacing_hz: float | None, bias_v: float | None,
                 temperature_c: float | None = None) -> bool:
@@ -154,10 +175,18 @@ class LimitRule:
                 return False
         return True
 
+    def level_value(self, levels: dict[float, dict[str, float | None]]) -> tuple[bool, float | None]:
+        """(whether the result has a row at this limit's tone level, the parameter's value there)."""
+        for tone_dbm, values in levels.items():
+            if abs(tone_dbm - self.tone_dbm) <= TONE_MATCH_DB:
+                return True, values.get(self.parameter)
+        return False, None
+
     def check(self, value: float | None) -> tuple[bool, str]:
         """(holds, one phrase saying why) for the parameter's value."""
         unit = parameter_unit(self.parameter)
-        name = f"{self.parameter} (limit {self.id})"
+        at = "" if self.tone_dbm is None else f" at {self.tone_dbm:+.2f} dBm per tone"
+        name = f"{self.parameter}{at} (limit {self.id})"
         if value is None:
             return False, f"{name}: not measured"
         if self.min_value is not None and value < self.min_value:
@@ -168,11 +197,18 @@ class LimitRule:
 
 
 def judge(values: dict[str, float | None], center_hz: float | None, spacing_hz: float | None,
-          bias_v: float | None, rules: list[LimitRule], temperature_c: float | None = None) -> tuple[str, str]:
+          bias_v: float | None, rules: list[LimitRule], temperature_c: float | None = None,
+          levels: dict[float, dict[str, float | None]] | None = None) -> tuple[str, str]:
     """(verdict, detail) of one result or finding; values maps parameter names to its values.
-    Only the rules on the parameters in `values` are considered."""
+    Only the rules on the parameters in `values` are considered, and the IMD rules when `levels`
+    (tone level -> LEVEL_PARAMETERS values of the result's per-level rows) is given."""
     checks = [rule.check(values[rule.parameter]) for rule in rules
               if rule.parameter in values and rule.applies(center_hz, spacing_hz, bias_v, temperature_c)]
+    for rule in rules:
+        if levels and rule.parameter in LEVEL_PARAMETERS and rule.applies(center_hz, spacing_hz, bias_v, temperature_c):
+            found, value = rule.level_value(levels)
+            if found:
+                checks.append(rule.check(value))
     if not checks:
         return "no-limit", "no spec limit covers this part at this frequency, spacing, bias and temperature"
     verdict = "pass" if all(ok for ok, _ in checks) else "fail"
@@ -212,19 +248,39 @@ def apply_verdicts(session: Session, run_id: int | None = None, *, part_number: 
               .values(verdict=sa.bindparam("new_verdict"), verdict_detail=sa.bindparam("new_detail")))
     counts: Counter = Counter()
     last_id = None
+    imd_limits = any(rule.parameter in LEVEL_PARAMETERS for part in rules.values() for rule in part)
     while True:
         # Pages by id, each read in full before its update, so no read spans a write.
         page = session.execute(query if last_id is None else query.where(Result.id > last_id)).all()
         if not page:
             return counts
+        # Per-level rows only where an IMD limit exists (most databases have none).
+        levels = _page_levels(session, [row[0] for row in page]) if imd_limits else {}
         batch = []
         for result_id, part_number, center_hz, spacing_hz, bias_v, temperature_c, *values in page:
             verdict, detail = judge(dict(zip(RESULT_PARAMETERS, values)), center_hz, spacing_hz, bias_v,
-                                    rules.get(part_number, []), temperature_c)
+                                    rules.get(part_number, []), temperature_c, levels.get(result_id))
             counts[verdict] += 1
             batch.append({"result_id": result_id, "new_verdict": verdict, "new_detail": detail})
         _write(session, update, batch)
         last_id = page[-1][0]
+
+
+def _page_levels(session: Session, result_ids: list[int]) -> dict[int, dict[float, dict[str, float | None]]]:
+    """Per result id, tone level -> the IMD values (LEVEL_PARAMETERS) of its per-level rows: the
+    worse (higher) of the two products, re its tone and re the PEP."""
+    columns = (LevelResult.result_id, LevelResult.tone_dbm, LevelResult.im3_lower_dbc, LevelResult.im3_upper_dbc,
+               LevelResult.im3_lower_dbc_pep, LevelResult.im3_upper_dbc_pep)
+    out: dict[int, dict[float, dict[str, float | None]]] = {}
+    for result_id, tone_dbm, lower, upper, lower_pep, upper_pep in session.execute(
+            sa.select(*columns).where(LevelResult.result_id.in_(result_ids))):
+        out.setdefault(result_id, {})[tone_dbm] = {"im3_dbc": _worse(lower, upper), "im3_dbc_pep": _worse(lower_pep, upper_pep)}
+    return out
+
+
+def _worse(lower: float | None, upper: float | None) -> float | None:
+    """The higher dBc of the two products; None when either is missing (not shown to hold)."""
+    return None if lower is None or upper is None else max(lower, upper)
 
 
 def finding_values(finding: BiasFinding) -> dict[str, float | None]:

@@ -31,6 +31,7 @@ from tonebench.store.models import (
     Device,
     Event,
     Instrument,
+    LevelResult,
     Offset,
     Plan,
     Point,
@@ -93,6 +94,7 @@ def _run_record(session: Session, run_id: int) -> dict:
     run = session.scalars(sa.select(Run).where(Run.id == run_id).options(
         selectinload(Run.instruments), selectinload(Run.offsets), selectinload(Run.events),
         selectinload(Run.points).selectinload(Point.flags), selectinload(Run.results).selectinload(Result.flags),
+        selectinload(Run.results).selectinload(Result.levels).selectinload(LevelResult.point),
         selectinload(Run.bench), selectinload(Run.plan), selectinload(Run.device),
         selectinload(Run.calibration_set))).one()
     set_names = {}
@@ -111,9 +113,18 @@ def _run_record(session: Session, run_id: int) -> dict:
         "points": sorted_records(({**dump_record(p, Point), "flags": sorted_records(dump_record(f, PointFlag) for f in p.flags)}
                            for p in run.points), "seq", "point_key"),
         "results": sorted_records(({**dump_record(r, Result), "calibration_set": set_names.get(r.calibration_set_id),
-                             "flags": sorted_records(dump_record(f, ResultFlag) for f in r.flags)} for r in run.results),
-                           "group_key"),
+                             "flags": sorted_records(dump_record(f, ResultFlag) for f in r.flags), **_levels(r)}
+                            for r in run.results), "group_key"),
     }
+
+
+def _levels(result: Result) -> dict:
+    """A result's per-level rows, each naming its point by key; no field at all without rows, so
+    files of runs without them read as before."""
+    if not result.levels:
+        return {}
+    return {"levels": sorted_records(({**dump_record(level, LevelResult), "point_key": level.point.point_key}
+                                      for level in result.levels), "tone_dbm", "point_key")}
 
 
 def export_runs(session: Session, path: Path, run_idents: list[str] | None = None,

@@ -29,6 +29,7 @@ from tonebench.store.models import (
     Device,
     Event,
     Instrument,
+    LevelResult,
     Offset,
     Plan,
     Point,
@@ -307,16 +308,20 @@ class _Importer:
             "calibration_set_id": self._need(self.sets, _key_field(record, "calibration_set", path, what),
                                              "calibration set", what),
         }
+        points = [Point(**v, flags=[PointFlag(**fv) for _, fv, _ in self._rows(PointFlag, p, "flags", where)])
+                  for p, v, where in self._rows(Point, record, "points", what, ("flags",))]
+        points_by_key = {point.point_key: point for point in points}
         children = {
             "instruments": [Instrument(**v) for _, v, _ in self._rows(Instrument, record, "instruments", what)],
             "offsets": [Offset(**v) for _, v, _ in self._rows(Offset, record, "offsets", what)],
             "events": [Event(**v) for _, v, _ in self._rows(Event, record, "events", what)],
-            "points": [Point(**v, flags=[PointFlag(**fv) for _, fv, _ in self._rows(PointFlag, p, "flags", where)])
-                       for p, v, where in self._rows(Point, record, "points", what, ("flags",))],
+            "points": points,
             "results": [Result(**v, calibration_set_id=self._need(
                                    self.sets, _key_field(r, "calibration_set", path, where), "calibration set", where),
-                               flags=[ResultFlag(**fv) for _, fv, _ in self._rows(ResultFlag, r, "flags", where)])
-                        for r, v, where in self._rows(Result, record, "results", what, ("flags", "calibration_set"))],
+                               flags=[ResultFlag(**fv) for _, fv, _ in self._rows(ResultFlag, r, "flags", where)],
+                               levels=self._levels(r, points_by_key, where))
+                        for r, v, where in self._rows(Result, record, "results", what,
+                                                      ("flags", "calibration_set", "levels"))],
         }
         # Checked in full before this: a run already present is skipped, a damaged one refused.
         if self.session.scalar(sa.select(Run.id).where(Run.guid == values["guid"])) is not None:
@@ -330,6 +335,21 @@ class _Importer:
         self.summary.runs_added += 1
         self.summary.points_added += len(run.points)
         self.session.expunge_all()  # one run in memory at a time
+
+
+    def _levels(self, result: dict, points_by_key: dict, what: str) -> list[LevelResult]:
+        """A result's per-level rows (a field only results with rows have), each on the run's
+        point of its point_key."""
+        if "levels" not in result:
+            return []
+        levels = []
+        for item, values, where in self._rows(LevelResult, result, "levels", what, ("point_key",)):
+            point = points_by_key.get(item.get("point_key"))
+            if point is None:
+                raise InputError(f"import file {self.path}: {where}: point_key {item.get('point_key')!r:.60} names "
+                                 "no point of this run; nothing was imported")
+            levels.append(LevelResult(**values, point=point))
+        return levels
 
 
 def _same_set(existing: CalibrationSet, values: dict, offsets: list[dict]) -> bool:

@@ -88,13 +88,19 @@ def _export_value(value):
     return value
 
 
-def _print_rows(rows, as_csv: bool, as_json: bool, out_path: Path | None) -> None:
+def _print_rows(rows, as_csv: bool, as_json: bool, out_path: Path | None, extras: dict | None = None) -> None:
     from tonebench.catalog.query import EXPORT_FIELDS
 
     if not (as_csv or as_json):
         _print_table(rows)
         return
-    _write_export([{name: getattr(r, name) for name in EXPORT_FIELDS} for r in rows], EXPORT_FIELDS, as_json, out_path)
+    records = [{name: getattr(r, name) for name in EXPORT_FIELDS} for r in rows]
+    fields = EXPORT_FIELDS
+    if extras is not None:
+        records = [{**record, **extras.get(r.result_id, {"intercept_convention": None, "levels": []})}
+                   for record, r in zip(records, rows)]
+        fields = (*EXPORT_FIELDS, "intercept_convention", "levels")
+    _write_export(records, fields, as_json, out_path)
 
 
 def _write_export(records: list[dict], fields: tuple[str, ...], as_json: bool, out_path: Path | None) -> None:
@@ -239,7 +245,7 @@ def device_show(
 @limit_app.command("add")
 def limit_add(
     part: Annotated[str, typer.Argument(help="Part number the limit is for.")],
-    parameter: Annotated[str, typer.Argument(help="iip3_dbm, oip3_dbm, gain_db, p1db_in_dbm, iip2_dbm (results) or sweet_spot_v, window_width_v, sweet_spot_iip3_dbm (measured sweet spots).")],
+    parameter: Annotated[str, typer.Argument(help="iip3_dbm, oip3_dbm, gain_db, p1db_in_dbm, iip2_dbm (results), im3_dbc, im3_dbc_pep (IMD at --tone-dbm, dBc) or sweet_spot_v, window_width_v, sweet_spot_iip3_dbm (measured sweet spots).")],
     freq_min_hz: Annotated[float, typer.Option("--freq-min-hz", help="Lowest center frequency it covers (Hz).")],
     freq_max_hz: Annotated[float, typer.Option("--freq-max-hz", help="Highest center frequency it covers (Hz).")],
     min_value: Annotated[float | None, typer.Option("--min", help="Lowest allowed value (dBm, dB or V).")] = None,
@@ -250,6 +256,7 @@ def limit_add(
     bias_max_v: Annotated[float | None, typer.Option("--bias-max-v", help="Only up to this bias (V).")] = None,
     temp_min_c: Annotated[float | None, typer.Option("--temp-min-c", help="Only from this chamber set point (degC).")] = None,
     temp_max_c: Annotated[float | None, typer.Option("--temp-max-c", help="Only up to this chamber set point (degC).")] = None,
+    tone_dbm: Annotated[float | None, typer.Option("--tone-dbm", help="IMD limits (im3_dbc, im3_dbc_pep): the stated tone level, dBm per tone at the DUT input.")] = None,
     notes: Annotated[str | None, typer.Option(help="Where the limit comes from.")] = None,
     db: DbOption = None,
 ) -> None:
@@ -260,7 +267,7 @@ def limit_add(
         limit = add_limit(session, part, parameter, freq_min_hz=freq_min_hz, freq_max_hz=freq_max_hz,
                           min_value=min_value, max_value=max_value, spacing_min_hz=spacing_min_hz,
                           spacing_max_hz=spacing_max_hz, bias_min_v=bias_min_v, bias_max_v=bias_max_v,
-                          temp_min_c=temp_min_c, temp_max_c=temp_max_c, notes=notes)
+                          temp_min_c=temp_min_c, temp_max_c=temp_max_c, tone_dbm=tone_dbm, notes=notes)
         out.print(f"limit {limit.id} added; verdicts of {limit.part_number} now: {_judge_part(session, limit.part_number)}",
                   highlight=False)
 
@@ -295,7 +302,8 @@ def limit_list(
         rows = [{"Id": str(l.id), "Part": l.part_number, "Parameter": l.parameter, "Min": _limit_value(l.min_value, l.parameter),
                  "Max": _limit_value(l.max_value, l.parameter), "GHz": span(l.freq_min_hz, l.freq_max_hz, 1e9),
                  "Spacing MHz": span(l.spacing_min_hz, l.spacing_max_hz, 1e6), "Bias V": span(l.bias_min_v, l.bias_max_v),
-                 "degC": span(l.temp_min_c, l.temp_max_c), "Notes": l.notes or ""}
+                 "degC": span(l.temp_min_c, l.temp_max_c), "Tone dBm": _f(l.tone_dbm),
+                 "Notes": l.notes or ""}
                 for l in list_limits(session, part)]
         if not any(row["Notes"] for row in rows):
             rows = [{c: v for c, v in row.items() if c != "Notes"} for row in rows]
@@ -309,7 +317,7 @@ def _limit_value(value: float | None, parameter: str) -> str:
 
 
 _LIMIT_PRIORITIES = {"Id": 9, "Part": 9, "Parameter": 9, "Min": 9, "Max": 9, "GHz": 8, "Spacing MHz": 5, "Bias V": 5,
-                     "degC": 6, "Notes": 3}
+                     "degC": 6, "Tone dBm": 6, "Notes": 3}
 
 
 @limit_app.command("remove")
@@ -359,6 +367,12 @@ def find(
             raise InputError("find: --temp-min-c and --temp-max-c go with --sweet-spots")
         with _session(db) as session:
             rows = find_results(session, flt, limit)
+            if as_json:  # the intercept convention and the results per drive level (catalog/levels.py)
+                from tonebench.catalog.levels import result_extras
+
+                extras = result_extras(session, [r.result_id for r in rows])
+                _print_rows(rows, as_csv, as_json, out_path, extras)
+                return
         _print_rows(rows, as_csv, as_json, out_path)
 
 

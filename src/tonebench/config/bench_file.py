@@ -10,6 +10,7 @@ from typing import Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
+from tonebench.config.results_choice import ResultsSettings
 from tonebench.errors import InputError
 from tonebench.config.instrument_keys import ANALYZER_PERFORMANCE_KEYS
 from tonebench.config.resource_names import check_resource_name
@@ -195,6 +196,7 @@ class BenchFile(StrictModel):
     unattended: UnattendedSettings = UnattendedSettings()
     bias: BiasLimits | None = None
     chamber: ChamberLimits | None = None
+    results: ResultsSettings | None = None  # the bench's reporting choice; a plan's [results] wins
     simulation: dict[str, Any] | None = None
 
     @field_validator("instruments")

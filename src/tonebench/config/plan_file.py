@@ -14,6 +14,7 @@ from pathlib import Path
 from pydantic import BaseModel, Field, field_validator, model_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
+from tonebench.config.results_choice import ResultsSettings
 from tonebench.errors import InputError
 
 # Tone power at the DUT input plane that any plan may ask for; the bench file narrows it further.
@@ -23,6 +24,7 @@ TONE_MAX_DBM = 30.0
 # anything is expanded: a 10^8-point plan took gigabytes of memory with no message. 100 000
 # points take about 17 MB expanded (measured) and, at a second a point on hardware, more than a day.
 MAX_PLAN_POINTS = 100_000
+MAX_FIXED_LEVELS = 50  # tone_levels_dbm: "a short list"; a longer one is a ramp
 
 
 class PlanInfo(StrictModel):
@@ -74,9 +76,12 @@ class DeviceInfo(StrictModel):
 class SweepSettings(StrictModel):
     center_freqs_hz: list[float] = Field(min_length=1)
     spacings_hz: list[float] = Field(min_length=1)
-    tone_start_dbm: float = Field(ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
-    tone_stop_dbm: float = Field(ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
-    tone_step_dbm: float = Field(gt=0.0, le=20.0)
+    # Tone powers per tone at the DUT input: a ramp (start, stop, step) or fixed levels
+    # (tone_levels_dbm: one drive level or a short list, for IMD at stated levels).
+    tone_start_dbm: float | None = Field(default=None, ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
+    tone_stop_dbm: float | None = Field(default=None, ge=TONE_MIN_DBM, le=TONE_MAX_DBM)
+    tone_step_dbm: float | None = Field(default=None, gt=0.0, le=20.0)
+    tone_levels_dbm: list[float] | None = Field(default=None, min_length=1, max_length=MAX_FIXED_LEVELS)
     # Also read the second-order products f2-f1 and f1+f2 (IIP2), where the analyzer's range
     # and the output-path calibration reach them.
     second_order: bool = False
@@ -85,8 +90,7 @@ class SweepSettings(StrictModel):
 
     @model_validator(mode="after")
     def _check(self) -> "SweepSettings":
-        if self.tone_stop_dbm < self.tone_start_dbm:
-            raise ValueError("tone_stop_dbm must not be below tone_start_dbm")
+        self._check_tone_form()
         if self.temperatures_c is not None:
             if any(not -100.0 <= t <= 250.0 for t in self.temperatures_c):
                 raise ValueError("temperatures_c values must lie within -100..250 degC")
@@ -103,8 +107,32 @@ class SweepSettings(StrictModel):
                     )
         return self
 
+    def _check_tone_form(self) -> None:
+        ramp = [name for name in ("tone_start_dbm", "tone_stop_dbm", "tone_step_dbm") if getattr(self, name) is not None]
+        forms = "give tone_start_dbm, tone_stop_dbm and tone_step_dbm (a ramp) or tone_levels_dbm = [dBm, ...] (fixed levels)"
+        if self.tone_levels_dbm is not None:
+            if ramp:
+                raise ValueError(f"tone_levels_dbm is given with {', '.join(ramp)}; {forms}, not both")
+            for level in self.tone_levels_dbm:
+                if not TONE_MIN_DBM <= level <= TONE_MAX_DBM:
+                    raise ValueError(f"tone_levels_dbm value {level:g} dBm outside {TONE_MIN_DBM:g}..{TONE_MAX_DBM:g} dBm")
+            if len({round(level, 6) for level in self.tone_levels_dbm}) != len(self.tone_levels_dbm):
+                raise ValueError("tone_levels_dbm repeats a level")
+            return
+        if len(ramp) != 3:
+            raise ValueError(f"[sweep] has {', '.join(ramp) or 'no tone powers'}; {forms}")
+        if self.tone_stop_dbm < self.tone_start_dbm:
+            raise ValueError("tone_stop_dbm must not be below tone_start_dbm")
+
+    @property
+    def tone_levels_dbm_given(self) -> bool:
+        """Whether the plan states fixed tone levels (then per-level results are stored by default)."""
+        return self.tone_levels_dbm is not None
+
     def tone_level_count(self) -> int:
-        """How many levels tone_levels_dbm() gives, computed without building them."""
+        """How many levels tone_levels() gives, computed without building them."""
+        if self.tone_levels_dbm is not None:
+            return len(self.tone_levels_dbm)
         count = int(round((self.tone_stop_dbm - self.tone_start_dbm) / self.tone_step_dbm)) + 1
         # Rounding may take the last level past the stop by under half a step: it is left out.
         if round(self.tone_start_dbm + (count - 1) * self.tone_step_dbm, 6) > self.tone_stop_dbm + 1e-9:
@@ -115,7 +143,10 @@ class SweepSettings(StrictModel):
         temperatures = len(self.temperatures_c) if self.temperatures_c else 1
         return temperatures * len(self.center_freqs_hz) * len(self.spacings_hz) * self.tone_level_count()
 
-    def tone_levels_dbm(self) -> list[float]:
+    def tone_levels(self) -> list[float]:
+        """Every tone level, rising (the tone axis is iterated rising)."""
+        if self.tone_levels_dbm is not None:
+            return sorted(round(level, 6) for level in self.tone_levels_dbm)
         return [round(self.tone_start_dbm + i * self.tone_step_dbm, 6) for i in range(self.tone_level_count())]
 
 
@@ -295,6 +326,7 @@ class PlanFile(StrictModel):
     sweep: SweepSettings
     analyzer: AnalyzerSettings = AnalyzerSettings()
     bias: BiasSettings | None = None
+    results: ResultsSettings | None = None
 
     @model_validator(mode="after")
     def _check_span(self) -> "PlanFile":

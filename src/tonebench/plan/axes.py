@@ -62,7 +62,7 @@ def _plan_field(table: str, name: str) -> Callable[[object], Sequence[float] | N
 
 
 def _tone_levels(plan) -> Sequence[float]:
-    return plan.sweep.tone_levels_dbm()
+    return plan.sweep.tone_levels()
 
 
 def _gate_voltages(plan) -> Sequence[float] | None:

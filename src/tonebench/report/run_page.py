@@ -8,6 +8,7 @@ from sqlalchemy.orm import sessionmaker
 
 from tonebench.analysis.sweep_fit import exclusion_reasons
 from tonebench.calibration.sets import load_set_by_id
+from tonebench.report.level_table import convention_text, level_section
 from tonebench.report.run_archive import archive_html
 from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
 from tonebench.report.run_report import result_row as report_result_row
@@ -70,10 +71,11 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             {"label": "Bench", "value": run.bench.name + (" (simulated)" if run.simulated else "")},
             {"label": "Started (UTC)", "value": run.started_at.strftime("%Y-%m-%d %H:%M:%S")},
             {"label": "Status", "value": run.status + (f": {run.end_reason}" if run.end_reason else "")},
+            {"label": "IIP3 and OIP3 reported", "value": convention_text(list(run.results))},
         ]
         if run.calibration_set is not None:
             summary.append({"label": "Calibration", "value": f"{run.calibration_set.name} ({run.calibration_set.method})"})
         if referred_to is not None:
             summary.append({"label": "Re-referred to", "value": f"{referred_to.name} ({referred_to.method})"})
         return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows, summaries,
-                            archive_html(run, bounds))
+                            level_section(session, run) + archive_html(run, bounds))

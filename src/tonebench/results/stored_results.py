@@ -12,12 +12,15 @@ from sqlalchemy.orm import Session, selectinload, sessionmaker
 from tonebench.analysis.assess import (
     SweepAssessment,
 )
+from tonebench.analysis.conventions import reported_intercepts
 from tonebench.catalog.limits import apply_verdicts
 from tonebench.errors import InputError
+from tonebench.results.levels import level_accuracy_db, level_reason, level_rows, run_choice
 from tonebench.results.sweeps import analysis_points, assessed_sweeps, referral_tables
 from tonebench.store.lookups import find_run
 from tonebench.store.models import (
     Device,
+    LevelResult,
     Point,
     PointFlag,
     Result,
@@ -105,24 +108,30 @@ def analyze_runs(sessions: sessionmaker, run_guids: list[str], cal_name: str | N
             run_ids = [run.id for run in runs]
             points = analysis_points(session, run_ids)
             _forget_analysis(session, run_ids)
-            results, point_flags, result_flags = [], [], []
+            results, point_flags, result_flags, levels = [], [], [], []
             for done, run in enumerate(runs, start=first + 1):
                 set_id, tables = referral_tables(session, run, cal_name, points[run.id])
-                for group, stored_rows, _arrays, a in assessed_sweeps(session, run, set_id, tables, points[run.id]):
+                convention, per_level = run_choice(run)
+                for group, stored_rows, arrays, a in assessed_sweeps(session, run, set_id, tables, points[run.id]):
                     for row, flags in zip(stored_rows, a.point_flags):
                         point_flags += (_flag_values(f, point_id=row.id) for f in flags)
-                    results.append(_result_values(run.id, group, a, set_id))
+                    results.append(_result_values(run.id, group, a, set_id, convention))
                     result_flags.append([_flag_values(f) for f in a.result_flags])
+                    # IMD per drive level, when the run's plan asks (results/levels.py).
+                    levels.append(level_rows(stored_rows, arrays, a, level_accuracy_db(run), convention)
+                                  if per_level else [])
+                    results[-1]["reason"] = level_reason(results[-1]["reason"], per_level)
                 if on_progress is not None:
                     on_progress(done, len(run_guids))
             # Core inserts of whole rows: one statement per table (the ORM's bulk insert splits
             # rows by which values are None, one statement each).
             if results:
                 table = Result.__table__
-                ids = session.scalars(sa.insert(table).returning(table.c.id, sort_by_parameter_order=True), results)
+                ids = list(session.scalars(sa.insert(table).returning(table.c.id, sort_by_parameter_order=True), results))
                 result_flags = [{**f, "result_id": result_id} for result_id, flags in zip(ids, result_flags)
                                 for f in flags]
-            for cls, rows in ((PointFlag, point_flags), (ResultFlag, result_flags)):
+                levels = [{**row, "result_id": result_id} for result_id, rows in zip(ids, levels) for row in rows]
+            for cls, rows in ((PointFlag, point_flags), (ResultFlag, result_flags), (LevelResult, levels)):
                 if rows:
                     session.execute(sa.insert(cls.__table__), rows)
             # Spec-limit verdicts belong to the results just stored (design: stored per result).
@@ -137,11 +146,16 @@ def _forget_analysis(session: Session, run_ids: list[int]) -> None:
     result_ids = select(Result.id).where(Result.run_id.in_(run_ids))
     session.execute(delete(PointFlag).where(PointFlag.point_id.in_(point_ids)))
     session.execute(delete(ResultFlag).where(ResultFlag.result_id.in_(result_ids)))
+    session.execute(delete(LevelResult).where(LevelResult.result_id.in_(result_ids)))
     session.execute(delete(Result).where(Result.run_id.in_(run_ids)))
 
 
-def _result_values(run_id: int, group: dict, a: SweepAssessment, set_id: int | None) -> dict:
+def _result_values(run_id: int, group: dict, a: SweepAssessment, set_id: int | None,
+                   convention: str = "mean") -> dict:
     fit, second = a.fit, a.second_order
+    # Lower and upper are always stored; the reported pair follows the run's convention.
+    iip3_dbm, oip3_dbm = reported_intercepts(fit.iip3_lower_dbm, fit.iip3_upper_dbm, fit.oip3_lower_dbm,
+                                             fit.oip3_upper_dbm, convention)
     return dict(
         run_id=run_id,
         **group,
@@ -152,10 +166,11 @@ def _result_values(run_id: int, group: dict, a: SweepAssessment, set_id: int | N
         gain_db=_finite_or_none(fit.gain_db),
         iip3_lower_dbm=_finite_or_none(fit.iip3_lower_dbm),
         iip3_upper_dbm=_finite_or_none(fit.iip3_upper_dbm),
-        iip3_dbm=_finite_or_none(fit.iip3_dbm),
+        iip3_dbm=_finite_or_none(iip3_dbm),
+        intercept_convention=convention,
         oip3_lower_dbm=_finite_or_none(fit.oip3_lower_dbm),
         oip3_upper_dbm=_finite_or_none(fit.oip3_upper_dbm),
-        oip3_dbm=_finite_or_none(fit.oip3_dbm),
+        oip3_dbm=_finite_or_none(oip3_dbm),
         slope_fundamental=_finite_or_none(fit.slope_fundamental),
         slope_im3_lower=_finite_or_none(fit.slope_im3_lower),
         slope_im3_upper=_finite_or_none(fit.slope_im3_upper),

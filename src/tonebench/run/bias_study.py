@@ -103,9 +103,9 @@ def study_settings(plan: LoadedPlan, origin: str):
         raise InputError(f"{origin}: `tonebench bias search` measures at one centre frequency and one spacing; "
                          f"the plan gives {len(sweep.center_freqs_hz)} and {len(sweep.spacings_hz)} "
                          "(one study per frequency: one plan each)")
-    if bias.search.drive_tone_dbm not in plan.settings.sweep.tone_levels_dbm():
+    if bias.search.drive_tone_dbm not in plan.settings.sweep.tone_levels():
         raise InputError(f"{origin}: [bias.search] drive_tone_dbm {bias.search.drive_tone_dbm:g} dBm is not one of the "
-                         f"[sweep] tone levels ({', '.join(f'{v:g}' for v in plan.settings.sweep.tone_levels_dbm())})")
+                         f"[sweep] tone levels ({', '.join(f'{v:g}' for v in plan.settings.sweep.tone_levels())})")
     return bias
 
 

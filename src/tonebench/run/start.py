@@ -14,6 +14,7 @@ from sqlalchemy.orm import sessionmaker
 from tonebench.calibration.leveling import Leveler
 from tonebench.config.bench_file import LoadedBench, load_bench
 from tonebench.config.plan_file import LoadedPlan, load_plan
+from tonebench.config.results_choice import results_choice
 from tonebench.instruments.open_bench import OpenBench, bench_freq_ranges, role_dialects
 from tonebench.instruments.supervision import Supervision
 from tonebench.plan.limits import check_plan, check_plan_frequencies, check_plan_parts
@@ -204,6 +205,8 @@ def _start_recorder(sessions: sessionmaker, files: _RunFiles, checked: _Checked,
             "plan_file": str(files.plan_path), "bench_file": str(files.bench_path),
             "points_planned": len(checked.points), "leveling": checked.leveler is not None,
             "analyzer": analyzer_figures(checked.instruments),
+            # Which intercept the results report and whether per-level results are stored.
+            "results": results_choice(plan.settings, bench.settings),
             "bench_time_estimate": estimate.as_dict(),
         },
     )

@@ -1,6 +1,6 @@
 """Database tables (SQLAlchemy 2 declarative), portable between SQLite and PostgreSQL, one module
 per family: base (declarative base, types, enumerations), runs (bench, device, plan, run,
-instruments, offsets, events), points, results, calibration, queue (jobs, spec limits), bias
+instruments, offsets, events), points, results, levels (results per drive level), calibration, queue (jobs, spec limits), bias
 (sweet-spot studies: DC points and findings).
 
 Every name is importable from here (`from tonebench.store.models import Point`); importing this
@@ -13,6 +13,8 @@ from tonebench.store.models.base import (
     EVENT_LEVELS,
     FINDING_PARAMETERS,
     FLAGS,
+    INTERCEPT_CONVENTIONS,
+    LEVEL_PARAMETERS,
     JOB_STATUSES,
     NAMING_CONVENTION,
     OFFSET_PATHS,
@@ -34,6 +36,7 @@ from tonebench.store.models.calibration import (
 from tonebench.store.models.points import Point, PointFlag
 from tonebench.store.models.queue import Job, SpecLimit
 from tonebench.store.models.results import Result, ResultFlag, result_group_key
+from tonebench.store.models.levels import LevelResult
 from tonebench.store.models.runs import (
     Bench,
     Device,
@@ -45,9 +48,9 @@ from tonebench.store.models.runs import (
 )
 
 __all__ = [
-    "ANALYZER_CAUSES", "CALIBRATION_METHODS", "EVENT_LEVELS", "FINDING_PARAMETERS", "FLAGS", "JOB_STATUSES", "NAMING_CONVENTION",
+    "ANALYZER_CAUSES", "CALIBRATION_METHODS", "EVENT_LEVELS", "FINDING_PARAMETERS", "FLAGS", "INTERCEPT_CONVENTIONS", "LEVEL_PARAMETERS", "JOB_STATUSES", "NAMING_CONVENTION",
     "OFFSET_PATHS", "POINT_STATUSES", "RESULT_PARAMETERS", "RUN_STATUSES", "SPEC_PARAMETERS", "VERDICTS", "Base", "UtcDateTime",
     "utc_now", "Bench", "Device", "Event", "Instrument", "Offset", "Plan", "Run", "Point", "PointFlag",
-    "Result", "ResultFlag", "result_group_key", "CalibrationOffset", "CalibrationSet", "SystemResidual",
+    "Result", "ResultFlag", "LevelResult", "result_group_key", "CalibrationOffset", "CalibrationSet", "SystemResidual",
     "Job", "SpecLimit", "BiasStudy", "DcPoint", "BiasFinding",
 ]

@@ -36,7 +36,12 @@ VERDICTS = ("pass", "fail", "no-limit")
 # A limit judges a two-tone result's value, or a sweet-spot finding's (store/models/bias.py).
 RESULT_PARAMETERS = ("iip3_dbm", "oip3_dbm", "gain_db", "p1db_in_dbm", "iip2_dbm")
 FINDING_PARAMETERS = ("sweet_spot_v", "window_width_v", "sweet_spot_iip3_dbm")
-SPEC_PARAMETERS = RESULT_PARAMETERS + FINDING_PARAMETERS
+# IMD at a stated tone level (a limit with tone_dbm), judged on a result's per-level rows
+# (store/models/levels.py): the worse of the two products, re its tone and re the PEP.
+LEVEL_PARAMETERS = ("im3_dbc", "im3_dbc_pep")
+SPEC_PARAMETERS = RESULT_PARAMETERS + FINDING_PARAMETERS + LEVEL_PARAMETERS
+# Which intercept a result reports (analysis/conventions.py); NULL: stored before the choice (mean).
+INTERCEPT_CONVENTIONS = ("mean", "worse")
 
 
 def utc_now() -> dt.datetime:

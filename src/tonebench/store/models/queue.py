@@ -65,5 +65,7 @@ class SpecLimit(Base):
     bias_max_v: Mapped[float | None]
     temp_min_c: Mapped[float | None]
     temp_max_c: Mapped[float | None]
+    # The stated tone level (dBm per tone at the DUT input) of an IMD limit (LEVEL_PARAMETERS only).
+    tone_dbm: Mapped[float | None]
     created_at: Mapped[dt.datetime] = mapped_column(default=utc_now)
     notes: Mapped[str | None] = mapped_column(sa.Text)

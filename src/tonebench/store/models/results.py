@@ -10,6 +10,7 @@ from sqlalchemy import event
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from tonebench.store.models.base import (
+    INTERCEPT_CONVENTIONS,
     VERDICTS,
     Base,
     flag_constraints,
@@ -38,6 +39,8 @@ class Result(Base):
     __table_args__ = (
         sa.UniqueConstraint("run_id", "group_key"),
         sa.CheckConstraint(f"verdict IS NULL OR {in_list('verdict', VERDICTS)}", name="verdict"),
+        sa.CheckConstraint(f"intercept_convention IS NULL OR {in_list('intercept_convention', INTERCEPT_CONVENTIONS)}",
+                           name="intercept_convention"),
         sa.Index("ix_results_center_spacing", "center_hz", "spacing_hz"),
         # The other filters of `find` (checked with each backend's planner, tests/catalog).
         sa.Index("ix_results_spacing", "spacing_hz"),
@@ -57,7 +60,9 @@ class Result(Base):
     gain_db: Mapped[float | None]
     iip3_lower_dbm: Mapped[float | None]
     iip3_upper_dbm: Mapped[float | None]
-    iip3_dbm: Mapped[float | None]
+    iip3_dbm: Mapped[float | None]  # lower and upper under intercept_convention
+    # "mean" or "worse" (analysis/conventions.py); NULL: stored before the choice existed (mean).
+    intercept_convention: Mapped[str | None] = mapped_column(sa.String(8))
     oip3_lower_dbm: Mapped[float | None]
     oip3_upper_dbm: Mapped[float | None]
     oip3_dbm: Mapped[float | None]
@@ -82,6 +87,10 @@ class Result(Base):
     run: Mapped[Run] = relationship(back_populates="results")
     flags: Mapped[list[ResultFlag]] = relationship(
         back_populates="result", cascade="all, delete-orphan", passive_deletes=True
+    )
+    # Results per drive level (store/models/levels.py), when the run's plan asks for them.
+    levels: Mapped[list["LevelResult"]] = relationship(  # noqa: F821
+        cascade="all, delete-orphan", passive_deletes=True, order_by="LevelResult.tone_dbm"
     )
 
 
