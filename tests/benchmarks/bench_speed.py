@@ -104,10 +104,12 @@ def raw_loop(points, wide_span: bool, status: bool = False) -> tuple[float, floa
     four narrow reads at the plan's RBW (the same reads tonebench makes) or one wide sweep at
     1 kHz RBW holding all four products (the hand-written script).
 
-    status: the loop also asks what tonebench asks for safety, joined with ';' onto the queries
-    it makes anyway (as `[io] one_line` does): each source's error queue with its *OPC?, each
-    read's status, sweep time and error queue with its last marker, and per point each source's
-    event status and RF state (the lost-state check: two round trips the bare loop does not make)."""
+    status: the loop makes tonebench's reads and asks what it asks for safety, joined with ';'
+    onto the queries it makes anyway (as `[io] one_line` does): the noise marker beside each IM3
+    product (a measurement, not safety: the bare loop leaves it out), each source's error queue
+    with its *OPC?, each read's status, sweep time and error queue with its last marker, and per
+    point each source's event status and RF state (the lost-state check: two round trips the bare
+    loop does not make). Not made: tonebench's settle confirmation and its commit."""
     from tonebench.config.bench_file import load_bench
     from tonebench.config.plan_file import load_plan
     from tonebench.instruments.transport import disable_nagle
@@ -144,6 +146,10 @@ def raw_loop(points, wide_span: bool, status: bool = False) -> tuple[float, floa
             else:
                 reads = [(freq_hz, 10 * rbw_hz, (freq_hz,)) for freq_hz in (point.f1_hz, point.f2_hz, point.lower_hz,
                                                                              point.upper_hz)]
+                if status:  # the noise beside each product, on the side away from the tones
+                    off_hz = plan.analyzer.noise_offset_hz
+                    reads[2:] = [(point.lower_hz, 10 * rbw_hz, (point.lower_hz, point.lower_hz - off_hz)),
+                                 (point.upper_hz, 10 * rbw_hz, (point.upper_hz, point.upper_hz + off_hz))]
             for center_hz, span_hz, markers_hz in reads:
                 analyzer.write(f"FREQ:SPAN {span_hz:.3f}")
                 analyzer.write(f"FREQ:CENT {center_hz:.3f}")
@@ -244,7 +250,7 @@ def main() -> None:
         print(f"  wall time   tonebench {loop_ms_per_point(db_url):6.1f} ms per point in its loop "
               f"({1e3 * run_wall_s / len(points):.1f} ms with connecting, analysis and report); "
               f"raw pyvisa loop, four reads per point {1e3 * raw_wall_s / len(points):6.1f} ms "
-              f"({1e3 * status_wall_s / len(points):.1f} ms asking tonebench's status and error queries too)")
+              f"({1e3 * status_wall_s / len(points):.1f} ms with tonebench's noise markers, status and error queries)")
         _, joined_sim, _, _ = run_tonebench(Path(folder), PLAN, "one-line", one_line_bench(Path(folder)))
         joined_lines, joined_db = len(joined_sim.bench.command_log), f"sqlite:///{Path(folder) / 'one-line.db'}"
         joined_queries = sum("?" in line for _, _, line in joined_sim.bench.command_log)

@@ -253,6 +253,9 @@ class ScpiInstrument:
         else:
             entries.append(ScpiError(0, f"error queue not empty after {MAX_ERROR_READS} reads"))
         self._unchecked = False
+        if not entries:
+            self._sent_since_drain = []  # the queue is read: nothing sent before is named later
+            return
         named = self.refused_operations(entries)
         if entries:
             listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
