@@ -248,26 +248,25 @@ class ScpiInstrument:
         for index in range(MAX_ERROR_READS):
             entry = first if index == 0 and first is not None else self.call("next_error")
             if entry.code == 0:
+                self._unchecked = False  # read to its end
                 break
             entries.append(entry)
         else:
             entries.append(ScpiError(0, f"error queue not empty after {MAX_ERROR_READS} reads"))
-        self._unchecked = False
         if not entries:
             self._sent_since_drain = []  # the queue is read: nothing sent before is named later
             return
         named = self.refused_operations(entries)
-        if entries:
-            listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
-            refused = any(e.code in COMMAND_ERROR_CODES for e in entries)
-            if refused:
-                listed = f"the instrument refused {named} of dialect {self.dialect.name}: {listed}"
-            if self.supervision is not None:
-                self.supervision.emit(self.label, "scpi-error", "error" if refused else "warning",
-                                      f"{self.label}: {listed}", {"entries": [list(e) for e in entries]})
-            if refused:
-                raise CommandRefused(f"{self.label}: {listed}", entries)
-            raise ScpiErrors(f"{self.label}: {listed}", entries)
+        listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
+        refused = any(e.code in COMMAND_ERROR_CODES for e in entries)
+        if refused:
+            listed = f"the instrument refused {named} of dialect {self.dialect.name}: {listed}"
+        if self.supervision is not None:
+            self.supervision.emit(self.label, "scpi-error", "error" if refused else "warning",
+                                  f"{self.label}: {listed}", {"entries": [list(e) for e in entries]})
+        if refused:
+            raise CommandRefused(f"{self.label}: {listed}", entries)
+        raise ScpiErrors(f"{self.label}: {listed}", entries)
 
     def refused_operations(self, entries: list[ScpiError]) -> str:
         """Which operations sent since the queue was last read these entries are about (see
