@@ -56,13 +56,14 @@ def one_line_bench(folder: Path) -> Path:
     return bench
 
 
-def physical_bound_s(db_url: str, plan_path: Path) -> float:
+def physical_bound_s(db_url: str, plan_path: Path, settlings: int = 1) -> float:
     """The least bench time for the accuracy the plan asks, knowing every product's level and
     noise (the run's own noise-corrected readings and noise markers, per hertz): per point each
     product at the continuous RBW that gives it exactly the target over that noise,
     no wider than ten RBWs inside the spacing and no narrower than the budget pays for two sweeps;
     the tones at the widest; four reads or one sweep holding all four at the narrowest RBW,
-    whichever is shorter; both sources' settling. No step or settle checks."""
+    whichever is shorter; the sources' settling, both at once (settlings=2: one after the other,
+    the bound before tonebench settled them at once). No step or settle checks."""
     import math
 
     from tonebench.analysis.sweep_fit import noise_corrected_dbm
@@ -94,15 +95,22 @@ def physical_bound_s(db_url: str, plan_path: Path) -> float:
         four_s = 2 * k * SPAN_RBWS / widest_hz + sum(k * SPAN_RBWS / rbw for rbw in rbws_hz)
         narrowest_hz = min(rbws_hz)
         one_s = k * (3 * p.spacing_hz + SPAN_RBWS * narrowest_hz) / narrowest_hz ** 2
-        total_s += min(four_s, one_s) + 2 * 0.005
+        total_s += min(four_s, one_s) + settlings * 0.005  # 1: both sources settling at the same time
     assert math.isfinite(total_s)
     return total_s
 
 
-def raw_loop(points, wide_span: bool) -> tuple[float, float]:
+def raw_loop(points, wide_span: bool, status: bool = False) -> tuple[float, float]:
     """(virtual bench s, wall s) of a plain pyvisa loop: per point both sources set, then either
     four narrow reads at the plan's RBW (the same reads tonebench makes) or one wide sweep at
-    1 kHz RBW holding all four products (the hand-written script)."""
+    1 kHz RBW holding all four products (the hand-written script).
+
+    status: the loop makes tonebench's reads and asks what it asks for safety, joined with ';'
+    onto the queries it makes anyway (as `[io] one_line` does): the noise marker beside each IM3
+    product (a measurement, not safety: the bare loop leaves it out), each source's error queue
+    with its *OPC?, each read's status, sweep time and error queue with its last marker, and per
+    point each source's event status and RF state (the lost-state check: two round trips the bare
+    loop does not make). Not made: tonebench's settle confirmation and its commit."""
     from tonebench.config.bench_file import load_bench
     from tonebench.config.plan_file import load_plan
     from tonebench.instruments.transport import disable_nagle
@@ -132,13 +140,17 @@ def raw_loop(points, wide_span: bool) -> tuple[float, float]:
                                              ("source2", point.f2_hz, levels.source2_dbm)):
                 handles[role].write(f"SOUR:FREQ {freq_hz:.3f}")
                 handles[role].write(f"SOUR:POW {power_dbm:.2f}")
-                handles[role].query("*OPC?")
+                handles[role].query("*OPC?;:SYST:ERR?" if status else "*OPC?")
             if wide_span:
                 reads = [(point.center_hz, 4 * point.spacing_hz,
                           (point.lower_hz, point.f1_hz, point.f2_hz, point.upper_hz))]
             else:
                 reads = [(freq_hz, 10 * rbw_hz, (freq_hz,)) for freq_hz in (point.f1_hz, point.f2_hz, point.lower_hz,
                                                                              point.upper_hz)]
+                if status:  # the noise beside each product, on the side away from the tones
+                    off_hz = plan.analyzer.noise_offset_hz
+                    reads[2:] = [(point.lower_hz, 10 * rbw_hz, (point.lower_hz, point.lower_hz - off_hz)),
+                                 (point.upper_hz, 10 * rbw_hz, (point.upper_hz, point.upper_hz + off_hz))]
             for center_hz, span_hz, markers_hz in reads:
                 analyzer.write(f"FREQ:SPAN {span_hz:.3f}")
                 analyzer.write(f"FREQ:CENT {center_hz:.3f}")
@@ -146,7 +158,13 @@ def raw_loop(points, wide_span: bool) -> tuple[float, float]:
                 analyzer.query("*OPC?")
                 for marker_hz in markers_hz:
                     analyzer.write(f"CALC:MARK1:X {marker_hz:.3f}")
-                    float(analyzer.query("CALC:MARK1:Y?"))
+                    if status and marker_hz == markers_hz[-1]:
+                        float(analyzer.query("STAT:QUES:COND?;:CALC:MARK1:Y?;:SWE:TIME?;:SYST:ERR?").split(";")[1])
+                    else:
+                        float(analyzer.query("CALC:MARK1:Y?"))
+            if status:
+                for role in ("source1", "source2"):
+                    handles[role].query("*ESR?;:OUTP?")
         wall_s, virtual_s = time.perf_counter() - started_s, sim.bench.clock_s - clock_s
         for role in ("source1", "source2"):
             handles[role].write("OUTP OFF")
@@ -213,9 +231,10 @@ def main() -> None:
         outcome, sim, estimate, run_wall_s = run_tonebench(Path(folder))
         lines = len(sim.bench.command_log)
         raw_virtual_s, raw_wall_s = raw_loop(points, wide_span=False)
+        _, status_wall_s = raw_loop(points, wide_span=False, status=True)
         script_virtual_s, _ = raw_loop(points, wide_span=True)
         plan, bench = load_plan(PLAN).settings, load_bench(BENCH).settings
-        floor_s = len(points) * (4 * sweep_time_s(plan, bench, role_dialects(bench)["analyzer"]) + 2 * 0.005)
+        floor_s = len(points) * (4 * sweep_time_s(plan, bench, role_dialects(bench)["analyzer"]) + 0.005)
         db_url = f"sqlite:///{Path(folder) / 'bench'}.db"
         print(f"demo plan, {len(points)} points, simulated bench (virtual clock = the instruments' own time)")
         print(f"  bench time  tonebench {outcome.bench_time.taken_s:8.2f} s   estimate {estimate.total_s:8.2f} s")
@@ -225,16 +244,21 @@ def main() -> None:
               f"({script_virtual_s / outcome.bench_time.taken_s:.0f} x tonebench)")
         accurate, _, accurate_estimate, _ = run_tonebench(Path(folder), ACCURACY_PLAN, "accuracy")
         bound_s = physical_bound_s(f"sqlite:///{Path(folder) / 'accuracy'}.db", ACCURACY_PLAN)
+        apart_s = physical_bound_s(f"sqlite:///{Path(folder) / 'accuracy'}.db", ACCURACY_PLAN, settlings=2)
         print(f"  to accuracy (sample_runs/accuracy_plan.toml, 0.1 dB per point): tonebench "
               f"{accurate.bench_time.taken_s:6.2f} s, estimate {accurate_estimate.total_s:6.2f} s, "
-              f"physical bound {bound_s:6.2f} s (tonebench / bound: {accurate.bench_time.taken_s / bound_s:.2f})")
+              f"physical bound {bound_s:6.2f} s (tonebench / bound: {accurate.bench_time.taken_s / bound_s:.2f}; "
+              f"{accurate.bench_time.taken_s / apart_s:.2f} against a bound settling the sources one after the other)")
         print(f"  commands    {lines / len(points):.1f} lines per point sent to the instruments")
         print(f"  wall time   tonebench {loop_ms_per_point(db_url):6.1f} ms per point in its loop "
               f"({1e3 * run_wall_s / len(points):.1f} ms with connecting, analysis and report); "
-              f"raw pyvisa loop, four reads per point {1e3 * raw_wall_s / len(points):6.1f} ms")
+              f"raw pyvisa loop, four reads per point {1e3 * raw_wall_s / len(points):6.1f} ms "
+              f"({1e3 * status_wall_s / len(points):.1f} ms with tonebench's noise markers, status and error queries)")
         _, joined_sim, _, _ = run_tonebench(Path(folder), PLAN, "one-line", one_line_bench(Path(folder)))
         joined_lines, joined_db = len(joined_sim.bench.command_log), f"sqlite:///{Path(folder) / 'one-line.db'}"
-        print(f"  one line    with [io] one_line: {joined_lines / len(points):.1f} lines per point, "
+        joined_queries = sum("?" in line for _, _, line in joined_sim.bench.command_log)
+        print(f"  one line    with [io] one_line: {joined_lines / len(points):.1f} lines per point "
+              f"({joined_queries / len(points):.1f} round trips; the raw loop 10, with the status queries 12), "
               f"{loop_ms_per_point(joined_db):6.1f} ms per point in its loop")
         # Re-analysis first: the commit figure adds its points to the same run.
         print(f"  re-analysis {1e3 * reanalysis_s(db_url, outcome.guid):8.1f} ms per run ({len(points)} points)")

@@ -85,6 +85,24 @@ def test_loss_table_interpolates_linearly_in_db_and_never_extrapolates():
         table.loss_db(np.array([2e9, 0.5e9]))
 
 
+def test_loss_table_asked_again_gives_the_same_loss_and_still_refuses_outside(monkeypatch):
+    """Scalar losses are kept per frequency (a run asks the same ones at every point): asked
+    again, the same value without interpolating anew; outside the table, refused every time."""
+    import tonebench.planes.loss_table as loss_table
+
+    table = LossTable.from_rows("in1", [[1e9, 2.0], [2e9, 4.0]], "test")
+    assert table.loss_db(1.25e9) == pytest.approx(2.5)  # by hand, a quarter of the way from 2 to 4 dB
+    monkeypatch.setattr(loss_table.np, "interp", lambda *args: pytest.fail("interpolated again"))
+    assert table.loss_db(1.25e9) == pytest.approx(2.5)
+    for _ in range(2):
+        with pytest.raises(InputError, match="does not extrapolate"):
+            table.loss_db(2.5e9)
+    monkeypatch.undo()  # np.interp back
+    monkeypatch.setattr(loss_table, "MAX_CACHED_FREQS", 1)
+    assert table.loss_db(1.5e9) == pytest.approx(3.0)  # the cache is cleared, not grown past its bound
+    assert list(table._scalar_db) == [1.5e9]
+
+
 def test_points_have_stable_unique_keys_and_product_frequencies():
     plan = load_plan(SAMPLE_RUNS / "demo_plan.toml").settings
     points = expand(plan)

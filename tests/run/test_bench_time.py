@@ -33,10 +33,11 @@ def test_sweeps_counted_by_hand():
     assert sum(t for t, _ in counts) == 51 * 2 + 3 * 2  # the tones, and again at each sweep's first point
     assert sum(p for _, p in counts) == 51 * 2 + 3 * 2 * 2  # the products, and again at the top two powers
     estimate = estimate_bench_time(points, plan, bench, role_dialects(bench))
-    # 2.5 * span / RBW^2 (generic-analyzer k), span 10 RBW at the plan's RBW; 5 ms per source per point.
+    # 2.5 * span / RBW^2 (generic-analyzer k), span 10 RBW at the plan's RBW; 5 ms per point: both
+    # sources are set, then each *OPC? waited for, so they settle at the same time.
     rbw_hz, span_hz = plan.analyzer.rbw_hz, plan.analyzer.effective_span_hz
     assert estimate.sweep_time_s == pytest.approx(2.5 * span_hz / rbw_hz ** 2)
-    assert estimate.total_s == pytest.approx(222 * estimate.sweep_time_s + 51 * 2 * 0.005)
+    assert estimate.total_s == pytest.approx(222 * estimate.sweep_time_s + 51 * 0.005)
     done = frozenset(p.key for p in points[:17])  # a resumed run: the first sweep done
     assert estimate_bench_time(points, plan, bench, role_dialects(bench), done).sweeps == 222 - (17 * 4 + 4 + 2)
 
@@ -82,13 +83,37 @@ def test_a_video_filter_under_the_rbw_is_in_the_estimate_and_the_dry_run(tmp_pat
     assert "1000, VBW 200 " in shown.output and "0.75 s" in shown.output, shown.output  # 6 sweeps of 125 ms
 
 
+def test_both_sources_settle_at_the_same_time(tmp_path):
+    """Per point source 1 takes its power (its RF state read on the line says it did), source 2
+    is set and waited for, then source 1's *OPC?: on the simulator's virtual clock the two 5 ms
+    settlings overlap, so a point's tones cost 5 ms, not 10."""
+    sims = []
+    outcome = execute_run(SAMPLE_RUNS / "demo_plan.toml", SAMPLE_RUNS / "sim_bench.toml",
+                          f"sqlite:///{tmp_path / 'tb.db'}", None, on_sim_started=sims.append)
+    assert outcome.status == "complete", outcome.reason
+    log = [entry for entry in sims[0].bench.command_log if entry[1] != "analyzer"]
+    firsts = [i for i, (_, role, line) in enumerate(log) if role == "source1" and line.startswith("SOUR:POW")]
+    assert len(firsts) == 51
+    # The points that change power only (a sweep's first point also sets the frequencies).
+    power_only = [first for first in firsts if log[first + 2][2].startswith("SOUR:POW")]
+    assert len(power_only) == 51 - 3
+    for first in power_only:
+        start_s = log[first][0]
+        lines = [(role, line) for _, role, line in log[first:first + 7]]
+        assert lines[:7] == [("source1", lines[0][1]), ("source1", "OUTP?"), ("source2", lines[2][1]),
+                             ("source2", "*OPC?"), ("source2", "SYST:ERR?"), ("source1", "*OPC?"),
+                             ("source1", "SYST:ERR?")], lines
+        assert lines[2][1].startswith("SOUR:POW")
+        assert log[first + 6][0] - start_s == pytest.approx(0.005)  # both waits over after 5 ms
+
+
 def test_dry_run_prints_settings_and_estimate_and_touches_nothing(tmp_path):
     db = tmp_path / "tb.db"
     result = invoke("run", SAMPLE_RUNS / "demo_plan.toml", "--bench", SAMPLE_RUNS / "sim_bench.toml", "--db", db,
                     "--dry-run")
     assert result.exit_code == 0, result.output
     assert "2.4 GHz, spacing 1 MHz, -40.00 dBm per tone" in result.output
-    assert "bench time estimate: 6.06 s for 51 points (222 sweeps of 25 ms" in result.output
+    assert "bench time estimate: 5.8 s for 51 points (222 sweeps of 25 ms" in result.output
     assert "nothing connected, nothing switched on, nothing written" in result.output
     assert not db.exists()
     bad = invoke("run", SAMPLE_RUNS / "demo_plan.toml", "--bench", SAMPLE_RUNS / "nope.toml", "--db", db, "--dry-run")
@@ -99,7 +124,7 @@ def test_queue_add_says_the_bench_time(tmp_path):
     result = invoke("queue", "add", SAMPLE_RUNS / "demo_plan.toml", "--bench", SAMPLE_RUNS / "sim_bench.toml",
                     "--db", tmp_path / "tb.db")
     assert result.exit_code == 0, result.output
-    assert "bench time estimate: 6.06 s for 51 points" in result.output
+    assert "bench time estimate: 5.8 s for 51 points" in result.output
 
 
 @pytest.mark.parametrize("seconds, text", [(0.025, "25 ms"), (7.234, "7.23 s"), (725.0, "12 min 5 s"),

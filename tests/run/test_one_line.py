@@ -13,7 +13,7 @@ from sqlalchemy.orm import Session
 
 from tonebench.config.bench_file import load_bench
 from tonebench.instruments import load_dialect, open_resource
-from tonebench.instruments.scpi import ConnectionFault, ScpiInstrument
+from tonebench.instruments.scpi import CommandRefused, ConnectionFault, ScpiError, ScpiInstrument, split_replies
 from tonebench.packaged import data_dir
 from tonebench.run.start import execute_run
 from tonebench.sim.launch import start_sim_bench
@@ -52,9 +52,12 @@ def test_a_run_on_one_line_stores_the_same_readings_in_fewer_lines(tmp_path):
     assert joined == apart  # same commands in the same order: the same simulated readings
     assert [r.iip3_dbm for r in joined_run.results] == [r.iip3_dbm for r in apart_run.results]
     assert len(joined_lines) < 0.6 * len(apart_lines), (len(joined_lines), len(apart_lines))
-    # Each read's status, both markers and its sweep time come back on one line.
-    assert any(line.startswith("STAT:QUES:COND?;:CALC:MARK1:X ") and line.endswith(";:SWE:TIME?")
+    # Each read's status, both markers, its sweep time and the error queue come back on one line;
+    # each source's *OPC? and its error queue too: no error query on a line of its own per point.
+    assert any(line.startswith("STAT:QUES:COND?;:CALC:MARK1:X ") and line.endswith(";:SWE:TIME?;:SYST:ERR?")
                for line in joined_lines)
+    assert "*OPC?;:SYST:ERR?" in joined_lines
+    assert joined_lines.count("SYST:ERR?") < 10 < apart_lines.count("SYST:ERR?") / 10
     assert not any(";" in line for line in apart_lines)
 
 
@@ -70,6 +73,42 @@ def test_a_reply_with_the_wrong_number_of_parts_is_a_late_reply(tmp_path):
         inst.resource.write("*OPC?")  # its reply "1" arrives first, as a late reply would
         with pytest.raises(ConnectionFault, match="expected 2 replies joined by ';'"):
             inst.call_many([("read_status", {}), ("read_sweep_time", {})])
+
+
+def test_an_error_entry_on_a_joined_line_is_split_outside_its_quotes(tmp_path):
+    """The simulator's error text holds a ';' (device info after the standard text, SCPI-1999
+    vol 2 21.8, from memory): the entry on the line of the refused setting is read whole."""
+    bench = load_bench(one_line_bench(tmp_path, True))
+    dialect = load_dialect(str(tmp_path / "generic-analyzer-True.toml"))
+    with start_sim_bench(bench.scenario) as sim:
+        inst = ScpiInstrument(open_resource(sim.resources["analyzer"], dialect, "analyzer"), dialect, "analyzer")
+        assert inst.call_many_checked([("read_sweep_time", {})])[0] > 0
+        assert sim.bench.command_log[-1][2] == "SWE:TIME?;:SYST:ERR?"
+        inst.resource.write("BANDX 10")  # an undefined header, as a wrong dialect would send
+        with pytest.raises(CommandRefused, match=r"-113, Undefined header;BANDX") as refused:
+            inst.call_many_checked([("read_sweep_time", {})])
+        assert refused.value.entries == [ScpiError(-113, "Undefined header;BANDX")]
+        lines = [line for _, _, line in sim.bench.command_log]
+        assert lines[-2:] == ["SWE:TIME?;:SYST:ERR?", "SYST:ERR?"]  # the rest of the queue, then empty
+        # Read empty and nothing sent since: a drain has nothing to read and sends nothing.
+        inst.check_errors()
+        assert len(sim.bench.command_log) == len(lines)
+        inst.call("read_sweep_time")
+        inst.check_errors()
+        assert sim.bench.command_log[-1][2] == "SYST:ERR?"
+
+
+def test_a_joined_reply_with_an_open_quote_is_one_clear_fault(tmp_path):
+    bench = load_bench(one_line_bench(tmp_path, True))
+    dialect = load_dialect(str(tmp_path / "generic-analyzer-True.toml"))
+    with start_sim_bench(bench.scenario) as sim:
+        inst = ScpiInstrument(open_resource(sim.resources["analyzer"], dialect, "analyzer"), dialect, "analyzer")
+        inst.resource.write('*OPC?;:SYST:ERR?;:SYST:ERR?')  # late: 1;0,"No error";0,"No error"
+        with pytest.raises(ConnectionFault, match=r"expected 2 replies joined by ';' \(quotes closed\)"):
+            inst.call_many([("read_sweep_time", {}), ("next_error", {})])
+    assert split_replies('1;-113,"Undefined header;BANDX"') == ["1", '-113,"Undefined header;BANDX"']
+    assert split_replies('0,"say ""a;b"""') == ['0,"say ""a;b"""']
+    assert split_replies('1;0,"No error') is None
 
 
 JOINED_FAULTS = [

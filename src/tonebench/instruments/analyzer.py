@@ -145,15 +145,21 @@ class SpectrumAnalyzer(RoleDriver):
             if inst.epoch != epoch or self._settings_lost(sweep_time_s):
                 continue
             # Status, markers and the sweep time asked again at the end (settings lost at any
-            # moment of the read show there): one line where the dialect joins them.
+            # moment of the read show there): one line where the dialect joins them. The error
+            # queue's first entry rides on that line when it joins (no extra round trip; a
+            # point's deferred drain then has nothing left to read), else only when not deferred.
             steps = [("read_status", {})]
             for freq_hz in marker_freqs_hz:
                 steps += [("set_marker_freq", {"freq_hz": freq_hz}), ("read_marker_power", {})]
-            status, *marker_dbm, sweep_time_after_s = inst.call_many([*steps, ("read_sweep_time", {})])
+            errors = inst.dialect.io.one_line or not self._errors_deferred
+            tail = [("read_sweep_time", {}), *([("next_error", {})] if errors else [])]
+            replies = inst.call_many([*steps, *tail])
+            first_error = replies.pop() if errors else None
+            status, *marker_dbm, sweep_time_after_s = replies
             overload = bool((status >> self._overload_bit) & 1)
             powers_dbm = [self.judge_marker_dbm(power_dbm, freq_hz) for power_dbm, freq_hz in zip(marker_dbm, marker_freqs_hz)]
-            if not self._errors_deferred:
-                inst.check_errors()
+            if errors:
+                inst.check_errors(first_error)
             if inst.epoch == epoch and not self._settings_lost(sweep_time_after_s):
                 return MarkerReading(tuple(powers_dbm), overload, sweep_time_s)
         raise InstrumentError(
@@ -228,13 +234,14 @@ class SpectrumAnalyzer(RoleDriver):
                        if self._sent.get(operation) != value]
             for operation, _, _ in changed:
                 self._sent.pop(operation, None)  # if the write fails the instrument's value is unknown
-            replies = self.instrument.call_many([*((op, {field: value}) for op, field, value in changed), *then],
-                                                timeout_s)
+            ops = [*((op, {field: value}) for op, field, value in changed), *then]
+            if drain and not self._errors_deferred:  # the errors on the same line where it joins
+                replies = self.instrument.call_many_checked(ops, timeout_s)
+            else:
+                replies = self.instrument.call_many(ops, timeout_s)
             self._sent.update((operation, value) for operation, _, value in changed)
             if any(op == "wait_complete" for op, _ in then) and replies[-1] != 1:
                 raise InstrumentError(f"{self.label}: wait_complete replied {replies[-1]}; expected 1")
-            if drain and not self._errors_deferred:
-                self.instrument.check_errors()
         except Exception:
             # A rejected setting leaves the instrument in an unknown state; send all next time.
             self.forget_state()

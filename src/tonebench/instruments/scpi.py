@@ -49,6 +49,21 @@ def _refused_operations(sent: list[tuple[str, str]], entries: list[ScpiError]) -
 MAX_RESYNC_LINES = 20
 
 
+def split_replies(reply: str) -> list[str] | None:
+    """A joined reply's fields, split at each ';' outside double quotes (an error entry's text may
+    hold a ';'; a doubled quote inside a string toggles twice, so it stays inside). None when a
+    quote is left open: the line is not a well-formed reply."""
+    parts, start, quoted = [], 0, False
+    for index, char in enumerate(reply):
+        if char == '"':
+            quoted = not quoted
+        elif char == ";" and not quoted:
+            parts.append(reply[start:index])
+            start = index + 1
+    parts.append(reply[start:])
+    return None if quoted else parts
+
+
 def identity(idn: str) -> tuple[str, ...]:
     """Maker, model and serial from an identify reply (IEEE 488.2 *IDN? fields; firmware left out)."""
     return tuple(part.strip().lower() for part in idn.split(",")[:3])
@@ -80,6 +95,9 @@ class ScpiInstrument:
         self._restoring = False
         # (operation, text) written since the error queue was last drained: named in a refusal.
         self._sent_since_drain: list[tuple[str, str]] = []
+        # False once the error queue read empty with nothing sent after it: a drain then is
+        # skipped (no command can have left an entry). True at the start and after a reopen.
+        self._unchecked = True
 
     def has(self, operation: str) -> bool:
         return operation in self.dialect.operations
@@ -98,6 +116,7 @@ class ScpiInstrument:
         op = self._operation(operation)
         message = op.template.format(**fields)
         if operation != "next_error":
+            self._unchecked = True
             self._sent_since_drain = [*self._sent_since_drain[-(MAX_SENT_REMEMBERED - 1):], (operation, message)]
         return self._supervised(lambda: self._exchange(operation, op, message, None))
 
@@ -107,10 +126,11 @@ class ScpiInstrument:
         With the dialect's `[io] one_line = true` they go as one program message, units joined
         by ';' (IEEE 488.2; each unit after the first from the root, ':', unless a common command)
         and the queries' replies come back in one line, joined by ';': one round trip instead of
-        one per query. Queries whose reply is text (an error string may hold a ';') are never
-        joined. timeout_s: for the line's reply (a wait_complete in it), else the dialect's."""
+        one per query. An error entry's text is quoted, so its reply is split outside quotes;
+        queries whose reply is free text (an identity) are never joined. timeout_s: for the
+        line's reply (a wait_complete in it), else the dialect's."""
         ops = [(operation, self._operation(operation), fields) for operation, fields in steps]
-        if not self.dialect.io.one_line or len(ops) < 2 or any(op.reply in ("text", "error") for _, op, _ in ops):
+        if not self.dialect.io.one_line or len(ops) < 2 or any(op.reply == "text" for _, op, _ in ops):
             replies = []
             for operation, op, fields in ops:
                 if operation == "wait_complete" and timeout_s is not None:
@@ -123,7 +143,9 @@ class ScpiInstrument:
             return replies
         units = [op.template.format(**fields) for _, op, fields in ops]
         for (operation, _, _), unit in zip(ops, units):
-            self._sent_since_drain = [*self._sent_since_drain[-(MAX_SENT_REMEMBERED - 1):], (operation, unit)]
+            if operation != "next_error":
+                self._unchecked = True
+                self._sent_since_drain = [*self._sent_since_drain[-(MAX_SENT_REMEMBERED - 1):], (operation, unit)]
         message = ";".join([units[0], *(u if u.startswith(("*", ":")) else f":{u}" for u in units[1:])])
         queries = [(operation, op.reply) for operation, op, _ in ops if op.is_query]
         names = "+".join(operation for operation, _, _ in ops)
@@ -132,13 +154,23 @@ class ScpiInstrument:
             reply = self._transfer(names, message, bool(queries), timeout_s)
             if reply is None:
                 return []
-            parts = reply.split(";")
-            if len(parts) != len(queries):  # most often another query's late reply
+            parts = split_replies(reply)
+            if parts is None or len(parts) != len(queries):  # most often another query's late reply
                 raise ConnectionFault(f"{self.label}: {names} ({message!r}) replied {reply!r}; expected "
-                                      f"{len(queries)} replies joined by ';'", timed_out=True)
+                                      f"{len(queries)} replies joined by ';' (quotes closed)", timed_out=True)
             return [self._parse(operation, message, kind, part) for (operation, kind), part in zip(queries, parts)]
 
         return self._supervised(attempt)
+
+    def call_many_checked(self, steps: list[tuple[str, dict]], timeout_s: float | None = None) -> list:
+        """call_many, then the error queue drained (check_errors). The first error read goes on
+        the same line where the dialect joins (one round trip for the steps and their errors)."""
+        if not steps:
+            self.check_errors()
+            return []
+        *replies, first = self.call_many([*steps, ("next_error", {})], timeout_s)
+        self.check_errors(first)
+        return replies
 
     def _operation(self, operation: str):
         op = self.dialect.operations.get(operation)
@@ -205,28 +237,36 @@ class ScpiInstrument:
                 f"{where} replied {reply!r}; expected {EXPECTED_REPLIES[kind]}", timed_out=True
             ) from None
 
-    def check_errors(self) -> None:
-        """Drain the error queue; raise ScpiErrors listing every entry if there were any."""
+    def check_errors(self, first: ScpiError | None = None) -> None:
+        """Drain the error queue; raise ScpiErrors listing every entry if there were any.
+
+        first: the queue's first entry, already read (on the line of the operations it checks).
+        Nothing is read when the queue read empty and nothing was sent since."""
+        if first is None and not self._unchecked:
+            return
         entries: list[ScpiError] = []
-        for _ in range(MAX_ERROR_READS):
-            entry = self.call("next_error")
+        for index in range(MAX_ERROR_READS):
+            entry = first if index == 0 and first is not None else self.call("next_error")
             if entry.code == 0:
+                self._unchecked = False  # read to its end
                 break
             entries.append(entry)
         else:
             entries.append(ScpiError(0, f"error queue not empty after {MAX_ERROR_READS} reads"))
+        if not entries:
+            self._sent_since_drain = []  # the queue is read: nothing sent before is named later
+            return
         named = self.refused_operations(entries)
-        if entries:
-            listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
-            refused = any(e.code in COMMAND_ERROR_CODES for e in entries)
-            if refused:
-                listed = f"the instrument refused {named} of dialect {self.dialect.name}: {listed}"
-            if self.supervision is not None:
-                self.supervision.emit(self.label, "scpi-error", "error" if refused else "warning",
-                                      f"{self.label}: {listed}", {"entries": [list(e) for e in entries]})
-            if refused:
-                raise CommandRefused(f"{self.label}: {listed}", entries)
-            raise ScpiErrors(f"{self.label}: {listed}", entries)
+        listed = "; ".join(f"{e.code}, {e.message}" for e in entries)
+        refused = any(e.code in COMMAND_ERROR_CODES for e in entries)
+        if refused:
+            listed = f"the instrument refused {named} of dialect {self.dialect.name}: {listed}"
+        if self.supervision is not None:
+            self.supervision.emit(self.label, "scpi-error", "error" if refused else "warning",
+                                  f"{self.label}: {listed}", {"entries": [list(e) for e in entries]})
+        if refused:
+            raise CommandRefused(f"{self.label}: {listed}", entries)
+        raise ScpiErrors(f"{self.label}: {listed}", entries)
 
     def refused_operations(self, entries: list[ScpiError]) -> str:
         """Which operations sent since the queue was last read these entries are about (see
@@ -254,20 +294,23 @@ class ScpiInstrument:
                 entries.append(entry)
         return entries
 
-    def configure(self, steps: list[tuple[str, dict]], wait_s: float | None = None) -> None:
+    def configure(self, steps: list[tuple[str, dict]], wait_s: float | None = None, sent: bool = False) -> None:
         """Run (operation, fields) steps in order, wait for *OPC? if `wait_s` is given (s), then
         drain the error queue. Under supervision, steps that left errors are sent again, as often
-        as the policy retries."""
+        as the policy retries. sent: the steps were written already (call_many); the first
+        attempt only waits and reads the errors."""
         attempts = 1
         if self.supervision is not None and not self._restoring:
             attempts += self.supervision.policy.retries
         wait = [("wait_complete", {})] if wait_s is not None else []
         for attempt in range(attempts):
-            replies = self.call_many([*steps, *wait], wait_s)
+            # The error queue's first entry on the same line where the dialect joins.
+            todo = [] if sent and attempt == 0 else steps
+            *replies, first = self.call_many([*todo, *wait, ("next_error", {})], wait_s)
             if wait and replies[-1] != 1:
                 raise InstrumentError(f"{self.label}: wait_complete replied {replies[-1]}; expected 1")
             try:
-                self.check_errors()
+                self.check_errors(first)
                 return
             except ScpiErrors:
                 if attempt == attempts - 1:
@@ -326,6 +369,7 @@ class ScpiInstrument:
             self.resource = handle
             self._idn = self._idn or idn
             self.epoch += 1
+            self._unchecked = True  # a rebooted instrument may hold entries of its own
             self._restoring = True
             try:
                 for hook in self._restore_hooks:

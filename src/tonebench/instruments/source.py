@@ -49,6 +49,7 @@ class SignalSource(RoleDriver):
         # Frequency and power known to be in force (sent and *OPC? answered): only changes are
         # sent. Unknown (None) after a failed command; restore() sends everything again.
         self._in_force = SourceState()
+        self._unfinished: list[tuple[str, dict]] | None = None  # sent by start_tone, not yet waited for
         instrument.add_restore_hook(self.restore)
 
     def _wait_s(self) -> float:
@@ -56,6 +57,27 @@ class SignalSource(RoleDriver):
 
     def set_tone(self, freq_hz: float, power_dbm: float) -> None:
         """Set frequency and power; returns once the source reports them in force (*OPC?)."""
+        steps = self._changed_tone(freq_hz, power_dbm)
+        if steps:
+            self._configure_tone(steps)
+
+    def start_tone(self, freq_hz: float, power_dbm: float) -> bool:
+        """Check frequency and power against the limits and send what changed, without waiting
+        for *OPC?, then read the RF state on the same line: its reply says the source has taken
+        the settings, so another source set next settles at the same time (a write alone could
+        still be unread when that one's *OPC? is answered). Returns whether anything was sent;
+        if so, finish_tone() must follow before the tone is used."""
+        steps = self._changed_tone(freq_hz, power_dbm)
+        self._unfinished = steps or None
+        if not steps:
+            return False
+        self._in_force = SourceState()  # not known until its *OPC? answers
+        self.instrument.call_many([*steps, ("read_rf", {})])
+        return True
+
+    def _changed_tone(self, freq_hz: float, power_dbm: float) -> list[tuple[str, dict]]:
+        """Frequency and power checked against the source's range and the run's power guard,
+        recorded as wanted; the steps that change what is in force."""
         name = self.instrument.dialect.name
         if not self.min_freq_hz <= freq_hz <= self.max_freq_hz:
             raise LimitError(
@@ -71,17 +93,21 @@ class SignalSource(RoleDriver):
         if self.power_guard is not None:
             self.power_guard(self.label, freq_hz, power_dbm)
         self.wanted = replace(self.wanted, freq_hz=freq_hz, power_dbm=power_dbm)
-        steps = [(operation, {field: value}) for operation, field, value, before in (
-                 ("set_frequency", "freq_hz", freq_hz, self._in_force.freq_hz),
-                 ("set_power", "power_dbm", power_dbm, self._in_force.power_dbm)) if value != before]
-        if steps:
-            # Nothing orders commands across instruments: only this source's own *OPC? tells the
-            # analyzer that the new power is in force (design section 5).
-            self._configure_tone(steps)
+        return [(operation, {field: value}) for operation, field, value, before in (
+                ("set_frequency", "freq_hz", freq_hz, self._in_force.freq_hz),
+                ("set_power", "power_dbm", power_dbm, self._in_force.power_dbm)) if value != before]
 
-    def _configure_tone(self, steps: list[tuple[str, dict]]) -> None:
+    def finish_tone(self) -> None:
+        """Wait for the source's *OPC? after start_tone (and read its error queue, on the same
+        line where the dialect joins). Nothing orders commands across instruments: only this
+        source's own *OPC? tells the analyzer that the new power is in force (design section 5)."""
+        steps, self._unfinished = self._unfinished, None
+        if steps is not None:
+            self._configure_tone(steps, sent=True)
+
+    def _configure_tone(self, steps: list[tuple[str, dict]], sent: bool = False) -> None:
         try:
-            self.instrument.configure(steps, wait_s=self._wait_s())
+            self.instrument.configure(steps, wait_s=self._wait_s(), sent=sent)
         except BaseException:
             self._in_force = SourceState()
             raise

@@ -2,12 +2,16 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from tonebench.errors import InputError
 from tonebench.units import format_freq
+
+
+# Bound on the scalar cache (a calibration sweep may ask thousands of frequencies once each).
+MAX_CACHED_FREQS = 4096
 
 
 @dataclass(frozen=True)
@@ -18,6 +22,8 @@ class LossTable:
     freqs_hz: np.ndarray
     losses_db: np.ndarray
     origin: str
+    # Scalar losses already interpolated: a run asks the same few frequencies at every point.
+    _scalar_db: dict[float, float] = field(default_factory=dict, init=False, repr=False, compare=False)
 
     @classmethod
     def from_rows(cls, path: str, rows, origin: str) -> LossTable:
@@ -26,6 +32,16 @@ class LossTable:
 
     def loss_db(self, freq_hz):
         """Interpolated loss at freq_hz (scalar or array). Never extrapolates."""
+        if type(freq_hz) is float:
+            loss_db = self._scalar_db.get(freq_hz)
+            if loss_db is None:
+                if len(self._scalar_db) >= MAX_CACHED_FREQS:
+                    self._scalar_db.clear()
+                loss_db = self._scalar_db[freq_hz] = self._interpolated_db(freq_hz)
+            return loss_db
+        return self._interpolated_db(freq_hz)
+
+    def _interpolated_db(self, freq_hz):
         freqs_hz = np.asarray(freq_hz, dtype=float)
         lowest_hz, highest_hz = self.freqs_hz[0], self.freqs_hz[-1]
         # A tolerance of 1 Hz keeps rounding in f1/f2 arithmetic from tripping an exact edge.

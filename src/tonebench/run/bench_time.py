@@ -1,9 +1,10 @@
 """How long a plan keeps the bench busy, predicted before anything is switched on.
 
 Bench time is the instruments' own time: analyzer sweeps (the dialect's sweep-time model, k *
-span / RBW^2, or k * span / (RBW * VBW) with the VBW narrower, with the bench file's override of k), source settling (the source dialect's
-settle_time_s, once per source per point: each waits for its own *OPC?), gate changes (ramp and
-settle), and the chamber's way to each new temperature: the ramp at the bench file's
+span / RBW^2, or k * span / (RBW * VBW) with the VBW narrower, with the bench file's override
+of k), source settling (the source dialects' settle_time_s, the longer of the two once per
+point: both are set, then each *OPC? waited for, so they settle at the same time), gate changes
+(ramp and settle), and the chamber's way to each new temperature: the ramp at the bench file's
 ramp_c_per_min (from ROOM_C for the first; left out, none) and the dwell. Software and command
 latency are not in it.
 
@@ -141,7 +142,7 @@ def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: Bench
         tone_sweeps, product_sweeps = 0, tone_sweeps + product_sweeps
     longest_s = max(product_times, default=0.0)
     shortest_s = min(product_times, default=0.0)
-    settle_s = sum(dialects[role].performance.get("settle_time_s", DEFAULT_SETTLE_TIME_S)
+    settle_s = max(dialects[role].performance.get("settle_time_s", DEFAULT_SETTLE_TIME_S)
                    for role in ("source1", "source2")) * len(todo)
     bias_s, soak_s = 0.0, 0.0
     if bench.bias is not None:

@@ -400,8 +400,13 @@ class Sequencer:
         # Checked again here, right before each command, not only in the pre-flight check.
         check_source_power(self.bench.source_ranges[0], settings_dbm[0], point.key)
         check_source_power(self.bench.source_ranges[1], settings_dbm[1], point.key)
-        self.bench.source1.set_tone(point.f1_hz, settings_dbm[0])
-        self.bench.source2.set_tone(point.f2_hz, settings_dbm[1])
+        # Source 1 takes its settings, source 2 is set and waited for, then source 1's *OPC?:
+        # the two settle at the same time (one settle time per point, not two).
+        if self.bench.source1.start_tone(point.f1_hz, settings_dbm[0]):
+            self.bench.source2.set_tone(point.f2_hz, settings_dbm[1])
+            self.bench.source1.finish_tone()
+        else:
+            self.bench.source2.set_tone(point.f2_hz, settings_dbm[1])
 
     def _source_settings_dbm(self, point: PlannedPoint) -> tuple[float, float]:
         """Both open-loop settings, each plus its tone's leveling correction when leveled."""
