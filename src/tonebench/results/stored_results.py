@@ -9,14 +9,20 @@ import sqlalchemy as sa
 from sqlalchemy import delete, select
 from sqlalchemy.orm import Session, selectinload, sessionmaker
 
-from tonebench.analysis.assess import (
-    SweepAssessment,
-)
+from tonebench.analysis.assess import SweepAssessment, assess_sweep
 from tonebench.catalog.limits import apply_verdicts
 from tonebench.errors import InputError
-from tonebench.results.sweeps import analysis_points, assessed_sweeps, referral_tables
+from tonebench.results.batch_pool import AnalysedBatch, analysed_batches
+from tonebench.results.sweeps import (
+    analysis_points,
+    analysis_settings,
+    assessed_sweeps,
+    batch_sweeps,
+    referral_tables,
+)
 from tonebench.store.lookups import find_run
 from tonebench.store.models import (
+    CalibrationSet,
     Device,
     Point,
     PointFlag,
@@ -93,42 +99,69 @@ def analyze_runs(sessions: sessionmaker, run_guids: list[str], cal_name: str | N
     read in one query with only the analysis columns, results and flags written with bulk
     inserts, verdicts judged once per batch. Returns the number of results stored;
     on_progress(done, total) after each run."""
-    stored = 0
-    for first in range(0, len(run_guids), RUNS_PER_TRANSACTION):
-        batch = run_guids[first:first + RUNS_PER_TRANSACTION]
-        with sessions.begin() as session:
-            by_guid = {run.guid: run for run in session.scalars(select(Run).where(Run.guid.in_(batch)))}
-            missing = [guid for guid in batch if guid not in by_guid]
-            if missing:
-                raise InputError(f"run '{missing[0]}': no run with that GUID in this database (see `tonebench runs`)")
-            runs = [by_guid[guid] for guid in batch]
-            run_ids = [run.id for run in runs]
-            points = analysis_points(session, run_ids)
-            _forget_analysis(session, run_ids)
-            results, point_flags, result_flags = [], [], []
-            for done, run in enumerate(runs, start=first + 1):
-                set_id, tables = referral_tables(session, run, cal_name, points[run.id])
-                for group, stored_rows, _arrays, a in assessed_sweeps(session, run, set_id, tables, points[run.id]):
-                    for row, flags in zip(stored_rows, a.point_flags):
-                        point_flags += (_flag_values(f, point_id=row.id) for f in flags)
-                    results.append(_result_values(run.id, group, a, set_id))
-                    result_flags.append([_flag_values(f) for f in a.result_flags])
+    batches = [run_guids[first:first + RUNS_PER_TRANSACTION] for first in range(0, len(run_guids), RUNS_PER_TRANSACTION)]
+    stored = done = 0
+    with analysed_batches(sessions, batches, cal_name) as analysed:
+        for batch in analysed:
+            with sessions.begin() as session:
+                stored += _store_batch(session, batch)
+            for _ in batch.run_ids:
+                done += 1
                 if on_progress is not None:
                     on_progress(done, len(run_guids))
-            # Core inserts of whole rows: one statement per table (the ORM's bulk insert splits
-            # rows by which values are None, one statement each).
-            if results:
-                table = Result.__table__
-                ids = session.scalars(sa.insert(table).returning(table.c.id, sort_by_parameter_order=True), results)
-                result_flags = [{**f, "result_id": result_id} for result_id, flags in zip(ids, result_flags)
-                                for f in flags]
-            for cls, rows in ((PointFlag, point_flags), (ResultFlag, result_flags)):
-                if rows:
-                    session.execute(sa.insert(cls.__table__), rows)
-            # Spec-limit verdicts belong to the results just stored (design: stored per result).
-            apply_verdicts(session, run_ids=run_ids)
-            stored += len(results)
     return stored
+
+
+def analyse_batch(session: Session, guids: list[str], cal_name: str | None) -> AnalysedBatch:
+    """Read and assess the runs of one batch (nothing written); InputError for an unknown GUID."""
+    by_guid = {run.guid: run for run in session.scalars(select(Run).where(Run.guid.in_(guids)))}
+    missing = [guid for guid in guids if guid not in by_guid]
+    if missing:
+        raise InputError(f"run '{missing[0]}': no run with that GUID in this database (see `tonebench runs`)")
+    runs = [by_guid[guid] for guid in guids]
+    batch = AnalysedBatch([run.id for run in runs], [], [], [])
+
+    def add(run_id, group, point_ids, a, set_id):
+        for point_id, flags in zip(point_ids, a.point_flags):
+            batch.point_flags.extend(_flag_values(f, point_id=point_id) for f in flags)
+        batch.results.append(_result_values(run_id, group, a, set_id))
+        batch.result_flags.append([_flag_values(f) for f in a.result_flags])
+
+    if cal_name is None:
+        # As stored: the whole batch's points built into arrays at once (results/sweeps.py).
+        sweeps = batch_sweeps(session, batch.run_ids)
+        for run in runs:
+            set_id = run.calibration_set_id
+            cal = session.get(CalibrationSet, set_id) if set_id is not None else None
+            for sweep in sweeps[run.id]:
+                settings = analysis_settings(run, cal, sweep.group["center_hz"], sweep.group["spacing_hz"])
+                add(run.id, sweep.group, sweep.point_ids, assess_sweep(sweep.data, settings), set_id)
+        return batch
+    points = analysis_points(session, batch.run_ids)
+    for run in runs:
+        set_id, tables = referral_tables(session, run, cal_name, points[run.id])
+        for group, stored_rows, _arrays, a in assessed_sweeps(session, run, set_id, tables, points[run.id]):
+            add(run.id, group, [row.id for row in stored_rows], a, set_id)
+    return batch
+
+
+def _store_batch(session: Session, batch: AnalysedBatch) -> int:
+    """Replace the batch's runs' results and flags with the analysed ones; judge their verdicts."""
+    _forget_analysis(session, batch.run_ids)
+    result_flags = []
+    # Core inserts of whole rows: one statement per table (the ORM's bulk insert splits
+    # rows by which values are None, one statement each).
+    if batch.results:
+        table = Result.__table__
+        ids = session.scalars(sa.insert(table).returning(table.c.id, sort_by_parameter_order=True), batch.results)
+        result_flags = [{**f, "result_id": result_id} for result_id, flags in zip(ids, batch.result_flags)
+                        for f in flags]
+    for cls, rows in ((PointFlag, batch.point_flags), (ResultFlag, result_flags)):
+        if rows:
+            session.execute(sa.insert(cls.__table__), rows)
+    # Spec-limit verdicts belong to the results just stored (design: stored per result).
+    apply_verdicts(session, run_ids=batch.run_ids)
+    return len(batch.results)
 
 
 def _forget_analysis(session: Session, run_ids: list[int]) -> None:

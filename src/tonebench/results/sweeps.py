@@ -93,6 +93,64 @@ def analysis_points(session: Session, run_ids: list[int]) -> dict[int, list[Stor
     return per_run
 
 
+# Re-analysis as stored reads each batch's points into one float matrix: the numeric columns
+# (group axes first), with the row id, run id, overload and extra_json kept as Python values.
+_MATRIX_FIELDS = tuple(name for name in ANALYSIS_FIELDS if name not in ("extra_json", "overload"))
+_COLUMN = {name: i for i, name in enumerate(_MATRIX_FIELDS)}
+
+
+@dataclass(frozen=True)
+class BatchSweep:
+    """One sweep of a batch read for re-analysis as stored: its value on every group axis, its
+    points' row ids (tone power up) and the analysis input."""
+
+    group: dict[str, float | None]
+    point_ids: list[int]
+    data: SweepData
+
+
+def batch_sweeps(session: Session, run_ids: list[int]) -> dict[int, list[BatchSweep]]:
+    """Per run id, its sweeps as stored (no re-referral), from one query for all the runs.
+
+    The same values as point_sweeps + sweep_data, built column by column for the whole batch
+    instead of point by point (a float column of NaN for None; overload False for None)."""
+    fields = ("extra_json", "overload", *_MATRIX_FIELDS)
+    columns = [Point.id, Point.run_id, *(getattr(Point, name) for name in fields)]
+    rows = [tuple(row) for row in session.execute(
+        select(*columns).where(Point.run_id.in_(run_ids), Point.status == "measured")
+        .order_by(Point.run_id, *_SWEEP_ORDER))]
+    per_run: dict[int, list[BatchSweep]] = {run_id: [] for run_id in run_ids}
+    if not rows:
+        return per_run
+    first = 4  # id, run_id, extra_json, overload
+    matrix = np.array([row[first:] for row in rows], dtype=float)
+    # Column-major so that each sweep's slice of a column is contiguous, as its own array was.
+    cols = {name: np.ascontiguousarray(matrix[:, i]) for name, i in _COLUMN.items()}
+    cols["overload"] = np.array([bool(row[3]) for row in rows], dtype=bool)
+    for name in EXTRA_ARRAYS:
+        cols[name] = _nan_array((row[2] or {}).get(name) for row in rows)
+    # A second-order product's noise floor has the same output loss as the product (sweep_data).
+    noise = {side: cols[f"raw_noise_{side}_dbm"] + cols[f"im2_{side}_dbm"] - cols[f"raw_{side}_dbm"]
+             for side in ("diff", "sum")}
+    group_at = [first + _COLUMN[name] for name in GROUP_FIELDS]
+
+    def sweep_of(row):
+        return row[1], tuple(row[i] for i in group_at)
+
+    start = 0
+    for (run_id, key), members in groupby(rows, key=sweep_of):
+        stop = start + sum(1 for _ in members)
+        part = slice(start, stop)
+        data = SweepData(
+            **{name: cols[name][part] for name in (*POINT_ARRAYS, *RAW_ARRAYS)},
+            raw_noise_lower_step_dbm=cols["raw_noise_lower_step_dbm"][part],
+            raw_noise_upper_step_dbm=cols["raw_noise_upper_step_dbm"][part],
+            noise_diff_dbm=noise["diff"][part], noise_sum_dbm=noise["sum"][part])
+        per_run[run_id].append(BatchSweep(dict(zip(GROUP_FIELDS, key)), [row[0] for row in rows[part]], data))
+        start = stop
+    return per_run
+
+
 def rereferred(point: PointRecord | Point, tables: dict[str, LossTable]) -> dict[str, float | None]:
     """The point's DUT-referred values with another set's path losses, from its raw readings."""
     offsets = point_offsets(tables, point.f1_hz, point.f2_hz, second_order=point.raw_diff_dbm is not None)
