@@ -58,6 +58,24 @@ class SweepResult:
     point_iip3_dbm: np.ndarray | None = None
 
 
+def mean_of(values: np.ndarray):
+    """np.mean of a 1-D float array, bit for bit (the same sum over the count), without its
+    Python-level overhead: the assessment takes a few dozen means per sweep."""
+    if values.size == 0 or values.dtype != np.float64:
+        return np.mean(values)
+    return np.add.reduce(values) / values.size
+
+
+def median_of(values: np.ndarray) -> float:
+    """np.median of a short 1-D float array, bit for bit: the middle value, or the mean of the two
+    middle ones as (a + b) / 2 (NaN when any value is NaN), without np.median's overhead."""
+    ordered = np.sort(values)
+    if ordered.size == 0 or np.isnan(ordered[-1]):
+        return float(np.median(values))
+    mid = ordered.size // 2
+    return float(ordered[mid] if ordered.size % 2 else (ordered[mid - 1] + ordered[mid]) / 2.0)
+
+
 def noise_corrected_dbm(reading_dbm, noise_dbm) -> tuple[np.ndarray, np.ndarray]:
     """Remove the noise power N (dBm, same analyzer settings) from a reading R (dBm).
 
@@ -87,7 +105,7 @@ def small_signal_gain_db(tone_dbm, gain_db, usable) -> float | None:
     if idx.size == 0:
         return None
     lowest = idx[np.argsort(np.asarray(tone_dbm, dtype=float)[idx], kind="stable")]
-    return float(np.median(np.asarray(gain_db)[lowest[:SMALL_SIGNAL_POINTS]]))
+    return median_of(np.asarray(gain_db, dtype=float)[lowest[:SMALL_SIGNAL_POINTS]])
 
 
 # Scatter of one point's intercept at high signal-to-noise: the analyzer's reading repeatability
@@ -115,10 +133,10 @@ def high_order_top(pin_dbm, point_iip3_dbm, point_sigma_db, valid) -> np.ndarray
     keep_min = max(MIN_VALID_POINTS, (idx.size + 1) // 2)
     while idx.size > keep_min:
         top, rest = idx[-1], idx[:-1]
-        rest_sigma = np.sqrt(np.sum(sigma[rest] ** 2)) / rest.size
+        rest_sigma = np.sqrt(np.add.reduce(sigma[rest] ** 2)) / rest.size
         if not np.isfinite(rest_sigma):
             break
-        if abs(values[top] - np.mean(values[rest])) <= HIGH_ORDER_COVERAGE * math.hypot(sigma[top], rest_sigma):
+        if abs(values[top] - mean_of(values[rest])) <= HIGH_ORDER_COVERAGE * math.hypot(sigma[top], rest_sigma):
             break
         out[top] = True
         idx = rest
@@ -170,7 +188,7 @@ def _line(x, y, valid, spread: bool) -> tuple[float, float] | None:
     if not spread:
         return None
     x, y = np.asarray(x, dtype=float), y[valid]
-    x_mean, y_mean = x.mean(), y.mean()
+    x_mean, y_mean = mean_of(x), mean_of(y)
     dx = x - x_mean
     slope = float(dx @ (y - y_mean) / (dx @ dx))
     return slope, float(y_mean - slope * x_mean)
@@ -312,10 +330,10 @@ def fit_sweep(
                            slope_fundamental=None, slope_im3_lower=None, slope_im3_upper=None,
                            reason=_refusal_reason(n_valid, n_points, causes, gss is None), **common)
 
-    iip3_lower = float(pts.iip3_lower_dbm[valid].mean())
-    iip3_upper = float(pts.iip3_upper_dbm[valid].mean())
-    oip3_lower = float(pts.oip3_lower_dbm[valid].mean())
-    oip3_upper = float(pts.oip3_upper_dbm[valid].mean())
+    iip3_lower = float(mean_of(pts.iip3_lower_dbm[valid]))
+    iip3_upper = float(mean_of(pts.iip3_upper_dbm[valid]))
+    oip3_lower = float(mean_of(pts.oip3_lower_dbm[valid]))
+    oip3_upper = float(mean_of(pts.oip3_upper_dbm[valid]))
     x = pin_mean[valid]
     spread = bool(np.ptp(x) > 0)  # a slope needs at least two distinct input powers
     return SweepResult(
