@@ -131,9 +131,11 @@ class DistortionCheck:
     notes: tuple[str, ...]
 
 
-def check_distortion(a: dict[str, np.ndarray], mixer_toi_dbm: float | None, noisy: np.ndarray) -> DistortionCheck:
-    """Flag the points whose IM3 the analyzer may have made (step check or prediction)."""
-    judged = judge_steps(a)
+def check_distortion(a: dict[str, np.ndarray], mixer_toi_dbm: float | None, noisy: np.ndarray,
+                     judged: dict[str, StepJudgement] | None = None) -> DistortionCheck:
+    """Flag the points whose IM3 the analyzer may have made (step check or prediction); judged:
+    judge_steps of these points when computed already."""
+    judged = judge_steps(a) if judged is None else judged
     toi_step, toi_eff = effective_mixer_toi_dbm(a, judged, mixer_toi_dbm)
     share = analyzer_share(a, judged, toi_eff, noisy)
     step_change = np.fmax(np.abs(judged["lower"].change_db), np.abs(judged["upper"].change_db))

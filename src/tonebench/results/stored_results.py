@@ -9,7 +9,7 @@ import sqlalchemy as sa
 from sqlalchemy import delete, select
 from sqlalchemy.orm import Session, selectinload, sessionmaker
 
-from tonebench.analysis.assess import SweepAssessment, assess_sweep
+from tonebench.analysis.assess import SweepAssessment, assess_sweeps
 from tonebench.catalog.limits import apply_verdicts
 from tonebench.errors import InputError
 from tonebench.results.batch_pool import AnalysedBatch, analysed_batches
@@ -129,13 +129,18 @@ def analyse_batch(session: Session, guids: list[str], cal_name: str | None) -> A
 
     if cal_name is None:
         # As stored: the whole batch's points built into arrays at once (results/sweeps.py).
-        sweeps = batch_sweeps(session, batch.run_ids)
-        for run in runs:
-            set_id = run.calibration_set_id
-            cal = session.get(CalibrationSet, set_id) if set_id is not None else None
-            for sweep in sweeps[run.id]:
-                settings = analysis_settings(run, cal, sweep.group["center_hz"], sweep.group["spacing_hz"])
-                add(run.id, sweep.group, sweep.point_ids, assess_sweep(sweep.data, settings), set_id)
+        data, sweeps = batch_sweeps(session, batch.run_ids)
+        if data is None:
+            return batch
+        run_of = {run.id: run for run in runs}
+        position = {run.id: i for i, run in enumerate(runs)}
+        sweeps.sort(key=lambda s: position[s.run_id])  # results stored in the batch's run order (stable)
+        cals = {set_id: session.get(CalibrationSet, set_id) for set_id in {run.calibration_set_id for run in runs}
+                if set_id is not None}
+        settings = [analysis_settings(run_of[s.run_id], cals.get(run_of[s.run_id].calibration_set_id),
+                                      s.group["center_hz"], s.group["spacing_hz"]) for s in sweeps]
+        for sweep, a in zip(sweeps, assess_sweeps(data, [s.points for s in sweeps], settings)):
+            add(sweep.run_id, sweep.group, sweep.point_ids, a, run_of[sweep.run_id].calibration_set_id)
         return batch
     points = analysis_points(session, batch.run_ids)
     for run in runs:

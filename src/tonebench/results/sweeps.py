@@ -101,16 +101,18 @@ _COLUMN = {name: i for i, name in enumerate(_MATRIX_FIELDS)}
 
 @dataclass(frozen=True)
 class BatchSweep:
-    """One sweep of a batch read for re-analysis as stored: its value on every group axis, its
-    points' row ids (tone power up) and the analysis input."""
+    """One sweep of a batch read for re-analysis as stored: its run, its value on every group axis,
+    its points' row ids (tone power up) and its slice of the batch's points."""
 
+    run_id: int
     group: dict[str, float | None]
     point_ids: list[int]
-    data: SweepData
+    points: slice
 
 
-def batch_sweeps(session: Session, run_ids: list[int]) -> dict[int, list[BatchSweep]]:
-    """Per run id, its sweeps as stored (no re-referral), from one query for all the runs.
+def batch_sweeps(session: Session, run_ids: list[int]) -> tuple[SweepData | None, list[BatchSweep]]:
+    """The runs' measured points as stored (no re-referral), from one query: the analysis input of
+    all of them back to back (None without points) and each sweep's slice, run by run.
 
     The same values as point_sweeps + sweep_data, built column by column for the whole batch
     instead of point by point (a float column of NaN for None; overload False for None)."""
@@ -119,9 +121,8 @@ def batch_sweeps(session: Session, run_ids: list[int]) -> dict[int, list[BatchSw
     rows = [tuple(row) for row in session.execute(
         select(*columns).where(Point.run_id.in_(run_ids), Point.status == "measured")
         .order_by(Point.run_id, *_SWEEP_ORDER))]
-    per_run: dict[int, list[BatchSweep]] = {run_id: [] for run_id in run_ids}
     if not rows:
-        return per_run
+        return None, []
     first = 4  # id, run_id, extra_json, overload
     matrix = np.array([row[first:] for row in rows], dtype=float)
     # Column-major so that each sweep's slice of a column is contiguous, as its own array was.
@@ -132,23 +133,22 @@ def batch_sweeps(session: Session, run_ids: list[int]) -> dict[int, list[BatchSw
     # A second-order product's noise floor has the same output loss as the product (sweep_data).
     noise = {side: cols[f"raw_noise_{side}_dbm"] + cols[f"im2_{side}_dbm"] - cols[f"raw_{side}_dbm"]
              for side in ("diff", "sum")}
+    data = SweepData(**{name: cols[name] for name in (*POINT_ARRAYS, *RAW_ARRAYS)},
+                     raw_noise_lower_step_dbm=cols["raw_noise_lower_step_dbm"],
+                     raw_noise_upper_step_dbm=cols["raw_noise_upper_step_dbm"],
+                     noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
     group_at = [first + _COLUMN[name] for name in GROUP_FIELDS]
 
     def sweep_of(row):
         return row[1], tuple(row[i] for i in group_at)
 
-    start = 0
+    sweeps, start = [], 0
     for (run_id, key), members in groupby(rows, key=sweep_of):
         stop = start + sum(1 for _ in members)
-        part = slice(start, stop)
-        data = SweepData(
-            **{name: cols[name][part] for name in (*POINT_ARRAYS, *RAW_ARRAYS)},
-            raw_noise_lower_step_dbm=cols["raw_noise_lower_step_dbm"][part],
-            raw_noise_upper_step_dbm=cols["raw_noise_upper_step_dbm"][part],
-            noise_diff_dbm=noise["diff"][part], noise_sum_dbm=noise["sum"][part])
-        per_run[run_id].append(BatchSweep(dict(zip(GROUP_FIELDS, key)), [row[0] for row in rows[part]], data))
+        sweeps.append(BatchSweep(run_id, dict(zip(GROUP_FIELDS, key)), [row[0] for row in rows[start:stop]],
+                                 slice(start, stop)))
         start = stop
-    return per_run
+    return data, sweeps
 
 
 def rereferred(point: PointRecord | Point, tables: dict[str, LossTable]) -> dict[str, float | None]:
