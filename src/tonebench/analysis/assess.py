@@ -15,7 +15,7 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bound_db
-from tonebench.analysis.sweep_fit import SweepResult
+from tonebench.analysis.sweep_fit import FitPoints, SweepResult
 from tonebench.analysis.flags import Flag
 from tonebench.analysis.intercepts import point_intercepts
 from tonebench.analysis.intercepts import PointIntercepts
@@ -25,6 +25,7 @@ from tonebench.analysis.point_checks import (
     check_imbalance,
     check_noise,
     check_overload,
+    mean_pair,
     mixer_level_dbm,
     noise_values,
     sliced,
@@ -139,7 +140,7 @@ class _PointSteps:
     noise values, per-point intercepts, mixer level and the attenuation-step check."""
 
     noise: NoiseCheck
-    pts: PointIntercepts
+    fit: FitPoints  # its IM3 are the noise values', its intercepts the points' own
     mixer_dbm: np.ndarray
     judged: dict[str, StepJudgement]
 
@@ -148,10 +149,16 @@ class _PointSteps:
         noise = noise_values(a)
         pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
                                noise.lower_dbm, noise.upper_dbm)
-        return cls(noise, pts, mixer_level_dbm(a["raw_f1_dbm"], a["raw_f2_dbm"], a["atten_db"]), judge_steps(a))
+        # The fit's point-by-point values (sweep_fit.fit_points), from the same noise correction.
+        fit = FitPoints(noise.lower_dbm, noise.upper_dbm, pts, mean_pair(a["pin1_dbm"], a["pin2_dbm"]),
+                        mean_pair(a["pout_f1_dbm"], a["pout_f2_dbm"]))
+        return cls(noise, fit, mixer_level_dbm(a["raw_f1_dbm"], a["raw_f2_dbm"], a["atten_db"]), judge_steps(a))
 
     def part(self, points: slice) -> _PointSteps:
-        return _PointSteps(sliced(self.noise, points), sliced(self.pts, points), self.mixer_dbm[points],
+        fit = self.fit
+        fit = FitPoints(fit.im3_lower_dbm[points], fit.im3_upper_dbm[points], sliced(fit.pts, points),
+                        fit.pin_mean_dbm[points], fit.pout_mean_dbm[points])
+        return _PointSteps(sliced(self.noise, points), fit, self.mixer_dbm[points],
                            {side: sliced(j, points) for side, j in self.judged.items()})
 
 
@@ -176,14 +183,14 @@ def assess_sweeps(data: SweepData, sweeps: list[slice], settings: list[AnalysisS
 
 def _assess(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointSteps) -> SweepAssessment:
     noise = check_noise(a, steps.noise)
-    pts = steps.pts
+    pts = steps.fit.pts
     overload = check_overload(a, settings.max_mixer_dbm, steps.mixer_dbm)
     over = overload.over
     distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged)
     analyzer_flag = distortion.share.flagged
     source = check_source_intermod(a, settings, noise.lower_dbm, noise.upper_dbm, pts.gain_db)
     imbalance = check_imbalance(a)
-    region = fit_valid_region(a, over, analyzer_flag, noise.error_db)
+    region = fit_valid_region(a, over, analyzer_flag, noise.error_db, steps.fit)
     fit = region.fit
     compression = check_compression(pts.gain_db, fit.gain_db, over)
 

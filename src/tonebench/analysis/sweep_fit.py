@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tonebench.analysis.compression import p1db
-from tonebench.analysis.intercepts import point_intercepts
+from tonebench.analysis.intercepts import PointIntercepts, point_intercepts
 from tonebench.errors import InputError
 
 MIN_VALID_POINTS = 3
@@ -143,13 +143,13 @@ def high_order_top(pin_dbm, point_iip3_dbm, point_sigma_db, valid) -> np.ndarray
     return out
 
 
-_FIT_INPUTS = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
+FIT_INPUTS = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
                "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm")
 
 
 def _checked_arrays(values: tuple, overload) -> dict[str, np.ndarray]:
     """The inputs as float arrays by name (overload as bool), each 1-D with one value per point."""
-    arrays = {name: np.asarray(v, dtype=float) for name, v in zip(_FIT_INPUTS, values)}
+    arrays = {name: np.asarray(v, dtype=float) for name, v in zip(FIT_INPUTS, values)}
     arrays["overload"] = np.asarray(overload, dtype=bool)
     n_points = arrays["tone_dbm"].size
     for name, arr in arrays.items():
@@ -205,10 +205,13 @@ def free_iip3_dbm(x, valid, pout_mean, im3_lower, im3_upper, spread: bool) -> fl
     The fundamental s1 x + c1 meets each IM3 line s3 x + c3 at x = (c1 - c3)/(s3 - s1); None
     unless both IM3 lines are steeper than the fundamental.
     """
+    return _free_iip3_dbm(*(_line(x, y, valid, spread) for y in (pout_mean, im3_lower, im3_upper)))
+
+
+def _free_iip3_dbm(fundamental, lower, upper) -> float | None:
+    """free_iip3_dbm from the three fitted lines ((slope, offset) or None)."""
     free = []
-    fundamental = _line(x, pout_mean, valid, spread)
-    for im3 in (im3_lower, im3_upper):
-        third = _line(x, im3, valid, spread)
+    for third in (lower, upper):
         if fundamental is not None and third is not None and third[0] - fundamental[0] > 0:
             free.append((fundamental[1] - third[1]) / (third[0] - fundamental[0]))
     return float(np.mean(free)) if len(free) == 2 else None
@@ -231,7 +234,7 @@ def _valid_region(a: dict[str, np.ndarray], point_gain_db, excluded) -> _Region:
     GAIN_TOLERANCE_DB of it, no overload and not excluded. Each cause is counted on its own."""
     n_points = a["tone_dbm"].size
     over = a["overload"]
-    finite = np.all([np.isfinite(a[n]) for n in _FIT_INPUTS[:7]], axis=0)
+    finite = np.all([np.isfinite(a[n]) for n in FIT_INPUTS[:7]], axis=0)
     gss = small_signal_gain_db(a["tone_dbm"], point_gain_db, finite & ~over)
     noisy = ~((a["im3_lower_dbm"] - a["noise_lower_dbm"] >= IM3_OVER_NOISE_MIN_DB)
               & (a["im3_upper_dbm"] - a["noise_upper_dbm"] >= IM3_OVER_NOISE_MIN_DB))
@@ -254,7 +257,7 @@ def exclusion_reasons(arrays: dict[str, np.ndarray], valid_mask) -> list[str | N
     excluded by a later step (the analyzer's own IM3, higher-order terms: see its flags).
 
     arrays: the fit's inputs by name (tone_dbm ... noise_upper_dbm, overload), as fit_sweep takes them."""
-    a = _checked_arrays(tuple(arrays[name] for name in _FIT_INPUTS), arrays["overload"])
+    a = _checked_arrays(tuple(arrays[name] for name in FIT_INPUTS), arrays["overload"])
     im3_lower, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
     im3_upper, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
     pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"], im3_lower, im3_upper)
@@ -294,14 +297,38 @@ def fit_sweep(
     """
     a = _checked_arrays((tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm,
                          im3_upper_dbm, noise_lower_dbm, noise_upper_dbm), overload)
-    n_points = a["tone_dbm"].size
-    over = a["overload"]
+    return fit_with_points(a, fit_points(a), exclude)
+
+
+@dataclass(frozen=True)
+class FitPoints:
+    """What fit_sweep works out point by point before it reduces: the noise-corrected IM3 (dBm),
+    the per-point intercepts, and the mean input and output tone (dBm). Point by point, so it
+    may be worked out for many sweeps at once and sliced."""
+
+    im3_lower_dbm: np.ndarray
+    im3_upper_dbm: np.ndarray
+    pts: PointIntercepts
+    pin_mean_dbm: np.ndarray
+    pout_mean_dbm: np.ndarray
+
+
+def fit_points(a: dict[str, np.ndarray]) -> FitPoints:
     im3_lower, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
     im3_upper, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
     pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
                            im3_lower, im3_upper)
-    pin_mean = (a["pin1_dbm"] + a["pin2_dbm"]) / 2.0
-    pout_mean = (a["pout_f1_dbm"] + a["pout_f2_dbm"]) / 2.0
+    return FitPoints(im3_lower, im3_upper, pts, (a["pin1_dbm"] + a["pin2_dbm"]) / 2.0,
+                     (a["pout_f1_dbm"] + a["pout_f2_dbm"]) / 2.0)
+
+
+def fit_with_points(a: dict[str, np.ndarray], points: FitPoints,
+                    exclude: dict[str, np.ndarray] | None = None) -> SweepResult:
+    """fit_sweep's reductions over checked arrays (FIT_INPUTS and overload) and their FitPoints."""
+    n_points = a["tone_dbm"].size
+    over = a["overload"]
+    im3_lower, im3_upper, pts = points.im3_lower_dbm, points.im3_upper_dbm, points.pts
+    pin_mean, pout_mean = points.pin_mean_dbm, points.pout_mean_dbm
     region = _valid_region(a, pts.gain_db, _excluded_mask(exclude, n_points))
     valid, gss = region.valid, region.gain_db
     n_valid = int(valid.sum())
@@ -336,6 +363,8 @@ def fit_sweep(
     oip3_upper = float(mean_of(pts.oip3_upper_dbm[valid]))
     x = pin_mean[valid]
     spread = bool(np.ptp(x) > 0)  # a slope needs at least two distinct input powers
+    # The three free lines, each fitted once (free_iip3_dbm fits the same three).
+    fundamental, lower, upper = (_line(x, y, valid, spread) for y in (pout_mean, im3_lower, im3_upper))
     return SweepResult(
         iip3_lower_dbm=iip3_lower,
         iip3_upper_dbm=iip3_upper,
@@ -343,10 +372,10 @@ def fit_sweep(
         oip3_lower_dbm=oip3_lower,
         oip3_upper_dbm=oip3_upper,
         oip3_dbm=(oip3_lower + oip3_upper) / 2.0,
-        slope_fundamental=_slope(x, pout_mean, valid, spread),
-        slope_im3_lower=_slope(x, im3_lower, valid, spread),
-        slope_im3_upper=_slope(x, im3_upper, valid, spread),
-        iip3_free_dbm=free_iip3_dbm(x, valid, pout_mean, im3_lower, im3_upper, spread),
+        slope_fundamental=None if fundamental is None else fundamental[0],
+        slope_im3_lower=None if lower is None else lower[0],
+        slope_im3_upper=None if upper is None else upper[0],
+        iip3_free_dbm=_free_iip3_dbm(fundamental, lower, upper),
         reason=None,
         **common,
     )
