@@ -15,17 +15,14 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bound_db
-from tonebench.analysis.sweep_fit import FitPoints, SweepResult
+from tonebench.analysis.sweep_fit import FitPoints, SweepResult, fit_points
 from tonebench.analysis.flags import Flag
-from tonebench.analysis.intercepts import point_intercepts
-from tonebench.analysis.intercepts import PointIntercepts
 from tonebench.analysis.point_checks import (
     NoiseCheck,
     PointFlags,
     check_imbalance,
     check_noise,
     check_overload,
-    mean_pair,
     mixer_level_dbm,
     noise_values,
     sliced,
@@ -147,18 +144,12 @@ class _PointSteps:
     @classmethod
     def of(cls, a: dict[str, np.ndarray]) -> _PointSteps:
         noise = noise_values(a)
-        pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
-                               noise.lower_dbm, noise.upper_dbm)
         # The fit's point-by-point values (sweep_fit.fit_points), from the same noise correction.
-        fit = FitPoints(noise.lower_dbm, noise.upper_dbm, pts, mean_pair(a["pin1_dbm"], a["pin2_dbm"]),
-                        mean_pair(a["pout_f1_dbm"], a["pout_f2_dbm"]))
+        fit = fit_points(a, noise.lower_dbm, noise.upper_dbm)
         return cls(noise, fit, mixer_level_dbm(a["raw_f1_dbm"], a["raw_f2_dbm"], a["atten_db"]), judge_steps(a))
 
     def part(self, points: slice) -> _PointSteps:
-        fit = self.fit
-        fit = FitPoints(fit.im3_lower_dbm[points], fit.im3_upper_dbm[points], sliced(fit.pts, points),
-                        fit.pin_mean_dbm[points], fit.pout_mean_dbm[points])
-        return _PointSteps(sliced(self.noise, points), fit, self.mixer_dbm[points],
+        return _PointSteps(sliced(self.noise, points), self.fit.part(points), self.mixer_dbm[points],
                            {side: sliced(j, points) for side, j in self.judged.items()})
 
 

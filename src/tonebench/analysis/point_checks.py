@@ -8,7 +8,7 @@ point flags as (point index, Flag) pairs in point order (at most one flag per po
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -19,14 +19,9 @@ from tonebench.analysis.flags import Flag
 PointFlags = tuple[tuple[int, Flag], ...]
 
 
-def astuple_shallow(obj) -> tuple:
-    """A dataclass's fields in order, not copied (dataclasses.astuple deep-copies arrays)."""
-    return tuple(getattr(obj, f.name) for f in fields(obj))
-
-
 def sliced(obj, part: slice):
     """A frozen dataclass of per-point arrays cut to one sweep's points (other fields as they are)."""
-    return type(obj)(*(v[part] if isinstance(v, np.ndarray) else v for v in astuple_shallow(obj)))
+    return type(obj)(**{name: v[part] if isinstance(v, np.ndarray) else v for name, v in vars(obj).items()})
 
 
 def flag_points(mask, make) -> PointFlags:
@@ -73,7 +68,9 @@ def noise_values(a: dict[str, np.ndarray]) -> NoiseCheck:
 def check_noise(a: dict[str, np.ndarray], values: NoiseCheck | None = None) -> NoiseCheck:
     """Correct both IM3 readings for their noise and flag the points within IM3_OVER_NOISE_MIN_DB
     (values: noise_values of these points when computed already)."""
-    lower_c, upper_c, snr_lower, snr_upper, noisy, noise_err, _ = astuple_shallow(values or noise_values(a))
+    values = values or noise_values(a)
+    lower_c, upper_c, snr_lower, snr_upper = values.lower_dbm, values.upper_dbm, values.snr_lower_db, values.snr_upper_db
+    noisy, noise_err = values.noisy, values.error_db
     flags = flag_points(noisy, lambda i: Flag(
         fl.ANALYZER_LIMITED, fl.NOISE,
         f"IM3 {_fmt(snr_lower[i])} dB (lower) and {_fmt(snr_upper[i])} dB (upper) over the noise floor; "

@@ -229,15 +229,22 @@ class _Region:
     gain_db: float | None
 
 
-def _valid_region(a: dict[str, np.ndarray], point_gain_db, excluded) -> _Region:
-    """The small-signal gain, then the points with every reading, IM3 clear of the noise, gain within
-    GAIN_TOLERANCE_DB of it, no overload and not excluded. Each cause is counted on its own."""
-    n_points = a["tone_dbm"].size
-    over = a["overload"]
+def _finite_and_noisy(a: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Per point: every reading the fit takes is there; IM3 within IM3_OVER_NOISE_MIN_DB of its floor."""
     finite = np.all([np.isfinite(a[n]) for n in FIT_INPUTS[:7]], axis=0)
-    gss = small_signal_gain_db(a["tone_dbm"], point_gain_db, finite & ~over)
     noisy = ~((a["im3_lower_dbm"] - a["noise_lower_dbm"] >= IM3_OVER_NOISE_MIN_DB)
               & (a["im3_upper_dbm"] - a["noise_upper_dbm"] >= IM3_OVER_NOISE_MIN_DB))
+    return finite, noisy
+
+
+def _valid_region(a: dict[str, np.ndarray], point_gain_db, excluded, finite_noisy=None) -> _Region:
+    """The small-signal gain, then the points with every reading, IM3 clear of the noise, gain within
+    GAIN_TOLERANCE_DB of it, no overload and not excluded. Each cause is counted on its own
+    (finite_noisy: _finite_and_noisy of these points when worked out already)."""
+    n_points = a["tone_dbm"].size
+    over = a["overload"]
+    finite, noisy = _finite_and_noisy(a) if finite_noisy is None else finite_noisy
+    gss = small_signal_gain_db(a["tone_dbm"], point_gain_db, finite & ~over)
     if gss is None:
         compressed = expanded = gain_ok = np.zeros(n_points, bool)
     else:
@@ -311,15 +318,28 @@ class FitPoints:
     pts: PointIntercepts
     pin_mean_dbm: np.ndarray
     pout_mean_dbm: np.ndarray
+    finite: np.ndarray  # every reading the fit takes is there
+    noisy: np.ndarray  # IM3 within IM3_OVER_NOISE_MIN_DB of its floor (the valid-region rule)
+
+    def part(self, points: slice) -> FitPoints:
+        """These values for a slice of the points."""
+        pts = PointIntercepts(**{name: value[points] for name, value in vars(self.pts).items()})
+        return FitPoints(self.im3_lower_dbm[points], self.im3_upper_dbm[points], pts, self.pin_mean_dbm[points],
+                         self.pout_mean_dbm[points], self.finite[points], self.noisy[points])
 
 
-def fit_points(a: dict[str, np.ndarray]) -> FitPoints:
+def fit_points(a: dict[str, np.ndarray], im3_lower_dbm=None, im3_upper_dbm=None) -> FitPoints:
+    """FitPoints of the arrays (im3_*_dbm: the noise-corrected IM3 when worked out already)."""
+    if im3_lower_dbm is not None and im3_upper_dbm is not None:
+        pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
+                               im3_lower_dbm, im3_upper_dbm)
+        return FitPoints(im3_lower_dbm, im3_upper_dbm, pts, (a["pin1_dbm"] + a["pin2_dbm"]) / 2.0,
+                         (a["pout_f1_dbm"] + a["pout_f2_dbm"]) / 2.0, *_finite_and_noisy(a))
     im3_lower, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
     im3_upper, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
     pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
                            im3_lower, im3_upper)
-    return FitPoints(im3_lower, im3_upper, pts, (a["pin1_dbm"] + a["pin2_dbm"]) / 2.0,
-                     (a["pout_f1_dbm"] + a["pout_f2_dbm"]) / 2.0)
+    return fit_points(a, im3_lower, im3_upper)
 
 
 def fit_with_points(a: dict[str, np.ndarray], points: FitPoints,
@@ -329,7 +349,7 @@ def fit_with_points(a: dict[str, np.ndarray], points: FitPoints,
     over = a["overload"]
     im3_lower, im3_upper, pts = points.im3_lower_dbm, points.im3_upper_dbm, points.pts
     pin_mean, pout_mean = points.pin_mean_dbm, points.pout_mean_dbm
-    region = _valid_region(a, pts.gain_db, _excluded_mask(exclude, n_points))
+    region = _valid_region(a, pts.gain_db, _excluded_mask(exclude, n_points), (points.finite, points.noisy))
     valid, gss = region.valid, region.gain_db
     n_valid = int(valid.sum())
 

@@ -95,7 +95,9 @@ def analysis_points(session: Session, run_ids: list[int]) -> dict[int, list[Stor
 
 # Re-analysis as stored reads each batch's points into one float matrix: the numeric columns
 # (group axes first), with the row id, run id, overload and extra_json kept as Python values.
-_MATRIX_FIELDS = tuple(name for name in ANALYSIS_FIELDS if name not in ("extra_json", "overload"))
+# Only what the analysis reads as stored: no tone frequencies or source settings (re-referral's).
+_MATRIX_FIELDS = tuple(dict.fromkeys((
+    *GROUP_FIELDS, *(name for name in POINT_ARRAYS if name != "overload"), *RAW_ARRAYS, "raw_diff_dbm", "raw_sum_dbm")))
 _COLUMN = {name: i for i, name in enumerate(_MATRIX_FIELDS)}
 
 
@@ -128,8 +130,9 @@ def batch_sweeps(session: Session, run_ids: list[int]) -> tuple[SweepData | None
     # Column-major so that each sweep's slice of a column is contiguous, as its own array was.
     cols = {name: np.ascontiguousarray(matrix[:, i]) for name, i in _COLUMN.items()}
     cols["overload"] = np.array([bool(row[3]) for row in rows], dtype=bool)
+    extras = [row[2] or {} for row in rows]
     for name in EXTRA_ARRAYS:
-        cols[name] = _nan_array((row[2] or {}).get(name) for row in rows)
+        cols[name] = _nan_array(extra.get(name) for extra in extras) if any(extras) else np.full(len(rows), np.nan)
     # A second-order product's noise floor has the same output loss as the product (sweep_data).
     noise = {side: cols[f"raw_noise_{side}_dbm"] + cols[f"im2_{side}_dbm"] - cols[f"raw_{side}_dbm"]
              for side in ("diff", "sum")}
