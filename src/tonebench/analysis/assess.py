@@ -38,7 +38,12 @@ from tonebench.analysis.result_flags import (
 from tonebench.analysis.second_order import SecondOrderResult, sweep_second_order
 from tonebench.analysis.settings import DEFAULT_LEVEL_ACCURACY_DB, AnalysisSettings
 from tonebench.analysis.flags import StepJudgement
-from tonebench.analysis.system_checks import check_distortion, check_source_intermod, judge_steps
+from tonebench.analysis.system_checks import (
+    check_distortion,
+    check_source_intermod,
+    judge_steps,
+    raw_products_dbm,
+)
 from tonebench.errors import InputError
 
 __all__ = ["DEFAULT_LEVEL_ACCURACY_DB", "AnalysisSettings", "SweepAssessment", "SweepData", "assess_sweep",
@@ -140,17 +145,20 @@ class _PointSteps:
     fit: FitPoints  # its IM3 are the noise values', its intercepts the points' own
     mixer_dbm: np.ndarray
     judged: dict[str, StepJudgement]
+    raw_products_dbm: dict[str, np.ndarray]  # system_checks.raw_products_dbm
 
     @classmethod
     def of(cls, a: dict[str, np.ndarray]) -> _PointSteps:
         noise = noise_values(a)
         # The fit's point-by-point values (sweep_fit.fit_points), from the same noise correction.
         fit = fit_points(a, noise.lower_dbm, noise.upper_dbm)
-        return cls(noise, fit, mixer_level_dbm(a["raw_f1_dbm"], a["raw_f2_dbm"], a["atten_db"]), judge_steps(a))
+        return cls(noise, fit, mixer_level_dbm(a["raw_f1_dbm"], a["raw_f2_dbm"], a["atten_db"]), judge_steps(a),
+                   raw_products_dbm(a))
 
     def part(self, points: slice) -> _PointSteps:
         return _PointSteps(sliced(self.noise, points), self.fit.part(points), self.mixer_dbm[points],
-                           {side: sliced(j, points) for side, j in self.judged.items()})
+                           {side: sliced(j, points) for side, j in self.judged.items()},
+                           {side: v[points] for side, v in self.raw_products_dbm.items()})
 
 
 def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings()) -> SweepAssessment:
@@ -177,7 +185,7 @@ def _assess(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointS
     pts = steps.fit.pts
     overload = check_overload(a, settings.max_mixer_dbm, steps.mixer_dbm)
     over = overload.over
-    distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged)
+    distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged, steps.raw_products_dbm)
     analyzer_flag = distortion.share.flagged
     source = check_source_intermod(a, settings, noise.lower_dbm, noise.upper_dbm, pts.gain_db)
     imbalance = check_imbalance(a)
