@@ -6,6 +6,7 @@
     python tests/benchmarks/bench_database.py --pg-url postgresql+psycopg://user@host/empty_db
     python tests/benchmarks/bench_database.py --reanalysis-runs            # re-analysis of 10,000 demo-size runs only
     python tests/benchmarks/bench_database.py --reanalysis-runs 2000 --run-size 200 --workers 1
+    python tests/benchmarks/bench_database.py --reanalysis-runs 1000 --phases   # and where the time goes
 
 With the defaults: 10,000 devices, one run each of 4 centers x 2 spacings x 25 tone steps, i.e.
 2,000,000 points and 80,000 results. Not a test: it prints figures. A temporary PostgreSQL server
@@ -173,7 +174,7 @@ def bench(url: str, n_devices: int, label: str, reanalyze: bool = True) -> None:
     engine.dispose()
 
 
-def bench_reanalysis(url: str, n_runs: int, layout: Layout, workers: int, label: str) -> None:
+def bench_reanalysis(url: str, n_runs: int, layout: Layout, workers: int, label: str, phases: bool = False) -> None:
     """Time analyze_runs over n_runs stored synthetic runs (their first re-analysis)."""
     engine = open_database(url)
     started_s = time.perf_counter()
@@ -190,7 +191,44 @@ def bench_reanalysis(url: str, n_runs: int, layout: Layout, workers: int, label:
     print(f"  re-analysis (analyze_runs, {workers} worker{'s' if workers > 1 else ''}): {len(guids)} runs, "
           f"{stored} results in {taken_s:.1f} s: {len(guids) / taken_s:,.0f} runs/s, "
           f"{taken_s / len(guids) * 1e3:.2f} ms per run", flush=True)
+    if phases:
+        reanalysis_phases(engine, guids)
     engine.dispose()
+
+
+def reanalysis_phases(engine: sa.Engine, guids: list[str]) -> None:
+    """Where the time of a re-analysis goes: all of it in this process, CPU seconds per step."""
+    from tonebench.results import stored_results
+
+    spent_s: dict[str, float] = {}
+    steps = {"read points, build arrays": "batch_sweeps", "assess": "assess_sweeps",
+             "result rows": "_result_values", "delete old rows": "_forget_analysis",
+             "verdicts": "apply_verdicts", "write (delete, insert, verdicts)": "_store_batch"}
+    originals = {name: getattr(stored_results, name) for name in steps.values()}
+
+    def timed(label, function):
+        def run(*args, **kwargs):
+            started_s = time.process_time()
+            try:
+                return function(*args, **kwargs)
+            finally:
+                spent_s[label] = spent_s.get(label, 0.0) + time.process_time() - started_s
+        return run
+
+    batch_pool.WORKERS = 1
+    for label, name in steps.items():
+        setattr(stored_results, name, timed(label, originals[name]))
+    try:
+        started_cpu_s, started_s = time.process_time(), time.perf_counter()
+        analyze_runs(session_factory(engine), guids)
+        total_cpu_s, total_s = time.process_time() - started_cpu_s, time.perf_counter() - started_s
+    finally:
+        for name, function in originals.items():
+            setattr(stored_results, name, function)
+    print(f"  in one process: {total_s:.1f} s, {total_cpu_s:.1f} CPU s of this process; CPU s per step "
+          "(the write's include its delete and verdicts; the database server's own time is not counted):")
+    for label, seconds in spent_s.items():
+        print(f"    {label:34} {seconds:6.2f} s ({seconds / len(guids) * 1e3:.3f} ms per run)")
 
 
 def main() -> None:
@@ -205,6 +243,8 @@ def main() -> None:
                         help="with --reanalysis-runs: demo (51 points, 3 sweeps) or 200 (200 points, 8 sweeps)")
     parser.add_argument("--workers", type=int, default=batch_pool.WORKERS,
                         help="with --reanalysis-runs: processes reading and assessing (default: one per core)")
+    parser.add_argument("--phases", action="store_true",
+                        help="with --reanalysis-runs: then once more in one process, timing each step")
     args = parser.parse_args()
     if args.reanalysis_runs is not None:
         if args.reanalysis_runs < 1 or args.workers < 1:
@@ -227,13 +267,15 @@ def reanalysis(args) -> None:
     layout = RUN_SIZES[args.run_size]
     if args.backend in ("sqlite", "both"):
         with tempfile.TemporaryDirectory() as folder:
-            bench_reanalysis(f"sqlite:///{folder}/bench.db", args.reanalysis_runs, layout, args.workers, "SQLite")
+            bench_reanalysis(f"sqlite:///{folder}/bench.db", args.reanalysis_runs, layout, args.workers, "SQLite",
+                             args.phases)
     if args.backend in ("postgresql", "both"):
         if args.pg_url:
-            bench_reanalysis(args.pg_url, args.reanalysis_runs, layout, args.workers, "PostgreSQL")
+            bench_reanalysis(args.pg_url, args.reanalysis_runs, layout, args.workers, "PostgreSQL", args.phases)
         else:
             with temporary_postgres() as url:
-                bench_reanalysis(url, args.reanalysis_runs, layout, args.workers, "PostgreSQL (temporary local server)")
+                bench_reanalysis(url, args.reanalysis_runs, layout, args.workers, "PostgreSQL (temporary local server)",
+                                 args.phases)
 
 
 if __name__ == "__main__":
