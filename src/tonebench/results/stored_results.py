@@ -163,10 +163,26 @@ def _store_batch(session: Session, batch: AnalysedBatch) -> int:
                         for f in flags]
     for cls, rows in ((PointFlag, batch.point_flags), (ResultFlag, result_flags)):
         if rows:
-            session.execute(sa.insert(cls.__table__), rows)
+            _insert_flags(session, cls.__table__, rows)
     # Spec-limit verdicts belong to the results just stored (design: stored per result).
     apply_verdicts(session, run_ids=batch.run_ids)
     return len(batch.results)
+
+
+def _insert_flags(session: Session, table: sa.Table, rows: list[dict]) -> None:
+    """Insert flag rows (every row with the same keys). On PostgreSQL through psycopg by COPY:
+    the multi-row INSERTs SQLAlchemy renders and psycopg binds took most of a batch's write
+    there (dozens of point flags per run); COPY streams the rows in the same transaction."""
+    connection = session.connection()
+    if connection.dialect.name != "postgresql" or connection.dialect.driver != "psycopg":
+        session.execute(sa.insert(table), rows)
+        return
+    names = list(rows[0])
+    columns = ", ".join(table.c[name].name for name in names)  # the table's own names, nothing typed
+    with connection.connection.driver_connection.cursor() as cursor:
+        with cursor.copy(f"COPY {table.name} ({columns}) FROM STDIN") as copy:
+            for row in rows:
+                copy.write_row([row[name] for name in names])
 
 
 def _forget_analysis(session: Session, run_ids: list[int]) -> None:
