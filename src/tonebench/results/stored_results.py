@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 from collections.abc import Callable
 
@@ -157,8 +158,7 @@ def _store_batch(session: Session, batch: AnalysedBatch) -> int:
     # Core inserts of whole rows: one statement per table (the ORM's bulk insert splits
     # rows by which values are None, one statement each).
     if batch.results:
-        table = Result.__table__
-        ids = session.scalars(sa.insert(table).returning(table.c.id, sort_by_parameter_order=True), batch.results)
+        ids = _insert_results(session, batch.results)
         result_flags = [{**f, "result_id": result_id} for result_id, flags in zip(ids, batch.result_flags)
                         for f in flags]
     for cls, rows in ((PointFlag, batch.point_flags), (ResultFlag, result_flags)):
@@ -169,20 +169,47 @@ def _store_batch(session: Session, batch: AnalysedBatch) -> int:
     return len(batch.results)
 
 
+def _copies(session: Session) -> bool:
+    """Whether rows go in by COPY: PostgreSQL through psycopg. There SQLAlchemy's multi-row
+    INSERTs (rendered, then bound by psycopg) took most of a batch's write, and that write is the
+    one serial step of a re-analysis with workers."""
+    dialect = session.connection().dialect
+    return dialect.name == "postgresql" and dialect.driver == "psycopg"
+
+
+def _insert_results(session: Session, rows: list[dict]) -> list[int]:
+    """Insert result rows; their ids, in the rows' order."""
+    table = Result.__table__
+    if not _copies(session):
+        return list(session.scalars(sa.insert(table).returning(table.c.id, sort_by_parameter_order=True), rows))
+    # Ids drawn from the table's own sequence first, so COPY can carry them (it returns none).
+    with session.connection().connection.driver_connection.cursor() as cursor:
+        cursor.execute("SELECT nextval(pg_get_serial_sequence('results', 'id')) FROM generate_series(1, %s)",
+                       (len(rows),))
+        ids = sorted(row[0] for row in cursor.fetchall())
+    _copy_rows(session, table, [{"id": result_id, **row} for result_id, row in zip(ids, rows)])
+    return ids
+
+
 def _insert_flags(session: Session, table: sa.Table, rows: list[dict]) -> None:
-    """Insert flag rows (every row with the same keys). On PostgreSQL through psycopg by COPY:
-    the multi-row INSERTs SQLAlchemy renders and psycopg binds took most of a batch's write
-    there (dozens of point flags per run); COPY streams the rows in the same transaction."""
-    connection = session.connection()
-    if connection.dialect.name != "postgresql" or connection.dialect.driver != "psycopg":
+    """Insert flag rows (dozens of point flags per run)."""
+    if _copies(session):
+        _copy_rows(session, table, rows)
+    else:
         session.execute(sa.insert(table), rows)
-        return
+
+
+def _copy_rows(session: Session, table: sa.Table, rows: list[dict]) -> None:
+    """COPY rows (every one with the same keys) into the table, in the session's transaction; JSON
+    columns as json.dumps text, what SQLAlchemy's insert sends for them."""
     names = list(rows[0])
+    as_json = [isinstance(table.c[name].type, sa.JSON) for name in names]
     columns = ", ".join(table.c[name].name for name in names)  # the table's own names, nothing typed
-    with connection.connection.driver_connection.cursor() as cursor:
+    with session.connection().connection.driver_connection.cursor() as cursor:
         with cursor.copy(f"COPY {table.name} ({columns}) FROM STDIN") as copy:
             for row in rows:
-                copy.write_row([row[name] for name in names])
+                copy.write_row([json.dumps(row[name]) if is_json else row[name]
+                                for name, is_json in zip(names, as_json)])
 
 
 def _forget_analysis(session: Session, run_ids: list[int]) -> None:
