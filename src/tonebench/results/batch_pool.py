@@ -3,7 +3,9 @@ worker process (stored_results.analyse_batch), the database writes left to the c
 
 The assessment is pure Python and numpy per sweep, so one process uses one core; the writes are a
 few bulk statements per batch and stay in one process (one writer, as SQLite wants). Workers are
-forked: they start at once and never touch the caller's engine (each opens its own).
+forked: they start at once and never touch the caller's engine (each opens its own). The pool is
+made before the first batch, so before `analyze --all` shows its progress bar (whose refresh
+thread a fork must not copy).
 """
 
 from __future__ import annotations
