@@ -6,6 +6,9 @@
     python tests/benchmarks/bench_database.py --pg-url postgresql+psycopg://user@host/empty_db
     python tests/benchmarks/bench_database.py --keep /tmp/tb-bench --skip-reanalysis  # build once, then
         # the same command again reuses the kept databases and only times the queries
+    python tests/benchmarks/bench_database.py --reanalysis-runs            # re-analysis of 10,000 demo-size runs only
+    python tests/benchmarks/bench_database.py --reanalysis-runs 2000 --run-size 200 --workers 1
+    python tests/benchmarks/bench_database.py --reanalysis-runs 1000 --phases   # and where the time goes
 
 With the defaults: 10,000 devices, one run each of 4 centers x 2 spacings x 25 tone steps, i.e.
 2,000,000 points and 80,000 results. Each query kind prints wall-clock latency and this process's
@@ -13,6 +16,11 @@ CPU time (on SQLite all of the query's work; on PostgreSQL the server's is not i
 machine the wall clock's 95th percentile is mostly waiting for a core. Not a test: it prints figures. A temporary PostgreSQL server
 is started in a temporary folder, as tests/conftest.py does, unless --pg-url names one (which
 must hold an empty database: the benchmark writes into it).
+
+--reanalysis-runs N stores N runs (one device each; default 10,000) of the demo plan's size (51
+points: 3 centers x 17 tone steps, 1 MHz spacing) or, with --run-size 200, of the layout above
+(200 points in 8 sweeps), and times only `analyze_runs` over all of them (what `analyze --all`
+does), with --workers processes reading and assessing (default: one per core).
 """
 
 from __future__ import annotations
@@ -34,12 +42,17 @@ import sqlalchemy as sa
 
 from tonebench.catalog.limits import add_limit, apply_verdicts
 from tonebench.catalog.query import ResultFilter, find_results
-from tonebench.catalog.synthetic import PARTS, TAGS, fill
+from tonebench.catalog.synthetic import PARTS, TAGS, Layout, fill
+from tonebench.results import batch_pool
 from tonebench.results.stored_results import analyze_runs
 from tonebench.store import open_database, session_factory
 from tonebench.store.models import Device, Run
 
 QUERY_REPEATS = 25
+# The demo plan's size (sample_runs/demo_plan.toml): 3 centers, one spacing, -40 to -8 dBm in 2 dB steps.
+DEMO_LAYOUT = Layout(centers_hz=(2.40e9, 2.45e9, 2.48e9), spacings_hz=(1.0e6,),
+                     tones_dbm=tuple(float(t) for t in range(-40, -8 + 1, 2)))
+RUN_SIZES = {"demo": DEMO_LAYOUT, "200": Layout()}
 
 
 @contextlib.contextmanager
@@ -183,6 +196,63 @@ def bench(url: str, n_devices: int, label: str, reanalyze: bool = True) -> None:
     engine.dispose()
 
 
+def bench_reanalysis(url: str, n_runs: int, layout: Layout, workers: int, label: str, phases: bool = False) -> None:
+    """Time analyze_runs over n_runs stored synthetic runs (their first re-analysis)."""
+    engine = open_database(url)
+    started_s = time.perf_counter()
+    summary = fill(engine, n_runs, seed=1, layout=layout, n_lots=max(4, n_runs // 250), batch_devices=200)
+    print(f"{label}: {summary.runs} runs of {layout.points_per_run} points "
+          f"({summary.results // max(summary.runs, 1)} sweeps each) stored in {time.perf_counter() - started_s:.1f} s",
+          flush=True)
+    with engine.connect() as connection:
+        guids = connection.scalars(sa.select(Run.guid).order_by(Run.id)).all()
+    batch_pool.WORKERS = workers
+    started_s = time.perf_counter()
+    stored = analyze_runs(session_factory(engine), guids)
+    taken_s = time.perf_counter() - started_s
+    print(f"  re-analysis (analyze_runs, {workers} worker{'s' if workers > 1 else ''}): {len(guids)} runs, "
+          f"{stored} results in {taken_s:.1f} s: {len(guids) / taken_s:,.0f} runs/s, "
+          f"{taken_s / len(guids) * 1e3:.2f} ms per run", flush=True)
+    if phases:
+        reanalysis_phases(engine, guids)
+    engine.dispose()
+
+
+def reanalysis_phases(engine: sa.Engine, guids: list[str]) -> None:
+    """Where the time of a re-analysis goes: all of it in this process, CPU seconds per step."""
+    from tonebench.results import stored_results
+
+    spent_s: dict[str, float] = {}
+    steps = {"read points, build arrays": "batch_sweeps", "assess": "assess_sweeps",
+             "result rows": "_result_values", "delete old rows": "_forget_analysis",
+             "verdicts": "apply_verdicts", "write (delete, insert, verdicts)": "_store_batch"}
+    originals = {name: getattr(stored_results, name) for name in steps.values()}
+
+    def timed(label, function):
+        def run(*args, **kwargs):
+            started_s = time.process_time()
+            try:
+                return function(*args, **kwargs)
+            finally:
+                spent_s[label] = spent_s.get(label, 0.0) + time.process_time() - started_s
+        return run
+
+    batch_pool.WORKERS = 1
+    for label, name in steps.items():
+        setattr(stored_results, name, timed(label, originals[name]))
+    try:
+        started_cpu_s, started_s = time.process_time(), time.perf_counter()
+        analyze_runs(session_factory(engine), guids)
+        total_cpu_s, total_s = time.process_time() - started_cpu_s, time.perf_counter() - started_s
+    finally:
+        for name, function in originals.items():
+            setattr(stored_results, name, function)
+    print(f"  in one process: {total_s:.1f} s, {total_cpu_s:.1f} CPU s of this process; CPU s per step "
+          "(the write's include its delete and verdicts; the database server's own time is not counted):")
+    for label, seconds in spent_s.items():
+        print(f"    {label:34} {seconds:6.2f} s ({seconds / len(guids) * 1e3:.3f} ms per run)")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--devices", type=int, default=10_000)
@@ -192,7 +262,20 @@ def main() -> None:
     parser.add_argument("--keep", metavar="FOLDER",
                         help="build the databases in FOLDER and leave them; a later call with the same FOLDER "
                              "reuses them and only times the queries")
+    parser.add_argument("--reanalysis-runs", type=int, nargs="?", const=10_000, metavar="N",
+                        help="only time the re-analysis of N stored runs (default 10,000)")
+    parser.add_argument("--run-size", choices=sorted(RUN_SIZES), default="demo",
+                        help="with --reanalysis-runs: demo (51 points, 3 sweeps) or 200 (200 points, 8 sweeps)")
+    parser.add_argument("--workers", type=int, default=batch_pool.WORKERS,
+                        help="with --reanalysis-runs: processes reading and assessing (default: one per core)")
+    parser.add_argument("--phases", action="store_true",
+                        help="with --reanalysis-runs: then once more in one process, timing each step")
     args = parser.parse_args()
+    if args.reanalysis_runs is not None:
+        if args.reanalysis_runs < 1 or args.workers < 1:
+            parser.error(f"--reanalysis-runs ({args.reanalysis_runs}) and --workers ({args.workers}) must be at least 1")
+        reanalysis(args)
+        return
     reanalyze = not args.skip_reanalysis
     if args.keep and reanalyze:
         parser.error("--keep needs --skip-reanalysis: re-analysis rewrites the kept results")
@@ -207,6 +290,21 @@ def main() -> None:
         else:
             with temporary_postgres(args.keep) as url:
                 bench(url, args.devices, "PostgreSQL (local server in " + (args.keep or "a temporary folder") + ")", reanalyze)
+
+
+def reanalysis(args) -> None:
+    layout = RUN_SIZES[args.run_size]
+    if args.backend in ("sqlite", "both"):
+        with tempfile.TemporaryDirectory() as folder:
+            bench_reanalysis(f"sqlite:///{folder}/bench.db", args.reanalysis_runs, layout, args.workers, "SQLite",
+                             args.phases)
+    if args.backend in ("postgresql", "both"):
+        if args.pg_url:
+            bench_reanalysis(args.pg_url, args.reanalysis_runs, layout, args.workers, "PostgreSQL", args.phases)
+        else:
+            with temporary_postgres() as url:
+                bench_reanalysis(url, args.reanalysis_runs, layout, args.workers, "PostgreSQL (temporary local server)",
+                                 args.phases)
 
 
 if __name__ == "__main__":

@@ -9,7 +9,7 @@ from flag_benches import write_bench, write_plan
 
 from tonebench.catalog.synthetic import fill
 from tonebench.errors import InputError
-from tonebench.results import stored_results
+from tonebench.results import batch_pool, stored_results
 from tonebench.results.stored_results import analyze_run, analyze_runs
 from tonebench.run.start import execute_run
 from tonebench.store import open_database, session_factory
@@ -31,7 +31,8 @@ def _stored(engine) -> dict[str, list]:
                 for name, sql in (("results", _RESULTS), ("result flags", _RESULT_FLAGS), ("point flags", _POINT_FLAGS))}
 
 
-def test_many_runs_in_batches_store_what_one_run_at_a_time_stores(tmp_path, monkeypatch, db_url):
+@pytest.mark.parametrize("workers", [1, 2])  # in this process; forked workers reading, this process writing
+def test_many_runs_in_batches_store_what_one_run_at_a_time_stores(tmp_path, monkeypatch, db_url, workers):
     engine = open_database(db_url)
     fill(engine, 3, seed=4, n_lots=2, batch_devices=3)
     # Two simulated runs whose results carry flags: the analyzer's own IM3, and noise.
@@ -49,6 +50,7 @@ def test_many_runs_in_batches_store_what_one_run_at_a_time_stores(tmp_path, monk
     one_at_a_time = _stored(engine)
     assert all(one_at_a_time.values()), {name: len(rows) for name, rows in one_at_a_time.items()}
 
+    monkeypatch.setattr(batch_pool, "WORKERS", workers)
     monkeypatch.setattr(stored_results, "RUNS_PER_TRANSACTION", 2)  # batches of 2, 2 and 1 run: flags must find their results across batches
     progress = []
     stored = analyze_runs(sessions, guids, on_progress=lambda done, total: progress.append((done, total)))
@@ -66,4 +68,18 @@ def test_an_unknown_run_in_a_batch_is_refused_before_anything_is_replaced(db_url
     before = _stored(engine)
     with pytest.raises(InputError, match="no run with that GUID"):
         analyze_runs(sessions, [guids[0], "0" * 32])
+    assert _stored(engine) == before
+
+
+def test_an_unknown_run_found_by_a_worker_is_refused_before_its_batch_is_written(db_url, monkeypatch):
+    monkeypatch.setattr(batch_pool, "WORKERS", 2)
+    monkeypatch.setattr(stored_results, "RUNS_PER_TRANSACTION", 1)  # two batches: two workers, the first one bad
+    engine = open_database(db_url)
+    fill(engine, 2, seed=5, n_lots=1, batch_devices=2)
+    sessions = session_factory(engine)
+    with engine.connect() as connection:
+        guids = connection.scalars(sa.select(Run.guid).order_by(Run.id)).all()
+    before = _stored(engine)
+    with pytest.raises(InputError, match="no run with that GUID"):
+        analyze_runs(sessions, ["0" * 32, guids[0]])
     assert _stored(engine) == before

@@ -15,10 +15,18 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bound_db
-from tonebench.analysis.sweep_fit import SweepResult
+from tonebench.analysis.sweep_fit import FitPoints, SweepResult, fit_points
 from tonebench.analysis.flags import Flag
-from tonebench.analysis.intercepts import point_intercepts
-from tonebench.analysis.point_checks import PointFlags, check_imbalance, check_noise, check_overload
+from tonebench.analysis.point_checks import (
+    NoiseCheck,
+    PointFlags,
+    check_imbalance,
+    check_noise,
+    check_overload,
+    mixer_level_dbm,
+    noise_values,
+    sliced,
+)
 from tonebench.analysis.region import check_compression, fit_valid_region
 from tonebench.analysis.result_flags import (
     distortion_result,
@@ -29,10 +37,17 @@ from tonebench.analysis.result_flags import (
 )
 from tonebench.analysis.second_order import SecondOrderResult, sweep_second_order
 from tonebench.analysis.settings import DEFAULT_LEVEL_ACCURACY_DB, AnalysisSettings
-from tonebench.analysis.system_checks import check_distortion, check_source_intermod
+from tonebench.analysis.flags import StepJudgement
+from tonebench.analysis.system_checks import (
+    check_distortion,
+    check_source_intermod,
+    judge_steps,
+    raw_products_dbm,
+)
 from tonebench.errors import InputError
 
-__all__ = ["DEFAULT_LEVEL_ACCURACY_DB", "AnalysisSettings", "SweepAssessment", "SweepData", "assess_sweep"]
+__all__ = ["DEFAULT_LEVEL_ACCURACY_DB", "AnalysisSettings", "SweepAssessment", "SweepData", "assess_sweep",
+           "assess_sweeps"]
 
 
 @dataclass(frozen=True)
@@ -121,19 +136,60 @@ def merged_point_flags(n: int, steps: tuple[PointFlags, ...]) -> list[list[Flag]
     return out
 
 
+@dataclass(frozen=True)
+class _PointSteps:
+    """The steps that go point by point, for any number of points (one sweep's or many sweeps'):
+    noise values, per-point intercepts, mixer level and the attenuation-step check."""
+
+    noise: NoiseCheck
+    fit: FitPoints  # its IM3 are the noise values', its intercepts the points' own
+    mixer_dbm: np.ndarray
+    judged: dict[str, StepJudgement]
+    raw_products_dbm: dict[str, np.ndarray]  # system_checks.raw_products_dbm
+
+    @classmethod
+    def of(cls, a: dict[str, np.ndarray]) -> _PointSteps:
+        noise = noise_values(a)
+        # The fit's point-by-point values (sweep_fit.fit_points), from the same noise correction.
+        fit = fit_points(a, noise.lower_dbm, noise.upper_dbm)
+        return cls(noise, fit, mixer_level_dbm(a["raw_f1_dbm"], a["raw_f2_dbm"], a["atten_db"]), judge_steps(a),
+                   raw_products_dbm(a))
+
+    def part(self, points: slice) -> _PointSteps:
+        return _PointSteps(sliced(self.noise, points), self.fit.part(points), self.mixer_dbm[points],
+                           {side: sliced(j, points) for side, j in self.judged.items()},
+                           {side: v[points] for side, v in self.raw_products_dbm.items()})
+
+
 def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings()) -> SweepAssessment:
     """Flag every point, fit the valid region, bound the intercept (see the module docstrings)."""
     a = data.arrays()
-    noise = check_noise(a)
-    pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
-                           noise.lower_dbm, noise.upper_dbm)
-    overload = check_overload(a, settings.max_mixer_dbm)
+    return _assess(a, settings, _PointSteps.of(a))
+
+
+def assess_sweeps(data: SweepData, sweeps: list[slice], settings: list[AnalysisSettings]) -> list[SweepAssessment]:
+    """assess_sweep for many sweeps whose points `data` holds back to back (sweeps: each one's
+    slice of them, with its settings). The point-by-point steps run once over all the points
+    (numpy over thousands of values instead of a few dozen calls per sweep); what reduces over
+    a sweep runs sweep by sweep. Each result is what assess_sweep gives that sweep alone."""
+    if len(sweeps) != len(settings):
+        raise InputError(f"assess_sweeps: {len(sweeps)} sweeps but {len(settings)} settings; one each")
+    a = data.arrays()
+    steps = _PointSteps.of(a)
+    return [_assess({name: arr[part] for name, arr in a.items()}, sweep_settings, steps.part(part))
+            for part, sweep_settings in zip(sweeps, settings)]
+
+
+def _assess(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointSteps) -> SweepAssessment:
+    noise = check_noise(a, steps.noise)
+    pts = steps.fit.pts
+    overload = check_overload(a, settings.max_mixer_dbm, steps.mixer_dbm)
     over = overload.over
-    distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy)
+    distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged, steps.raw_products_dbm)
     analyzer_flag = distortion.share.flagged
     source = check_source_intermod(a, settings, noise.lower_dbm, noise.upper_dbm, pts.gain_db)
     imbalance = check_imbalance(a)
-    region = fit_valid_region(a, over, analyzer_flag, noise.error_db)
+    region = fit_valid_region(a, over, analyzer_flag, noise.error_db, steps.fit)
     fit = region.fit
     compression = check_compression(pts.gain_db, fit.gain_db, over)
 

@@ -9,7 +9,7 @@ import math
 
 import numpy as np
 
-from tonebench.analysis.sweep_fit import SweepResult
+from tonebench.analysis.sweep_fit import SweepResult, mean_of
 from tonebench.analysis.intercepts import point_intercepts
 from tonebench.analysis.point_checks import mean_pair
 from tonebench.analysis.region import small_signal_usable
@@ -29,13 +29,13 @@ def compression_shift_db(point_iip3_dbm, compression_db, valid) -> float:
     if idx.size == 0:
         return 0.0
     comp = np.asarray(compression_db, dtype=float)
-    mean_c = float(np.mean(comp[idx]))
+    mean_c = float(mean_of(comp[idx]))
     if idx.size < 4:
         return mean_c
     ordered = idx[np.argsort(comp[idx], kind="stable")]
     keep = ordered[: (idx.size + 1) // 2]
     values = np.asarray(point_iip3_dbm, dtype=float)
-    shift = abs(float(np.mean(values[idx]) - np.mean(values[keep])))
+    shift = abs(float(mean_of(values[idx]) - mean_of(values[keep])))
     return max(shift, mean_c)
 
 
@@ -57,8 +57,8 @@ def bound_terms_db(fit: SweepResult, level_accuracy_db: float, source_err, analy
     valid = fit.valid_mask
     return {
         "level": level_accuracy_db / 2.0,
-        "source": float(np.mean(source_err[valid])),
-        "analyzer": float(np.mean(analyzer_err[valid])),
+        "source": float(mean_of(source_err[valid])),
+        "analyzer": float(mean_of(analyzer_err[valid])),
         "compression": compression_shift_db(fit.point_iip3_dbm, compression_db, valid),
         "scatter": scatter_half_width_db(fit.point_iip3_dbm[valid]),
         "noise": noise_term_db(noise_err, valid),

@@ -19,6 +19,11 @@ from tonebench.analysis.flags import Flag
 PointFlags = tuple[tuple[int, Flag], ...]
 
 
+def sliced(obj, part: slice):
+    """A frozen dataclass of per-point arrays cut to one sweep's points (other fields as they are)."""
+    return type(obj)(**{name: v[part] if isinstance(v, np.ndarray) else v for name, v in vars(obj).items()})
+
+
 def flag_points(mask, make) -> PointFlags:
     """make(i) for every point i where mask is set, in point order."""
     return tuple((int(i), make(int(i))) for i in np.flatnonzero(mask))
@@ -48,8 +53,8 @@ class NoiseCheck:
     flags: PointFlags
 
 
-def check_noise(a: dict[str, np.ndarray]) -> NoiseCheck:
-    """Correct both IM3 readings for their noise and flag the points within IM3_OVER_NOISE_MIN_DB."""
+def noise_values(a: dict[str, np.ndarray]) -> NoiseCheck:
+    """check_noise without its flags: point by point, so one call may hold many sweeps' points."""
     lower_c, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
     upper_c, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
     snr_lower = fl.snr_db(a["im3_lower_dbm"], a["noise_lower_dbm"])
@@ -57,6 +62,15 @@ def check_noise(a: dict[str, np.ndarray]) -> NoiseCheck:
     with np.errstate(invalid="ignore"):
         noisy = np.fmin(snr_lower, snr_upper) < IM3_OVER_NOISE_MIN_DB
     noise_err = mean_pair(fl.noise_error_db(snr_lower), fl.noise_error_db(snr_upper))
+    return NoiseCheck(lower_c, upper_c, snr_lower, snr_upper, noisy, noise_err, ())
+
+
+def check_noise(a: dict[str, np.ndarray], values: NoiseCheck | None = None) -> NoiseCheck:
+    """Correct both IM3 readings for their noise and flag the points within IM3_OVER_NOISE_MIN_DB
+    (values: noise_values of these points when computed already)."""
+    values = values or noise_values(a)
+    lower_c, upper_c, snr_lower, snr_upper = values.lower_dbm, values.upper_dbm, values.snr_lower_db, values.snr_upper_db
+    noisy, noise_err = values.noisy, values.error_db
     flags = flag_points(noisy, lambda i: Flag(
         fl.ANALYZER_LIMITED, fl.NOISE,
         f"IM3 {_fmt(snr_lower[i])} dB (lower) and {_fmt(snr_upper[i])} dB (upper) over the noise floor; "
@@ -80,10 +94,13 @@ def mixer_level_dbm(raw_f1_dbm, raw_f2_dbm, atten_db) -> np.ndarray:
     return raw_total_dbm - atten_db
 
 
-def check_overload(a: dict[str, np.ndarray], max_mixer_dbm: float | None) -> OverloadCheck:
-    """Flag the points the analyzer reported overloaded or whose mixer level exceeds max_mixer_dbm."""
+def check_overload(a: dict[str, np.ndarray], max_mixer_dbm: float | None,
+                   mixer_dbm: np.ndarray | None = None) -> OverloadCheck:
+    """Flag the points the analyzer reported overloaded or whose mixer level exceeds max_mixer_dbm
+    (mixer_dbm: mixer_level_dbm of these points when computed already)."""
     reported = a["overload"].copy()
-    mixer_dbm = mixer_level_dbm(a["raw_f1_dbm"], a["raw_f2_dbm"], a["atten_db"])
+    if mixer_dbm is None:
+        mixer_dbm = mixer_level_dbm(a["raw_f1_dbm"], a["raw_f2_dbm"], a["atten_db"])
     mixer_over = np.zeros(reported.size, bool)
     if max_mixer_dbm is not None:
         with np.errstate(invalid="ignore"):

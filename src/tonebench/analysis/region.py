@@ -11,7 +11,15 @@ from dataclasses import dataclass
 import numpy as np
 
 from tonebench.analysis import flags as fl
-from tonebench.analysis.sweep_fit import GAIN_TOLERANCE_DB, SweepResult, fit_sweep, high_order_top
+from tonebench.analysis.sweep_fit import (
+    FIT_INPUTS,
+    GAIN_TOLERANCE_DB,
+    FitPoints,
+    SweepResult,
+    fit_sweep,
+    fit_with_points,
+    high_order_top,
+)
 from tonebench.analysis.flags import Flag
 from tonebench.analysis.point_checks import PointFlags, flag_points, mean_pair
 
@@ -29,31 +37,38 @@ class RegionFit:
     flags: PointFlags
 
 
-def fit_excluding(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray]) -> SweepResult:
-    """fit_sweep over the sweep's arrays, leaving out the overloaded and the excluded points."""
+def fit_excluding(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray],
+                  points: FitPoints | None = None) -> SweepResult:
+    """fit_sweep over the sweep's arrays, leaving out the overloaded and the excluded points
+    (points: the sweep's FitPoints when worked out already)."""
+    if points is not None:
+        fit_inputs = {name: a[name] for name in FIT_INPUTS}
+        return fit_with_points({**fit_inputs, "overload": np.asarray(over, dtype=bool)}, points, exclude)
     return fit_sweep(a["tone_dbm"], a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
                      a["im3_lower_dbm"], a["im3_upper_dbm"], a["noise_lower_dbm"], a["noise_upper_dbm"],
                      over, exclude=exclude)
 
 
 def fit_region(a: dict[str, np.ndarray], over, exclude: dict[str, np.ndarray],
-               noise_err) -> tuple[SweepResult, np.ndarray]:
+               noise_err, points: FitPoints | None = None) -> tuple[SweepResult, np.ndarray]:
     """The fit over the valid region, its top trimmed where higher-order terms bias the IM3.
 
     Returns the fit and the points left out for that (fit.high_order_top; each point's scatter is
     taken as its noise error).
     """
-    first = fit_excluding(a, over, {**exclude})
+    first = fit_excluding(a, over, {**exclude}, points)
     pin_mean = mean_pair(a["pin1_dbm"], a["pin2_dbm"])
     trimmed = high_order_top(pin_mean, first.point_iip3_dbm, noise_err, first.valid_mask)
     if first.iip3_dbm is None or not trimmed.any():
         return first, np.zeros_like(trimmed)
-    return fit_excluding(a, over, {**exclude, HIGH_ORDER: trimmed}), trimmed
+    return fit_excluding(a, over, {**exclude, HIGH_ORDER: trimmed}, points), trimmed
 
 
-def fit_valid_region(a: dict[str, np.ndarray], over, analyzer_made, noise_err) -> RegionFit:
-    """Fit the sweep without the overloaded and analyzer-made points; flag the trimmed top."""
-    fit, high_order = fit_region(a, over, {ANALYZER_MADE: analyzer_made}, noise_err)
+def fit_valid_region(a: dict[str, np.ndarray], over, analyzer_made, noise_err,
+                     points: FitPoints | None = None) -> RegionFit:
+    """Fit the sweep without the overloaded and analyzer-made points; flag the trimmed top
+    (points: the sweep's FitPoints when worked out already)."""
+    fit, high_order = fit_region(a, over, {ANALYZER_MADE: analyzer_made}, noise_err, points)
     flags = flag_points(high_order, lambda i: Flag(
         fl.SLOPE, None,
         f"intercept {fit.point_iip3_dbm[i] - fit.iip3_dbm:+.2f} dB off the fitted region's: the local IM3 slope "

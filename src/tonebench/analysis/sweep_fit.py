@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tonebench.analysis.compression import p1db
-from tonebench.analysis.intercepts import point_intercepts
+from tonebench.analysis.intercepts import PointIntercepts, point_intercepts
 from tonebench.errors import InputError
 
 MIN_VALID_POINTS = 3
@@ -58,6 +58,24 @@ class SweepResult:
     point_iip3_dbm: np.ndarray | None = None
 
 
+def mean_of(values: np.ndarray):
+    """np.mean of a 1-D float array, bit for bit (the same sum over the count), without its
+    Python-level overhead: the assessment takes a few dozen means per sweep."""
+    if values.size == 0 or values.dtype != np.float64:
+        return np.mean(values)
+    return np.add.reduce(values) / values.size
+
+
+def median_of(values: np.ndarray) -> float:
+    """np.median of a short 1-D float array, bit for bit: the middle value, or the mean of the two
+    middle ones as (a + b) / 2 (NaN when any value is NaN), without np.median's overhead."""
+    ordered = np.sort(values)
+    if ordered.size == 0 or np.isnan(ordered[-1]):
+        return float(np.median(values))
+    mid = ordered.size // 2
+    return float(ordered[mid] if ordered.size % 2 else (ordered[mid - 1] + ordered[mid]) / 2.0)
+
+
 def noise_corrected_dbm(reading_dbm, noise_dbm) -> tuple[np.ndarray, np.ndarray]:
     """Remove the noise power N (dBm, same analyzer settings) from a reading R (dBm).
 
@@ -87,7 +105,7 @@ def small_signal_gain_db(tone_dbm, gain_db, usable) -> float | None:
     if idx.size == 0:
         return None
     lowest = idx[np.argsort(np.asarray(tone_dbm, dtype=float)[idx], kind="stable")]
-    return float(np.median(np.asarray(gain_db)[lowest[:SMALL_SIGNAL_POINTS]]))
+    return median_of(np.asarray(gain_db, dtype=float)[lowest[:SMALL_SIGNAL_POINTS]])
 
 
 # Scatter of one point's intercept at high signal-to-noise: the analyzer's reading repeatability
@@ -115,23 +133,23 @@ def high_order_top(pin_dbm, point_iip3_dbm, point_sigma_db, valid) -> np.ndarray
     keep_min = max(MIN_VALID_POINTS, (idx.size + 1) // 2)
     while idx.size > keep_min:
         top, rest = idx[-1], idx[:-1]
-        rest_sigma = np.sqrt(np.sum(sigma[rest] ** 2)) / rest.size
+        rest_sigma = np.sqrt(np.add.reduce(sigma[rest] ** 2)) / rest.size
         if not np.isfinite(rest_sigma):
             break
-        if abs(values[top] - np.mean(values[rest])) <= HIGH_ORDER_COVERAGE * math.hypot(sigma[top], rest_sigma):
+        if abs(values[top] - mean_of(values[rest])) <= HIGH_ORDER_COVERAGE * math.hypot(sigma[top], rest_sigma):
             break
         out[top] = True
         idx = rest
     return out
 
 
-_FIT_INPUTS = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
+FIT_INPUTS = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm",
                "im3_upper_dbm", "noise_lower_dbm", "noise_upper_dbm")
 
 
 def _checked_arrays(values: tuple, overload) -> dict[str, np.ndarray]:
     """The inputs as float arrays by name (overload as bool), each 1-D with one value per point."""
-    arrays = {name: np.asarray(v, dtype=float) for name, v in zip(_FIT_INPUTS, values)}
+    arrays = {name: np.asarray(v, dtype=float) for name, v in zip(FIT_INPUTS, values)}
     arrays["overload"] = np.asarray(overload, dtype=bool)
     n_points = arrays["tone_dbm"].size
     for name, arr in arrays.items():
@@ -170,7 +188,7 @@ def _line(x, y, valid, spread: bool) -> tuple[float, float] | None:
     if not spread:
         return None
     x, y = np.asarray(x, dtype=float), y[valid]
-    x_mean, y_mean = x.mean(), y.mean()
+    x_mean, y_mean = mean_of(x), mean_of(y)
     dx = x - x_mean
     slope = float(dx @ (y - y_mean) / (dx @ dx))
     return slope, float(y_mean - slope * x_mean)
@@ -187,10 +205,13 @@ def free_iip3_dbm(x, valid, pout_mean, im3_lower, im3_upper, spread: bool) -> fl
     The fundamental s1 x + c1 meets each IM3 line s3 x + c3 at x = (c1 - c3)/(s3 - s1); None
     unless both IM3 lines are steeper than the fundamental.
     """
+    return _free_iip3_dbm(*(_line(x, y, valid, spread) for y in (pout_mean, im3_lower, im3_upper)))
+
+
+def _free_iip3_dbm(fundamental, lower, upper) -> float | None:
+    """free_iip3_dbm from the three fitted lines ((slope, offset) or None)."""
     free = []
-    fundamental = _line(x, pout_mean, valid, spread)
-    for im3 in (im3_lower, im3_upper):
-        third = _line(x, im3, valid, spread)
+    for third in (lower, upper):
         if fundamental is not None and third is not None and third[0] - fundamental[0] > 0:
             free.append((fundamental[1] - third[1]) / (third[0] - fundamental[0]))
     return float(np.mean(free)) if len(free) == 2 else None
@@ -208,15 +229,22 @@ class _Region:
     gain_db: float | None
 
 
-def _valid_region(a: dict[str, np.ndarray], point_gain_db, excluded) -> _Region:
-    """The small-signal gain, then the points with every reading, IM3 clear of the noise, gain within
-    GAIN_TOLERANCE_DB of it, no overload and not excluded. Each cause is counted on its own."""
-    n_points = a["tone_dbm"].size
-    over = a["overload"]
-    finite = np.all([np.isfinite(a[n]) for n in _FIT_INPUTS[:7]], axis=0)
-    gss = small_signal_gain_db(a["tone_dbm"], point_gain_db, finite & ~over)
+def _finite_and_noisy(a: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Per point: every reading the fit takes is there; IM3 within IM3_OVER_NOISE_MIN_DB of its floor."""
+    finite = np.all([np.isfinite(a[n]) for n in FIT_INPUTS[:7]], axis=0)
     noisy = ~((a["im3_lower_dbm"] - a["noise_lower_dbm"] >= IM3_OVER_NOISE_MIN_DB)
               & (a["im3_upper_dbm"] - a["noise_upper_dbm"] >= IM3_OVER_NOISE_MIN_DB))
+    return finite, noisy
+
+
+def _valid_region(a: dict[str, np.ndarray], point_gain_db, excluded, finite_noisy=None) -> _Region:
+    """The small-signal gain, then the points with every reading, IM3 clear of the noise, gain within
+    GAIN_TOLERANCE_DB of it, no overload and not excluded. Each cause is counted on its own
+    (finite_noisy: _finite_and_noisy of these points when worked out already)."""
+    n_points = a["tone_dbm"].size
+    over = a["overload"]
+    finite, noisy = _finite_and_noisy(a) if finite_noisy is None else finite_noisy
+    gss = small_signal_gain_db(a["tone_dbm"], point_gain_db, finite & ~over)
     if gss is None:
         compressed = expanded = gain_ok = np.zeros(n_points, bool)
     else:
@@ -236,7 +264,7 @@ def exclusion_reasons(arrays: dict[str, np.ndarray], valid_mask) -> list[str | N
     excluded by a later step (the analyzer's own IM3, higher-order terms: see its flags).
 
     arrays: the fit's inputs by name (tone_dbm ... noise_upper_dbm, overload), as fit_sweep takes them."""
-    a = _checked_arrays(tuple(arrays[name] for name in _FIT_INPUTS), arrays["overload"])
+    a = _checked_arrays(tuple(arrays[name] for name in FIT_INPUTS), arrays["overload"])
     im3_lower, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
     im3_upper, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
     pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"], im3_lower, im3_upper)
@@ -276,15 +304,52 @@ def fit_sweep(
     """
     a = _checked_arrays((tone_dbm, pin1_dbm, pin2_dbm, pout_f1_dbm, pout_f2_dbm, im3_lower_dbm,
                          im3_upper_dbm, noise_lower_dbm, noise_upper_dbm), overload)
-    n_points = a["tone_dbm"].size
-    over = a["overload"]
+    return fit_with_points(a, fit_points(a), exclude)
+
+
+@dataclass(frozen=True)
+class FitPoints:
+    """What fit_sweep works out point by point before it reduces: the noise-corrected IM3 (dBm),
+    the per-point intercepts, and the mean input and output tone (dBm). Point by point, so it
+    may be worked out for many sweeps at once and sliced."""
+
+    im3_lower_dbm: np.ndarray
+    im3_upper_dbm: np.ndarray
+    pts: PointIntercepts
+    pin_mean_dbm: np.ndarray
+    pout_mean_dbm: np.ndarray
+    finite: np.ndarray  # every reading the fit takes is there
+    noisy: np.ndarray  # IM3 within IM3_OVER_NOISE_MIN_DB of its floor (the valid-region rule)
+
+    def part(self, points: slice) -> FitPoints:
+        """These values for a slice of the points."""
+        pts = PointIntercepts(**{name: value[points] for name, value in vars(self.pts).items()})
+        return FitPoints(self.im3_lower_dbm[points], self.im3_upper_dbm[points], pts, self.pin_mean_dbm[points],
+                         self.pout_mean_dbm[points], self.finite[points], self.noisy[points])
+
+
+def fit_points(a: dict[str, np.ndarray], im3_lower_dbm=None, im3_upper_dbm=None) -> FitPoints:
+    """FitPoints of the arrays (im3_*_dbm: the noise-corrected IM3 when worked out already)."""
+    if im3_lower_dbm is not None and im3_upper_dbm is not None:
+        pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
+                               im3_lower_dbm, im3_upper_dbm)
+        return FitPoints(im3_lower_dbm, im3_upper_dbm, pts, (a["pin1_dbm"] + a["pin2_dbm"]) / 2.0,
+                         (a["pout_f1_dbm"] + a["pout_f2_dbm"]) / 2.0, *_finite_and_noisy(a))
     im3_lower, _ = noise_corrected_dbm(a["im3_lower_dbm"], a["noise_lower_dbm"])
     im3_upper, _ = noise_corrected_dbm(a["im3_upper_dbm"], a["noise_upper_dbm"])
     pts = point_intercepts(a["pin1_dbm"], a["pin2_dbm"], a["pout_f1_dbm"], a["pout_f2_dbm"],
                            im3_lower, im3_upper)
-    pin_mean = (a["pin1_dbm"] + a["pin2_dbm"]) / 2.0
-    pout_mean = (a["pout_f1_dbm"] + a["pout_f2_dbm"]) / 2.0
-    region = _valid_region(a, pts.gain_db, _excluded_mask(exclude, n_points))
+    return fit_points(a, im3_lower, im3_upper)
+
+
+def fit_with_points(a: dict[str, np.ndarray], points: FitPoints,
+                    exclude: dict[str, np.ndarray] | None = None) -> SweepResult:
+    """fit_sweep's reductions over checked arrays (FIT_INPUTS and overload) and their FitPoints."""
+    n_points = a["tone_dbm"].size
+    over = a["overload"]
+    im3_lower, im3_upper, pts = points.im3_lower_dbm, points.im3_upper_dbm, points.pts
+    pin_mean, pout_mean = points.pin_mean_dbm, points.pout_mean_dbm
+    region = _valid_region(a, pts.gain_db, _excluded_mask(exclude, n_points), (points.finite, points.noisy))
     valid, gss = region.valid, region.gain_db
     n_valid = int(valid.sum())
 
@@ -312,12 +377,14 @@ def fit_sweep(
                            slope_fundamental=None, slope_im3_lower=None, slope_im3_upper=None,
                            reason=_refusal_reason(n_valid, n_points, causes, gss is None), **common)
 
-    iip3_lower = float(pts.iip3_lower_dbm[valid].mean())
-    iip3_upper = float(pts.iip3_upper_dbm[valid].mean())
-    oip3_lower = float(pts.oip3_lower_dbm[valid].mean())
-    oip3_upper = float(pts.oip3_upper_dbm[valid].mean())
+    iip3_lower = float(mean_of(pts.iip3_lower_dbm[valid]))
+    iip3_upper = float(mean_of(pts.iip3_upper_dbm[valid]))
+    oip3_lower = float(mean_of(pts.oip3_lower_dbm[valid]))
+    oip3_upper = float(mean_of(pts.oip3_upper_dbm[valid]))
     x = pin_mean[valid]
     spread = bool(np.ptp(x) > 0)  # a slope needs at least two distinct input powers
+    # The three free lines, each fitted once (free_iip3_dbm fits the same three).
+    fundamental, lower, upper = (_line(x, y, valid, spread) for y in (pout_mean, im3_lower, im3_upper))
     return SweepResult(
         iip3_lower_dbm=iip3_lower,
         iip3_upper_dbm=iip3_upper,
@@ -325,10 +392,10 @@ def fit_sweep(
         oip3_lower_dbm=oip3_lower,
         oip3_upper_dbm=oip3_upper,
         oip3_dbm=(oip3_lower + oip3_upper) / 2.0,
-        slope_fundamental=_slope(x, pout_mean, valid, spread),
-        slope_im3_lower=_slope(x, im3_lower, valid, spread),
-        slope_im3_upper=_slope(x, im3_upper, valid, spread),
-        iip3_free_dbm=free_iip3_dbm(x, valid, pout_mean, im3_lower, im3_upper, spread),
+        slope_fundamental=None if fundamental is None else fundamental[0],
+        slope_im3_lower=None if lower is None else lower[0],
+        slope_im3_upper=None if upper is None else upper[0],
+        iip3_free_dbm=_free_iip3_dbm(fundamental, lower, upper),
         reason=None,
         **common,
     )

@@ -60,11 +60,17 @@ class AnalyzerShare:
     flagged: np.ndarray
 
 
+def raw_products_dbm(a: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Each raw IM3 reading corrected for its noise (analyzer input, dBm), per side."""
+    return {s: noise_corrected_dbm(a[f"raw_{s}_dbm"], a[f"raw_noise_{s}_dbm"])[0] for s in SIDES}
+
+
 def analyzer_share(a: dict[str, np.ndarray], judged: dict[str, StepJudgement], toi_dbm: float | None,
-                   noisy: np.ndarray) -> AnalyzerShare:
-    """The analyzer's own IM3, the larger of the step check's and the prediction from toi_dbm."""
+                   noisy: np.ndarray, raw_corrected: dict[str, np.ndarray] | None = None) -> AnalyzerShare:
+    """The analyzer's own IM3, the larger of the step check's and the prediction from toi_dbm
+    (raw_corrected: raw_products_dbm of these points when worked out already)."""
     n = a["tone_dbm"].size
-    raw_corrected = {s: noise_corrected_dbm(a[f"raw_{s}_dbm"], a[f"raw_noise_{s}_dbm"])[0] for s in SIDES}
+    raw_corrected = raw_products_dbm(a) if raw_corrected is None else raw_corrected
     errors, ratios = {}, {}
     flagged = np.zeros(n, bool)
     for s in SIDES:
@@ -131,11 +137,14 @@ class DistortionCheck:
     notes: tuple[str, ...]
 
 
-def check_distortion(a: dict[str, np.ndarray], mixer_toi_dbm: float | None, noisy: np.ndarray) -> DistortionCheck:
-    """Flag the points whose IM3 the analyzer may have made (step check or prediction)."""
-    judged = judge_steps(a)
+def check_distortion(a: dict[str, np.ndarray], mixer_toi_dbm: float | None, noisy: np.ndarray,
+                     judged: dict[str, StepJudgement] | None = None,
+                     raw_corrected: dict[str, np.ndarray] | None = None) -> DistortionCheck:
+    """Flag the points whose IM3 the analyzer may have made (step check or prediction); judged,
+    raw_corrected: judge_steps and raw_products_dbm of these points when worked out already."""
+    judged = judge_steps(a) if judged is None else judged
     toi_step, toi_eff = effective_mixer_toi_dbm(a, judged, mixer_toi_dbm)
-    share = analyzer_share(a, judged, toi_eff, noisy)
+    share = analyzer_share(a, judged, toi_eff, noisy, raw_corrected)
     step_change = np.fmax(np.abs(judged["lower"].change_db), np.abs(judged["upper"].change_db))
     step_change = np.where(judged["lower"].conclusive | judged["upper"].conclusive, step_change, np.nan)
     flags = flag_points(share.flagged, lambda i: distortion_flag(i, a, judged, share, toi_eff))

@@ -9,6 +9,10 @@ from tonebench.analysis.conventions import DEFAULT_CONVENTION, INTERCEPT_CONVENT
 from tonebench.analysis.settings import DEFAULT_LEVEL_ACCURACY_DB
 from tonebench.analysis.single_level import level_results
 
+# The sweep arrays level_results reads.
+LEVEL_INPUTS = ("tone_dbm", "pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_lower_dbm", "im3_upper_dbm",
+                "noise_lower_dbm", "noise_upper_dbm")
+
 _LEVEL_COLUMNS = ("im3_lower_dbc", "im3_upper_dbc", "im3_lower_dbc_pep", "im3_upper_dbc_pep", "iip3_lower_dbm",
                   "iip3_upper_dbm", "iip3_dbm", "oip3_lower_dbm", "oip3_upper_dbm", "oip3_dbm", "iip3_bound_db",
                   "im3_bound_db")
@@ -40,9 +44,9 @@ def _finite(value) -> float | None:
     return value if math.isfinite(value) else None
 
 
-def level_rows(stored_points, arrays: dict, assessment, accuracy_db: float, convention: str) -> list[dict]:
-    """One row (level_results columns less result_id) per point of the sweep."""
+def level_rows(point_ids: list[int], arrays: dict, assessment, accuracy_db: float, convention: str) -> list[dict]:
+    """One row (level_results columns less result_id) per point of the sweep (point_ids in its order)."""
     levels = level_results(arrays, assessment.point_flags, accuracy_db, convention)
-    return [{"point_id": point.id, "tone_dbm": float(levels.tone_dbm[i]),
+    return [{"point_id": point_id, "tone_dbm": float(levels.tone_dbm[i]),
              **{name: _finite(getattr(levels, name)[i]) for name in _LEVEL_COLUMNS}}
-            for i, point in enumerate(stored_points)]
+            for i, point_id in enumerate(point_ids)]

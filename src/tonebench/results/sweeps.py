@@ -93,6 +93,67 @@ def analysis_points(session: Session, run_ids: list[int]) -> dict[int, list[Stor
     return per_run
 
 
+# Re-analysis as stored reads each batch's points into one float matrix: the numeric columns
+# (group axes first), with the row id, run id, overload and extra_json kept as Python values.
+# Only what the analysis reads as stored: no tone frequencies or source settings (re-referral's).
+_MATRIX_FIELDS = tuple(dict.fromkeys((
+    *GROUP_FIELDS, *(name for name in POINT_ARRAYS if name != "overload"), *RAW_ARRAYS, "raw_diff_dbm", "raw_sum_dbm")))
+_COLUMN = {name: i for i, name in enumerate(_MATRIX_FIELDS)}
+
+
+@dataclass(frozen=True)
+class BatchSweep:
+    """One sweep of a batch read for re-analysis as stored: its run, its value on every group axis,
+    its points' row ids (tone power up) and its slice of the batch's points."""
+
+    run_id: int
+    group: dict[str, float | None]
+    point_ids: list[int]
+    points: slice
+
+
+def batch_sweeps(session: Session, run_ids: list[int]) -> tuple[SweepData | None, list[BatchSweep]]:
+    """The runs' measured points as stored (no re-referral), from one query: the analysis input of
+    all of them back to back (None without points) and each sweep's slice, run by run.
+
+    The same values as point_sweeps + sweep_data, built column by column for the whole batch
+    instead of point by point (a float column of NaN for None; overload False for None)."""
+    fields = ("extra_json", "overload", *_MATRIX_FIELDS)
+    columns = [Point.id, Point.run_id, *(getattr(Point, name) for name in fields)]
+    rows = [tuple(row) for row in session.execute(
+        select(*columns).where(Point.run_id.in_(run_ids), Point.status == "measured")
+        .order_by(Point.run_id, *_SWEEP_ORDER))]
+    if not rows:
+        return None, []
+    first = 4  # id, run_id, extra_json, overload
+    matrix = np.array([row[first:] for row in rows], dtype=float)
+    # Column-major so that each sweep's slice of a column is contiguous, as its own array was.
+    cols = {name: np.ascontiguousarray(matrix[:, i]) for name, i in _COLUMN.items()}
+    cols["overload"] = np.array([bool(row[3]) for row in rows], dtype=bool)
+    extras = [row[2] or {} for row in rows]
+    for name in EXTRA_ARRAYS:
+        cols[name] = _nan_array(extra.get(name) for extra in extras) if any(extras) else np.full(len(rows), np.nan)
+    # A second-order product's noise floor has the same output loss as the product (sweep_data).
+    noise = {side: cols[f"raw_noise_{side}_dbm"] + cols[f"im2_{side}_dbm"] - cols[f"raw_{side}_dbm"]
+             for side in ("diff", "sum")}
+    data = SweepData(**{name: cols[name] for name in (*POINT_ARRAYS, *RAW_ARRAYS)},
+                     raw_noise_lower_step_dbm=cols["raw_noise_lower_step_dbm"],
+                     raw_noise_upper_step_dbm=cols["raw_noise_upper_step_dbm"],
+                     noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
+    group_at = [first + _COLUMN[name] for name in GROUP_FIELDS]
+
+    def sweep_of(row):
+        return row[1], tuple(row[i] for i in group_at)
+
+    sweeps, start = [], 0
+    for (run_id, key), members in groupby(rows, key=sweep_of):
+        stop = start + sum(1 for _ in members)
+        sweeps.append(BatchSweep(run_id, dict(zip(GROUP_FIELDS, key)), [row[0] for row in rows[start:stop]],
+                                 slice(start, stop)))
+        start = stop
+    return data, sweeps
+
+
 def rereferred(point: PointRecord | Point, tables: dict[str, LossTable]) -> dict[str, float | None]:
     """The point's DUT-referred values with another set's path losses, from its raw readings."""
     offsets = point_offsets(tables, point.f1_hz, point.f2_hz, second_order=point.raw_diff_dbm is not None)
