@@ -17,6 +17,7 @@ import numpy as np
 from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bound_db
 from tonebench.analysis.sweep_fit import SweepResult
 from tonebench.analysis.flags import Flag
+from tonebench.analysis.detectors import detector_flags
 from tonebench.analysis.intercepts import point_intercepts
 from tonebench.analysis.point_checks import PointFlags, check_imbalance, check_noise, check_overload
 from tonebench.analysis.region import check_compression, fit_valid_region
@@ -65,6 +66,7 @@ class SweepData:
     im2_sum_dbm: object = None
     noise_diff_dbm: object = None
     noise_sum_dbm: object = None
+    noise_peak_detected: object = None  # 1.0 where the noise was read with a peak detector (analysis/detectors.py)
 
     def arrays(self) -> dict[str, np.ndarray]:
         """Every field as a float array (overload as bool); missing optional fields as NaN."""
@@ -153,7 +155,8 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
         *slope_result(fit),
     ]
     point_flags = merged_point_flags(over.size, (noise.flags, overload.flags, distortion.flags, source.flags,
-                                                 imbalance.flags, region.flags, compression.flags))
+                                                 imbalance.flags, region.flags, compression.flags,
+                                                 detector_flags(a, noise.noisy)))
     second = sweep_second_order(a, pts.gain_db, over, fit.gain_db, settings.level_accuracy_db,
                                 compression.compression_db)
     return SweepAssessment(

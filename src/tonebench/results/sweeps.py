@@ -11,6 +11,7 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from tonebench.analysis import detectors
 from tonebench.analysis.assess import (
     DEFAULT_LEVEL_ACCURACY_DB,
     AnalysisSettings,
@@ -131,9 +132,13 @@ def sweep_data(records: list[PointRecord], arrays: dict[str, np.ndarray]) -> Swe
     # A second-order product's noise floor has the same output loss as the product.
     noise = {side: extra[f"raw_noise_{side}_dbm"] + arrays[f"im2_{side}_dbm"]
              - _nan_array(getattr(record, f"raw_{side}_dbm") for record in records) for side in ("diff", "sum")}
-    return SweepData(**arrays, **raw, raw_noise_lower_step_dbm=extra["raw_noise_lower_step_dbm"],
-                     raw_noise_upper_step_dbm=extra["raw_noise_upper_step_dbm"],
-                     noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
+    values = {**arrays, **raw, "raw_noise_lower_step_dbm": extra["raw_noise_lower_step_dbm"],
+              "raw_noise_upper_step_dbm": extra["raw_noise_upper_step_dbm"],
+              "noise_diff_dbm": noise["diff"], "noise_sum_dbm": noise["sum"]}
+    # Readings of a biased detector mode made power readings; peak-detected noise marked (analysis/detectors.py).
+    detector, average_type = detectors.modes_of(records)
+    return SweepData(**detectors.as_power_readings(values, detector, average_type),
+                     noise_peak_detected=detectors.peak_mask(detector))
 
 
 def _residual_shares(cal: CalibrationSet | None, center_hz: float, spacing_hz: float) -> tuple[dict, str | None]:
