@@ -41,7 +41,8 @@ POINT_ARRAYS = (
 # Raw columns the flags need as read (analyzer input plane), never re-referred.
 RAW_ARRAYS = (
     "atten_db", "raw_f1_dbm", "raw_f2_dbm", "raw_lower_dbm", "raw_upper_dbm", "raw_noise_lower_dbm",
-    "raw_noise_upper_dbm", "step_atten_db", "raw_lower_step_dbm", "raw_upper_step_dbm",
+    "raw_noise_upper_dbm", "step_atten_db", "raw_lower_step_dbm", "raw_upper_step_dbm", "raw_diff_dbm",
+    "raw_sum_dbm",
 )
 
 
@@ -176,6 +177,7 @@ def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, sp
     return AnalysisSettings(
         level_accuracy_db=figures.get("level_accuracy_db", DEFAULT_LEVEL_ACCURACY_DB),
         mixer_toi_dbm=figures.get("mixer_toi_dbm"),
+        mixer_shi_dbm=figures.get("mixer_shi_dbm"),
         max_mixer_dbm=figures.get("max_mixer_dbm"),
         system_note=note,
         **shares,

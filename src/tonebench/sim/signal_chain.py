@@ -15,6 +15,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from tonebench.sim import detector as sim_detector
+from tonebench.sim.analyzer_im2 import add_analyzer_im2
 from tonebench.sim import physics
 from tonebench.sim.chamber import SimChamber
 from tonebench.sim.fet_stage import FetBias, FetStage
@@ -194,6 +195,7 @@ def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[Source
             float(vpeak_to_dbm(low_v)), float(vpeak_to_dbm(high_v)), atten_db, scenario.analyzer.mixer_toi_dbm)
         amp_v[physics.product_bin(2, -1)] += physics.im3_phasor_v(mixer_low_dbm, low_v, high_v, True, phase_deg)
         amp_v[physics.product_bin(-1, 2)] += physics.im3_phasor_v(mixer_high_dbm, low_v, high_v, False, phase_deg)
+        add_analyzer_im2(amp_v, low_v, high_v, atten_db, scenario.analyzer.mixer_shi_dbm)
     return AnalyzerInput(freq_hz, amp_v)
 
 
