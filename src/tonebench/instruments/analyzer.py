@@ -220,7 +220,8 @@ class SpectrumAnalyzer(RoleDriver):
         return sweep_time_s
 
     def predicted_sweep_time_s(self, setup: AnalyzerSetup) -> float:
-        """The sweep time of `setup` by sweep_time_model_s, k from the dialect (or bench file)."""
+        """The time one read of `setup` sweeps, by sweep_time_model_s (k from the dialect or bench
+        file), times the sweeps of a trace average (sweeps_per_read)."""
         return self.sweeps_per_read * sweep_time_model_s(self.performance["sweep_time_factor"], setup.span_hz,
                                                          setup.rbw_hz, setup.vbw_hz)
 
