@@ -86,3 +86,22 @@ def test_default_detector_keeps_the_old_draws():
     first, second = _bench(seed=11), _bench(seed=11)
     second.analyzer.detector = detector.DetectorState()
     assert np.array_equal(first.sweep(), second.sweep())
+
+
+def test_scpi_detector_and_average_commands():
+    from tonebench.sim.instruments import SimAnalyzer
+
+    bench = _bench()
+    panel = SimAnalyzer(bench)
+    panel.handle_line("DET SAMP;:AVER:TYPE LOG;:AVER:COUN 16;:AVER ON")
+    state = bench.analyzer.detector
+    assert (state.detector, state.average_type, state.average_count, state.averaging) == ("sample", "log", 16, True)
+    assert panel.handle_line("DET?;:AVER:TYPE?;:AVER:COUN?;:AVER?") == "SAMP;LOG;16;1"
+    panel.handle_line("SENSE:DETECTOR:FUNCTION POSITIVE")
+    assert bench.analyzer.detector.detector == "peak"
+    panel.handle_line("DET QPE")
+    panel.handle_line("AVER:COUN 2.5")
+    assert panel.handle_line("SYST:ERR?").startswith("-224,")
+    assert panel.handle_line("SYST:ERR?").startswith("-222,")
+    panel.handle_line("*RST")
+    assert bench.analyzer.detector.is_default
