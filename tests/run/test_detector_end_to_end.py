@@ -78,3 +78,30 @@ def test_peak_detected_noise_is_flagged_not_corrected(tmp_path):
     details = [f.detail for f in session.scalars(select(PointFlag)) if "peak detector" in (f.detail or "")]
     snr = np.fmin(arrays["im3_lower_dbm"] - arrays["noise_lower_dbm"], arrays["im3_upper_dbm"] - arrays["noise_upper_dbm"])
     assert len(details) == int(np.sum((snr >= 10.0) & (snr < 20.0))) >= 1
+
+
+def test_detector_sent_again_after_an_analyzer_reboot(tmp_path):
+    # The analyzer reboots (back to rms, power, no average) at its third sweep, in the first point;
+    # the restore sends the detector and averaging again, so the noisy points after it are still
+    # log-averaged sample readings and corrected as such.
+    from sqlalchemy import create_engine
+    from sqlalchemy.orm import Session
+
+    from tonebench.run.start import execute_run
+
+    plan = write_plan(tmp_path, -44.0, -36.0, atten_db=10.0)
+    plan.write_text(plan.read_text() + 'detector = "sample"\naveraging = "log"\naverage_count = 32\n')
+    bench = write_bench(tmp_path, mixer_toi_dbm=45.0)
+    bench.write_text(bench.read_text() + "\n[unattended]\nbackoff_s = 0.01\n"
+                     '\n[[simulation.faults]]\ninstrument = "analyzer"\nkind = "reboot"\non = "INIT:IMM"\nnth = 3\n'
+                     "keep_connection = true\n")
+    sims = []
+    db = f"sqlite:///{tmp_path / 'runs.db'}"
+    outcome = execute_run(plan, bench, db, None, on_sim_started=sims.append, on_warning=lambda m: None)
+    assert outcome.status == "complete" and len(sims[0].faults.fired) == 1
+    sent = [line for _, name, line in sims[0].bench.command_log if name == "analyzer" and "DET SAMP" in line]
+    assert len(sent) >= 2  # at the start and again after the reboot
+    session = Session(create_engine(db))
+    (_, stored, arrays), = point_sweeps(session, session.scalars(select(Run)).one().id)
+    data = sweep_data([p.record for p in stored], arrays).arrays()
+    assert abs(mean_error_db(data, data)) <= TOLERANCE_DB
