@@ -6,7 +6,12 @@ import pytest
 
 from tonebench.config.plan_file import AnalyzerSettings
 from tonebench.errors import InputError
-from tonebench.instruments.detector_setup import DetectorSetup, point_extra, steps_for, use_detector
+from tonebench.instruments.detector_setup import (
+    DetectorSetup,
+    point_extra,
+    steps_for,
+    use_detector,
+)
 from tonebench.instruments.dialect import load_dialect
 
 

@@ -33,7 +33,7 @@ def true_dbc(pin1_dbm: float, pin2_dbm: float) -> tuple[float, float]:
     truth = BenchTruth(Scenario(dut={"gain_db": 15.0, "iip3_dbm": -2.0, "p1db_dbm": -12.0, "iip2_dbm": 60.0}))
     amp = physics.dut_output_spectrum_v(truth.dut_model(CENTER_HZ), float(dbm_to_vpeak(pin1_dbm)),
                                         float(dbm_to_vpeak(pin2_dbm)))
-    dbm = lambda pq: float(vpeak_to_dbm(abs(amp[physics.product_bin(*pq)])))  # noqa: E731
+    dbm = lambda pq: float(vpeak_to_dbm(abs(amp[physics.product_bin(*pq)])))
     return dbm((2, -1)) - dbm((1, 0)), dbm((-1, 2)) - dbm((0, 1))
 
 
@@ -73,7 +73,7 @@ def test_corrected_im3_near_the_truth_for_each_detector(tmp_path, detector, aver
 
 
 def test_peak_detected_noise_is_flagged_not_corrected(tmp_path):
-    session, stored, arrays, data = measured(tmp_path, "peak", "power")
+    session, _, arrays, data = measured(tmp_path, "peak", "power")
     assert np.array_equal(data["noise_lower_dbm"], arrays["noise_lower_dbm"])  # no correction claimed
     details = [f.detail for f in session.scalars(select(PointFlag)) if "peak detector" in (f.detail or "")]
     snr = np.fmin(arrays["im3_lower_dbm"] - arrays["noise_lower_dbm"], arrays["im3_upper_dbm"] - arrays["noise_upper_dbm"])

@@ -12,7 +12,6 @@ import pytest
 from tonebench.sim import detector
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.signal_chain import SimBench
-from tonebench.units import watt_to_dbm
 
 
 def _bench(seed=3):

@@ -53,5 +53,5 @@ def note_of(made: dict[str, np.ndarray], mixer_shi_dbm: float | None) -> list[st
     if not counts:
         return []
     listed = ", ".join(f"{n} {name}" for name, n in counts.items())
-    return [f"analyzer-limited (distortion) IM2: {listed} point(s) left out of IIP2, the analyzer's own IM2 "
-            f"(mixer SHI {mixer_shi_dbm:g} dBm) predicted within {ANALYZER_IM2_MARGIN_DB:g} dB of the reading"]
+    return [(f"analyzer-limited (distortion) IM2: {listed} point(s) left out of IIP2, the analyzer's own IM2 "
+             f"(mixer SHI {mixer_shi_dbm:g} dBm) predicted within {ANALYZER_IM2_MARGIN_DB:g} dB of the reading")]

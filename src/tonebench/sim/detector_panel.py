@@ -8,7 +8,13 @@ is matched in its short or long form, as SCPI-1999 vol 1 7.3 has it (from memory
 from __future__ import annotations
 
 from tonebench.sim.detector import MAX_AVERAGE_COUNT
-from tonebench.sim.scpi_parser import DATA_OUT_OF_RANGE, ILLEGAL_PARAMETER_VALUE, ScpiError, parse_bool, parse_number
+from tonebench.sim.scpi_parser import (
+    DATA_OUT_OF_RANGE,
+    ILLEGAL_PARAMETER_VALUE,
+    ScpiError,
+    parse_bool,
+    parse_number,
+)
 
 # Short form, long form -> the model's name.
 _DETECTOR_WORDS = {("RMS", "RMS"): "rms", ("SAMP", "SAMPLE"): "sample", ("POS", "POSITIVE"): "peak"}
@@ -38,7 +44,7 @@ def _count(params: list[str]) -> int:
 def add_detector_commands(device) -> None:
     """Register the commands on a SimAnalyzer (its bench's analyzer state is looked up per call:
     *RST replaces it, back to rms, power averaging, averaging off, count 1)."""
-    state = lambda: device.bench.analyzer.detector  # noqa: E731
+    state = lambda: device.bench.analyzer.detector
     device._setting(("[SENSe]:DETector[:FUNCtion]",),
                     lambda p: setattr(state(), "detector", _word(p, _DETECTOR_WORDS, "detector")),
                     lambda: _short(_DETECTOR_WORDS, state().detector))
