@@ -42,6 +42,16 @@ def test_sweeps_counted_by_hand():
     assert estimate_bench_time(points, plan, bench, role_dialects(bench), done).sweeps == 222 - (17 * 4 + 4 + 2)
 
 
+def test_a_trace_average_multiplies_the_sweep_time():
+    plan = load_plan(SAMPLE_RUNS / "demo_plan.toml").settings
+    bench = load_bench(SAMPLE_RUNS / "sim_bench.toml").settings
+    points = expand(plan)
+    single = estimate_bench_time(points, plan, bench, role_dialects(bench))
+    averaged_plan = plan.model_copy(update={"analyzer": plan.analyzer.model_copy(update={"average_count": 8})})
+    averaged = estimate_bench_time(points, averaged_plan, bench, role_dialects(bench))
+    assert averaged.total_s - single.total_s == pytest.approx(7 * 222 * single.sweep_time_s)
+
+
 @pytest.mark.parametrize("plan, bench", [("demo_plan.toml", "sim_bench.toml"), ("bias_plan.toml", "bias_bench.toml"),
                                          ("bias_temperature_plan.toml", "bias_chamber_bench.toml")])
 def test_the_estimate_is_within_ten_percent_of_the_simulated_bench_time(tmp_path, plan, bench):

@@ -15,8 +15,8 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bound_db
-from tonebench.analysis.sweep_fit import FitPoints, SweepResult, fit_points
-from tonebench.analysis.flags import Flag
+from tonebench.analysis.detectors import detector_flags
+from tonebench.analysis.flags import Flag, StepJudgement
 from tonebench.analysis.point_checks import (
     NoiseCheck,
     PointFlags,
@@ -36,8 +36,10 @@ from tonebench.analysis.result_flags import (
     source_result,
 )
 from tonebench.analysis.second_order import SecondOrderResult, sweep_second_order
+from tonebench.analysis.second_order_checks import analyzer_made_im2
+from tonebench.analysis.second_order_checks import note_of as im2_note_of
 from tonebench.analysis.settings import DEFAULT_LEVEL_ACCURACY_DB, AnalysisSettings
-from tonebench.analysis.flags import StepJudgement
+from tonebench.analysis.sweep_fit import FitPoints, SweepResult, fit_points
 from tonebench.analysis.system_checks import (
     check_distortion,
     check_source_intermod,
@@ -80,6 +82,9 @@ class SweepData:
     im2_sum_dbm: object = None
     noise_diff_dbm: object = None
     noise_sum_dbm: object = None
+    raw_diff_dbm: object = None  # the IM2 readings as read (analyzer input), for second_order_checks
+    raw_sum_dbm: object = None
+    noise_peak_detected: object = None  # 1.0 where the noise was read with a peak detector (analysis/detectors.py)
 
     def arrays(self) -> dict[str, np.ndarray]:
         """Every field as a float array (overload as bool); missing optional fields as NaN."""
@@ -209,11 +214,13 @@ def _assess(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointS
         *slope_result(fit),
     ]
     point_flags = merged_point_flags(over.size, (noise.flags, overload.flags, distortion.flags, source.flags,
-                                                 imbalance.flags, region.flags, compression.flags))
+                                                 imbalance.flags, region.flags, compression.flags,
+                                                 detector_flags(a, noise.noisy)))
+    analyzer_im2 = analyzer_made_im2(a, settings.mixer_shi_dbm)
     second = sweep_second_order(a, pts.gain_db, over, fit.gain_db, settings.level_accuracy_db,
-                                compression.compression_db)
+                                compression.compression_db, analyzer_im2)
     return SweepAssessment(
         fit=fit, point_flags=point_flags, result_flags=result_flags, iip3_bound_db=iip3_bound_db(terms),
         bound_terms_db=terms, iip3_at_least_dbm=at_least, second_order=second,
         effective_mixer_toi_dbm=distortion.toi_dbm, step_change_db=distortion.step_change_db,
-        notes=[*distortion.notes, *source.notes])
+        notes=[*distortion.notes, *source.notes, *im2_note_of(analyzer_im2, settings.mixer_shi_dbm)])

@@ -47,14 +47,16 @@ def point_iip2_dbm(pin1_dbm, pin2_dbm, gain_db, im2_dbm) -> np.ndarray:
 
 def fit_second_order(pin1_dbm, pin2_dbm, gain_db, usable, products: dict[str, tuple],
                      level_accuracy_db: float, compression_db,
-                     small_signal_gain_db: float | None) -> SecondOrderResult:
+                     small_signal_gain_db: float | None,
+                     analyzer_made: dict[str, np.ndarray] | None = None) -> SecondOrderResult:
     """Fit IIP2 with slope 2 for each product given as name -> (im2_dbm, noise_dbm) arrays.
 
     usable: points inside the small-signal region of the tones (gain, overload), a bool array;
     gain_db the per-point gain, compression_db how far it is below small_signal_gain_db.
     A product's point is valid when also at least 10 dB over its own noise floor. The bound of
     each product's IIP2 is the analyzer's relative level accuracy (IIP2 takes it 1:1), the gain
-    compression of its points (1:1 through G) and the fit scatter.
+    compression of its points (1:1 through G) and the fit scatter. analyzer_made: per product the
+    points the analyzer's own IM2 may share (second_order_checks.py), left out.
     """
     pin1 = np.asarray(pin1_dbm, dtype=float)
     pin2 = np.asarray(pin2_dbm, dtype=float)
@@ -70,11 +72,15 @@ def fit_second_order(pin1_dbm, pin2_dbm, gain_db, usable, products: dict[str, tu
         with np.errstate(invalid="ignore"):
             clear = im2 - noise >= IM3_OVER_NOISE_MIN_DB
         valid = usable & clear & np.isfinite(corrected)
+        made = (analyzer_made or {}).get(name)
+        if made is not None:
+            valid &= ~np.asarray(made, dtype=bool)
         n_valid = int(valid.sum())
         entry = {"n_valid": n_valid, "iip2_dbm": None, "slope": None, "bound_db": None, "reason": None}
         if n_valid < MIN_VALID_POINTS:
             entry["reason"] = (f"{name} product: only {n_valid} points at least {IM3_OVER_NOISE_MIN_DB:g} dB "
-                               f"over the noise in the small-signal region (need {MIN_VALID_POINTS})")
+                               f"over the noise in the small-signal region" + _analyzer_part(made)
+                               + f" (need {MIN_VALID_POINTS})")
         else:
             per_point = point_iip2_dbm(pin1, pin2, gain, corrected)[valid]
             x = ((pin1 + pin2) / 2.0)[valid]
@@ -100,8 +106,14 @@ def fit_second_order(pin1_dbm, pin2_dbm, gain_db, usable, products: dict[str, tu
     )
 
 
+def _analyzer_part(made) -> str:
+    count = 0 if made is None else int(np.sum(made))
+    return f" and clear of the analyzer's own IM2 ({count} left out)" if count else ""
+
+
 def sweep_second_order(a: dict[str, np.ndarray], point_gain_db, over, small_signal_gain_db: float | None,
-                       level_accuracy_db: float, compression_db) -> SecondOrderResult | None:
+                       level_accuracy_db: float, compression_db,
+                       analyzer_made: dict[str, np.ndarray] | None = None) -> SecondOrderResult | None:
     """IIP2 of one sweep (SweepData.arrays()) over the tones' small-signal, non-overloaded points;
     None when no second-order product was read."""
     if not (np.isfinite(a["im2_diff_dbm"]).any() or np.isfinite(a["im2_sum_dbm"]).any()):
@@ -110,4 +122,4 @@ def sweep_second_order(a: dict[str, np.ndarray], point_gain_db, over, small_sign
     return fit_second_order(
         a["pin1_dbm"], a["pin2_dbm"], point_gain_db, usable,
         {"diff": (a["im2_diff_dbm"], a["noise_diff_dbm"]), "sum": (a["im2_sum_dbm"], a["noise_sum_dbm"])},
-        level_accuracy_db, compression_db, small_signal_gain_db)
+        level_accuracy_db, compression_db, small_signal_gain_db, analyzer_made)

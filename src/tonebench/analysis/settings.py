@@ -28,6 +28,7 @@ class AnalysisSettings:
 
     level_accuracy_db: float = DEFAULT_LEVEL_ACCURACY_DB
     mixer_toi_dbm: float | None = None
+    mixer_shi_dbm: float | None = None  # the analyzer's second-harmonic intercept (second_order_checks.py)
     max_mixer_dbm: float | None = None
     system_ip3_dbm: float | None = None
     system_note: str | None = None

@@ -45,6 +45,7 @@ _PERFORMANCE_RANGES = {
     "danl_dbm_per_hz": (-200.0, -100.0),
     "sweep_time_factor": (0.01, 100.0),
     "level_accuracy_db": (0.0, 5.0),
+    "mixer_shi_dbm": (-50.0, 150.0),
 }
 PERFORMANCE_OVERRIDES = {key: _PERFORMANCE_RANGES[key] for key in ANALYZER_PERFORMANCE_KEYS}
 

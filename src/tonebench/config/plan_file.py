@@ -10,12 +10,14 @@ import math
 import tomllib
 import unicodedata
 from pathlib import Path
+from typing import Literal
 
 from pydantic import BaseModel, Field, field_validator, model_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
 from tonebench.config.results_choice import ResultsSettings
 from tonebench.errors import InputError
+from tonebench.instruments.detector_setup import DetectorSetup
 
 # Tone power at the DUT input plane that any plan may ask for; the bench file narrows it further.
 TONE_MIN_DBM = -150.0
@@ -286,6 +288,12 @@ class AnalyzerSettings(StrictModel):
     product_snr_db: float | None = Field(default=None, ge=10.0, le=40.0)
     iip3_accuracy_db: float | None = Field(default=None, ge=0.01, le=1.0)
     iip3_guess_dbm: float | None = Field(default=None, ge=-60.0, le=70.0)
+    # The analyzer's detector and trace averaging (instruments/detector_setup.py): sent at the run's
+    # start and stored with each point, so the noise correction knows the bias of the mode read
+    # with (analysis/detectors.py). All left out: the instrument's own, as before.
+    detector: Literal["rms", "sample", "peak"] | None = None
+    averaging: Literal["power", "log"] | None = None
+    average_count: int | None = Field(default=None, ge=1, le=10_000)
 
     @model_validator(mode="after")
     def _one_target(self) -> "AnalyzerSettings":
@@ -295,6 +303,14 @@ class AnalyzerSettings(StrictModel):
             raise ValueError("product_snr_db and iip3_accuracy_db need iip3_guess_dbm, a first guess of the "
                              "device's IIP3 (dBm) for each sweep's first point and the bench-time estimate")
         return self
+
+    @property
+    def detector_setup(self):
+        """The DetectorSetup these keys ask for (rms and power averaging where one is left out),
+        None when none is given."""
+        if self.detector is None and self.averaging is None and self.average_count is None:
+            return None
+        return DetectorSetup(self.detector or "rms", self.averaging or "power", self.average_count or 1)
 
     @property
     def reads_to_target(self) -> bool:

@@ -74,6 +74,10 @@ class SpectrumAnalyzer(RoleDriver):
         # The sweep time first reported for each setup: its signature (see _settings_lost).
         self._sweep_time_by_setup: dict[AnalyzerSetup, float] = {}
         self._errors_deferred = False  # inside errors_read_once()
+        # Detector and trace-averaging operations sent with prepare(), and the sweeps one read
+        # then takes (instruments/detector_setup.py use_detector).
+        self.detector_steps: list[tuple[str, dict]] = []
+        self.sweeps_per_read = 1
         instrument.add_restore_hook(self.restore)
 
     @contextlib.contextmanager
@@ -91,7 +95,7 @@ class SpectrumAnalyzer(RoleDriver):
     def prepare(self) -> None:
         """Clear status and switch to single sweeps; the instrument state is then unknown."""
         self.forget_state()
-        self.instrument.configure([("clear_status", {}), ("single_sweep_mode", {})])
+        self.instrument.configure([("clear_status", {}), ("single_sweep_mode", {}), *self.detector_steps])
 
     def forget_state(self) -> None:
         """Send every setting again next time (e.g. after the analyzer may have lost them)."""
@@ -218,12 +222,14 @@ class SpectrumAnalyzer(RoleDriver):
         # The centre (when it changed), the sweep and the wait for it: one line where the dialect joins them.
         self._send_changed([("set_center", "freq_hz", center_hz)], drain=False,
                            then=[("start_sweep", {}), ("wait_complete", {})],
-                           timeout_s=2 * sweep_time_s + inst.dialect.io.query_timeout_s)
+                           timeout_s=2 * sweep_time_s * self.sweeps_per_read + inst.dialect.io.query_timeout_s)
         return sweep_time_s
 
     def predicted_sweep_time_s(self, setup: AnalyzerSetup) -> float:
-        """The sweep time of `setup` by sweep_time_model_s, k from the dialect (or bench file)."""
-        return sweep_time_model_s(self.performance["sweep_time_factor"], setup.span_hz, setup.rbw_hz, setup.vbw_hz)
+        """The time one read of `setup` sweeps, by sweep_time_model_s (k from the dialect or bench
+        file), times the sweeps of a trace average (sweeps_per_read)."""
+        return self.sweeps_per_read * sweep_time_model_s(self.performance["sweep_time_factor"], setup.span_hz,
+                                                         setup.rbw_hz, setup.vbw_hz)
 
     def _send_changed(self, steps: list[tuple[str, str, float]], drain: bool = True,
                       then: list[tuple[str, dict]] = (), timeout_s: float | None = None) -> None:

@@ -84,6 +84,7 @@ TEMPLATE_FIELDS: dict[str, frozenset[str]] = {
     "set_vbw": frozenset({"vbw_hz"}),
     "set_attenuation": frozenset({"atten_db"}),
     "set_ref_level": frozenset({"ref_dbm"}),
+    "set_average_count": frozenset({"count"}),  # optional analyzer operation (instruments/detector_setup.py)
     "set_voltage": frozenset({"channel", "voltage_v"}),
     "set_current_limit": frozenset({"channel", "current_a"}),
     "set_temperature": frozenset({"temp_c"}),

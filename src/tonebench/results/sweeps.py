@@ -11,6 +11,7 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from tonebench.analysis import detectors
 from tonebench.analysis.assess import (
     DEFAULT_LEVEL_ACCURACY_DB,
     AnalysisSettings,
@@ -40,7 +41,8 @@ POINT_ARRAYS = (
 # Raw columns the flags need as read (analyzer input plane), never re-referred.
 RAW_ARRAYS = (
     "atten_db", "raw_f1_dbm", "raw_f2_dbm", "raw_lower_dbm", "raw_upper_dbm", "raw_noise_lower_dbm",
-    "raw_noise_upper_dbm", "step_atten_db", "raw_lower_step_dbm", "raw_upper_step_dbm",
+    "raw_noise_upper_dbm", "step_atten_db", "raw_lower_step_dbm", "raw_upper_step_dbm", "raw_diff_dbm",
+    "raw_sum_dbm",
 )
 
 
@@ -136,10 +138,14 @@ def batch_sweeps(session: Session, run_ids: list[int]) -> tuple[SweepData | None
     # A second-order product's noise floor has the same output loss as the product (sweep_data).
     noise = {side: cols[f"raw_noise_{side}_dbm"] + cols[f"im2_{side}_dbm"] - cols[f"raw_{side}_dbm"]
              for side in ("diff", "sum")}
-    data = SweepData(**{name: cols[name] for name in (*POINT_ARRAYS, *RAW_ARRAYS)},
-                     raw_noise_lower_step_dbm=cols["raw_noise_lower_step_dbm"],
-                     raw_noise_upper_step_dbm=cols["raw_noise_upper_step_dbm"],
-                     noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
+    values = {**{name: cols[name] for name in (*POINT_ARRAYS, *RAW_ARRAYS)},
+              "raw_noise_lower_step_dbm": cols["raw_noise_lower_step_dbm"],
+              "raw_noise_upper_step_dbm": cols["raw_noise_upper_step_dbm"],
+              "noise_diff_dbm": noise["diff"], "noise_sum_dbm": noise["sum"]}
+    # As sweep_data: biased detector modes made power readings, peak-detected noise marked.
+    detector, average_type = detectors.modes_of(extras)
+    data = SweepData(**detectors.as_power_readings(values, detector, average_type),
+                     noise_peak_detected=detectors.peak_mask(detector))
     group_at = [first + _COLUMN[name] for name in GROUP_FIELDS]
 
     def sweep_of(row):
@@ -192,9 +198,13 @@ def sweep_data(records: list[PointRecord], arrays: dict[str, np.ndarray]) -> Swe
     # A second-order product's noise floor has the same output loss as the product.
     noise = {side: extra[f"raw_noise_{side}_dbm"] + arrays[f"im2_{side}_dbm"]
              - _nan_array(getattr(record, f"raw_{side}_dbm") for record in records) for side in ("diff", "sum")}
-    return SweepData(**arrays, **raw, raw_noise_lower_step_dbm=extra["raw_noise_lower_step_dbm"],
-                     raw_noise_upper_step_dbm=extra["raw_noise_upper_step_dbm"],
-                     noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
+    values = {**arrays, **raw, "raw_noise_lower_step_dbm": extra["raw_noise_lower_step_dbm"],
+              "raw_noise_upper_step_dbm": extra["raw_noise_upper_step_dbm"],
+              "noise_diff_dbm": noise["diff"], "noise_sum_dbm": noise["sum"]}
+    # Readings of a biased detector mode made power readings; peak-detected noise marked (analysis/detectors.py).
+    detector, average_type = detectors.modes_of([record.extra_json or {} for record in records])
+    return SweepData(**detectors.as_power_readings(values, detector, average_type),
+                     noise_peak_detected=detectors.peak_mask(detector))
 
 
 def _residual_shares(cal: CalibrationSet | None, center_hz: float, spacing_hz: float) -> tuple[dict, str | None]:
@@ -232,6 +242,7 @@ def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, sp
     return AnalysisSettings(
         level_accuracy_db=figures.get("level_accuracy_db", DEFAULT_LEVEL_ACCURACY_DB),
         mixer_toi_dbm=figures.get("mixer_toi_dbm"),
+        mixer_shi_dbm=figures.get("mixer_shi_dbm"),
         max_mixer_dbm=figures.get("max_mixer_dbm"),
         system_note=note,
         **shares,

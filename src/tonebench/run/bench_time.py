@@ -137,6 +137,7 @@ def estimate_bench_time(points: list[PlannedPoint], plan: PlanFile, bench: Bench
                          for _, products in chosen]
         apart = any((tone.rbw_hz, tone.span_hz) != (products.rbw_hz, products.span_hz) for tone, products in chosen)
     sweeps_s = sum(t * tone_s + p * product_s for (t, p), tone_s, product_s in zip(counts, tone_times, product_times))
+    sweeps_s *= plan.analyzer.average_count or 1  # a trace average: that many sweeps per read
     tone_sweeps, product_sweeps = sum(t for t, _ in counts), sum(p for _, p in counts)
     if not apart:  # one kind of sweep
         tone_sweeps, product_sweeps = 0, tone_sweeps + product_sweeps

@@ -34,6 +34,8 @@ from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.drift import DriftTracker
 from tonebench.run.narrowing import read_narrow
 from tonebench.run.read_settings import NOISE_MARKERS, TargetReads, tone_setup_for
+from tonebench.instruments.detector_setup import point_extra as detector_extra
+from tonebench.instruments.detector_setup import use_detector
 from tonebench.run.point_build import failed_record, measured_record
 from tonebench.run.point_guard import BenchFault, PointFailed, PointGuard, settle_check
 from tonebench.run.readings import (
@@ -123,6 +125,7 @@ class Sequencer:
         guard = PointGuard(self.bench.connections, self.bench.sources(), self._restore, self._event_from_guard,
                            self.unattended.point_attempts, self._kick, self._check_stop)
         try:
+            use_detector(self.bench.analyzer, self.analyzer_settings.detector_setup)  # sent by prepare()
             self.bench.analyzer.prepare()
             for source in self.bench.sources():
                 if source.instrument.has("read_event_status"):
@@ -253,6 +256,7 @@ class Sequencer:
         drift = self.drift.observe(point, readings.f1_dbm, readings.f2_dbm)
         record = measured_record(point, measured, elapsed_s, self.offsets, self._source_settings_dbm(point),
                                  levels, drift)
+        record.extra_json.update(detector_extra(self.bench.analyzer))  # the mode the noise was read with
         store_point(self.recorder.sessions, self.recorder.run_id, record)
 
     def _stop_recovery(self) -> None:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from typing import Callable
 
+from tonebench.sim.detector_panel import add_detector_commands
 from tonebench.sim.signal_chain import PowerMeterState, SimBench
 from tonebench.sim.scpi_parser import (
     DATA_OUT_OF_RANGE,
@@ -137,6 +138,7 @@ class SimAnalyzer(_BenchDevice):
         self.query("CALCulate#:MARKer#:Y", lambda p: self._marker_power(), nparams=0)
         self.query("STATus:QUEStionable:CONDition",
                    lambda p: str((1 << OVERLOAD_BIT) if bench.overloaded() else 0), nparams=0)
+        add_detector_commands(self)
 
     def _number_field(self, pattern: str, attr: str, unit: str, low: float, high: float, what: str) -> None:
         # Looked up on each call: *RST replaces the analyzer state object.

@@ -80,6 +80,9 @@ class AnalyzerScenario(_Strict):
     """The swept spectrum analyzer."""
 
     mixer_toi_dbm: float = Field(15.0, ge=-30.0, le=300.0)
+    # Second-harmonic intercept of the first mixer (0 dB attenuation); None: its IM2 not modelled
+    # (as before). Its two-tone IM2 is P1 + P2 - (SHI - 6 dB), in phase with the DUT's (sim/analyzer_im2.py).
+    mixer_shi_dbm: float | None = Field(None, ge=-30.0, le=300.0)
     # Noise density at 0 dB attenuation; rises dB for dB with attenuation.
     danl_dbm_per_hz: float = Field(-150.0, ge=-200.0, le=-100.0)
     level_error_db: float = Field(0.0, ge=-20.0, le=20.0)

@@ -14,6 +14,8 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from tonebench.sim import detector as sim_detector
+from tonebench.sim.analyzer_im2 import add_analyzer_im2
 from tonebench.sim import physics
 from tonebench.sim.chamber import SimChamber
 from tonebench.sim.fet_stage import FetBias, FetStage
@@ -74,6 +76,7 @@ class AnalyzerState:
     trace_dbm: np.ndarray | None = None
     overloaded: bool = False  # during the last sweep
     damaged: bool = False  # survives *RST: it is the hardware
+    detector: sim_detector.DetectorState = field(default_factory=sim_detector.DetectorState)
 
 
 @dataclass
@@ -192,6 +195,7 @@ def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[Source
             float(vpeak_to_dbm(low_v)), float(vpeak_to_dbm(high_v)), atten_db, scenario.analyzer.mixer_toi_dbm)
         amp_v[physics.product_bin(2, -1)] += physics.im3_phasor_v(mixer_low_dbm, low_v, high_v, True, phase_deg)
         amp_v[physics.product_bin(-1, 2)] += physics.im3_phasor_v(mixer_high_dbm, low_v, high_v, False, phase_deg)
+        add_analyzer_im2(amp_v, low_v, high_v, atten_db, scenario.analyzer.mixer_shi_dbm)
     return AnalyzerInput(freq_hz, amp_v)
 
 
@@ -368,17 +372,22 @@ class SimBench:
                                - self.truth.true_loss_db("out", freq_hz))
         noise_dbm_per_hz = physics.analyzer_noise_dbm_per_hz(settings.danl_dbm_per_hz, state.atten_db,
                                                              arriving_dbm_per_hz)
-        power_w = physics.trace_power_w(freq_hz, lines.freq_hz, physics.vpeak_to_watt(lines.amp_v), state.rbw_hz,
-                                        noise_dbm_per_hz,
-                                        physics.video_averages(settings.noise_averages, state.rbw_hz, state.vbw_hz),
-                                        self._rng)
+        if state.detector.is_default:
+            power_w = physics.trace_power_w(freq_hz, lines.freq_hz, physics.vpeak_to_watt(lines.amp_v), state.rbw_hz,
+                                            noise_dbm_per_hz,
+                                            physics.video_averages(settings.noise_averages, state.rbw_hz, state.vbw_hz),
+                                            self._rng)
+        else:  # another detector, log averaging or a trace average (sim/detector.py)
+            power_w = sim_detector.trace_reading_w(freq_hz, lines.freq_hz, physics.vpeak_to_watt(lines.amp_v),
+                                                   state.rbw_hz, state.vbw_hz, noise_dbm_per_hz,
+                                                   settings.noise_averages, state.detector, self._rng)
         compression_db = physics.overload_compression_db(_total_dbm(lines.amp_v) - state.atten_db,
                                                          settings.overload_mixer_dbm)
         state.trace_freq_hz = freq_hz
         state.trace_dbm = (watt_to_dbm(power_w) - compression_db
                            + physics.amplitude_error_db(freq_hz, settings.level_error_db, settings.flatness_db_per_ghz))
         state.overloaded = compression_db > 0.0
-        self.clock_s += self.sweep_time_s()
+        self.clock_s += self.sweep_time_s() * state.detector.sweeps  # a trace average: that many sweeps
         return state.trace_dbm
 
     def marker_power_dbm(self) -> float:
