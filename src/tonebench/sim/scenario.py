@@ -98,6 +98,10 @@ class AnalyzerScenario(_Strict):
     damage_dbm: float = Field(30.0, ge=-20.0, le=60.0)
     sweep_time_factor: float = Field(2.5, gt=0.0, le=100.0)
     trace_points: int = Field(1001, ge=3, le=100_001)
+    # LO phase noise (sim/phase_noise.py: reciprocal mixing) at phase_noise_offset_hz, flat inside
+    # it and -20 dB per decade beyond; None: an ideal LO (every existing figure unchanged).
+    phase_noise_dbc_per_hz: float | None = Field(None, ge=-200.0, le=-40.0)
+    phase_noise_offset_hz: float = Field(1e4, gt=0.0, le=1e9)
 
 
 class PowerMeterScenario(_Strict):

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from tonebench.sim import memory, physics
+from tonebench.sim import memory, phase_noise, physics
 from tonebench.sim.chamber import SimChamber
 from tonebench.sim.fet_stage import FetBias, FetStage
 from tonebench.sim.scenario import Scenario
@@ -383,6 +383,8 @@ class SimBench:
                                - self.truth.true_loss_db("out", freq_hz))
         noise_dbm_per_hz = physics.analyzer_noise_dbm_per_hz(settings.danl_dbm_per_hz, state.atten_db,
                                                              arriving_dbm_per_hz)
+        noise_dbm_per_hz = phase_noise.with_reciprocal_mixing(noise_dbm_per_hz, freq_hz, lines.freq_hz,
+                                                              physics.vpeak_to_watt(lines.amp_v), settings)
         power_w = physics.trace_power_w(freq_hz, lines.freq_hz, physics.vpeak_to_watt(lines.amp_v), state.rbw_hz,
                                         noise_dbm_per_hz,
                                         physics.video_averages(settings.noise_averages, state.rbw_hz, state.vbw_hz),
