@@ -18,6 +18,7 @@ from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bou
 from tonebench.analysis.sweep_fit import SweepResult
 from tonebench.analysis.flags import Flag
 from tonebench.analysis.intercepts import point_intercepts
+from tonebench.analysis.phase_noise import check_phase_noise, phase_noise_result
 from tonebench.analysis.point_checks import PointFlags, check_imbalance, check_noise, check_overload
 from tonebench.analysis.region import check_compression, fit_valid_region
 from tonebench.analysis.result_flags import (
@@ -65,6 +66,7 @@ class SweepData:
     im2_sum_dbm: object = None
     noise_diff_dbm: object = None
     noise_sum_dbm: object = None
+    rbw_hz: object = None  # the products' RBW (phase-noise check)
 
     def arrays(self) -> dict[str, np.ndarray]:
         """Every field as a float array (overload as bool); missing optional fields as NaN."""
@@ -130,7 +132,8 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
     overload = check_overload(a, settings.max_mixer_dbm)
     over = overload.over
     distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy)
-    analyzer_flag = distortion.share.flagged
+    phase = check_phase_noise(a, settings)
+    analyzer_flag = distortion.share.flagged | phase.flagged
     source = check_source_intermod(a, settings, noise.lower_dbm, noise.upper_dbm, pts.gain_db)
     imbalance = check_imbalance(a)
     region = fit_valid_region(a, over, analyzer_flag, noise.error_db)
@@ -151,8 +154,9 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
         *source_result(source, settings, scope, terms.get("source")),
         *imbalance_result(imbalance, scope),
         *slope_result(fit),
+        *phase_noise_result(phase, settings, over, fit.valid_mask if not refused else np.zeros(over.size, bool)),
     ]
-    point_flags = merged_point_flags(over.size, (noise.flags, overload.flags, distortion.flags, source.flags,
+    point_flags = merged_point_flags(over.size, (noise.flags, phase.flags, overload.flags, distortion.flags, source.flags,
                                                  imbalance.flags, region.flags, compression.flags))
     second = sweep_second_order(a, pts.gain_db, over, fit.gain_db, settings.level_accuracy_db,
                                 compression.compression_db)

@@ -57,7 +57,7 @@ _REFERRAL_INPUTS = (
 
 # The point columns the analysis reads (re-analysis of many runs loads only these).
 ANALYSIS_FIELDS = tuple(dict.fromkeys((
-    *GROUP_FIELDS, "tone_dbm", "f1_hz", "f2_hz", "raw_diff_dbm", "extra_json",
+    *GROUP_FIELDS, "tone_dbm", "f1_hz", "f2_hz", "raw_diff_dbm", "extra_json", "rbw_hz",
     *POINT_ARRAYS, *RAW_ARRAYS, *_REFERRAL_INPUTS)))
 
 # Sweep by sweep, tone power up.
@@ -131,7 +131,9 @@ def sweep_data(records: list[PointRecord], arrays: dict[str, np.ndarray]) -> Swe
     # A second-order product's noise floor has the same output loss as the product.
     noise = {side: extra[f"raw_noise_{side}_dbm"] + arrays[f"im2_{side}_dbm"]
              - _nan_array(getattr(record, f"raw_{side}_dbm") for record in records) for side in ("diff", "sum")}
-    return SweepData(**arrays, **raw, raw_noise_lower_step_dbm=extra["raw_noise_lower_step_dbm"],
+    # The products' RBW: a read narrowed to reach its target keeps its own (point_build.py).
+    rbw = _nan_array((record.extra_json or {}).get("im3_rbw_hz", record.rbw_hz) for record in records)
+    return SweepData(**arrays, **raw, rbw_hz=rbw, raw_noise_lower_step_dbm=extra["raw_noise_lower_step_dbm"],
                      raw_noise_upper_step_dbm=extra["raw_noise_upper_step_dbm"],
                      noise_diff_dbm=noise["diff"], noise_sum_dbm=noise["sum"])
 
@@ -172,6 +174,9 @@ def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, sp
         level_accuracy_db=figures.get("level_accuracy_db", DEFAULT_LEVEL_ACCURACY_DB),
         mixer_toi_dbm=figures.get("mixer_toi_dbm"),
         max_mixer_dbm=figures.get("max_mixer_dbm"),
+        phase_noise_dbc_per_hz=figures.get("phase_noise_dbc_per_hz"),
+        phase_noise_offset_hz=figures.get("phase_noise_offset_hz"),
+        spacing_hz=spacing_hz,
         system_note=note,
         **shares,
     )

@@ -217,7 +217,8 @@ def analyzer_figures(open_instruments: OpenBench) -> dict:
     judges the readings by the instrument that took them: its mixer TOI, noise floor, relative
     level accuracy (dialect [performance], bench-file overrides) and mixer limit."""
     analyzer = open_instruments.analyzer
-    figures = {key: analyzer.performance[key] for key in ("mixer_toi_dbm", "danl_dbm_per_hz", "level_accuracy_db")
+    figures = {key: analyzer.performance[key] for key in ("mixer_toi_dbm", "danl_dbm_per_hz", "level_accuracy_db",
+                                                           "phase_noise_dbc_per_hz", "phase_noise_offset_hz")
                if key in analyzer.performance}
     if "max_mixer_dbm" in analyzer.limits:
         figures["max_mixer_dbm"] = analyzer.limits["max_mixer_dbm"]
