@@ -117,3 +117,20 @@ def test_poor_analyzer_phase_noise_at_10_khz_is_flagged_and_good_is_not(tmp_path
     assert abs(poor[1e4]["iip3_dbm"] - good[1e4]["iip3_dbm"]) < poor[1e4]["iip3_bound_db"]
     # 100 kHz away the skirt is 20 dB lower: no flag there even on the poor analyzer.
     assert not reciprocal(poor[1e5])
+
+
+@pytest.mark.parametrize("spacing, words", [
+    ('"1 kHz"', "analyzer span 3000.0 Hz must be narrower than the tone spacing 1000.0 Hz"),
+    ('"200 MHz"', "'out' covers 2.3 GHz to 2.6 GHz; the plan needs 2.15 GHz (2f1-f2 of tones 2.35 GHz/2.55 GHz)"),
+    ('"2 GHz"', "with spacing 2000000000.0 Hz puts 2f1-f2 at or below 0 Hz"),
+])
+def test_a_spacing_the_bench_cannot_take_is_refused_in_one_line(tmp_path, spacing, words):
+    plan_text = PLAN.read_text()
+    assert 'spacings_hz = ["10 kHz"' in plan_text
+    plan = tmp_path / "plan.toml"
+    plan.write_text("\n".join(f"spacings_hz = [{spacing}]" if line.startswith("spacings_hz") else line
+                              for line in plan_text.splitlines()))
+    result = invoke("run", plan, "--bench", SAMPLE_RUNS / "sim_bench.toml", "--db", tmp_path / "t.db")
+    lines = [line for line in result.output.splitlines() if line.strip()]
+    assert result.exit_code == 2 and len(lines) == 1 and words in lines[0], result.output
+    assert not (tmp_path / "t.db").exists()
