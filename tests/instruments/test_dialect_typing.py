@@ -120,3 +120,14 @@ def test_misspelled_bench_file_override_is_named(workdir):
     assert "performance.mixer_toi_dBm is not a figure tonebench uses" in result.output
     assert "(did you mean mixer_toi_dbm?)" in result.output
     assert not (workdir / "t.db").exists()
+
+
+def test_phase_noise_without_its_offset(workdir):
+    line = refused(workdir, ANALYZER.replace("phase_noise_offset_hz = 10e3\n", ""))
+    assert ("field 'performance.phase_noise_dbc_per_hz' needs its partner: give phase_noise_dbc_per_hz (dBc/Hz) "
+            "together with phase_noise_offset_hz") in line
+
+
+def test_phase_noise_at_a_zero_offset(workdir):
+    line = refused(workdir, ANALYZER.replace("phase_noise_offset_hz = 10e3", "phase_noise_offset_hz = 0.0"))
+    assert "field 'performance.phase_noise_offset_hz': 0.0 Hz; the offset must be above 0 Hz" in line

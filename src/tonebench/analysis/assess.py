@@ -17,6 +17,7 @@ import numpy as np
 from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bound_db
 from tonebench.analysis.detectors import detector_flags
 from tonebench.analysis.flags import Flag, StepJudgement
+from tonebench.analysis.phase_noise import check_phase_noise, phase_noise_result
 from tonebench.analysis.point_checks import (
     NoiseCheck,
     PointFlags,
@@ -85,6 +86,7 @@ class SweepData:
     raw_diff_dbm: object = None  # the IM2 readings as read (analyzer input), for second_order_checks
     raw_sum_dbm: object = None
     noise_peak_detected: object = None  # 1.0 where the noise was read with a peak detector (analysis/detectors.py)
+    rbw_hz: object = None  # the products' RBW (phase-noise check)
 
     def arrays(self) -> dict[str, np.ndarray]:
         """Every field as a float array (overload as bool); missing optional fields as NaN."""
@@ -191,7 +193,8 @@ def _assess(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointS
     overload = check_overload(a, settings.max_mixer_dbm, steps.mixer_dbm)
     over = overload.over
     distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged, steps.raw_products_dbm)
-    analyzer_flag = distortion.share.flagged
+    phase = check_phase_noise(a, settings)
+    analyzer_flag = distortion.share.flagged | phase.flagged
     source = check_source_intermod(a, settings, noise.lower_dbm, noise.upper_dbm, pts.gain_db)
     imbalance = check_imbalance(a)
     region = fit_valid_region(a, over, analyzer_flag, noise.error_db, steps.fit)
@@ -212,8 +215,9 @@ def _assess(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointS
         *source_result(source, settings, scope, terms.get("source")),
         *imbalance_result(imbalance, scope),
         *slope_result(fit),
+        *phase_noise_result(phase, settings, over, fit.valid_mask if not refused else np.zeros(over.size, bool)),
     ]
-    point_flags = merged_point_flags(over.size, (noise.flags, overload.flags, distortion.flags, source.flags,
+    point_flags = merged_point_flags(over.size, (noise.flags, phase.flags, overload.flags, distortion.flags, source.flags,
                                                  imbalance.flags, region.flags, compression.flags,
                                                  detector_flags(a, noise.noisy)))
     analyzer_im2 = analyzer_made_im2(a, settings.mixer_shi_dbm)

@@ -36,3 +36,8 @@ class AnalysisSettings:
     source_ip3_is_bound: bool = False
     analyzer_ip3_dbm: float | None = None
     residual_atten_db: float | None = None
+    # The analyzer's LO phase noise (dialect [performance]) and the sweep's spacing, for the
+    # reciprocal-mixing check (analysis/phase_noise.py); None: not checked.
+    phase_noise_dbc_per_hz: float | None = None
+    phase_noise_offset_hz: float | None = None
+    spacing_hz: float | None = None

@@ -101,6 +101,7 @@ class Database:
             found = find_results(session, flt, rows)
             extras = result_extras(session, [r.result_id for r in found])
         frame = results_frame(found)
+        frame["im3_asymmetry_db"] = [extras[r.result_id]["im3_asymmetry_db"] for r in found]
         frame["intercept_convention"] = [extras[r.result_id]["intercept_convention"] for r in found]
         frame["levels"] = [extras[r.result_id]["levels"] for r in found]
         return frame

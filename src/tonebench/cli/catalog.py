@@ -97,9 +97,9 @@ def _print_rows(rows, as_csv: bool, as_json: bool, out_path: Path | None, extras
     records = [{name: getattr(r, name) for name in EXPORT_FIELDS} for r in rows]
     fields = EXPORT_FIELDS
     if extras is not None:
-        records = [{**record, **extras.get(r.result_id, {"intercept_convention": None, "levels": []})}
-                   for record, r in zip(records, rows)]
-        fields = (*EXPORT_FIELDS, "intercept_convention", "levels")
+        missing = {"im3_asymmetry_db": None, "intercept_convention": None, "levels": []}
+        records = [{**record, **extras.get(r.result_id, missing)} for record, r in zip(records, rows)]
+        fields = (*EXPORT_FIELDS, "im3_asymmetry_db", "intercept_convention", "levels")
     _write_export(records, fields, as_json, out_path)
 
 

@@ -46,6 +46,8 @@ _PERFORMANCE_RANGES = {
     "sweep_time_factor": (0.01, 100.0),
     "level_accuracy_db": (0.0, 5.0),
     "mixer_shi_dbm": (-50.0, 150.0),
+    "phase_noise_dbc_per_hz": (-200.0, -40.0),
+    "phase_noise_offset_hz": (1.0, 1e9),
 }
 PERFORMANCE_OVERRIDES = {key: _PERFORMANCE_RANGES[key] for key in ANALYZER_PERFORMANCE_KEYS}
 

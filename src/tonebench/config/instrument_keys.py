@@ -21,7 +21,9 @@ KNOWN_LIMITS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
 # level_accuracy_db is optional here and may also come from the bench file, which takes the same
 # keys (config/bench_file.py reads ANALYZER_PERFORMANCE_KEYS).
 KNOWN_PERFORMANCE: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
-    "analyzer": (("mixer_toi_dbm", "danl_dbm_per_hz", "sweep_time_factor"), ("level_accuracy_db", "mixer_shi_dbm")),
+    # LO phase noise (dBc/Hz) at a stated offset: the reciprocal-mixing check at close spacing.
+    "analyzer": (("mixer_toi_dbm", "danl_dbm_per_hz", "sweep_time_factor"),
+                 ("level_accuracy_db", "mixer_shi_dbm", "phase_noise_dbc_per_hz", "phase_noise_offset_hz")),
     # How long a new frequency or level takes to be in force: the bench-time estimate's share.
     "source": ((), ("settle_time_s",)),
 }

@@ -181,6 +181,7 @@ class Dialect(BaseModel):
     def _fits_role(self) -> Dialect:
         for table, known in _NUMBER_TABLES.items():
             _check_numbers(table, getattr(self, table), self.role, known.get(self.role, ((), ())))
+        _check_phase_noise(self.performance)
         present = self.operations
         required = REQUIRED_OPERATIONS[self.role]
         missing = [key for key in required if key not in present]
@@ -189,6 +190,17 @@ class Dialect(BaseModel):
         for op_name, op in self.operations.items():
             _check_template(op_name, op.template)
         return self
+
+
+def _check_phase_noise(performance: dict[str, float]) -> None:
+    """An LO phase-noise figure means nothing without the offset it is stated at."""
+    given = [key for key in ("phase_noise_dbc_per_hz", "phase_noise_offset_hz") if key in performance]
+    if len(given) == 1:
+        raise ValueError(f"field 'performance.{given[0]}' needs its partner: give phase_noise_dbc_per_hz (dBc/Hz) "
+                         "together with phase_noise_offset_hz (the offset it is stated at, Hz)")
+    if given and performance["phase_noise_offset_hz"] <= 0:
+        raise ValueError(f"field 'performance.phase_noise_offset_hz': {performance['phase_noise_offset_hz']!r} Hz; "
+                         "the offset must be above 0 Hz")
 
 
 def _article(role: str) -> str:

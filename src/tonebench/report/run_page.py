@@ -9,6 +9,7 @@ from sqlalchemy.orm import sessionmaker
 from tonebench.analysis.sweep_fit import exclusion_reasons
 from tonebench.calibration.sets import load_set_by_id
 from tonebench.report.level_table import convention_text, level_section
+from tonebench.report.spacing_table import spacing_section
 from tonebench.report.run_archive import archive_html
 from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
 from tonebench.report.run_report import result_row as report_result_row
@@ -78,4 +79,5 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
         if referred_to is not None:
             summary.append({"label": "Re-referred to", "value": f"{referred_to.name} ({referred_to.method})"})
         return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows, summaries,
-                            level_section(session, run) + archive_html(run, bounds))
+                            spacing_section(summaries) + level_section(session, run)
+                            + archive_html(run, bounds))

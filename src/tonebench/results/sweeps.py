@@ -59,7 +59,7 @@ _REFERRAL_INPUTS = (
 
 # The point columns the analysis reads (re-analysis of many runs loads only these).
 ANALYSIS_FIELDS = tuple(dict.fromkeys((
-    *GROUP_FIELDS, "tone_dbm", "f1_hz", "f2_hz", "raw_diff_dbm", "extra_json",
+    *GROUP_FIELDS, "tone_dbm", "f1_hz", "f2_hz", "raw_diff_dbm", "extra_json", "rbw_hz",
     *POINT_ARRAYS, *RAW_ARRAYS, *_REFERRAL_INPUTS)))
 
 # Sweep by sweep, tone power up.
@@ -99,7 +99,7 @@ def analysis_points(session: Session, run_ids: list[int]) -> dict[int, list[Stor
 # (group axes first), with the row id, run id, overload and extra_json kept as Python values.
 # Only what the analysis reads as stored: no tone frequencies or source settings (re-referral's).
 _MATRIX_FIELDS = tuple(dict.fromkeys((
-    *GROUP_FIELDS, *(name for name in POINT_ARRAYS if name != "overload"), *RAW_ARRAYS, "raw_diff_dbm", "raw_sum_dbm")))
+    *GROUP_FIELDS, *(name for name in POINT_ARRAYS if name != "overload"), *RAW_ARRAYS, "rbw_hz")))
 _COLUMN = {name: i for i, name in enumerate(_MATRIX_FIELDS)}
 
 
@@ -144,7 +144,9 @@ def batch_sweeps(session: Session, run_ids: list[int]) -> tuple[SweepData | None
               "noise_diff_dbm": noise["diff"], "noise_sum_dbm": noise["sum"]}
     # As sweep_data: biased detector modes made power readings, peak-detected noise marked.
     detector, average_type = detectors.modes_of(extras)
-    data = SweepData(**detectors.as_power_readings(values, detector, average_type),
+    # The products' RBW: a read narrowed to reach its target keeps its own (point_build.py).
+    rbw = np.array([extra.get("im3_rbw_hz", rbw_hz) for extra, rbw_hz in zip(extras, cols["rbw_hz"])], dtype=float)
+    data = SweepData(**detectors.as_power_readings(values, detector, average_type), rbw_hz=rbw,
                      noise_peak_detected=detectors.peak_mask(detector))
     group_at = [first + _COLUMN[name] for name in GROUP_FIELDS]
 
@@ -203,7 +205,9 @@ def sweep_data(records: list[PointRecord], arrays: dict[str, np.ndarray]) -> Swe
               "noise_diff_dbm": noise["diff"], "noise_sum_dbm": noise["sum"]}
     # Readings of a biased detector mode made power readings; peak-detected noise marked (analysis/detectors.py).
     detector, average_type = detectors.modes_of([record.extra_json or {} for record in records])
-    return SweepData(**detectors.as_power_readings(values, detector, average_type),
+    # The products' RBW: a read narrowed to reach its target keeps its own (point_build.py).
+    rbw = _nan_array((record.extra_json or {}).get("im3_rbw_hz", record.rbw_hz) for record in records)
+    return SweepData(**detectors.as_power_readings(values, detector, average_type), rbw_hz=rbw,
                      noise_peak_detected=detectors.peak_mask(detector))
 
 
@@ -244,6 +248,9 @@ def analysis_settings(run: Run, cal: CalibrationSet | None, center_hz: float, sp
         mixer_toi_dbm=figures.get("mixer_toi_dbm"),
         mixer_shi_dbm=figures.get("mixer_shi_dbm"),
         max_mixer_dbm=figures.get("max_mixer_dbm"),
+        phase_noise_dbc_per_hz=figures.get("phase_noise_dbc_per_hz"),
+        phase_noise_offset_hz=figures.get("phase_noise_offset_hz"),
+        spacing_hz=spacing_hz,
         system_note=note,
         **shares,
     )

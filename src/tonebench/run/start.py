@@ -218,7 +218,8 @@ def analyzer_figures(open_instruments: OpenBench) -> dict:
     level accuracy (dialect [performance], bench-file overrides) and mixer limit."""
     analyzer = open_instruments.analyzer
     figures = {key: analyzer.performance[key] for key in ("mixer_toi_dbm", "danl_dbm_per_hz", "level_accuracy_db",
-                                                          "mixer_shi_dbm")
+                                                          "mixer_shi_dbm", "phase_noise_dbc_per_hz",
+                                                          "phase_noise_offset_hz")
                if key in analyzer.performance}
     if "max_mixer_dbm" in analyzer.limits:
         figures["max_mixer_dbm"] = analyzer.limits["max_mixer_dbm"]

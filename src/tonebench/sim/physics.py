@@ -197,6 +197,18 @@ def bin_frequencies_hz(f_low_hz: float, spacing_hz: float) -> np.ndarray:
     return family * f_low_hz + (bins - family * TONE_BIN) * spacing_hz
 
 
+def input_waveform_v(tone_low_v: complex, tone_high_v: complex = 0j, im3_low_in_v: complex = 0j,
+                     im3_high_in_v: complex = 0j) -> np.ndarray:
+    """The DUT input over one period (V, SIM_POINTS samples) for these phasors on their bins."""
+    spectrum_in = np.zeros(SIM_POINTS // 2 + 1, dtype=complex)
+    spectrum_in[product_bin(1, 0)] = tone_low_v
+    spectrum_in[product_bin(0, 1)] = tone_high_v
+    spectrum_in[product_bin(2, -1)] = im3_low_in_v
+    spectrum_in[product_bin(-1, 2)] = im3_high_in_v
+    # irfft of (N/2) * phasor at bin k is |phasor| cos(2 pi k n / N + angle): numpy's FFT scaling.
+    return np.fft.irfft(spectrum_in * (SIM_POINTS / 2), n=SIM_POINTS)
+
+
 def dut_output_spectrum_v(
     model: Nonlinearity,
     tone_low_v: complex,
@@ -209,13 +221,7 @@ def dut_output_spectrum_v(
     Inputs: the tones at f1 < f2 and whatever already sits at 2f1 - f2 and 2f2 - f1 at the DUT
     input (the sources' residual IM3). Bin 0 holds the DC output.
     """
-    spectrum_in = np.zeros(SIM_POINTS // 2 + 1, dtype=complex)
-    spectrum_in[product_bin(1, 0)] = tone_low_v
-    spectrum_in[product_bin(0, 1)] = tone_high_v
-    spectrum_in[product_bin(2, -1)] = im3_low_in_v
-    spectrum_in[product_bin(-1, 2)] = im3_high_in_v
-    # irfft of (N/2) * phasor at bin k is |phasor| cos(2 pi k n / N + angle): numpy's FFT scaling.
-    x_v = np.fft.irfft(spectrum_in * (SIM_POINTS / 2), n=SIM_POINTS)
+    x_v = input_waveform_v(tone_low_v, tone_high_v, im3_low_in_v, im3_high_in_v)
     spectrum_out = np.fft.rfft(model.output_v(x_v)) * (2.0 / SIM_POINTS)
     spectrum_out[0] *= 0.5
     return spectrum_out

@@ -37,6 +37,12 @@ class DutScenario(_Strict):
     # Its term adds to the IM3 and biases the top points of a sweep low; None: no fifth-order term.
     iip5_dbm: float | None = Field(None, ge=-60.0, le=200.0)
     nf_db: float = Field(1.2, ge=0.0, le=40.0)
+    # Baseband memory (sim/memory.py): the difference-frequency current into a bias network with
+    # one pole re-mixes with the tones; strength is its share of the cubic's IM3 at 0 Hz spacing
+    # (0: memoryless, every existing figure unchanged), the phase turns it against the cubic's.
+    memory_strength: float = Field(0.0, ge=0.0, le=10.0)
+    memory_pole_hz: float = Field(1e6, gt=0.0, le=1e10)
+    memory_phase_deg: float = Field(90.0, ge=-360.0, le=360.0)
 
     @model_validator(mode="after")
     def _p1db_below_iip3(self) -> DutScenario:
@@ -95,6 +101,10 @@ class AnalyzerScenario(_Strict):
     damage_dbm: float = Field(30.0, ge=-20.0, le=60.0)
     sweep_time_factor: float = Field(2.5, gt=0.0, le=100.0)
     trace_points: int = Field(1001, ge=3, le=100_001)
+    # LO phase noise (sim/phase_noise.py: reciprocal mixing) at phase_noise_offset_hz, flat inside
+    # it and -20 dB per decade beyond; None: an ideal LO (every existing figure unchanged).
+    phase_noise_dbc_per_hz: float | None = Field(None, ge=-200.0, le=-40.0)
+    phase_noise_offset_hz: float = Field(1e4, gt=0.0, le=1e9)
 
 
 class PowerMeterScenario(_Strict):

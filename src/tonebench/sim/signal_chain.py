@@ -15,8 +15,8 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from tonebench.sim import detector as sim_detector
+from tonebench.sim import memory, phase_noise, physics
 from tonebench.sim.analyzer_im2 import add_analyzer_im2
-from tonebench.sim import physics
 from tonebench.sim.chamber import SimChamber
 from tonebench.sim.fet_stage import FetBias, FetStage
 from tonebench.sim.scenario import Scenario
@@ -124,6 +124,18 @@ class BenchTruth:
         loss_db = physics.linear_in_db(loss_db, slope_db_per_ghz, paths.ref_freq_hz, freq_hz)
         return _float_or_array(np.maximum(0.0, loss_db))
 
+    def true_im3_change_db(self, spacing_hz) -> tuple:
+        """(lower, upper) change (dB) of each IM3 product against the memoryless cubic's at this
+        spacing, from the memory model's closed form (sim/memory.py); zeros without memory."""
+        dut = self._scenario.dut
+        lower, upper = memory.im3_change_db(spacing_hz, dut.memory_strength, dut.memory_pole_hz, dut.memory_phase_deg)
+        return _float_or_array(lower), _float_or_array(upper)
+
+    def true_im3_asymmetry_db(self, spacing_hz):
+        """Upper minus lower IM3 (dB) at this spacing for equal tones: the memory model's truth."""
+        lower, upper = self.true_im3_change_db(spacing_hz)
+        return _float_or_array(np.asarray(upper) - np.asarray(lower))
+
     def dut_model(self, freq_hz: float) -> physics.Nonlinearity:
         """The DUT nonlinearity at freq_hz (a two-tone point uses its centre frequency)."""
         dut = self._scenario.dut
@@ -183,6 +195,9 @@ def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[Source
     else:
         model = stage if stage is not None else truth.dut_model(0.5 * (f_low_hz + f_high_hz))
         amp_v = physics.dut_output_spectrum_v(model, low_v, high_v, residual_low_v, residual_high_v)
+        if stage is None and two_tone:  # the memoryless DUT's baseband memory (off by default)
+            amp_v = amp_v + memory.dut_memory_spectrum_v(scenario.dut, model.a3, f_high_hz - f_low_hz, low_v,
+                                                         high_v, residual_low_v, residual_high_v)
     freq_hz = physics.bin_frequencies_hz(f_low_hz, f_high_hz - f_low_hz)
     keep = freq_hz > 0.0  # products folding through 0 Hz (spacing above f1) are not modelled
     if not two_tone:
@@ -372,6 +387,8 @@ class SimBench:
                                - self.truth.true_loss_db("out", freq_hz))
         noise_dbm_per_hz = physics.analyzer_noise_dbm_per_hz(settings.danl_dbm_per_hz, state.atten_db,
                                                              arriving_dbm_per_hz)
+        noise_dbm_per_hz = phase_noise.with_reciprocal_mixing(noise_dbm_per_hz, freq_hz, lines.freq_hz,
+                                                              physics.vpeak_to_watt(lines.amp_v), settings)
         if state.detector.is_default:
             power_w = physics.trace_power_w(freq_hz, lines.freq_hz, physics.vpeak_to_watt(lines.amp_v), state.rbw_hz,
                                             noise_dbm_per_hz,
