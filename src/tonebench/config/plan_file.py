@@ -14,6 +14,7 @@ from pathlib import Path
 from pydantic import BaseModel, Field, field_validator, model_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
+from tonebench.config.mixer_settings import MixerSettings
 from tonebench.config.results_choice import ResultsSettings
 from tonebench.errors import InputError
 
@@ -327,6 +328,7 @@ class PlanFile(StrictModel):
     analyzer: AnalyzerSettings = AnalyzerSettings()
     bias: BiasSettings | None = None
     results: ResultsSettings | None = None
+    mixer: MixerSettings | None = None  # a frequency-translating DUT (config/mixer_settings.py)
 
     @model_validator(mode="after")
     def _check_span(self) -> "PlanFile":
