@@ -34,6 +34,7 @@ from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.drift import DriftTracker
 from tonebench.run.narrowing import read_narrow
 from tonebench.run.read_settings import NOISE_MARKERS, TargetReads, tone_setup_for
+from tonebench.run.mixer_run import MixerDrive
 from tonebench.run.point_build import failed_record, measured_record
 from tonebench.run.point_guard import BenchFault, PointFailed, PointGuard, settle_check
 from tonebench.run.readings import (
@@ -78,8 +79,10 @@ class Sequencer:
         drain_v: float | None = None,
         target_drain_a: float | None = None,
         held_at_c: float | None = None,
+        mixer: MixerDrive | None = None,
     ):
         self.bench = bench
+        self.mixer = mixer  # a mixer plan: the LO, and the analyzer reading at the IF (run/mixer_run.py)
         # The caller soaked the chamber here just before this run and left it there (the runs of
         # one `bias search` study): held within tolerance, the dwell is not waited again.
         self.held_at_c = held_at_c
@@ -252,7 +255,7 @@ class Sequencer:
         levels = (self._correction(1, point.f1_hz), self._correction(2, point.f2_hz))
         drift = self.drift.observe(point, readings.f1_dbm, readings.f2_dbm)
         record = measured_record(point, measured, elapsed_s, self.offsets, self._source_settings_dbm(point),
-                                 levels, drift)
+                                 levels, drift, None if self.mixer is None else self._read_view(point))
         store_point(self.recorder.sessions, self.recorder.run_id, record)
 
     def _stop_recovery(self) -> None:
@@ -285,7 +288,10 @@ class Sequencer:
                     raise BenchFault(str(exc)) from None
                 raise
         self._set_bias(point)
+        if self.mixer is not None:
+            self.mixer.set_lo(point)  # LO on before the tones
         self._set_tones(point)
+        read_at = self._read_view(point)
         if not self.rf.all_on:
             self.rf.set(True, True)
             if not self._rf_said:
@@ -307,14 +313,14 @@ class Sequencer:
                             else tuple(factor * noise_offset_hz for factor in NOISE_MARKERS))
         narrow = None
         with analyzer.errors_read_once():
-            readings = read_point(analyzer, point, noise_offsets_hz, setup, tone_setup)
+            readings = read_point(analyzer, read_at, noise_offsets_hz, setup, tone_setup)
             if settings.narrowing_budget_s is not None:
                 readings, narrow = read_narrow(
-                    analyzer, point, setup, readings, noise_offsets_hz, settings.narrowing_budget_s,
+                    analyzer, read_at, setup, readings, noise_offsets_hz, settings.narrowing_budget_s,
                     lambda rbw_hz: self.attenuation.setup_for(predicted_tone_dbm, rbw_hz)[0],
                     None if target is None else self.target_reads.target_db)
             second = self._read_second_order(point, noise_offset_hz) if self.second_order else None
-            step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings,
+            step = self.attenuation.step_check(read_at, point.tone_dbm in sweep.step_levels_dbm, setup, readings,
                                                noise_offsets_hz)
         chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
         return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c, narrow,
@@ -337,9 +343,13 @@ class Sequencer:
         if predicted is not None and all(abs(read - want) <= tolerance_db for read, want in zip(first, predicted)):
             return None
         # Read where the point's tones were (the step check may have left more attenuation).
-        again = read_tones_dbm(self.bench.analyzer, point,
+        again = read_tones_dbm(self.bench.analyzer, self._read_view(point),
                                tone_setup_for(self.analyzer_settings, measured.setup, point.spacing_hz))
         return settle_check(first, again, tolerance_db)
+
+    def _read_view(self, point: PlannedPoint) -> PlannedPoint:
+        """Where the analyzer reads the point: at its frequencies, or a mixer's IF view."""
+        return point if self.mixer is None else self.mixer.at_if(point)
 
     def _fail(self, point: PlannedPoint, reason: str, elapsed_s: float) -> None:
         """Store the point as failed with its reason, then apply the on_point_failure policy."""
