@@ -205,3 +205,15 @@ def test_lo_off_after_a_signal(tmp_path, mixer_sim, signum, exit_code):
     assert proc.returncode == exit_code, stderr
     assert "RF off at source1, source2, lo (read back)" in stdout + stderr
     assert lo_state(mixer_sim) == (True, False)
+
+
+def test_the_analyzer_input_is_predicted_at_the_if(tmp_path):
+    """mixer_bench: out loss 0.58 dB at the IF, 1.5 dB at the RF. A limit between the two
+    predictions (tone 0 dBm: 0 + 3.01 - 6.5 - loss) refuses the plan by the IF one, before RF on."""
+    bench = tmp_path / "bench.toml"
+    bench.write_text(BENCH.read_text().replace("max_analyzer_input_dbm = 20.0", "max_analyzer_input_dbm = -4.5"))
+    plan = tmp_path / "plan.toml"
+    plan.write_text(PLAN.read_text().replace("tone_stop_dbm = -12.0", "tone_stop_dbm = 0.0"))
+    result = invoke("run", plan, "--bench", bench, "--db", f"sqlite:///{tmp_path / 't.db'}")
+    assert result.exit_code != 0
+    assert "into the analyzer at the IF" in result.output and "max_analyzer_input_dbm is -4.50 dBm" in result.output

@@ -22,6 +22,7 @@ from tonebench.plan.frequency_plan import (
     lo_hz_for,
     predicted_spurs,
 )
+from tonebench.plan.limits import predicted_analyzer_input_dbm
 from tonebench.plan.points import PlannedPoint
 from tonebench.units import format_freq
 
@@ -49,6 +50,24 @@ def check_mixer_plan(points: list[PlannedPoint], plan_settings, bench_settings, 
                          "are not measured yet; leave second_order out")
     check_frequency_plan(mixer, [(p.f1_hz, p.f2_hz) for p in points], plan_settings.analyzer.effective_span_hz,
                          ranges, out_table, origin)
+    if out_table is not None:
+        check_analyzer_input_at_if(points, mixer, bench_settings.limits, out_table, origin)
+
+
+def check_analyzer_input_at_if(points: list[PlannedPoint], mixer: MixerSettings, limits, out_table,
+                               origin: str) -> None:
+    """The analyzer input predicted with the output loss at the IF, where the tones reach it
+    (the common check, plan/limits.py, takes the loss at the RF tone frequency; both must pass).
+    The analyzer's own damage level is checked there; here the bench limit."""
+    for point in points:
+        view = at_if(mixer, point)
+        tones = ((point.tone_dbm, view.f1_hz), (point.tone_dbm, view.f2_hz))
+        analyzer_dbm = predicted_analyzer_input_dbm(tones, limits.expected_gain_db, out_table)
+        if analyzer_dbm > limits.max_analyzer_input_dbm + 1e-9:
+            raise InputError(
+                f"{origin}: point {point.name} would put {analyzer_dbm:.2f} dBm into the analyzer at the IF "
+                f"(expected gain {limits.expected_gain_db:.1f} dB); the limit max_analyzer_input_dbm is "
+                f"{limits.max_analyzer_input_dbm:.2f} dBm")
 
 
 @dataclass
