@@ -217,3 +217,17 @@ def test_the_analyzer_input_is_predicted_at_the_if(tmp_path):
     result = invoke("run", plan, "--bench", bench, "--db", f"sqlite:///{tmp_path / 't.db'}")
     assert result.exit_code != 0
     assert "into the analyzer at the IF" in result.output and "max_analyzer_input_dbm is -4.50 dBm" in result.output
+
+
+@pytest.mark.parametrize("bench_file, plan_edit, line", [
+    (SAMPLE_RUNS / "sim_bench.toml", ("", ""), "the plan has a [mixer] table but the bench has no lo source"),
+    (BENCH, ("lo_dbm = 7.0 ", "lo_dbm = 14.0 "), "[mixer] lo_dbm 14.00 dBm is above the bench limit max_lo_dbm 13.00 dBm"),
+    (BENCH, ('injection = "low"', 'injection = "high"'), 'injection = "high" needs the LO above every RF product'),
+])
+def test_a_mixer_plan_is_refused_in_one_line_before_anything_is_connected(tmp_path, bench_file, plan_edit, line):
+    plan = tmp_path / "plan.toml"
+    plan.write_text(PLAN.read_text().replace(*plan_edit))
+    result = invoke("run", "--dry-run", plan, "--bench", bench_file)
+    assert result.exit_code == 2
+    lines = result.output.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: ") and line in lines[0], result.output

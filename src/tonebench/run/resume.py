@@ -15,6 +15,7 @@ from tonebench.config.plan_file import LoadedPlan, load_plan, plan_from_text
 from tonebench.errors import InputError
 from tonebench.instruments.open_bench import bench_freq_ranges
 from tonebench.plan.limits import check_plan, check_plan_frequencies, check_plan_parts
+from tonebench.run.mixer_run import check_mixer_plan
 from tonebench.plan.points import expand
 from tonebench.planes.loss_table import LossTable
 from tonebench.report.run_report import check_report_path
@@ -140,6 +141,8 @@ def _check_and_hold(stack: ExitStack, sessions: sessionmaker, stored: _StoredRun
     check_same_instruments(stored.guid, stored.instrument_ids, instruments)
     check_plan(remaining, stored.offsets, bench.settings.limits, instruments.source_ranges,
                instruments.analyzer.limits.get("damage_dbm"), plan_origin)
+    check_mixer_plan(remaining, plan.settings, bench.settings, bench_freq_ranges(bench.settings),
+                     stored.offsets.get("out"), plan_origin)
     leveler = make_leveler(bench, instruments, points, plan_origin)
     stack.enter_context(hold_bench(sessions, stored.bench_name, resume_run_id=stored.run_id))  # one run per bench
     recorder = RunRecorder(sessions, stored.run_id, stored.guid)
