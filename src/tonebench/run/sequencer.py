@@ -387,7 +387,7 @@ class Sequencer:
         predicted = sweep.predicted_tone_dbm(point.tone_dbm)
         if predicted is not None:
             return predicted
-        return expected_tone_dbm(point, self.offsets, self.limits)
+        return expected_tone_dbm(self._read_view(point), self.offsets, self.limits)  # at the IF for a mixer
 
     def _read_second_order(self, point: PlannedPoint, noise_offset_hz: float):
         blocked = second_order_blocked(self.bench.analyzer.limits, self.setup.span_hz, self.offsets["out"], point)
