@@ -231,3 +231,29 @@ def test_a_mixer_plan_is_refused_in_one_line_before_anything_is_connected(tmp_pa
     assert result.exit_code == 2
     lines = result.output.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("error: ") and line in lines[0], result.output
+
+
+def test_the_run_time_guard_also_predicts_the_analyzer_input_at_the_if():
+    """Every tone power command on a mixer plan: the common guard (output loss at the RF tone,
+    1.5 dB) and the IF one (smallest loss at the plan's IF tones, 0.58 dB) both apply."""
+    from types import SimpleNamespace
+
+    from tonebench.config.plan_file import load_plan
+    from tonebench.instruments.scpi import LimitError
+    from tonebench.plan.limits import power_guard
+    from tonebench.plan.points import expand
+    from tonebench.run.calibration_choice import offsets_from_bench
+    from tonebench.run.mixer_run import tighten_power_guards
+
+    bench = load_bench(BENCH)
+    limits = bench.settings.limits.model_copy(update={"max_analyzer_input_dbm": -4.5})
+    tables = offsets_from_bench(bench)
+    plan = load_plan(PLAN).settings
+    sources = [SimpleNamespace(power_guard=power_guard(tables, limits, None)) for _ in range(2)]
+    instruments = SimpleNamespace(sources=lambda: sources)
+    in1_db = tables["in1"].loss_db(2.449e9)
+    sources[0].power_guard("source1", 2.449e9, in1_db)  # 0 dBm at the plane: -4.99 dBm by the RF loss
+    tighten_power_guards(instruments, expand(plan), plan.mixer, limits, tables, None)
+    with pytest.raises(LimitError, match=r"-4.07 dBm into the analyzer at the IF"):
+        sources[0].power_guard("source1", 2.449e9, in1_db)
+    sources[0].power_guard("source1", 2.449e9, in1_db - 1.0)  # 1 dB lower passes both

@@ -14,7 +14,7 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 
 from tonebench.config.mixer_settings import MixerSettings
-from tonebench.errors import InputError
+from tonebench.errors import InputError, LimitError
 from tonebench.instruments.source import SignalSource
 from tonebench.plan.frequency_plan import (
     check_frequency_plan,
@@ -22,7 +22,9 @@ from tonebench.plan.frequency_plan import (
     lo_hz_for,
     predicted_spurs,
 )
-from tonebench.plan.limits import predicted_analyzer_input_dbm
+from tonebench.plan.limits import analyzer_limit_dbm, predicted_analyzer_input_dbm
+from tonebench.planes import arithmetic
+from tonebench.planes.arithmetic import TWO_EQUAL_TONES_DB
 from tonebench.plan.points import PlannedPoint
 from tonebench.units import format_freq
 
@@ -68,6 +70,42 @@ def check_analyzer_input_at_if(points: list[PlannedPoint], mixer: MixerSettings,
                 f"{origin}: point {point.name} would put {analyzer_dbm:.2f} dBm into the analyzer at the IF "
                 f"(expected gain {limits.expected_gain_db:.1f} dB); the limit max_analyzer_input_dbm is "
                 f"{limits.max_analyzer_input_dbm:.2f} dBm")
+
+
+def tighten_power_guards(instruments, points: list[PlannedPoint], mixer: MixerSettings | None, limits,
+                         offsets, damage_dbm: float | None) -> None:
+    """On a mixer plan, each tone source's run-time power guard (plan/limits.py power_guard, which
+    takes the output loss at the RF tone) also predicts the analyzer input with the smallest output
+    loss at any of the plan's IF tone frequencies: the tones reach the analyzer at the IF, and the
+    smallest loss is the worst case whatever the LO of the point. Called right after connecting,
+    before any power command."""
+    if mixer is None or offsets is None:
+        return
+    limit_dbm = analyzer_limit_dbm(limits, damage_dbm)
+    if_loss_db = min(min(offsets["out"].loss_db(float(view.f1_hz)), offsets["out"].loss_db(float(view.f2_hz)))
+                     for view in (at_if(mixer, point) for point in points))
+    paths = {"source1": "in1", "source2": "in2"}
+
+    def at_if_guard(label: str, freq_hz: float, power_dbm: float) -> None:
+        tone_dbm = arithmetic.tone_at_plane_dbm(power_dbm, offsets[paths[label]].loss_db(freq_hz))
+        analyzer_dbm = arithmetic.analyzer_input_dbm(tone_dbm + TWO_EQUAL_TONES_DB + limits.expected_gain_db,
+                                                     if_loss_db)
+        if analyzer_dbm > limit_dbm + 1e-9:
+            raise LimitError(f"{label}: {power_dbm:.2f} dBm at {format_freq(freq_hz)} would put {analyzer_dbm:.2f} dBm "
+                             f"into the analyzer at the IF (expected gain {limits.expected_gain_db:.1f} dB); the limit "
+                             f"is {limit_dbm:.2f} dBm")
+
+    for source in instruments.sources():
+        source.power_guard = _both(source.power_guard, at_if_guard)
+
+
+def _both(first, second):
+    def guard(label: str, freq_hz: float, power_dbm: float) -> None:
+        if first is not None:
+            first(label, freq_hz, power_dbm)
+        second(label, freq_hz, power_dbm)
+
+    return guard
 
 
 @dataclass

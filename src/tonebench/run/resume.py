@@ -15,7 +15,7 @@ from tonebench.config.plan_file import LoadedPlan, load_plan, plan_from_text
 from tonebench.errors import InputError
 from tonebench.instruments.open_bench import bench_freq_ranges
 from tonebench.plan.limits import check_plan, check_plan_frequencies, check_plan_parts
-from tonebench.run.mixer_run import check_mixer_plan
+from tonebench.run.mixer_run import check_mixer_plan, tighten_power_guards
 from tonebench.plan.points import expand
 from tonebench.planes.loss_table import LossTable
 from tonebench.report.run_report import check_report_path
@@ -138,6 +138,8 @@ def _check_and_hold(stack: ExitStack, sessions: sessionmaker, stored: _StoredRun
     check_plan_parts(remaining, plan.settings, bench.settings, plan_origin)
     check_bench_free(sessions, stored.bench_name, except_run_id=stored.run_id)  # before talking to its instruments
     instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, on_warning, stored.offsets)
+    tighten_power_guards(instruments, remaining, plan.settings.mixer, bench.settings.limits, stored.offsets,
+                         instruments.analyzer.limits.get("damage_dbm"))
     check_same_instruments(stored.guid, stored.instrument_ids, instruments)
     check_plan(remaining, stored.offsets, bench.settings.limits, instruments.source_ranges,
                instruments.analyzer.limits.get("damage_dbm"), plan_origin)
