@@ -257,3 +257,15 @@ def test_the_run_time_guard_also_predicts_the_analyzer_input_at_the_if():
     with pytest.raises(LimitError, match=r"-4.07 dBm into the analyzer at the IF"):
         sources[0].power_guard("source1", 2.449e9, in1_db)
     sources[0].power_guard("source1", 2.449e9, in1_db - 1.0)  # 1 dB lower passes both
+
+
+def test_a_mixer_run_is_analyzed_again_but_not_re_referred_to_another_set(tmp_path):
+    db, _ = run_plan(tmp_path, PLAN.read_text())
+    before = find_json(db)[0]["iip3_dbm"]
+    guid = find_json(db)[0]["run_guid"]
+    again = invoke("analyze", guid, "--db", db)
+    assert again.exit_code == 0, again.output
+    assert find_json(db)[0]["iip3_dbm"] == pytest.approx(before, abs=1e-9)
+    refused = invoke("analyze", guid, "--cal", "any-set", "--db", db)
+    assert refused.exit_code != 0
+    assert "a mixer run (read at the IF) cannot be re-referred to another calibration set yet" in refused.output
