@@ -111,7 +111,7 @@ def test_measured_iip3_follows_the_lo_drive(tmp_path):
 
 def test_a_spur_placed_on_an_im3_frequency_is_flagged(tmp_path):
     # LO at f2/2 = 1.2255 GHz: -3*LO + 2*f1 lands exactly on the lower IM3 at the IF (worked by hand).
-    db, result = run_plan(tmp_path, plan_text(lo_hz=2.451e9 / 2))
+    db, _ = run_plan(tmp_path, plan_text(lo_hz=2.451e9 / 2))
     engine = create_engine(db)
     with Session(engine) as session:
         spurs = [e.details_json for e in session.scalars(select(Event).where(Event.kind == "mixer-spur"))]

@@ -1,11 +1,10 @@
 """The simulated mixer (sim/mixer.py): products at the IF, conversion gain, LO-dependent IIP3."""
 
 import pytest
+from sim.test_bench import quiet, read
 
 from tonebench.sim.mixer import LO_SOURCE_INDEX, iip3_at_lo_dbm
 from tonebench.sim.signal_chain import SimBench
-
-from sim.test_bench import quiet, read
 
 F1_HZ, F2_HZ = 2.449e9, 2.451e9
 LO_LOW_HZ, LO_HIGH_HZ = 2.3e9, 2.6e9  # low- and high-side injection, both giving IFs near 150 MHz

@@ -31,7 +31,7 @@ class MixerSettings(StrictModel):
     spur_window_rbw: float = Field(default=3.0, gt=0.0, le=100.0)
 
     @model_validator(mode="after")
-    def _one_lo(self) -> "MixerSettings":
+    def _one_lo(self) -> MixerSettings:
         if (self.lo_hz is None) == (self.if_hz is None):
             raise ValueError("[mixer] give exactly one of lo_hz (the LO frequency) and if_hz (the IF wanted)")
         return self

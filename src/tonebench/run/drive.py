@@ -12,8 +12,8 @@ from tonebench.instruments.rf_guard import Terminated, stop_signals
 from tonebench.instruments.supervision import RecoveryStopped
 from tonebench.run import ending
 from tonebench.run.ending import RunOutcome
-from tonebench.run.prepared import PreparedRun
 from tonebench.run.mixer_run import MixerDrive
+from tonebench.run.prepared import PreparedRun
 from tonebench.run.sequencer import ProgressCallback, RunStopped, Sequencer
 from tonebench.run.watchdog import Watchdog, WatchdogTripped
 from tonebench.store.ownership import Heartbeat, take_ownership

@@ -23,9 +23,9 @@ from tonebench.plan.frequency_plan import (
     predicted_spurs,
 )
 from tonebench.plan.limits import analyzer_limit_dbm, predicted_analyzer_input_dbm
+from tonebench.plan.points import PlannedPoint
 from tonebench.planes import arithmetic
 from tonebench.planes.arithmetic import TWO_EQUAL_TONES_DB
-from tonebench.plan.points import PlannedPoint
 from tonebench.units import format_freq
 
 

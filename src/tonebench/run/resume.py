@@ -15,7 +15,6 @@ from tonebench.config.plan_file import LoadedPlan, load_plan, plan_from_text
 from tonebench.errors import InputError
 from tonebench.instruments.open_bench import bench_freq_ranges
 from tonebench.plan.limits import check_plan, check_plan_frequencies, check_plan_parts
-from tonebench.run.mixer_run import check_mixer_plan, tighten_power_guards
 from tonebench.plan.points import expand
 from tonebench.planes.loss_table import LossTable
 from tonebench.report.run_report import check_report_path
@@ -24,6 +23,7 @@ from tonebench.run.drive import drive
 from tonebench.run.ending import RunOutcome
 from tonebench.run.event_log import RunLog, log_path_for
 from tonebench.run.leveler_setup import make_leveler
+from tonebench.run.mixer_run import check_mixer_plan, tighten_power_guards
 from tonebench.run.prepared import PreparedRun
 from tonebench.run.sequencer import ProgressCallback
 from tonebench.store.bench_lock import check_free as check_bench_free

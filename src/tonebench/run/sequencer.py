@@ -32,9 +32,9 @@ from tonebench.plan.points import PlannedPoint
 from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.drift import DriftTracker
+from tonebench.run.mixer_run import MixerDrive
 from tonebench.run.narrowing import read_narrow
 from tonebench.run.read_settings import NOISE_MARKERS, TargetReads, tone_setup_for
-from tonebench.run.mixer_run import MixerDrive
 from tonebench.run.point_build import failed_record, measured_record
 from tonebench.run.point_guard import BenchFault, PointFailed, PointGuard, settle_check
 from tonebench.run.readings import (
