@@ -21,7 +21,10 @@ REQUIRED_ROLES = ("source1", "source2", "analyzer")
 # Gate and drain: one output each of a DC supply or SMU, for a FET's bias (both or neither).
 BIAS_ROLES = ("gate", "drain")
 # A thermal chamber around the DUT: temperature as a plan axis (needs the [chamber] table).
-OPTIONAL_ROLES = ("power_meter", *BIAS_ROLES, "chamber")
+# An LO source for a frequency-translating DUT (a mixer): driven like a tone source, with its own
+# power limit ([limits] max_lo_dbm) and RF off on every way out like the tones.
+LO_ROLE = "lo"
+OPTIONAL_ROLES = ("power_meter", *BIAS_ROLES, "chamber", LO_ROLE)
 
 
 class BenchInfo(StrictModel):
@@ -101,6 +104,8 @@ class BenchLimits(StrictModel):
     max_tone_dbm: float = Field(ge=-150.0, le=30.0, description="per tone at the DUT input plane")
     max_analyzer_input_dbm: float = Field(ge=-100.0, le=40.0, description="total at the analyzer input")
     expected_gain_db: float = Field(ge=-60.0, le=60.0, description="DUT gain used to predict output power")
+    # The LO source's power at its connector; required when the bench has an lo role.
+    max_lo_dbm: float | None = Field(default=None, ge=-150.0, le=30.0, description="LO source power at most")
 
 
 class LevelingSettings(StrictModel):
@@ -230,6 +235,8 @@ class BenchFile(StrictModel):
                              "(gate_min_v, gate_max_v, drain_v, drain_max_v, drain_current_limit_a)")
         if self.bias is not None and not self.has_bias:
             raise ValueError("[bias] is given but instruments has no gate and drain roles")
+        if self.has_lo and self.limits.max_lo_dbm is None:
+            raise ValueError("[limits] max_lo_dbm is missing: a bench with an lo source needs its LO power limit (dBm)")
         if self.has_chamber and self.chamber is None:
             raise ValueError("[chamber] is missing: a bench with a chamber needs its limits (min_c, max_c)")
         if self.chamber is not None and not self.has_chamber:
@@ -238,6 +245,10 @@ class BenchFile(StrictModel):
             raise ValueError(f"[chamber] poll_s {self.chamber.poll_s:g} s is not below [unattended] watchdog_s "
                              f"{self.unattended.watchdog_s:g} s: a soak would trip the watchdog between readings")
         return self
+
+    @property
+    def has_lo(self) -> bool:
+        return LO_ROLE in self.instruments
 
     @property
     def has_chamber(self) -> bool:
@@ -285,7 +296,8 @@ def load_bench(path: Path) -> LoadedBench:
 def check_simulated_roles(settings: BenchFile, scenario: Scenario, path: Path) -> None:
     """The simulator serves gate and drain only with a simulated FET, and a chamber only with a
     simulated chamber; a role it cannot serve is refused here, naming the table it needs."""
-    needs = {"gate": ("fet", scenario.fet), "drain": ("fet", scenario.fet), "chamber": ("chamber", scenario.chamber)}
+    needs = {"gate": ("fet", scenario.fet), "drain": ("fet", scenario.fet), "chamber": ("chamber", scenario.chamber),
+             LO_ROLE: ("mixer", scenario.mixer)}
     for role, (table, present) in needs.items():
         if role in settings.instruments and present is None:
             raise InputError(f"bench file {path}: instruments.{role} on a simulated bench needs a "

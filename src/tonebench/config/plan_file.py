@@ -15,6 +15,7 @@ from typing import Literal
 from pydantic import BaseModel, Field, field_validator, model_validator
 
 from tonebench.config.loading import StrictModel, read_toml, validate
+from tonebench.config.mixer_settings import MixerSettings
 from tonebench.config.results_choice import ResultsSettings
 from tonebench.errors import InputError
 from tonebench.instruments.detector_setup import DetectorSetup
@@ -343,6 +344,7 @@ class PlanFile(StrictModel):
     analyzer: AnalyzerSettings = AnalyzerSettings()
     bias: BiasSettings | None = None
     results: ResultsSettings | None = None
+    mixer: MixerSettings | None = None  # a frequency-translating DUT (config/mixer_settings.py)
 
     @model_validator(mode="after")
     def _check_span(self) -> "PlanFile":

@@ -23,7 +23,7 @@ from tonebench.instruments.role_check import (
     check_role,
     shared_supply,
 )
-from tonebench.instruments.scpi import ScpiInstrument
+from tonebench.instruments.scpi import LimitError, ScpiInstrument
 from tonebench.instruments.source import PowerGuard, SignalSource
 from tonebench.instruments.supervision import Supervision
 from tonebench.instruments.supply import DcSupply
@@ -32,7 +32,7 @@ from tonebench.plan.limits import FreqRange, SourceRange
 
 # Which kind of dialect each bench role takes.
 ROLE_KINDS = {"source1": "source", "source2": "source", "analyzer": "analyzer", "power_meter": "power_meter",
-              "gate": "supply", "drain": "supply", "chamber": "chamber"}
+              "gate": "supply", "drain": "supply", "chamber": "chamber", "lo": "source"}
 
 
 @dataclass(frozen=True)
@@ -57,20 +57,25 @@ class OpenBench:
     rf_off_budget_s: float = RF_OFF_BUDGET_S  # the bench file's [unattended] rf_off_s
     bias: BiasSupplies | None = None  # gate and drain, when the bench file names them
     chamber: Chamber | None = None  # when the bench file names one
+    lo: SignalSource | None = None  # the LO of a mixer bench, when the bench file names one
 
     def sources(self) -> tuple[SignalSource, SignalSource]:
         return self.source1, self.source2
+
+    def rf_sources(self) -> tuple[SignalSource, ...]:
+        """Every source whose RF goes off on the way out: the two tones, and the LO when there is one."""
+        return self.sources() + (() if self.lo is None else (self.lo,))
 
     def rf_on(self) -> None:
         self.source1.rf_on()
         self.source2.rf_on()
 
     def rf_off_all(self) -> None:
-        """Switch RF off at both sources (each read back); both are tried even if one fails or
-        a signal comes (deferred meanwhile), then the failure is reported."""
+        """Switch RF off at every source, LO included (each read back); all are tried even if one
+        fails or a signal comes (deferred meanwhile), then the failure is reported."""
         failures, interrupted = [], None
         with shielded():
-            for source in (self.source1, self.source2):
+            for source in self.rf_sources():
                 try:
                     source.rf_off()
                 except BaseException as exc:  # noqa: BLE001 - the other source must still be switched off
@@ -86,7 +91,7 @@ class OpenBench:
         """RF off at both sources on the way out: confirmed by read-back, retried with backoff for
         up to budget_s seconds (default rf_off_budget_s); never raises (the report names any
         source not confirmed off)."""
-        report = switch_rf_off(self.sources(), budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
+        report = switch_rf_off(self.rf_sources(), budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
         self.last_rf_off = report
         return report
 
@@ -108,7 +113,7 @@ class OpenBench:
         """RF off at every source as soon as the bench is connected: a run killed (kill -9, power
         lost) may have left one on. Returns a line per source that was found on (or unreadable)."""
         found = []
-        for source in self.sources():
+        for source in self.rf_sources():
             try:
                 was_on = source.rf_is_on()
             except Exception as exc:  # noqa: BLE001 - unknown state: switch it off all the same
@@ -141,7 +146,7 @@ class OpenBench:
 
     def restore_all(self) -> None:
         """Send every driver's last settings again (after a reset or a reopened connection)."""
-        for driver in (self.source1, self.source2, self.analyzer, *self.bias_supplies(),
+        for driver in (*self.rf_sources(), self.analyzer, *self.bias_supplies(),
                        *([self.chamber] if self.chamber else [])):
             driver.restore()
         if self.power_meter is not None:
@@ -151,7 +156,7 @@ class OpenBench:
         """RF off at both sources from another thread (the watchdog), while the run's thread may
         be stuck in a call: through a second connection where the first is busy, retried with
         backoff until read back off or budget_s (default rf_off_budget_s) is spent."""
-        return switch_rf_off([_Forced(source) for source in self.sources()],
+        return switch_rf_off([_Forced(source) for source in self.rf_sources()],
                              budget_s=self.rf_off_budget_s if budget_s is None else budget_s)
 
     def close(self) -> None:
@@ -184,6 +189,17 @@ class _Forced:
             return self.source.rf_is_on()
         finally:
             lock.release()
+
+
+def lo_power_guard(max_lo_dbm: float) -> PowerGuard:
+    """The LO source's power check (SignalSource.power_guard): at most [limits] max_lo_dbm."""
+
+    def guard(label: str, freq_hz: float, power_dbm: float) -> None:
+        if power_dbm > max_lo_dbm + 1e-9:
+            raise LimitError(f"{label}: {power_dbm:.2f} dBm would exceed the bench limit max_lo_dbm "
+                             f"{max_lo_dbm:.2f} dBm")
+
+    return guard
 
 
 def bench_freq_ranges(settings: BenchFile) -> dict[str, FreqRange]:
@@ -264,11 +280,13 @@ def open_bench(settings: BenchFile, resources: dict[str, str], supervision: Supe
             SourceRange(s.label, s.min_power_dbm, s.max_power_dbm) for s in (source1, source2)
         )
         infos = [InstrumentInfo(role, resources[role], by_role[role].dialect.name, by_role[role].idn) for role in roles]
+        # The LO is checked against the bench's own LO limit from its first power command on.
+        lo = SignalSource(by_role["lo"], lo_power_guard(settings.limits.max_lo_dbm)) if "lo" in by_role else None
         analyzer = SpectrumAnalyzer(scpi_analyzer)
         # The bench file knows this unit; its figures win over the dialect's typical ones.
         analyzer.performance = {**analyzer.performance, **settings.instruments["analyzer"].performance}
         return OpenBench(source1, source2, analyzer, ranges, infos, opened, meter,
-                         rf_off_budget_s=settings.unattended.rf_off_s, bias=bias, chamber=chamber)
+                         rf_off_budget_s=settings.unattended.rf_off_s, bias=bias, chamber=chamber, lo=lo)
     except BaseException:
         for instrument in opened:
             instrument.close()

@@ -41,9 +41,10 @@ def tone_frequencies_hz(f1_hz: float, f2_hz: float) -> dict[str, float]:
 
 
 def point_offsets(tables: Mapping[str, LossTable], f1_hz: float, f2_hz: float,
-                  second_order: bool = False) -> dict[str, float | None]:
-    """Path losses (dB) one point uses, by column name. Raises InputError outside a table's range."""
-    freqs = tone_frequencies_hz(f1_hz, f2_hz)
+                  second_order: bool = False, out_tones_hz: tuple[float, float] | None = None) -> dict[str, float | None]:
+    """Path losses (dB) one point uses, by column name. Raises InputError outside a table's range.
+    out_tones_hz: the tones where they leave the DUT, when not at f1, f2 (a mixer's IF, run/mixer_run.py)."""
+    freqs = tone_frequencies_hz(*(out_tones_hz or (f1_hz, f2_hz)))
     out = tables["out"]
     offsets: dict[str, float | None] = {
         "in1_loss_db": tables["in1"].loss_db(f1_hz),

@@ -20,6 +20,7 @@ from tonebench.analysis.assess import (
 )
 from tonebench.calibration.residual import check_shares
 from tonebench.calibration.sets import load_set
+from tonebench.errors import InputError
 from tonebench.plan.axes import GROUP_FIELDS, group_of, sweep_key_of
 from tonebench.planes.loss_table import LossTable
 from tonebench.planes.referral import (
@@ -271,6 +272,10 @@ def referral_tables(session: Session, run: Run, cal_name: str | None,
     """(calibration set id, tables to re-refer with or None to use the points as stored)."""
     if cal_name is None:
         return run.calibration_set_id, None
+    if "mixer" in (run.metadata_json or {}):
+        # Its output losses belong at the IF (run/mixer_run.py); rereferred() takes them at the RF.
+        raise InputError(f"run {run.guid[:8]}: a mixer run (read at the IF) cannot be re-referred to another "
+                         "calibration set yet; analyze it without --cal")
     view = load_set(session, cal_name)
     points = stored_points(session, run.id) if points is None else points
     pairs = sorted({(p.record.f1_hz, p.record.f2_hz) for p in points})

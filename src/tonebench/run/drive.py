@@ -12,6 +12,7 @@ from tonebench.instruments.rf_guard import Terminated, stop_signals
 from tonebench.instruments.supervision import RecoveryStopped
 from tonebench.run import ending
 from tonebench.run.ending import RunOutcome
+from tonebench.run.mixer_run import MixerDrive
 from tonebench.run.prepared import PreparedRun
 from tonebench.run.sequencer import ProgressCallback, RunStopped, Sequencer
 from tonebench.run.watchdog import Watchdog, WatchdogTripped
@@ -41,6 +42,14 @@ def watchdog_seconds(run: PreparedRun) -> float:
     return max(run.bench.settings.unattended.watchdog_s, 2 * longest_wait_s)
 
 
+def mixer_drive(run: PreparedRun) -> MixerDrive | None:
+    """The LO and IF reading of a [mixer] plan (run/mixer_run.py); None for any other plan."""
+    mixer = run.plan.settings.mixer
+    if mixer is None:
+        return None
+    return MixerDrive(mixer, run.instruments.lo, run.plan.settings.analyzer.rbw_hz, run.log)
+
+
 def drive(run: PreparedRun, on_progress: ProgressCallback | None,
           on_run_started: Callable[[str], None] | None, held_at_c: float | None = None) -> RunOutcome:
     """Measure what is left of the run with supervision, the run-time power guard and the
@@ -55,7 +64,7 @@ def drive(run: PreparedRun, on_progress: ProgressCallback | None,
                               unattended=run.bench.settings.unattended, log=run.log, watchdog=watchdog,
                               drain_v=plan_drain_v(run.plan.settings),
                               target_drain_a=getattr(run.plan.settings.bias, "drain_current_a", None),
-                              held_at_c=held_at_c)
+                              held_at_c=held_at_c, mixer=mixer_drive(run))
         heartbeat = Heartbeat(run.sessions, run.recorder.run_id)
 
         def progress(done: int, total: int) -> None:

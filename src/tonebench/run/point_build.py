@@ -32,10 +32,12 @@ def failed_record(point: PlannedPoint, reason: str, elapsed_s: float) -> PointRe
 
 def measured_record(point: PlannedPoint, measured: Measured, elapsed_s: float, tables: dict[str, LossTable],
                     settings_dbm: tuple[float, float], levels: tuple[LevelResult | None, LevelResult | None],
-                    drift: str | None) -> PointRecord:
+                    drift: str | None, out_point: PlannedPoint | None = None) -> PointRecord:
     """The record of an accepted point: source settings, leveling, losses, readings, DUT-referred values."""
     readings, setup = measured.readings, measured.setup
-    offsets = point_offsets(tables, point.f1_hz, point.f2_hz)
+    # out_point: the point as the analyzer saw it (a mixer's IF view); output losses are taken there.
+    offsets = point_offsets(tables, point.f1_hz, point.f2_hz,
+                            out_tones_hz=None if out_point is None else (out_point.f1_hz, out_point.f2_hz))
     level1, level2 = levels
     fields = dict(
         status="measured",

@@ -31,6 +31,7 @@ from tonebench.run.bench_time import (
     sweeps_per_point,
 )
 from tonebench.run.calibration_choice import choose_calibration
+from tonebench.run.mixer_run import check_mixer_plan
 from tonebench.run.read_settings import ProductChoice, TargetReads, tone_setup_for
 
 
@@ -65,6 +66,8 @@ def preflight(plan: LoadedPlan, bench: LoadedBench, sessions: sessionmaker | Non
     chosen = choose_calibration(bench, cal_name or bench.settings.bench.calibration, sessions, points, origin)
     check_plan(points, chosen.tables, bench.settings.limits, ranges, dialects["analyzer"].limits.get("damage_dbm"),
                origin)
+    check_mixer_plan(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings), chosen.tables.get("out"),
+                     origin)
     return Preflight(plan, bench, points, chosen.tables, dialects)
 
 

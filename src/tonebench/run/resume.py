@@ -23,6 +23,7 @@ from tonebench.run.drive import drive
 from tonebench.run.ending import RunOutcome
 from tonebench.run.event_log import RunLog, log_path_for
 from tonebench.run.leveler_setup import make_leveler
+from tonebench.run.mixer_run import check_mixer_plan, tighten_power_guards
 from tonebench.run.prepared import PreparedRun
 from tonebench.run.sequencer import ProgressCallback
 from tonebench.store.bench_lock import check_free as check_bench_free
@@ -137,9 +138,13 @@ def _check_and_hold(stack: ExitStack, sessions: sessionmaker, stored: _StoredRun
     check_plan_parts(remaining, plan.settings, bench.settings, plan_origin)
     check_bench_free(sessions, stored.bench_name, except_run_id=stored.run_id)  # before talking to its instruments
     instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, on_warning, stored.offsets)
+    tighten_power_guards(instruments, remaining, plan.settings.mixer, bench.settings.limits, stored.offsets,
+                         instruments.analyzer.limits.get("damage_dbm"))
     check_same_instruments(stored.guid, stored.instrument_ids, instruments)
     check_plan(remaining, stored.offsets, bench.settings.limits, instruments.source_ranges,
                instruments.analyzer.limits.get("damage_dbm"), plan_origin)
+    check_mixer_plan(remaining, plan.settings, bench.settings, bench_freq_ranges(bench.settings),
+                     stored.offsets.get("out"), plan_origin)
     leveler = make_leveler(bench, instruments, points, plan_origin)
     stack.enter_context(hold_bench(sessions, stored.bench_name, resume_run_id=stored.run_id))  # one run per bench
     recorder = RunRecorder(sessions, stored.run_id, stored.guid)

@@ -32,6 +32,7 @@ from tonebench.plan.points import PlannedPoint
 from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
 from tonebench.run.drift import DriftTracker
+from tonebench.run.mixer_run import MixerDrive
 from tonebench.run.narrowing import read_narrow
 from tonebench.run.read_settings import NOISE_MARKERS, TargetReads, tone_setup_for
 from tonebench.instruments.detector_setup import point_extra as detector_extra
@@ -80,8 +81,10 @@ class Sequencer:
         drain_v: float | None = None,
         target_drain_a: float | None = None,
         held_at_c: float | None = None,
+        mixer: MixerDrive | None = None,
     ):
         self.bench = bench
+        self.mixer = mixer  # a mixer plan: the LO, and the analyzer reading at the IF (run/mixer_run.py)
         # The caller soaked the chamber here just before this run and left it there (the runs of
         # one `bias search` study): held within tolerance, the dwell is not waited again.
         self.held_at_c = held_at_c
@@ -255,7 +258,7 @@ class Sequencer:
         levels = (self._correction(1, point.f1_hz), self._correction(2, point.f2_hz))
         drift = self.drift.observe(point, readings.f1_dbm, readings.f2_dbm)
         record = measured_record(point, measured, elapsed_s, self.offsets, self._source_settings_dbm(point),
-                                 levels, drift)
+                                 levels, drift, None if self.mixer is None else self._read_view(point))
         record.extra_json.update(detector_extra(self.bench.analyzer))  # the mode the noise was read with
         store_point(self.recorder.sessions, self.recorder.run_id, record)
 
@@ -289,7 +292,10 @@ class Sequencer:
                     raise BenchFault(str(exc)) from None
                 raise
         self._set_bias(point)
+        if self.mixer is not None:
+            self.mixer.set_lo(point)  # LO on before the tones
         self._set_tones(point)
+        read_at = self._read_view(point)
         if not self.rf.all_on:
             self.rf.set(True, True)
             if not self._rf_said:
@@ -311,14 +317,14 @@ class Sequencer:
                             else tuple(factor * noise_offset_hz for factor in NOISE_MARKERS))
         narrow = None
         with analyzer.errors_read_once():
-            readings = read_point(analyzer, point, noise_offsets_hz, setup, tone_setup)
+            readings = read_point(analyzer, read_at, noise_offsets_hz, setup, tone_setup)
             if settings.narrowing_budget_s is not None:
                 readings, narrow = read_narrow(
-                    analyzer, point, setup, readings, noise_offsets_hz, settings.narrowing_budget_s,
+                    analyzer, read_at, setup, readings, noise_offsets_hz, settings.narrowing_budget_s,
                     lambda rbw_hz: self.attenuation.setup_for(predicted_tone_dbm, rbw_hz)[0],
                     None if target is None else self.target_reads.target_db)
             second = self._read_second_order(point, noise_offset_hz) if self.second_order else None
-            step = self.attenuation.step_check(point, point.tone_dbm in sweep.step_levels_dbm, setup, readings,
+            step = self.attenuation.step_check(read_at, point.tone_dbm in sweep.step_levels_dbm, setup, readings,
                                                noise_offsets_hz)
         chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
         return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c, narrow,
@@ -341,9 +347,13 @@ class Sequencer:
         if predicted is not None and all(abs(read - want) <= tolerance_db for read, want in zip(first, predicted)):
             return None
         # Read where the point's tones were (the step check may have left more attenuation).
-        again = read_tones_dbm(self.bench.analyzer, point,
+        again = read_tones_dbm(self.bench.analyzer, self._read_view(point),
                                tone_setup_for(self.analyzer_settings, measured.setup, point.spacing_hz))
         return settle_check(first, again, tolerance_db)
+
+    def _read_view(self, point: PlannedPoint) -> PlannedPoint:
+        """Where the analyzer reads the point: at its frequencies, or a mixer's IF view."""
+        return point if self.mixer is None else self.mixer.at_if(point)
 
     def _fail(self, point: PlannedPoint, reason: str, elapsed_s: float) -> None:
         """Store the point as failed with its reason, then apply the on_point_failure policy."""
@@ -381,7 +391,7 @@ class Sequencer:
         predicted = sweep.predicted_tone_dbm(point.tone_dbm)
         if predicted is not None:
             return predicted
-        return expected_tone_dbm(point, self.offsets, self.limits)
+        return expected_tone_dbm(self._read_view(point), self.offsets, self.limits)  # at the IF for a mixer
 
     def _read_second_order(self, point: PlannedPoint, noise_offset_hz: float):
         blocked = second_order_blocked(self.bench.analyzer.limits, self.setup.span_hz, self.offsets["out"], point)

@@ -34,6 +34,7 @@ from tonebench.run.ending import BenchTimeTaken, RunOutcome
 from tonebench.run.event_log import RunLog, log_path_for
 from tonebench.run.events import EventRelay
 from tonebench.run.leveler_setup import make_leveler
+from tonebench.run.mixer_run import check_mixer_plan, tighten_power_guards
 from tonebench.run.prepared import PreparedRun
 from tonebench.run.sequencer import ProgressCallback
 from tonebench.store.bench_lock import check_free_at as check_bench_free_at
@@ -135,8 +136,12 @@ def _check_and_connect(stack: ExitStack, files: _RunFiles, db_url: str, cal_name
         warn(chosen.stale_message)
     check_plan_frequencies(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings), files.origin)
     check_plan_parts(points, plan.settings, bench.settings, files.origin)
+    check_mixer_plan(points, plan.settings, bench.settings, bench_freq_ranges(bench.settings),
+                     chosen.tables.get("out"), files.origin)
     check_bench_free_at(db_url, sessions, bench.settings.bench.name)  # before talking to its instruments
     instruments, relay, supervision = connect_bench(stack, bench, on_sim_started, warn, chosen.tables)
+    tighten_power_guards(instruments, points, plan.settings.mixer, bench.settings.limits, chosen.tables,
+                         instruments.analyzer.limits.get("damage_dbm"))
     check_plan(points, chosen.tables, bench.settings.limits, instruments.source_ranges,
                instruments.analyzer.limits.get("damage_dbm"), files.origin)
     leveler = make_leveler(bench, instruments, points, files.origin)
@@ -208,6 +213,8 @@ def _start_recorder(sessions: sessionmaker, files: _RunFiles, checked: _Checked,
             # Which intercept the results report and whether per-level results are stored.
             "results": results_choice(plan.settings, bench.settings),
             "bench_time_estimate": estimate.as_dict(),
+            # A mixer plan's frequency plan (LO, injection, output): the analyzer read at the IF.
+            **({} if plan.settings.mixer is None else {"mixer": plan.settings.mixer.model_dump()}),
         },
     )
 

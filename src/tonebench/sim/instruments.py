@@ -10,6 +10,7 @@ from __future__ import annotations
 from typing import Callable
 
 from tonebench.sim.detector_panel import add_detector_commands
+from tonebench.sim.mixer import LO_ROLE, LO_SOURCE_INDEX
 from tonebench.sim.signal_chain import PowerMeterState, SimBench
 from tonebench.sim.scpi_parser import (
     DATA_OUT_OF_RANGE,
@@ -74,9 +75,10 @@ class SimSource(_BenchDevice):
     """Signal source number `index` (1 or 2) of the bench."""
 
     def __init__(self, bench: SimBench, index: int):
-        if index not in (1, 2):
-            raise ValueError(f"SimSource index {index}: must be 1 or 2")
-        super().__init__(bench, f"source{index}", f"tonebench,simulated two-tone source,SIM-SRC-000{index},0.1")
+        if index not in (1, 2, LO_SOURCE_INDEX):
+            raise ValueError(f"SimSource index {index}: must be 1, 2 or {LO_SOURCE_INDEX} (the LO of a mixer bench)")
+        name = LO_ROLE if index == LO_SOURCE_INDEX else f"source{index}"
+        super().__init__(bench, name, f"tonebench,simulated two-tone source,SIM-SRC-000{index},0.1")
         self.index = index
         limits = bench.scenario.sources
         self._setting(

@@ -6,6 +6,7 @@ from __future__ import annotations
 from tonebench.sim.chamber import SimChamberPanel
 from tonebench.sim.signal_chain import SimBench
 from tonebench.sim.faults import FaultSchedule
+from tonebench.sim.mixer import LO_ROLE, LO_SOURCE_INDEX
 from tonebench.sim.instruments import SimAnalyzer, SimPowerMeter, SimSource
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.server import InstrumentServer
@@ -46,6 +47,8 @@ def start_sim_bench(scenario: Scenario, faults: FaultSchedule | None = None) -> 
     for number, (role, supply) in enumerate(bench.supplies.items(), start=1):
         devices[role] = SimSupplyPanel(supply, name=role, idn=f"tonebench,simulated DC supply,SIM-PS-{number:04d},0.1",
                                        bench_log=bench.log)
+    if scenario.mixer is not None:  # its LO: a third source, same SCPI as the tone sources
+        devices[LO_ROLE] = SimSource(bench, LO_SOURCE_INDEX)
     if bench.chamber is not None:
         devices["chamber"] = SimChamberPanel(bench.chamber, bench.log)
     servers: dict[str, InstrumentServer] = {}

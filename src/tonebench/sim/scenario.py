@@ -9,6 +9,7 @@ from __future__ import annotations
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 from tonebench.sim.faults import FaultSpec
+from tonebench.sim.mixer import MixerScenario
 
 # A memoryless cubic compresses 1 dB at 10*log10((4/3) / (4/3 * (1 - 10^(-1/20)))) = 9.64 dB below
 # its IIP3; a saturating stage can only make it compress earlier. Kept a little above that.
@@ -183,6 +184,8 @@ class Scenario(_Strict):
     fet: FetScenario | None = None
     # A thermal chamber; None: the device stays at fet.temp_k.
     chamber: ChamberScenario | None = None
+    # A mixer in place of the DUT (sim/mixer.py), pumped by a third simulated source (role "lo").
+    mixer: MixerScenario | None = None
     # A thru (0 dB, perfectly linear, noiseless) in place of the DUT; SimBench.set_thru switches it.
     thru: bool = False
     # Faults to inject ([[simulation.faults]] rows; see sim/faults.py), counted from the start.

@@ -16,6 +16,7 @@ import numpy as np
 
 from tonebench.sim import detector as sim_detector
 from tonebench.sim import memory, phase_noise, physics
+from tonebench.sim import mixer as sim_mixer
 from tonebench.sim.analyzer_im2 import add_analyzer_im2
 from tonebench.sim.chamber import SimChamber
 from tonebench.sim.fet_stage import FetBias, FetStage
@@ -110,6 +111,11 @@ class BenchTruth:
     def true_oip3_dbm(self, freq_hz):
         return _float_or_array(np.asarray(self.true_iip3_dbm(freq_hz)) + np.asarray(self.true_gain_db(freq_hz)))
 
+    def true_mixer_iip3_dbm(self, lo_dbm: float) -> float:
+        """RF-referred IIP3 (dBm) of the simulated mixer with the LO source at lo_dbm (its connector)."""
+        mixer = self._scenario.mixer
+        return sim_mixer.iip3_at_lo_dbm(mixer, lo_dbm - mixer.lo_loss_db)
+
     def true_p1db_dbm(self, freq_hz: float) -> float:
         """Input-referred single-tone 1 dB compression point, found numerically from the model."""
         return physics.p1db_input_dbm(self.dut_model(freq_hz))
@@ -164,12 +170,14 @@ def input_plane_tones(truth: BenchTruth, settings: tuple[SourceSetting, SourceSe
 
 
 def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[SourceSetting, SourceSetting],
-                   atten_db: float, thru: bool = False, stage: FetStage | None = None) -> AnalyzerInput:
+                   atten_db: float, thru: bool = False, stage: FetStage | None = None,
+                   lo: SourceSetting | None = None) -> AnalyzerInput:
     """Lines reaching the analyzer for these source settings, its mixer's own IM3 referred to its input included.
 
     thru=True puts a 0 dB thru in place of the DUT: what sits at the DUT input plane (tones and the
     sources' residual IM3) reaches the output path unchanged. stage: a biased FET stage in place of
-    the scenario's memoryless DUT.
+    the scenario's memoryless DUT. lo: the LO source's setting, for a mixer scenario (sim/mixer.py):
+    the products then sit at the IF, and nothing comes out with the LO off.
     """
     tones = [(freq_hz, float(dbm_to_vpeak(dbm))) for freq_hz, dbm in input_plane_tones(truth, settings)]
     bins = physics.SIM_POINTS // 2 + 1
@@ -192,13 +200,20 @@ def analyzer_input(scenario: Scenario, truth: BenchTruth, settings: tuple[Source
         amp_v = np.zeros(bins, dtype=complex)
         for pq, value_v in (((1, 0), low_v), ((0, 1), high_v), ((2, -1), residual_low_v), ((-1, 2), residual_high_v)):
             amp_v[physics.product_bin(*pq)] += value_v
+    elif scenario.mixer is not None:
+        if lo is None or not lo.rf_on:  # an unpumped mixer converts nothing (LO leakage not modelled)
+            return AnalyzerInput(np.zeros(bins), np.zeros(bins, dtype=complex))
+        freq_hz, amp_v = sim_mixer.translated_spectrum(
+            scenario.mixer, lo.freq_hz, lo.power_dbm - scenario.mixer.lo_loss_db, f_low_hz, f_high_hz,
+            low_v, high_v, residual_low_v, residual_high_v)
     else:
         model = stage if stage is not None else truth.dut_model(0.5 * (f_low_hz + f_high_hz))
         amp_v = physics.dut_output_spectrum_v(model, low_v, high_v, residual_low_v, residual_high_v)
         if stage is None and two_tone:  # the memoryless DUT's baseband memory (off by default)
             amp_v = amp_v + memory.dut_memory_spectrum_v(scenario.dut, model.a3, f_high_hz - f_low_hz, low_v,
                                                          high_v, residual_low_v, residual_high_v)
-    freq_hz = physics.bin_frequencies_hz(f_low_hz, f_high_hz - f_low_hz)
+    if thru or scenario.mixer is None:
+        freq_hz = physics.bin_frequencies_hz(f_low_hz, f_high_hz - f_low_hz)
     keep = freq_hz > 0.0  # products folding through 0 Hz (spacing above f1) are not modelled
     if not two_tone:
         keep &= np.arange(bins) % physics.TONE_BIN == 0  # harmonics only
@@ -232,7 +247,9 @@ class SimBench:
         self.clock_s = 0.0
         self.truth = BenchTruth(scenario)
         self.analyzer = AnalyzerState()
-        self._sources = {index: self._source_at_power_on() for index in (1, 2)}
+        # A mixer scenario adds its LO as source 3 (sim/mixer.py).
+        indexes = (1, 2, sim_mixer.LO_SOURCE_INDEX) if scenario.mixer is not None else (1, 2)
+        self._sources = {index: self._source_at_power_on() for index in indexes}
         self.command_log: list[tuple[float, str, str]] = []  # (clock_s, instrument, line)
         self.damage_log: list[tuple[float, float]] = []  # (clock_s, analyzer input dBm)
         self._rng = np.random.default_rng(scenario.seed)
@@ -320,6 +337,12 @@ class SimBench:
         self._catch_up()
         return self._in_force(1), self._in_force(2)
 
+    def _lo_in_force(self) -> SourceSetting | None:
+        """The LO source's setting in force (mixer scenario), else None."""
+        if sim_mixer.LO_SOURCE_INDEX not in self._sources:
+            return None
+        return self._in_force(sim_mixer.LO_SOURCE_INDEX)
+
     def _in_force(self, index: int) -> SourceSetting:
         """The setting in force with any level error of a source still settling."""
         channel = self._sources[index]
@@ -341,7 +364,7 @@ class SimBench:
 
     def _input(self) -> AnalyzerInput:
         return analyzer_input(self.scenario, self.truth, self._effective_settings(), self.analyzer.atten_db, self.thru,
-                              self.fet_stage())
+                              self.fet_stage(), self._lo_in_force())
 
     def input_power_dbm(self) -> float:
         """Total power now at the analyzer input connector (dBm)."""
@@ -357,7 +380,8 @@ class SimBench:
 
     def _check_damage(self) -> None:
         input_dbm = _total_dbm(analyzer_input(self.scenario, self.truth, (self._in_force(1), self._in_force(2)),
-                                              self.analyzer.atten_db, self.thru, self.fet_stage()).amp_v)
+                                              self.analyzer.atten_db, self.thru, self.fet_stage(),
+                                              self._lo_in_force()).amp_v)
         if input_dbm > self.scenario.analyzer.damage_dbm:
             self.analyzer.damaged = True
             self.damage_log.append((self.clock_s, input_dbm))
@@ -383,6 +407,9 @@ class SimBench:
         stage = self.fet_stage()
         if stage is not None and not self.thru:
             gain_db = stage.gain_db()
+        if self.scenario.mixer is not None and not self.thru:
+            # Noise at the IF: the mixer's own noise figure and conversion gain (LO leakage aside).
+            nf_db, gain_db = self.scenario.mixer.nf_db, self.scenario.mixer.conversion_gain_db
         arriving_dbm_per_hz = (physics.dut_output_noise_dbm_per_hz(nf_db, gain_db)
                                - self.truth.true_loss_db("out", freq_hz))
         noise_dbm_per_hz = physics.analyzer_noise_dbm_per_hz(settings.danl_dbm_per_hz, state.atten_db,
