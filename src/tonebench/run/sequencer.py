@@ -47,7 +47,7 @@ from tonebench.run.rf_switches import RfSwitches
 from tonebench.run.sweep_state import SweepState, sweep_states
 from tonebench.run.tone_leveling import ToneLeveling
 from tonebench.run.watchdog import Watchdog
-from tonebench.store.point_writer import store_point
+from tonebench.store.point_committer import PointCommitter
 from tonebench.store.records import RunRecorder
 from tonebench.units import format_freq
 
@@ -107,6 +107,9 @@ class Sequencer:
         self._rf_said = False
         self._said: set[str] = set()  # events said once per run
         self._chamber_c: float | None = None  # the temperature soaked at, this run
+        # Points are committed on a writer thread while the next one is measured; all are
+        # committed (or their commit's error raised) before run() returns or raises.
+        self.points_out = PointCommitter(recorder.sessions, recorder.run_id)
 
     def run(self, points: list[PlannedPoint], on_progress: ProgressCallback | None = None,
             done_keys: frozenset[str] = frozenset()) -> None:
@@ -147,11 +150,16 @@ class Sequencer:
                     on_progress(done, len(points))
         finally:
             with shielded():  # a signal now must not cut the RF off short; it is raised after
-                self.rf.forget()
-                self._stop_recovery()
-                self.rf_report = self.bench.switch_rf_off()
-                self._say_rf_off(self.rf_report)
-                self._bias_down()  # after RF, in its safe order
+                try:
+                    self.rf.forget()
+                    self._stop_recovery()
+                    self.rf_report = self.bench.switch_rf_off()
+                    self._say_rf_off(self.rf_report)
+                    self._bias_down()  # after RF, in its safe order
+                finally:
+                    # Every point committed before the run's end is stored (after RF off: a
+                    # commit may wait out a busy timeout); a commit's error is raised here.
+                    self.points_out.close()
 
     def _set_temperature(self, point: PlannedPoint) -> None:
         """A new chamber temperature: RF off, then a soak (kicking the watchdog at every reading);
@@ -253,7 +261,7 @@ class Sequencer:
         drift = self.drift.observe(point, readings.f1_dbm, readings.f2_dbm)
         record = measured_record(point, measured, elapsed_s, self.offsets, self._source_settings_dbm(point),
                                  levels, drift)
-        store_point(self.recorder.sessions, self.recorder.run_id, record)
+        self.points_out.submit(record)
 
     def _stop_recovery(self) -> None:
         """No more retries, and no restore turns RF on again: the run is ending."""
@@ -343,7 +351,7 @@ class Sequencer:
 
     def _fail(self, point: PlannedPoint, reason: str, elapsed_s: float) -> None:
         """Store the point as failed with its reason, then apply the on_point_failure policy."""
-        store_point(self.recorder.sessions, self.recorder.run_id, failed_record(point, reason, elapsed_s))
+        self.points_out.submit(failed_record(point, reason, elapsed_s))
         self.failed_keys.append(point.key)
         policy = self.unattended.on_point_failure
         self.log.event("error", "point-failed", f"point {point.name}: {reason}; on_point_failure = {policy}",
