@@ -107,6 +107,7 @@ class Sequencer:
         self._rf_said = False
         self._said: set[str] = set()  # events said once per run
         self._chamber_c: float | None = None  # the temperature soaked at, this run
+        self._levels: dict[str, object] = {}  # point key -> its predicted levels (plan/limits.py)
         # Points are committed on a writer thread while the next one is measured; all are
         # committed (or their commit's error raised) before run() returns or raises.
         self.points_out = PointCommitter(recorder.sessions, recorder.run_id)
@@ -314,8 +315,11 @@ class Sequencer:
         noise_offsets_hz = ((noise_offset_hz,) if target is None
                             else tuple(factor * noise_offset_hz for factor in NOISE_MARKERS))
         narrow = None
-        with analyzer.errors_read_once():
-            readings = read_point(analyzer, point, noise_offsets_hz, setup, tone_setup)
+        # The point's error query on its last read's line only (read_point's last, and the step
+        # check's when it reads); with narrowing or second-order reads after, on every read line.
+        more_reads = settings.narrowing_budget_s is not None or self.second_order
+        with analyzer.errors_read_once(on_every_read=more_reads):
+            readings = read_point(analyzer, point, noise_offsets_hz, setup, tone_setup, errors_on_last=not more_reads)
             if settings.narrowing_budget_s is not None:
                 readings, narrow = read_narrow(
                     analyzer, point, setup, readings, noise_offsets_hz, settings.narrowing_budget_s,
@@ -418,7 +422,9 @@ class Sequencer:
 
     def _source_settings_dbm(self, point: PlannedPoint) -> tuple[float, float]:
         """Both open-loop settings, each plus its tone's leveling correction when leveled."""
-        levels = predict_levels(point, self.offsets, self.limits)
+        levels = self._levels.get(point.key)
+        if levels is None:  # fixed for the run (losses and limits): worked out once per point
+            levels = self._levels[point.key] = predict_levels(point, self.offsets, self.limits)
         settings = [levels.source1_dbm, levels.source2_dbm]
         for index, freq_hz in ((1, point.f1_hz), (2, point.f2_hz)):
             level = self._correction(index, freq_hz)
