@@ -156,6 +156,7 @@ def test_the_error_query_rides_on_a_points_last_read_and_an_error_on_any_read_re
     outcome = execute_run(SAMPLE_RUNS / "demo_plan.toml", bench, f"sqlite:///{db}", None, on_sim_started=sims.append)
     assert outcome.status == "complete", outcome.reason
     status, _, points, keys, events = stored(db)
+    assert status == "complete"
     assert len(keys) == len(set(keys)) == 51 and all(p.status == "measured" for p in points.values())
     assert len(sims[0].faults.fired) == 3
     retries = [message for kind, message in events if kind == "point-retry"]
@@ -183,10 +184,9 @@ def test_a_read_after_the_one_carrying_the_error_query_still_has_its_errors_read
                 analyzer.read_markers(2.45e9, [2.45e9], errors_now=True)
                 assert sim.bench.command_log[-1][2].endswith(";:SYST:ERR?")
             sim.faults.add(FaultSpec(instrument="analyzer", kind="error", on="STAT:QUES:COND?", nth=2, code=-222))
-            with pytest.raises(ScpiErrors, match="-222"):
-                with analyzer.errors_read_once(on_every_read=False):
-                    analyzer.read_markers(2.45e9, [2.45e9], errors_now=True)
-                    analyzer.read_markers(2.45e9, [2.45e9])  # the entry is left by this one
-                    assert not sim.bench.command_log[-1][2].endswith("SYST:ERR?")
+            with pytest.raises(ScpiErrors, match="-222"), analyzer.errors_read_once(on_every_read=False):
+                analyzer.read_markers(2.45e9, [2.45e9], errors_now=True)
+                analyzer.read_markers(2.45e9, [2.45e9])  # the entry is left by this one
+                assert not sim.bench.command_log[-1][2].endswith("SYST:ERR?")
         finally:
             instruments.close()
