@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pytest
 from conftest import SAMPLE_RUNS
+from stored_rows import stored
 from sqlalchemy import create_engine, select
 from sqlalchemy.orm import Session
 
@@ -16,6 +17,7 @@ from tonebench.instruments import load_dialect, open_resource
 from tonebench.instruments.scpi import CommandRefused, ConnectionFault, ScpiError, ScpiInstrument, split_replies
 from tonebench.packaged import data_dir
 from tonebench.run.start import execute_run
+from tonebench.sim.faults import FaultSpec
 from tonebench.sim.launch import start_sim_bench
 from tonebench.store.models import Point
 
@@ -138,3 +140,53 @@ def test_faults_on_joined_lines_are_recovered(tmp_path):
     assert points and all(p.status == "measured" for p in points)
     assert len({p.point_key for p in points}) == len(points)
     assert rf_is_off(sim)
+
+
+def test_the_error_query_rides_on_a_points_last_read_and_an_error_on_any_read_remeasures_it(tmp_path):
+    """With one_line a plain point's error query goes on its last read's line only; an error
+    entry left by any earlier read of the point is still read before the point is accepted, and
+    the point is measured again (run/sequencer.py, instruments/analyzer.errors_read_once)."""
+    bench = one_line_bench(tmp_path, True)
+    # Error entries on three read lines far enough apart to fall in three different points.
+    faults = "".join(f'\n[[simulation.faults]]\ninstrument = "analyzer"\nkind = "error"\n'
+                     f'on = "STAT:QUES:COND?"\nnth = {nth}\ncode = -222\n' for nth in (41, 62, 83))
+    bench.write_text(bench.read_text() + faults)
+    sims = []
+    db = tmp_path / "faults.db"
+    outcome = execute_run(SAMPLE_RUNS / "demo_plan.toml", bench, f"sqlite:///{db}", None, on_sim_started=sims.append)
+    assert outcome.status == "complete", outcome.reason
+    status, _, points, keys, events = stored(db)
+    assert status == "complete"
+    assert len(keys) == len(set(keys)) == 51 and all(p.status == "measured" for p in points.values())
+    assert len(sims[0].faults.fired) == 3
+    retries = [message for kind, message in events if kind == "point-retry"]
+    assert len(retries) == 3 and all("simulated fault" in message for message in retries), retries
+    analyzer = [line for _, instrument, line in sims[0].bench.command_log if instrument == "analyzer"]
+    reads = [line for line in analyzer if line.startswith("STAT:QUES:COND?;")]
+    with_errors = [line for line in reads if line.endswith(";:SYST:ERR?")]
+    # Every point's last read carries it (51 points and 3 retries), not all four of its reads.
+    assert 51 + 3 <= len(with_errors) < 0.5 * len(reads), (len(with_errors), len(reads))
+
+
+def test_a_read_after_the_one_carrying_the_error_query_still_has_its_errors_read(tmp_path):
+    """Inside errors_read_once(on_every_read=False), a read sent after the one that carried the
+    error query leaves the queue unchecked: the drain at the end reads it and raises."""
+    from tonebench.instruments.open_bench import open_bench
+    from tonebench.instruments.scpi import ScpiErrors
+
+    bench = load_bench(one_line_bench(tmp_path, True))
+    with start_sim_bench(bench.scenario) as sim:
+        instruments = open_bench(bench.settings, sim.resources)
+        try:
+            analyzer = instruments.analyzer
+            analyzer.prepare()
+            with analyzer.errors_read_once(on_every_read=False):
+                analyzer.read_markers(2.45e9, [2.45e9], errors_now=True)
+                assert sim.bench.command_log[-1][2].endswith(";:SYST:ERR?")
+            sim.faults.add(FaultSpec(instrument="analyzer", kind="error", on="STAT:QUES:COND?", nth=2, code=-222))
+            with pytest.raises(ScpiErrors, match="-222"), analyzer.errors_read_once(on_every_read=False):
+                analyzer.read_markers(2.45e9, [2.45e9], errors_now=True)
+                analyzer.read_markers(2.45e9, [2.45e9])  # the entry is left by this one
+                assert not sim.bench.command_log[-1][2].endswith("SYST:ERR?")
+        finally:
+            instruments.close()

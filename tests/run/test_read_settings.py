@@ -72,7 +72,7 @@ class _MarkerAnalyzer:
     def __init__(self):
         self.asked: list[tuple[float, list[float]]] = []
 
-    def read_markers(self, center_hz, marker_freqs_hz):
+    def read_markers(self, center_hz, marker_freqs_hz, errors_now=False):
         self.asked.append((center_hz, list(marker_freqs_hz)))
         noise_dbm = [-100.0 + 3.0 * (i % 2) for i in range(len(marker_freqs_hz) - 1)]  # -100, -97, ...
         return MarkerReading((-80.0, *noise_dbm), False, 0.1)

@@ -78,18 +78,25 @@ class SpectrumAnalyzer(RoleDriver):
         # then takes (instruments/detector_setup.py use_detector).
         self.detector_steps: list[tuple[str, dict]] = []
         self.sweeps_per_read = 1
+        self._errors_every_read = True  # inside errors_read_once(on_every_read=False): only when asked
         instrument.add_restore_hook(self.restore)
 
     @contextlib.contextmanager
-    def errors_read_once(self):
+    def errors_read_once(self, on_every_read: bool = True):
         """Reads and settings inside leave the error queue alone; it is drained once at the end
         (one point's reads: an error there makes the point measured again, and the retry's
-        restore sends every setting anew, so a refused one is not taken as in force)."""
-        self._errors_deferred = True
+        restore sends every setting anew, so a refused one is not taken as in force).
+
+        Where the dialect joins (one_line) each read line carries the error query anyway (no
+        round trip of its own); on_every_read=False keeps it to a read asked for it
+        (read_markers(errors_now=True), the caller's last). Anything sent after that read leaves
+        the queue unchecked, so the drain at the end still reads it: an error is never missed,
+        at worst it costs one round trip more."""
+        self._errors_deferred, self._errors_every_read = True, on_every_read
         try:
             yield
         finally:
-            self._errors_deferred = False
+            self._errors_deferred, self._errors_every_read = False, True
         self.instrument.check_errors()
 
     def prepare(self) -> None:
@@ -132,8 +139,9 @@ class SpectrumAnalyzer(RoleDriver):
             ]
         )
 
-    def read_markers(self, center_hz: float, marker_freqs_hz: Sequence[float]) -> MarkerReading:
-        """One single sweep at `center_hz`, then the marker power (dBm) at each frequency (Hz)."""
+    def read_markers(self, center_hz: float, marker_freqs_hz: Sequence[float], errors_now: bool = False) -> MarkerReading:
+        """One single sweep at `center_hz`, then the marker power (dBm) at each frequency (Hz).
+        errors_now: the error query on this read's line (see errors_read_once)."""
         low, high = self.limits["min_freq_hz"], self.limits["max_freq_hz"]
         for freq_hz in (center_hz, *marker_freqs_hz):
             if not low <= freq_hz <= high:
@@ -155,7 +163,7 @@ class SpectrumAnalyzer(RoleDriver):
             steps = [("read_status", {})]
             for freq_hz in marker_freqs_hz:
                 steps += [("set_marker_freq", {"freq_hz": freq_hz}), ("read_marker_power", {})]
-            errors = inst.dialect.io.one_line or not self._errors_deferred
+            errors = not self._errors_deferred or (inst.dialect.io.one_line and (self._errors_every_read or errors_now))
             tail = [("read_sweep_time", {}), *([("next_error", {})] if errors else [])]
             replies = inst.call_many([*steps, *tail])
             first_error = replies.pop() if errors else None

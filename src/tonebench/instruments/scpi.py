@@ -193,7 +193,6 @@ class ScpiInstrument:
 
     def _transfer(self, operation: str, message: str, is_query: bool, timeout_s: float | None) -> str | None:
         """Write `message`, and for a query return the reply line; ConnectionFault if the link failed."""
-        where = f"{self.label}: {operation} ({message!r})"
         resource = self.resource
         previous_ms = resource.timeout if timeout_s is not None else None
         try:
@@ -210,9 +209,9 @@ class ScpiInstrument:
                     f"{self.label}: no reply to {operation} ({message!r}) within {waited_s:g} s",
                     timed_out=True, operation=operation, sent=message,
                 ) from None
-            raise ConnectionFault(f"{where} failed: {exc}", timed_out=False) from None
+            raise ConnectionFault(f"{self.label}: {operation} ({message!r}) failed: {exc}", timed_out=False) from None
         except (OSError, pyvisa.errors.InvalidSession) as exc:  # dropped or closed (pyvisa-py sockets)
-            raise ConnectionFault(f"{where} failed: {exc}", timed_out=False) from None
+            raise ConnectionFault(f"{self.label}: {operation} ({message!r}) failed: {exc}", timed_out=False) from None
         finally:
             if previous_ms is not None:
                 try:
@@ -224,13 +223,14 @@ class ScpiInstrument:
         return reply
 
     def _parse(self, operation: str, message: str, kind: str, reply: str):
-        where = f"{self.label}: {operation} ({message!r})"
         try:
             return parse_reply(kind, reply)
         except NotANumber:
+            where = f"{self.label}: {operation} ({message!r})"  # built only for the error
             raise ImpossibleReading(f"{where} replied {reply!r}: the instrument's not-a-number "
                                     "(SCPI 9.91E37, NaN or inf), not a reading") from None
         except ValueError:
+            where = f"{self.label}: {operation} ({message!r})"
             # A reply of the wrong shape is most often another query's reply arriving late:
             # worth a resynchronisation, like a timeout.
             raise ConnectionFault(

@@ -8,6 +8,7 @@ order are declared once, in plan/axes.py.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from itertools import product
 
 from tonebench.config.plan_file import PlanFile
@@ -41,7 +42,8 @@ class PlannedPoint:
         """The upper third-order product, 2f2 - f1."""
         return 2.0 * self.f2_hz - self.f1_hz
 
-    @property
+    # Kept once computed (the fields are frozen): the sequencer asks for both several times a point.
+    @cached_property
     def key(self) -> str:
         return point_key_of({axis.point_field: getattr(self, axis.point_field) for axis in AXES})
 
@@ -50,7 +52,7 @@ class PlannedPoint:
         """The point as messages name it, e.g. '2.45 GHz, spacing 1 MHz, -20.00 dBm per tone'."""
         return point_name({axis.point_field: getattr(self, axis.point_field) for axis in AXES})
 
-    @property
+    @cached_property
     def sweep_key(self) -> SweepKey:
         """The sweep this point belongs to: every axis but tone power (plan/axes.py)."""
         return sweep_key_of(self)

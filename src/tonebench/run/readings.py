@@ -71,13 +71,13 @@ class Measured:
 
 
 def read_point(analyzer, point: PlannedPoint, noise_offsets_hz: Sequence[float], setup: AnalyzerSetup,
-               tone_setup: AnalyzerSetup) -> Readings:
+               tone_setup: AnalyzerSetup, errors_on_last: bool = False) -> Readings:
     """Four narrow-span reads, one per product, the tones at tone_setup and the products at
     setup (the same unless the plan reads tones wider); the noise floor is read beside each IM3
-    product (read_im3)."""
+    product (read_im3). errors_on_last: the error query on the last read's line."""
     f1, f2 = _tones(analyzer, point, tone_setup)
     analyzer.apply(setup)
-    lower, upper = read_im3(analyzer, point, noise_offsets_hz)
+    lower, upper = read_im3(analyzer, point, noise_offsets_hz, errors_on_last)
     reads = (f1, f2, lower, upper)
     return Readings(
         f1_dbm=f1.powers_dbm[0],
@@ -103,12 +103,14 @@ def _tones(analyzer, point: PlannedPoint, tone_setup: AnalyzerSetup) -> tuple[Ma
             analyzer.read_markers(point.f2_hz, [point.f2_hz]))
 
 
-def read_im3(analyzer, point: PlannedPoint, noise_offsets_hz: Sequence[float]) -> tuple[MarkerReading, MarkerReading]:
+def read_im3(analyzer, point: PlannedPoint, noise_offsets_hz: Sequence[float],
+             errors_on_last: bool = False) -> tuple[MarkerReading, MarkerReading]:
     """Both IM3 products, each with noise markers noise_offsets_hz away from it on the side away
     from the tones (a negative offset: on the tones' side). Each reading's powers are the product
     and the noise: the mean power of the markers when there are several."""
     lower = analyzer.read_markers(point.lower_hz, [point.lower_hz, *(point.lower_hz - off for off in noise_offsets_hz)])
-    upper = analyzer.read_markers(point.upper_hz, [point.upper_hz, *(point.upper_hz + off for off in noise_offsets_hz)])
+    upper = analyzer.read_markers(point.upper_hz, [point.upper_hz, *(point.upper_hz + off for off in noise_offsets_hz)],
+                                  errors_now=errors_on_last)
     return _noise_averaged(lower), _noise_averaged(upper)
 
 
@@ -122,8 +124,9 @@ def _noise_averaged(reading: MarkerReading) -> MarkerReading:
 
 def step_readings(analyzer, point: PlannedPoint, noise_offsets_hz: Sequence[float], step_atten_db: float,
                   reason: str) -> StepReadings:
-    """The IM3 reads again, the analyzer already set step_atten_db more attenuation."""
-    lower, upper = read_im3(analyzer, point, noise_offsets_hz)
+    """The IM3 reads again, the analyzer already set step_atten_db more attenuation (the last
+    reads of a point: the error query on the last one's line)."""
+    lower, upper = read_im3(analyzer, point, noise_offsets_hz, errors_on_last=True)
     return StepReadings(step_atten_db, lower.powers_dbm[0], upper.powers_dbm[0], lower.powers_dbm[1],
                         upper.powers_dbm[1], reason, lower.sweep_time_s + upper.sweep_time_s)
 

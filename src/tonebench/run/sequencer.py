@@ -50,7 +50,7 @@ from tonebench.run.rf_switches import RfSwitches
 from tonebench.run.sweep_state import SweepState, sweep_states
 from tonebench.run.tone_leveling import ToneLeveling
 from tonebench.run.watchdog import Watchdog
-from tonebench.store.point_writer import store_point
+from tonebench.store.point_committer import PointCommitter
 from tonebench.store.records import RunRecorder
 from tonebench.units import format_freq
 
@@ -112,6 +112,10 @@ class Sequencer:
         self._rf_said = False
         self._said: set[str] = set()  # events said once per run
         self._chamber_c: float | None = None  # the temperature soaked at, this run
+        self._levels: dict[str, object] = {}  # point key -> its predicted levels (plan/limits.py)
+        # Points are committed on a writer thread while the next one is measured; all are
+        # committed (or their commit's error raised) before run() returns or raises.
+        self.points_out = PointCommitter(recorder.sessions, recorder.run_id)
 
     def run(self, points: list[PlannedPoint], on_progress: ProgressCallback | None = None,
             done_keys: frozenset[str] = frozenset()) -> None:
@@ -153,11 +157,16 @@ class Sequencer:
                     on_progress(done, len(points))
         finally:
             with shielded():  # a signal now must not cut the RF off short; it is raised after
-                self.rf.forget()
-                self._stop_recovery()
-                self.rf_report = self.bench.switch_rf_off()
-                self._say_rf_off(self.rf_report)
-                self._bias_down()  # after RF, in its safe order
+                try:
+                    self.rf.forget()
+                    self._stop_recovery()
+                    self.rf_report = self.bench.switch_rf_off()
+                    self._say_rf_off(self.rf_report)
+                    self._bias_down()  # after RF, in its safe order
+                finally:
+                    # Every point committed before the run's end is stored (after RF off: a
+                    # commit may wait out a busy timeout); a commit's error is raised here.
+                    self.points_out.close()
 
     def _set_temperature(self, point: PlannedPoint) -> None:
         """A new chamber temperature: RF off, then a soak (kicking the watchdog at every reading);
@@ -260,7 +269,7 @@ class Sequencer:
         record = measured_record(point, measured, elapsed_s, self.offsets, self._source_settings_dbm(point),
                                  levels, drift, None if self.mixer is None else self._read_view(point))
         record.extra_json.update(detector_extra(self.bench.analyzer))  # the mode the noise was read with
-        store_point(self.recorder.sessions, self.recorder.run_id, record)
+        self.points_out.submit(record)
 
     def _stop_recovery(self) -> None:
         """No more retries, and no restore turns RF on again: the run is ending."""
@@ -316,8 +325,11 @@ class Sequencer:
         noise_offsets_hz = ((noise_offset_hz,) if target is None
                             else tuple(factor * noise_offset_hz for factor in NOISE_MARKERS))
         narrow = None
-        with analyzer.errors_read_once():
-            readings = read_point(analyzer, read_at, noise_offsets_hz, setup, tone_setup)
+        # The point's error query on its last read's line only (read_point's last, and the step
+        # check's when it reads); with narrowing or second-order reads after, on every read line.
+        more_reads = settings.narrowing_budget_s is not None or self.second_order
+        with analyzer.errors_read_once(on_every_read=more_reads):
+            readings = read_point(analyzer, read_at, noise_offsets_hz, setup, tone_setup, errors_on_last=not more_reads)
             if settings.narrowing_budget_s is not None:
                 readings, narrow = read_narrow(
                     analyzer, read_at, setup, readings, noise_offsets_hz, settings.narrowing_budget_s,
@@ -357,7 +369,7 @@ class Sequencer:
 
     def _fail(self, point: PlannedPoint, reason: str, elapsed_s: float) -> None:
         """Store the point as failed with its reason, then apply the on_point_failure policy."""
-        store_point(self.recorder.sessions, self.recorder.run_id, failed_record(point, reason, elapsed_s))
+        self.points_out.submit(failed_record(point, reason, elapsed_s))
         self.failed_keys.append(point.key)
         policy = self.unattended.on_point_failure
         self.log.event("error", "point-failed", f"point {point.name}: {reason}; on_point_failure = {policy}",
@@ -424,7 +436,9 @@ class Sequencer:
 
     def _source_settings_dbm(self, point: PlannedPoint) -> tuple[float, float]:
         """Both open-loop settings, each plus its tone's leveling correction when leveled."""
-        levels = predict_levels(point, self.offsets, self.limits)
+        levels = self._levels.get(point.key)
+        if levels is None:  # fixed for the run (losses and limits): worked out once per point
+            levels = self._levels[point.key] = predict_levels(point, self.offsets, self.limits)
         settings = [levels.source1_dbm, levels.source2_dbm]
         for index, freq_hz in ((1, point.f1_hz), (2, point.f2_hz)):
             level = self._correction(index, freq_hz)
