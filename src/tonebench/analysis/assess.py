@@ -28,6 +28,7 @@ from tonebench.analysis.point_checks import (
     sliced,
 )
 from tonebench.analysis.region import RegionFit, check_compression, fit_valid_region, region_fit
+from tonebench.analysis.segment_checks import distortion_checks
 from tonebench.analysis.segment_fit import fit_segments
 from tonebench.analysis.result_flags import (
     distortion_result,
@@ -40,6 +41,7 @@ from tonebench.analysis.second_order import SecondOrderResult, sweep_second_orde
 from tonebench.analysis.settings import DEFAULT_LEVEL_ACCURACY_DB, AnalysisSettings
 from tonebench.analysis.flags import StepJudgement
 from tonebench.analysis.system_checks import (
+    DistortionCheck,
     check_distortion,
     check_source_intermod,
     judge_steps,
@@ -171,9 +173,9 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
 def assess_sweeps(data: SweepData, sweeps: list[slice], settings: list[AnalysisSettings]) -> list[SweepAssessment]:
     """assess_sweep for many sweeps whose points `data` holds back to back (sweeps: each one's
     slice of them, with its settings). The point-by-point steps run once over all the points
-    (numpy over thousands of values instead of a few dozen calls per sweep), and so does the fit
-    of the valid region (segment_fit: segment reductions over all the sweeps); the other checks
-    run sweep by sweep. Each result is what assess_sweep gives that sweep alone, but for sums
+    (numpy over thousands of values instead of a few dozen calls per sweep), and so do the
+    analyzer-distortion check and the fit of the valid region (segment_checks, segment_fit:
+    segment reductions over all the sweeps); the other checks run sweep by sweep. Each result is what assess_sweep gives that sweep alone, but for sums
     taken in another order (means and slopes within about 1e-15 relative)."""
     if len(sweeps) != len(settings):
         raise InputError(f"assess_sweeps: {len(sweeps)} sweeps but {len(settings)} settings; one each")
@@ -181,12 +183,15 @@ def assess_sweeps(data: SweepData, sweeps: list[slice], settings: list[AnalysisS
     steps = _PointSteps.of(a)
     parts = [({name: arr[part] for name, arr in a.items()}, sweep_settings, steps.part(part))
              for part, sweep_settings in zip(sweeps, settings)]
-    checks = [_Checks.of(*p) for p in parts]
     starts = _back_to_back_starts(sweeps, a["tone_dbm"].size)
     if starts is None:  # not one run of sweeps back to back: sweep by sweep
+        checks = [_Checks.of(*p) for p in parts]
         regions = [fit_valid_region(p[0], c.over, c.analyzer_flag, c.noise.error_db, p[2].fit)
                    for p, c in zip(parts, checks)]
     else:
+        distortions = distortion_checks(a, steps.judged, steps.raw_products_dbm, steps.noise.noisy, starts,
+                                        [s.mixer_toi_dbm for s in settings], [p[2].judged for p in parts])
+        checks = [_Checks.of(*p, distortion) for p, distortion in zip(parts, distortions)]
         regions = _batch_regions(a, steps.fit, starts, parts, checks)
     return [_finish(*p, c, r) for p, c, r in zip(parts, checks, regions)]
 
@@ -250,10 +255,13 @@ class _Checks:
         return self.distortion.share.flagged
 
     @classmethod
-    def of(cls, a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointSteps) -> _Checks:
+    def of(cls, a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointSteps,
+           distortion: DistortionCheck | None = None) -> _Checks:
+        """The checks of one sweep (distortion: check_distortion's when worked out already)."""
         noise = check_noise(a, steps.noise)
         overload = check_overload(a, settings.max_mixer_dbm, steps.mixer_dbm)
-        distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged, steps.raw_products_dbm)
+        if distortion is None:
+            distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged, steps.raw_products_dbm)
         source = check_source_intermod(a, settings, noise.lower_dbm, noise.upper_dbm, steps.fit.pts.gain_db)
         return cls(noise, overload, distortion, source, check_imbalance(a))
 
