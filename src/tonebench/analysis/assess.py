@@ -27,9 +27,10 @@ from tonebench.analysis.point_checks import (
     noise_values,
     sliced,
 )
-from tonebench.analysis.region import RegionFit, check_compression, fit_valid_region, region_fit
+from tonebench.analysis.region import CompressionCheck, RegionFit, check_compression, fit_valid_region, region_fit
 from tonebench.analysis.segment_checks import distortion_checks
-from tonebench.analysis.segment_fit import fit_segments
+from tonebench.analysis.segment_bound import bound_terms_segments
+from tonebench.analysis.segment_fit import fit_segments, segment_ids
 from tonebench.analysis.result_flags import (
     distortion_result,
     imbalance_result,
@@ -174,8 +175,9 @@ def assess_sweeps(data: SweepData, sweeps: list[slice], settings: list[AnalysisS
     """assess_sweep for many sweeps whose points `data` holds back to back (sweeps: each one's
     slice of them, with its settings). The point-by-point steps run once over all the points
     (numpy over thousands of values instead of a few dozen calls per sweep), and so do the
-    analyzer-distortion check and the fit of the valid region (segment_checks, segment_fit:
-    segment reductions over all the sweeps); the other checks run sweep by sweep. Each result is what assess_sweep gives that sweep alone, but for sums
+    analyzer-distortion check, the fit of the valid region and the bound's terms (segment_checks,
+    segment_fit, segment_bound: segment reductions over all the sweeps); the other checks run
+    sweep by sweep, and flags are worded only where raised. Each result is what assess_sweep gives that sweep alone, but for sums
     taken in another order (means and slopes within about 1e-15 relative)."""
     if len(sweeps) != len(settings):
         raise InputError(f"assess_sweeps: {len(sweeps)} sweeps but {len(settings)} settings; one each")
@@ -193,7 +195,24 @@ def assess_sweeps(data: SweepData, sweeps: list[slice], settings: list[AnalysisS
                                         [s.mixer_toi_dbm for s in settings], [p[2].judged for p in parts])
         checks = [_Checks.of(*p, distortion) for p, distortion in zip(parts, distortions)]
         regions = _batch_regions(a, steps.fit, starts, parts, checks)
+        compressions = [check_compression(p[2].fit.pts.gain_db, r.fit.gain_db, c.over)
+                        for p, c, r in zip(parts, checks, regions)]
+        terms = _batch_terms(starts, steps, settings, checks, regions, compressions)
+        return [_finish(*p, c, r, comp, t) for p, c, r, comp, t in zip(parts, checks, regions, compressions, terms)]
     return [_finish(*p, c, r) for p, c, r in zip(parts, checks, regions)]
+
+
+def _batch_terms(starts: np.ndarray, steps: _PointSteps, settings: list[AnalysisSettings], checks: list[_Checks],
+                 regions: list[RegionFit], compressions: list[CompressionCheck]) -> list[dict[str, float]]:
+    """bound_terms_db of every sweep as segment reductions (segment_bound)."""
+    n_points = steps.mixer_dbm.size
+    fits = [r.fit for r in regions]
+    return bound_terms_segments(
+        segment_ids(starts, n_points), starts.size, np.array([f.iip3_dbm is not None for f in fits]),
+        np.concatenate([f.valid_mask for f in fits]), np.concatenate([f.point_iip3_dbm for f in fits]),
+        [s.level_accuracy_db for s in settings], np.concatenate([c.source.error_db for c in checks]),
+        np.concatenate([c.distortion.share.error_db for c in checks]),
+        np.concatenate([c.compression_db for c in compressions]), steps.noise.error_db)
 
 
 def _back_to_back_starts(sweeps: list[slice], n_points: int) -> np.ndarray | None:
@@ -273,17 +292,20 @@ def _assess(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointS
 
 
 def _finish(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointSteps, checks: _Checks,
-            region: RegionFit) -> SweepAssessment:
+            region: RegionFit, compression: CompressionCheck | None = None,
+            terms: dict[str, float] | None = None) -> SweepAssessment:
+    """The steps after the fit (compression, terms: their results when worked out already)."""
     noise, overload, distortion = checks.noise, checks.overload, checks.distortion
     source, imbalance = checks.source, checks.imbalance
     pts = steps.fit.pts
     over = checks.over
     analyzer_flag = checks.analyzer_flag
     fit = region.fit
-    compression = check_compression(pts.gain_db, fit.gain_db, over)
-
-    terms = bound_terms_db(fit, settings.level_accuracy_db, source.error_db, distortion.share.error_db,
-                           compression.compression_db, noise.error_db)
+    if compression is None:
+        compression = check_compression(pts.gain_db, fit.gain_db, over)
+    if terms is None:
+        terms = bound_terms_db(fit, settings.level_accuracy_db, source.error_db, distortion.share.error_db,
+                               compression.compression_db, noise.error_db)
     refused = fit.iip3_dbm is None
     at_least = None
     if refused and noise.noisy.any():
