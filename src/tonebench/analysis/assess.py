@@ -28,7 +28,13 @@ from tonebench.analysis.point_checks import (
     noise_values,
     sliced,
 )
-from tonebench.analysis.region import check_compression, fit_valid_region
+from tonebench.analysis.region import (
+    CompressionCheck,
+    RegionFit,
+    check_compression,
+    fit_valid_region,
+    region_fit,
+)
 from tonebench.analysis.result_flags import (
     distortion_result,
     imbalance_result,
@@ -39,9 +45,18 @@ from tonebench.analysis.result_flags import (
 from tonebench.analysis.second_order import SecondOrderResult, sweep_second_order
 from tonebench.analysis.second_order_checks import analyzer_made_im2
 from tonebench.analysis.second_order_checks import note_of as im2_note_of
+from tonebench.analysis.segment_bound import bound_terms_segments
+from tonebench.analysis.segment_checks import distortion_checks
+from tonebench.analysis.segment_fit import fit_segments, segment_ids
 from tonebench.analysis.settings import DEFAULT_LEVEL_ACCURACY_DB, AnalysisSettings
-from tonebench.analysis.sweep_fit import FitPoints, SweepResult, fit_points
+from tonebench.analysis.sweep_fit import (
+    FitPoints,
+    SweepResult,
+    fit_points,
+    high_order_top,
+)
 from tonebench.analysis.system_checks import (
+    DistortionCheck,
     check_distortion,
     check_source_intermod,
     judge_steps,
@@ -177,32 +192,139 @@ def assess_sweep(data: SweepData, settings: AnalysisSettings = AnalysisSettings(
 def assess_sweeps(data: SweepData, sweeps: list[slice], settings: list[AnalysisSettings]) -> list[SweepAssessment]:
     """assess_sweep for many sweeps whose points `data` holds back to back (sweeps: each one's
     slice of them, with its settings). The point-by-point steps run once over all the points
-    (numpy over thousands of values instead of a few dozen calls per sweep); what reduces over
-    a sweep runs sweep by sweep. Each result is what assess_sweep gives that sweep alone."""
+    (numpy over thousands of values instead of a few dozen calls per sweep), and so do the
+    analyzer-distortion check, the fit of the valid region and the bound's terms (segment_checks,
+    segment_fit, segment_bound: segment reductions over all the sweeps); the other checks run
+    sweep by sweep, and flags are worded only where raised. Each result is what assess_sweep gives that sweep alone, but for sums
+    taken in another order (means and slopes within about 1e-15 relative)."""
     if len(sweeps) != len(settings):
         raise InputError(f"assess_sweeps: {len(sweeps)} sweeps but {len(settings)} settings; one each")
     a = data.arrays()
     steps = _PointSteps.of(a)
-    return [_assess({name: arr[part] for name, arr in a.items()}, sweep_settings, steps.part(part))
-            for part, sweep_settings in zip(sweeps, settings)]
+    parts = [({name: arr[part] for name, arr in a.items()}, sweep_settings, steps.part(part))
+             for part, sweep_settings in zip(sweeps, settings)]
+    starts = _back_to_back_starts(sweeps, a["tone_dbm"].size)
+    if starts is None:  # not one run of sweeps back to back: sweep by sweep
+        checks = [_Checks.of(*p) for p in parts]
+        regions = [fit_valid_region(p[0], c.over, c.analyzer_flag, c.noise.error_db, p[2].fit)
+                   for p, c in zip(parts, checks)]
+    else:
+        distortions = distortion_checks(a, steps.judged, steps.raw_products_dbm, steps.noise.noisy, starts,
+                                        [s.mixer_toi_dbm for s in settings], [p[2].judged for p in parts])
+        checks = [_Checks.of(*p, distortion) for p, distortion in zip(parts, distortions)]
+        regions = _batch_regions(a, steps.fit, starts, parts, checks)
+        compressions = [check_compression(p[2].fit.pts.gain_db, r.fit.gain_db, c.over)
+                        for p, c, r in zip(parts, checks, regions)]
+        terms = _batch_terms(starts, steps, settings, checks, regions, compressions)
+        return [_finish(*p, c, r, comp, t) for p, c, r, comp, t in zip(parts, checks, regions, compressions, terms)]
+    return [_finish(*p, c, r) for p, c, r in zip(parts, checks, regions)]
+
+
+def _batch_terms(starts: np.ndarray, steps: _PointSteps, settings: list[AnalysisSettings], checks: list[_Checks],
+                 regions: list[RegionFit], compressions: list[CompressionCheck]) -> list[dict[str, float]]:
+    """bound_terms_db of every sweep as segment reductions (segment_bound)."""
+    n_points = steps.mixer_dbm.size
+    fits = [r.fit for r in regions]
+    return bound_terms_segments(
+        segment_ids(starts, n_points), starts.size, np.array([f.iip3_dbm is not None for f in fits]),
+        np.concatenate([f.valid_mask for f in fits]), np.concatenate([f.point_iip3_dbm for f in fits]),
+        [s.level_accuracy_db for s in settings], np.concatenate([c.source.error_db for c in checks]),
+        np.concatenate([c.distortion.share.error_db for c in checks]),
+        np.concatenate([c.compression_db for c in compressions]), steps.noise.error_db)
+
+
+def _back_to_back_starts(sweeps: list[slice], n_points: int) -> np.ndarray | None:
+    """Each sweep's first point when the slices cover the points in order, none empty (else None)."""
+    if not sweeps:
+        return None
+    stop = 0
+    for part in sweeps:
+        if part.step not in (None, 1) or part.start != stop or part.stop is None or part.stop <= stop:
+            return None
+        stop = part.stop
+    return np.array([part.start for part in sweeps], np.intp) if stop == n_points else None
+
+
+def _batch_regions(a: dict[str, np.ndarray], points: FitPoints, starts: np.ndarray, parts, checks) -> list[RegionFit]:
+    """fit_valid_region of every sweep: the fits and refits after trimming as segment fits over
+    the batch; a refused fit (its reason is worded sweep by sweep) through fit_valid_region's own steps."""
+    over = np.concatenate([c.over for c in checks])
+    analyzer = np.concatenate([np.asarray(c.analyzer_flag, bool) for c in checks])
+    firsts = fit_segments(a, points, over, analyzer, starts)
+    trims: list[np.ndarray | None] = []
+    for p, c, first in zip(parts, checks, firsts):
+        if first is None:
+            trims.append(None)
+            continue
+        trimmed = high_order_top(p[2].fit.pin_mean_dbm, first.point_iip3_dbm, c.noise.error_db, first.valid_mask)
+        trims.append(trimmed if trimmed.any() else None)
+    refits: list[SweepResult | None] = [None] * len(parts)
+    if any(t is not None for t in trims):
+        high = np.concatenate([np.zeros(c.over.size, bool) if t is None else t for c, t in zip(checks, trims)])
+        refits = fit_segments(a, points, over, analyzer | high, starts)
+    regions = []
+    for p, c, first, trimmed, refit in zip(parts, checks, firsts, trims, refits):
+        if first is None or (trimmed is not None and refit is None):
+            regions.append(fit_valid_region(p[0], c.over, c.analyzer_flag, c.noise.error_db, p[2].fit))
+        elif trimmed is None:
+            regions.append(region_fit(first, np.zeros(c.over.size, bool)))
+        else:
+            regions.append(region_fit(refit, trimmed))
+    return regions
+
+
+@dataclass(frozen=True)
+class _Checks:
+    """The checks before the fit of the valid region (their results feed it and what follows)."""
+
+    noise: object
+    overload: object
+    distortion: object
+    source: object
+    imbalance: object
+    phase: object  # the analyzer's phase noise at close spacing (analysis/phase_noise.py)
+
+    @property
+    def over(self) -> np.ndarray:
+        return self.overload.over
+
+    @property
+    def analyzer_flag(self) -> np.ndarray:
+        return self.distortion.share.flagged | self.phase.flagged
+
+    @classmethod
+    def of(cls, a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointSteps,
+           distortion: DistortionCheck | None = None) -> _Checks:
+        """The checks of one sweep (distortion: check_distortion's when worked out already)."""
+        noise = check_noise(a, steps.noise)
+        overload = check_overload(a, settings.max_mixer_dbm, steps.mixer_dbm)
+        if distortion is None:
+            distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged, steps.raw_products_dbm)
+        source = check_source_intermod(a, settings, noise.lower_dbm, noise.upper_dbm, steps.fit.pts.gain_db)
+        return cls(noise, overload, distortion, source, check_imbalance(a), check_phase_noise(a, settings))
 
 
 def _assess(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointSteps) -> SweepAssessment:
-    noise = check_noise(a, steps.noise)
-    pts = steps.fit.pts
-    overload = check_overload(a, settings.max_mixer_dbm, steps.mixer_dbm)
-    over = overload.over
-    distortion = check_distortion(a, settings.mixer_toi_dbm, noise.noisy, steps.judged, steps.raw_products_dbm)
-    phase = check_phase_noise(a, settings)
-    analyzer_flag = distortion.share.flagged | phase.flagged
-    source = check_source_intermod(a, settings, noise.lower_dbm, noise.upper_dbm, pts.gain_db)
-    imbalance = check_imbalance(a)
-    region = fit_valid_region(a, over, analyzer_flag, noise.error_db, steps.fit)
-    fit = region.fit
-    compression = check_compression(pts.gain_db, fit.gain_db, over)
+    checks = _Checks.of(a, settings, steps)
+    region = fit_valid_region(a, checks.over, checks.analyzer_flag, checks.noise.error_db, steps.fit)
+    return _finish(a, settings, steps, checks, region)
 
-    terms = bound_terms_db(fit, settings.level_accuracy_db, source.error_db, distortion.share.error_db,
-                           compression.compression_db, noise.error_db)
+
+def _finish(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointSteps, checks: _Checks,
+            region: RegionFit, compression: CompressionCheck | None = None,
+            terms: dict[str, float] | None = None) -> SweepAssessment:
+    """The steps after the fit (compression, terms: their results when worked out already)."""
+    noise, overload, distortion = checks.noise, checks.overload, checks.distortion
+    source, imbalance, phase = checks.source, checks.imbalance, checks.phase
+    pts = steps.fit.pts
+    over = checks.over
+    analyzer_flag = checks.analyzer_flag
+    fit = region.fit
+    if compression is None:
+        compression = check_compression(pts.gain_db, fit.gain_db, over)
+    if terms is None:
+        terms = bound_terms_db(fit, settings.level_accuracy_db, source.error_db, distortion.share.error_db,
+                               compression.compression_db, noise.error_db)
     refused = fit.iip3_dbm is None
     at_least = None
     if refused and noise.noisy.any():

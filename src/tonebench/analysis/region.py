@@ -68,7 +68,11 @@ def fit_valid_region(a: dict[str, np.ndarray], over, analyzer_made, noise_err,
                      points: FitPoints | None = None) -> RegionFit:
     """Fit the sweep without the overloaded and analyzer-made points; flag the trimmed top
     (points: the sweep's FitPoints when worked out already)."""
-    fit, high_order = fit_region(a, over, {ANALYZER_MADE: analyzer_made}, noise_err, points)
+    return region_fit(*fit_region(a, over, {ANALYZER_MADE: analyzer_made}, noise_err, points))
+
+
+def region_fit(fit: SweepResult, high_order: np.ndarray) -> RegionFit:
+    """The fit and its trimmed top, with the trimmed points' flags."""
     flags = flag_points(high_order, lambda i: Flag(
         fl.SLOPE, None,
         f"intercept {fit.point_iip3_dbm[i] - fit.iip3_dbm:+.2f} dB off the fitted region's: the local IM3 slope "

@@ -108,12 +108,19 @@ def distortion_flag(i: int, a: dict[str, np.ndarray], judged: dict[str, StepJudg
 def distortion_notes(a: dict[str, np.ndarray], judged: dict[str, StepJudgement],
                      toi_dbm: float | None) -> tuple[str, ...]:
     """The distortion checks that could not be made."""
+    return distortion_notes_of(toi_dbm, bool(np.isfinite(a["raw_f1_dbm"]).any() and np.isfinite(a["atten_db"]).any()),
+                               bool((judged["lower"].conclusive | judged["upper"].conclusive).any()))
+
+
+def distortion_notes_of(toi_dbm: float | None, raw_and_atten_read: bool, any_conclusive: bool) -> tuple[str, ...]:
+    """distortion_notes from what it looks at: a TOI, any raw tone and attenuation read, any
+    conclusive step check."""
     notes = []
     if toi_dbm is None:
         notes.append("analyzer distortion not predicted: no mixer TOI for the analyzer")
-    elif not np.isfinite(a["raw_f1_dbm"]).any() or not np.isfinite(a["atten_db"]).any():
+    elif not raw_and_atten_read:
         notes.append("analyzer distortion not predicted: no raw tone readings or attenuation")
-    if not (judged["lower"].conclusive | judged["upper"].conclusive).any():
+    if not any_conclusive:
         notes.append("no conclusive attenuation-step check in this sweep")
     return tuple(notes)
 

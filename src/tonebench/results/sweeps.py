@@ -150,16 +150,22 @@ def batch_sweeps(session: Session, run_ids: list[int]) -> tuple[SweepData | None
     data = SweepData(**detectors.as_power_readings(values, detector, average_type), rbw_hz=rbw,
                      noise_peak_detected=detectors.peak_mask(detector))
     group_at = [first + _COLUMN[name] for name in GROUP_FIELDS]
-
-    def sweep_of(row):
-        return row[1], tuple(row[i] for i in group_at)
-
-    sweeps, start = [], 0
-    for (run_id, key), members in groupby(rows, key=sweep_of):
-        stop = start + sum(1 for _ in members)
-        sweeps.append(BatchSweep(run_id, dict(zip(GROUP_FIELDS, key)), [row[0] for row in rows[start:stop]],
-                                 slice(start, stop)))
-        start = stop
+    # A sweep starts where the run or any group axis changes from the point before (None, NaN
+    # in the columns, equal to None), found over the columns instead of row by row.
+    point_ids = [row[0] for row in rows]
+    run_col = np.array([row[1] for row in rows])
+    change = np.ones(len(rows), bool)
+    change[1:] = run_col[1:] != run_col[:-1]
+    for name in GROUP_FIELDS:
+        col = cols[name]
+        both_none = np.isnan(col[1:]) & np.isnan(col[:-1])
+        change[1:] |= (col[1:] != col[:-1]) & ~both_none
+    bounds = [*np.flatnonzero(change).tolist(), len(rows)]
+    sweeps = []
+    for start, stop in zip(bounds[:-1], bounds[1:]):
+        row = rows[start]
+        sweeps.append(BatchSweep(row[1], {name: row[i] for name, i in zip(GROUP_FIELDS, group_at)},
+                                 point_ids[start:stop], slice(start, stop)))
     return data, sweeps
 
 
