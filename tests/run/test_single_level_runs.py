@@ -24,7 +24,7 @@ from conftest import SAMPLE_RUNS
 from tonebench.catalog.transfer_format import canonical
 from tonebench.results.stored_results import analyze_run
 from tonebench.store.database import open_database, session_factory
-from tonebench.store.models import LevelResult, Point, Run
+from tonebench.store.models import LevelResult, Point, Result, ResultFlag, Run
 
 PLAN = SAMPLE_RUNS / "single_level_plan.toml"
 BENCH_TEXT = (SAMPLE_RUNS / "sim_bench.toml").read_text()
@@ -142,6 +142,17 @@ def test_worse_convention_reports_the_lower_intercept_of_asymmetric_stored_produ
     assert stored.iip3_dbm == stored.iip3_lower_dbm and stored.oip3_dbm == stored.oip3_lower_dbm
     with sessions() as session:  # a ramp stores per-level rows only when its plan asks
         assert session.scalar(sa.select(sa.func.count(LevelResult.id))) == 0
+    lower, upper = (f'<td class="num">{v:.2f}</td>' for v in (stored.iip3_lower_dbm, stored.iip3_upper_dbm))
+    # The report shows the stored result, and a run with none assessed again: the same (worse) pair.
+    for forget in (False, True):
+        if forget:
+            with sessions.begin() as session:
+                session.execute(sa.delete(ResultFlag))
+                session.execute(sa.delete(Result))
+        page_path = tmp_path / f"report-{forget}.html"
+        shown = invoke("report", guid[:8], "--db", db, "--out", page_path)
+        assert shown.exit_code == 0, shown.output
+        assert f"{lower}{upper}{lower}" in page_path.read_text()  # IIP3 lower, upper, then the reported: lower
     engine.dispose()
 
 

@@ -21,11 +21,13 @@ _COLUMNS = (  # (heading, LevelResult field)
 )
 
 
+CONVENTION_WORDS = {"mean": "mean of lower and upper", "worse": "the worse (lower IIP3) of lower and upper"}
+
+
 def convention_text(results: list[Result]) -> str:
     """What the results' IIP3/OIP3 columns are: the mean of lower and upper, or the worse."""
     conventions = {r.intercept_convention or "mean" for r in results} or {"mean"}
-    words = {"mean": "mean of lower and upper", "worse": "the worse (lower IIP3) of lower and upper"}
-    return "; ".join(words[c] for c in sorted(conventions))
+    return "; ".join(CONVENTION_WORDS[c] for c in sorted(conventions))
 
 
 def _cell(value, field: str) -> str:

@@ -2,20 +2,28 @@
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 
 from sqlalchemy.orm import sessionmaker
 
+from tonebench.analysis.conventions import reported_intercepts
 from tonebench.analysis.sweep_fit import exclusion_reasons
 from tonebench.calibration.sets import load_set_by_id
-from tonebench.report.level_table import convention_text, level_section
-from tonebench.report.spacing_table import spacing_section
+from tonebench.report.level_table import (
+    CONVENTION_WORDS,
+    convention_text,
+    level_section,
+)
 from tonebench.report.run_archive import archive_html
 from tonebench.report.run_report import SweepPlotData, sweep_title, write_report
 from tonebench.report.run_report import result_row as report_result_row
 from tonebench.report.run_summary import SweepSummary
+from tonebench.report.spacing_table import spacing_section
 from tonebench.report.stored_sweeps import report_sweeps
+from tonebench.results.levels import run_choice
 from tonebench.store.lookups import find_run
+from tonebench.units import format_freq
 
 
 def sweep_plot(group: dict, arrays: dict, assessment) -> SweepPlotData:
@@ -49,13 +57,19 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
         sweeps, rows = [], []
         set_id = referred_to.id if referred_to is not None else run.calibration_set_id
         summaries, bounds = [], []
+        convention, _ = run_choice(run)
         for group, arrays, assessment in report_sweeps(session, run, set_id, tables):
+            # The sweep is assessed again here: its reported pair follows the run's convention,
+            # as the stored result's does (results/stored_results.py).
             fit = assessment.fit
+            iip3_dbm, oip3_dbm = reported_intercepts(fit.iip3_lower_dbm, fit.iip3_upper_dbm, fit.oip3_lower_dbm,
+                                                     fit.oip3_upper_dbm, convention)
+            fit = dataclasses.replace(fit, iip3_dbm=iip3_dbm, oip3_dbm=oip3_dbm)
             center_hz, spacing_hz, bias_v = group["center_hz"], group["spacing_hz"], group["bias_v"]
             temperature_c = group["temperature_c"]
             summaries.append(SweepSummary(center_hz, spacing_hz, bias_v, fit.iip3_lower_dbm, fit.iip3_upper_dbm,
                                           fit.iip3_dbm, fit.oip3_lower_dbm, fit.oip3_upper_dbm, fit.oip3_dbm,
-                                          assessment.iip3_bound_db, temperature_c))
+                                          assessment.iip3_bound_db, temperature_c, CONVENTION_WORDS[convention]))
             plot = sweep_plot(group, arrays, assessment)
             bounds.append((plot.title, assessment.iip3_bound_db, assessment.bound_terms_db))
             sweeps.append(plot)
@@ -74,6 +88,9 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
             {"label": "Status", "value": run.status + (f": {run.end_reason}" if run.end_reason else "")},
             {"label": "IIP3 and OIP3 reported", "value": convention_text(list(run.results))},
         ]
+        mixer = (run.metadata_json or {}).get("mixer")
+        if mixer:
+            summary.append({"label": "Frequency plan", "value": frequency_plan_text(mixer)})
         if run.calibration_set is not None:
             summary.append({"label": "Calibration", "value": f"{run.calibration_set.name} ({run.calibration_set.method})"})
         if referred_to is not None:
@@ -81,3 +98,11 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
         return write_report(path, f"Two-tone intercepts, {run.plan.name}", summary, sweeps, rows, summaries,
                             spacing_section(summaries) + level_section(session, run)
                             + archive_html(run, bounds))
+
+
+def frequency_plan_text(mixer: dict) -> str:
+    """A mixer run's frequency plan as stored in its metadata (config/mixer_settings.py), in words."""
+    lo = f"LO {format_freq(mixer['lo_hz'])}" if mixer.get("lo_hz") else f"LO for an IF of {format_freq(mixer['if_hz'])}"
+    output = "IF = |f - f_LO|" if mixer.get("output", "difference") == "difference" else "IF = f + f_LO"
+    return (f"{lo} at {mixer['lo_dbm']:.1f} dBm, {mixer.get('injection', 'low')}-side injection, {output}; "
+            "IIP3 referred to the RF input, OIP3 to the IF output, gain is conversion gain")

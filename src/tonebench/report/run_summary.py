@@ -36,6 +36,7 @@ class SweepSummary:
     oip3_dbm: float | None
     bound_db: float | None  # +/- on the mean intercepts
     temperature_c: float | None = None
+    reported: str = "mean of lower and upper"  # what iip3_dbm and oip3_dbm are (the run's convention)
 
 
 def _stepped(sweeps: list[SweepSummary]) -> list[tuple]:
@@ -64,7 +65,7 @@ def summary_figure(sweeps: list[SweepSummary]) -> go.Figure | None:
             # The mean first, so lower and upper (often equal to it) stay visible on top.
             fig.add_trace(go.Scatter(
                 x=x, y=[getattr(s, f"{prefix}_dbm") for s in members], mode="lines+markers",
-                name=f"mean of lower and upper, ± bound{suffix}", legendgroup=f"mean{suffix}", showlegend=col == 1,
+                name=f"{members[0].reported}, ± bound{suffix}", legendgroup=f"mean{suffix}", showlegend=col == 1,
                 line={"color": _MEAN, "dash": dashes[index % len(dashes)]}, marker={"color": _MEAN, "size": 6},
                 error_y={"type": "data", "array": [s.bound_db or 0.0 for s in members], "visible": True}),
                 row=1, col=col)
@@ -79,7 +80,10 @@ def summary_figure(sweeps: list[SweepSummary]) -> go.Figure | None:
     fig.update_layout(template="plotly_white", height=440, title="Intercepts of every sweep",
                       legend={"orientation": "h", "y": -0.22, "font": {"size": 11}},
                       margin={"l": 70, "r": 30, "t": 70, "b": 60})
-    fig.update_xaxes(title_text=title)
+    values = [getattr(s, field) for s in fitted]
+    # Spacings are stepped by decades (kHz to tens of MHz): a linear axis would crowd all but the widest.
+    log_x = field == "spacing_hz" and min(values) > 0 and max(values) / min(values) >= 10.0
+    fig.update_xaxes(title_text=title, type="log" if log_x else "linear")
     fig.update_yaxes(title_text="IIP3 (dBm)", row=1, col=1)
     fig.update_yaxes(title_text="OIP3 (dBm)", row=1, col=2)
     return fig

@@ -309,7 +309,7 @@ class Sequencer:
             self.rf.set(True, True)
             if not self._rf_said:
                 self._rf_said = True
-                self.log.event("info", "rf-on", "RF on at both sources")
+                self.log.event("info", "rf-on", "RF on at both sources" + ("" if self.mixer is None else " and the LO"))
         def predicted_tone_dbm() -> float:
             return self._predicted_tone_dbm(point, sweep)
 
