@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from functools import partial
@@ -35,11 +35,14 @@ class AnalysedBatch:
     levels: list[list[dict]]
 
 
-def _analyse(sessions: sessionmaker, guids: list[str], cal_name: str | None) -> AnalysedBatch:
-    from tonebench.results.stored_results import analyse_batch  # it imports this module
+# How one batch is read and assessed: (session, guids, cal_name) -> AnalysedBatch. The caller
+# passes it in (stored_results.analyse_batch), so this module imports nothing of its caller's.
+Analyse = Callable[..., AnalysedBatch]
 
+
+def _analyse(sessions: sessionmaker, guids: list[str], cal_name: str | None, analyse: Analyse) -> AnalysedBatch:
     with sessions() as session:
-        return analyse_batch(session, guids, cal_name)
+        return analyse(session, guids, cal_name)
 
 
 _worker_sessions: sessionmaker | None = None
@@ -52,8 +55,8 @@ def _start_worker(url: str) -> None:
     _worker_sessions = session_factory(open_database(url, upgrade=False))
 
 
-def _in_worker(guids: list[str], cal_name: str | None) -> AnalysedBatch:
-    return _analyse(_worker_sessions, guids, cal_name)
+def _in_worker(guids: list[str], cal_name: str | None, analyse: Analyse) -> AnalysedBatch:
+    return _analyse(_worker_sessions, guids, cal_name, analyse)
 
 
 def _worker_count(sessions: sessionmaker, n_batches: int) -> int:
@@ -66,14 +69,14 @@ def _worker_count(sessions: sessionmaker, n_batches: int) -> int:
 
 
 @contextmanager
-def analysed_batches(sessions: sessionmaker, batches: list[list[str]],
-                     cal_name: str | None) -> Iterator[Iterator[AnalysedBatch]]:
+def analysed_batches(sessions: sessionmaker, batches: list[list[str]], cal_name: str | None,
+                     analyse: Analyse) -> Iterator[Iterator[AnalysedBatch]]:
     """The batches analysed, in order: in worker processes when there are several batches and
     cores, else here. A worker's error (an unknown GUID) is raised where its batch comes up."""
     workers = _worker_count(sessions, len(batches))
     if workers < 2:
-        yield (_analyse(sessions, guids, cal_name) for guids in batches)
+        yield (_analyse(sessions, guids, cal_name, analyse) for guids in batches)
         return
     url = sessions.kw["bind"].url.render_as_string(hide_password=False)
     with multiprocessing.get_context("fork").Pool(workers, initializer=_start_worker, initargs=(url,)) as pool:
-        yield pool.imap(partial(_in_worker, cal_name=cal_name), batches)
+        yield pool.imap(partial(_in_worker, cal_name=cal_name, analyse=analyse), batches)

@@ -112,7 +112,7 @@ def analyze_runs(sessions: sessionmaker, run_guids: list[str], cal_name: str | N
     on_progress(done, total) after each run."""
     batches = [run_guids[first:first + RUNS_PER_TRANSACTION] for first in range(0, len(run_guids), RUNS_PER_TRANSACTION)]
     stored = done = 0
-    with analysed_batches(sessions, batches, cal_name) as analysed:
+    with analysed_batches(sessions, batches, cal_name, analyse_batch) as analysed:
         for batch in analysed:
             with sessions.begin() as session:
                 stored += _store_batch(session, batch)
