@@ -14,11 +14,11 @@ from typing import Literal
 
 from pydantic import BaseModel, Field, field_validator, model_validator
 
+from tonebench.config.detector_settings import DetectorSetup
 from tonebench.config.loading import StrictModel, read_toml, validate
 from tonebench.config.mixer_settings import MixerSettings
 from tonebench.config.results_choice import ResultsSettings
 from tonebench.errors import InputError
-from tonebench.instruments.detector_setup import DetectorSetup
 
 # Tone power at the DUT input plane that any plan may ask for; the bench file narrows it further.
 TONE_MIN_DBM = -150.0
@@ -289,7 +289,7 @@ class AnalyzerSettings(StrictModel):
     product_snr_db: float | None = Field(default=None, ge=10.0, le=40.0)
     iip3_accuracy_db: float | None = Field(default=None, ge=0.01, le=1.0)
     iip3_guess_dbm: float | None = Field(default=None, ge=-60.0, le=70.0)
-    # The analyzer's detector and trace averaging (instruments/detector_setup.py): sent at the run's
+    # The analyzer's detector and trace averaging (config/detector_settings.py): sent at the run's
     # start and stored with each point, so the noise correction knows the bias of the mode read
     # with (analysis/detectors.py). All left out: the instrument's own, as before.
     detector: Literal["rms", "sample", "peak"] | None = None

@@ -8,25 +8,10 @@ prepare(), so a restore after a reset or a reopened connection sends them again.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
+from tonebench.config.detector_settings import DetectorSetup
 from tonebench.errors import InputError
 
-DETECTORS = ("rms", "sample", "peak")
-AVERAGE_TYPES = ("power", "log")
-
-
-@dataclass(frozen=True)
-class DetectorSetup:
-    """detector: rms, sample or peak; average_type: power or log; count: sweeps per trace (1: none)."""
-
-    detector: str
-    average_type: str
-    count: int
-
-    def extra(self) -> dict:
-        """What a point stores of it (extra_json keys the analysis reads, analysis/detectors.py)."""
-        return {"detector": self.detector, "average_type": self.average_type, "average_count": self.count}
+__all__ = ["DetectorSetup", "point_extra", "steps_for", "use_detector"]  # DetectorSetup re-exported
 
 
 def steps_for(setup: DetectorSetup) -> list[tuple[str, dict]]:
