@@ -33,6 +33,7 @@ from tonebench.analysis.region import (
     RegionFit,
     check_compression,
     fit_valid_region,
+    high_order_top,
     region_fit,
 )
 from tonebench.analysis.result_flags import (
@@ -53,7 +54,6 @@ from tonebench.analysis.sweep_fit import (
     FitPoints,
     SweepResult,
     fit_points,
-    high_order_top,
 )
 from tonebench.analysis.system_checks import (
     DistortionCheck,

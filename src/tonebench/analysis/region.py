@@ -6,22 +6,59 @@ Same conventions as point_checks: plain arrays in, a small frozen result with it
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from tonebench.analysis import flags as fl
+from tonebench.analysis.flags import Flag
+from tonebench.analysis.point_checks import PointFlags, flag_points, mean_pair
 from tonebench.analysis.sweep_fit import (
     FIT_INPUTS,
     GAIN_TOLERANCE_DB,
+    MIN_VALID_POINTS,
     FitPoints,
     SweepResult,
     fit_sweep,
     fit_with_points,
-    high_order_top,
+    mean_of,
 )
-from tonebench.analysis.flags import Flag
-from tonebench.analysis.point_checks import PointFlags, flag_points, mean_pair
+
+# Scatter of one point's intercept at high signal-to-noise: the analyzer's reading repeatability
+# between a tone and a product (a few hundredths of a dB; a common-practice figure, from memory).
+POINT_SCATTER_FLOOR_DB = 0.05
+HIGH_ORDER_COVERAGE = 2.0  # a top point is left out when it departs by more than this many sigma
+
+
+def high_order_top(pin_dbm, point_iip3_dbm, point_sigma_db, valid) -> np.ndarray:
+    """Points at the top of the valid region whose IM3 higher-order terms bias (bool, per point).
+
+    With slope 3 every point's intercept is the same; where fifth- and higher-order terms add to
+    the IM3 the local slope departs from 3 and the per-point intercepts drift with drive (they
+    fall for a compressive device). Working down from the strongest point, a point is left out
+    while its intercept departs from the mean of the points below it by more than
+    HIGH_ORDER_COVERAGE times their combined scatter (point_sigma_db per point, at least
+    POINT_SCATTER_FLOOR_DB). At least half the region, and MIN_VALID_POINTS, is kept.
+    """
+    pin = np.asarray(pin_dbm, dtype=float)
+    values = np.asarray(point_iip3_dbm, dtype=float)
+    sigma = np.fmax(np.nan_to_num(np.asarray(point_sigma_db, dtype=float), nan=np.inf), POINT_SCATTER_FLOOR_DB)
+    idx = np.flatnonzero(valid)
+    idx = idx[np.argsort(pin[idx], kind="stable")]
+    out = np.zeros(pin.size, bool)
+    keep_min = max(MIN_VALID_POINTS, (idx.size + 1) // 2)
+    while idx.size > keep_min:
+        top, rest = idx[-1], idx[:-1]
+        rest_sigma = np.sqrt(np.add.reduce(sigma[rest] ** 2)) / rest.size
+        if not np.isfinite(rest_sigma):
+            break
+        if abs(values[top] - mean_of(values[rest])) <= HIGH_ORDER_COVERAGE * math.hypot(sigma[top], rest_sigma):
+            break
+        out[top] = True
+        idx = rest
+    return out
+
 
 # Reasons the fit counts its left-out points under (they appear in a refused fit's reason).
 ANALYZER_MADE = "with the analyzer's own IM3 within 20 dB"
