@@ -20,7 +20,10 @@ from tonebench.instruments.scpi_errors import (  # re-exported: the role drivers
     NotANumber,
     ScpiError,
     ScpiErrors,
+    identity,
     parse_reply,
+    refused_operations,
+    split_replies,
 )
 from tonebench.instruments.supervision import Supervision
 from tonebench.instruments.transport import connect
@@ -33,40 +36,8 @@ ERROR_QUERY_TIMEOUT_S = 1.0
 
 # Operations remembered since the error queue was last read, to name the one it refused.
 MAX_SENT_REMEMBERED = 20
-# Named when no error text points at one operation: the last few sent.
-MAX_NAMED_OPERATIONS = 3
-
-
-def _refused_operations(sent: list[tuple[str, str]], entries: list[ScpiError]) -> str:
-    """The operations a refusal is about: those whose header the error text quotes (instruments
-    commonly append it, e.g. -113,"Undefined header;BANDX"), else the last few sent."""
-    texts = " ".join(e.message.upper() for e in entries)
-    quoted = [(op, text) for op, text in sent if text.split(" ")[0].upper() in texts]
-    named = quoted or sent[-MAX_NAMED_OPERATIONS:]
-    return ", ".join(f"{op} ({text!r})" for op, text in named) or "an operation"
-
 # Reply lines read while resynchronising before giving up on this connection.
 MAX_RESYNC_LINES = 20
-
-
-def split_replies(reply: str) -> list[str] | None:
-    """A joined reply's fields, split at each ';' outside double quotes (an error entry's text may
-    hold a ';'; a doubled quote inside a string toggles twice, so it stays inside). None when a
-    quote is left open: the line is not a well-formed reply."""
-    parts, start, quoted = [], 0, False
-    for index, char in enumerate(reply):
-        if char == '"':
-            quoted = not quoted
-        elif char == ";" and not quoted:
-            parts.append(reply[start:index])
-            start = index + 1
-    parts.append(reply[start:])
-    return None if quoted else parts
-
-
-def identity(idn: str) -> tuple[str, ...]:
-    """Maker, model and serial from an identify reply (IEEE 488.2 *IDN? fields; firmware left out)."""
-    return tuple(part.strip().lower() for part in idn.split(",")[:3])
 
 
 class ScpiInstrument:
@@ -270,9 +241,9 @@ class ScpiInstrument:
 
     def refused_operations(self, entries: list[ScpiError]) -> str:
         """Which operations sent since the queue was last read these entries are about (see
-        _refused_operations); forgets them, as the queue has now been read."""
+        refused_operations); forgets them, as the queue has now been read."""
         sent, self._sent_since_drain = self._sent_since_drain, []
-        return _refused_operations(sent, entries)
+        return refused_operations(sent, entries)
 
     def errors_after_no_reply(self) -> list[ScpiError] | None:
         """After a query got no reply: the error queue's entries, read on the same connection

@@ -1,6 +1,7 @@
 """What an instrument's replies and error queue can say, shared by the SCPI instrument and its
 supervision (neither imports the other's module for these): reply parsing, the SCPI codes and
-the exceptions of a refused, failed or out-of-step exchange."""
+the exceptions of a refused, failed or out-of-step exchange, and the parts of replies (joined
+fields, identity) and of error texts (the operations refused) both read."""
 
 from __future__ import annotations
 
@@ -113,3 +114,36 @@ class ScpiErrors(InstrumentError):
 
 class IdentityChanged(InstrumentError):
     """After reopening a connection, a different instrument (maker, model or serial) answered."""
+
+
+# Named when no error text points at one operation: the last few sent.
+MAX_NAMED_OPERATIONS = 3
+
+
+def refused_operations(sent: list[tuple[str, str]], entries: list[ScpiError]) -> str:
+    """The operations a refusal is about: those whose header the error text quotes (instruments
+    commonly append it, e.g. -113,"Undefined header;BANDX"), else the last few sent."""
+    texts = " ".join(e.message.upper() for e in entries)
+    quoted = [(op, text) for op, text in sent if text.split(" ")[0].upper() in texts]
+    named = quoted or sent[-MAX_NAMED_OPERATIONS:]
+    return ", ".join(f"{op} ({text!r})" for op, text in named) or "an operation"
+
+
+def split_replies(reply: str) -> list[str] | None:
+    """A joined reply's fields, split at each ';' outside double quotes (an error entry's text may
+    hold a ';'; a doubled quote inside a string toggles twice, so it stays inside). None when a
+    quote is left open: the line is not a well-formed reply."""
+    parts, start, quoted = [], 0, False
+    for index, char in enumerate(reply):
+        if char == '"':
+            quoted = not quoted
+        elif char == ";" and not quoted:
+            parts.append(reply[start:index])
+            start = index + 1
+    parts.append(reply[start:])
+    return None if quoted else parts
+
+
+def identity(idn: str) -> tuple[str, ...]:
+    """Maker, model and serial from an identify reply (IEEE 488.2 *IDN? fields; firmware left out)."""
+    return tuple(part.strip().lower() for part in idn.split(",")[:3])
