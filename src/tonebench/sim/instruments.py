@@ -10,8 +10,8 @@ from __future__ import annotations
 from typing import Callable
 
 from tonebench.sim.detector_panel import add_detector_commands
+from tonebench.sim.instrument_state import PowerMeterState
 from tonebench.sim.mixer import LO_ROLE, LO_SOURCE_INDEX
-from tonebench.sim.signal_chain import PowerMeterState, SimBench
 from tonebench.sim.scpi_parser import (
     DATA_OUT_OF_RANGE,
     EXECUTION_ERROR,
@@ -20,6 +20,7 @@ from tonebench.sim.scpi_parser import (
     parse_bool,
     parse_number,
 )
+from tonebench.sim.signal_chain import SimBench
 from tonebench.units import dbm_to_watt
 
 SOURCE_MIN_FREQ_HZ = 9e3

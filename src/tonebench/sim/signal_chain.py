@@ -1,4 +1,5 @@
-"""State and virtual clock of the simulated bench, and the signal chain through its parts.
+"""Virtual clock of the simulated bench, and the signal chain through its parts (the instruments'
+state in instrument_state.py, the parts' true values in truth.py).
 
 Two sources -> their input paths -> DUT -> output path -> analyzer. The clock only moves forward
 by analyzer sweeps and by waiting for a source to settle (its *OPC?), never by sleeping. A
@@ -8,9 +9,8 @@ starts earlier still sees the old one.
 
 from __future__ import annotations
 
-import math
 import threading
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -20,140 +20,11 @@ from tonebench.sim import mixer as sim_mixer
 from tonebench.sim.analyzer_im2 import add_analyzer_im2
 from tonebench.sim.chamber import SimChamber
 from tonebench.sim.fet_stage import FetBias, FetStage
+from tonebench.sim.instrument_state import AnalyzerState, PowerMeterState, SourceChannel, SourceSetting
 from tonebench.sim.scenario import Scenario
 from tonebench.sim.supply import SimSupply
+from tonebench.sim.truth import BenchTruth
 from tonebench.units import dbm_to_vpeak, dbm_to_watt, vpeak_to_dbm, watt_to_dbm
-
-PATHS = ("in1", "in2", "out")
-
-
-@dataclass(frozen=True)
-class SourceSetting:
-    """One source's output: frequency (Hz), power (dBm at its connector), RF on or off."""
-
-    freq_hz: float = 1e9
-    power_dbm: float = -30.0
-    rf_on: bool = False
-
-
-@dataclass
-class SourceChannel:
-    """What a source was told (`commanded`) and what is in force at the DUT (`effective`)."""
-
-    commanded: SourceSetting
-    effective: SourceSetting
-    # (deadline_s, setting): each change comes into force at its deadline.
-    pending: list[tuple[float, SourceSetting]] = field(default_factory=list)
-    # A level still settling (fault injection): (from clock_s, error_db then, time constant s).
-    unsettled: tuple[float, float, float] | None = None
-    # A level drifting with time (fault injection): (from clock_s, dB per second).
-    drift: tuple[float, float] | None = None
-
-    def level_error_db(self, clock_s: float) -> float:
-        """How far the output level is from its setting at clock_s (dB): an unsettled level decaying
-        exponentially plus a drift growing linearly."""
-        error_db = 0.0
-        if self.drift is not None:
-            error_db += self.drift[1] * max(0.0, clock_s - self.drift[0])
-        if self.unsettled is None:
-            return error_db
-        start_s, unsettled_db, time_constant_s = self.unsettled
-        return error_db + unsettled_db * math.exp(-max(0.0, clock_s - start_s) / time_constant_s)
-
-
-@dataclass
-class AnalyzerState:
-    """Analyzer settings (power-on defaults) and the last trace."""
-
-    center_hz: float = 3.75e9
-    span_hz: float = 7.5e9
-    rbw_hz: float = 1e6
-    vbw_hz: float = 1e6
-    atten_db: float = 10.0
-    ref_level_dbm: float = 0.0
-    continuous: bool = True
-    marker_freq_hz: float = 3.75e9
-    trace_freq_hz: np.ndarray | None = None
-    trace_dbm: np.ndarray | None = None
-    overloaded: bool = False  # during the last sweep
-    damaged: bool = False  # survives *RST: it is the hardware
-    detector: sim_detector.DetectorState = field(default_factory=sim_detector.DetectorState)
-
-
-@dataclass
-class PowerMeterState:
-    """Power meter settings (power-on defaults) and its last reading (None until it measured)."""
-
-    freq_hz: float = 1e9
-    continuous: bool = True
-    unit_dbm: bool = True
-    reading_dbm: float | None = None
-
-
-class BenchTruth:
-    """True values of the simulated parts, for tests (never reachable through SCPI)."""
-
-    def __init__(self, scenario: Scenario):
-        self._scenario = scenario
-
-    def true_gain_db(self, freq_hz):
-        dut = self._scenario.dut
-        return _float_or_array(physics.linear_in_db(dut.gain_db, dut.gain_slope_db_per_ghz, dut.ref_freq_hz, freq_hz))
-
-    def true_iip3_dbm(self, freq_hz):
-        dut = self._scenario.dut
-        return _float_or_array(physics.linear_in_db(dut.iip3_dbm, dut.iip3_slope_db_per_ghz, dut.ref_freq_hz, freq_hz))
-
-    def true_iip2_dbm(self, freq_hz):
-        """Second-order input intercept (dBm); the scenario keeps it flat with frequency."""
-        return _float_or_array(np.full(np.shape(freq_hz), float(self._scenario.dut.iip2_dbm)))
-
-    def true_oip3_dbm(self, freq_hz):
-        return _float_or_array(np.asarray(self.true_iip3_dbm(freq_hz)) + np.asarray(self.true_gain_db(freq_hz)))
-
-    def true_mixer_iip3_dbm(self, lo_dbm: float) -> float:
-        """RF-referred IIP3 (dBm) of the simulated mixer with the LO source at lo_dbm (its connector)."""
-        mixer = self._scenario.mixer
-        return sim_mixer.iip3_at_lo_dbm(mixer, lo_dbm - mixer.lo_loss_db)
-
-    def true_p1db_dbm(self, freq_hz: float) -> float:
-        """Input-referred single-tone 1 dB compression point, found numerically from the model."""
-        return physics.p1db_input_dbm(self.dut_model(freq_hz))
-
-    def true_loss_db(self, path: str, freq_hz):
-        """Loss (positive dB) of path "in1", "in2" or "out"; a passive path never turns into gain."""
-        if path not in PATHS:
-            raise ValueError(f"true_loss_db: path {path!r} is not one of {', '.join(PATHS)}")
-        paths = self._scenario.paths
-        loss_db = getattr(paths, f"{path}_loss_db")
-        slope_db_per_ghz = getattr(paths, f"{path}_slope_db_per_ghz")
-        loss_db = physics.linear_in_db(loss_db, slope_db_per_ghz, paths.ref_freq_hz, freq_hz)
-        return _float_or_array(np.maximum(0.0, loss_db))
-
-    def true_im3_change_db(self, spacing_hz) -> tuple:
-        """(lower, upper) change (dB) of each IM3 product against the memoryless cubic's at this
-        spacing, from the memory model's closed form (sim/memory.py); zeros without memory."""
-        dut = self._scenario.dut
-        lower, upper = memory.im3_change_db(spacing_hz, dut.memory_strength, dut.memory_pole_hz, dut.memory_phase_deg)
-        return _float_or_array(lower), _float_or_array(upper)
-
-    def true_im3_asymmetry_db(self, spacing_hz):
-        """Upper minus lower IM3 (dB) at this spacing for equal tones: the memory model's truth."""
-        lower, upper = self.true_im3_change_db(spacing_hz)
-        return _float_or_array(np.asarray(upper) - np.asarray(lower))
-
-    def dut_model(self, freq_hz: float) -> physics.Nonlinearity:
-        """The DUT nonlinearity at freq_hz (a two-tone point uses its centre frequency)."""
-        dut = self._scenario.dut
-        backoff_db = None if dut.p1db_dbm is None else dut.iip3_dbm - dut.p1db_dbm
-        return physics.dut_nonlinearity(self.true_gain_db(freq_hz), self.true_iip3_dbm(freq_hz), backoff_db,
-                                        dut.iip2_dbm, dut.iip5_dbm)
-
-
-def _float_or_array(value):
-    value = np.asarray(value, dtype=float)
-    return float(value) if value.ndim == 0 else value
-
 
 @dataclass(frozen=True)
 class AnalyzerInput:
