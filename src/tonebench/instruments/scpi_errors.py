@@ -1,7 +1,7 @@
 """What an instrument's replies and error queue can say, shared by the SCPI instrument and its
-supervision (neither imports the other's module for these): reply parsing, the SCPI codes and
-the exceptions of a refused, failed or out-of-step exchange, and the parts of replies (joined
-fields, identity) and of error texts (the operations refused) both read."""
+supervision (neither imports the other's module for these): reply parsing (a joined line's
+fields, the identity in *IDN?), the SCPI codes, the operations an error text names, and the
+exceptions of a refused, failed or out-of-step exchange."""
 
 from __future__ import annotations
 
