@@ -14,7 +14,8 @@ from tonebench.run import ending
 from tonebench.run.ending import RunOutcome
 from tonebench.run.mixer_run import MixerDrive
 from tonebench.run.prepared import PreparedRun
-from tonebench.run.sequencer import ProgressCallback, RunStopped, Sequencer
+from tonebench.run.sequencer import ProgressCallback, Sequencer
+from tonebench.run.stopped import RunStopped
 from tonebench.run.watchdog import Watchdog, WatchdogTripped
 from tonebench.store.ownership import Heartbeat, take_ownership
 

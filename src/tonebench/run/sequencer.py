@@ -13,7 +13,6 @@ or the bench file's expected gain for its first.
 
 from __future__ import annotations
 
-import contextlib
 import time
 from collections.abc import Callable
 
@@ -21,16 +20,14 @@ from tonebench.calibration.leveling import Leveler
 from tonebench.config.bench_file import BenchLimits, UnattendedSettings
 from tonebench.config.plan_file import AnalyzerSettings
 from tonebench.errors import InstrumentError
-from tonebench.instruments.bias import BiasTargetMissed
-from tonebench.instruments.chamber import ChamberSoakTimeout
 from tonebench.instruments.open_bench import OpenBench
 from tonebench.instruments.rf_guard import RfOffReport, raise_if_stopping, shielded
-from tonebench.instruments.supply import SupplyTripped
 from tonebench.plan.axes import SweepKey
 from tonebench.plan.limits import check_source_power, expected_tone_dbm, predict_levels
 from tonebench.plan.points import PlannedPoint
 from tonebench.planes.loss_table import LossTable
 from tonebench.run.attenuation_choice import AttenuationChoice
+from tonebench.run.bias_steps import BenchConditions
 from tonebench.run.drift import DriftTracker
 from tonebench.run.mixer_run import MixerDrive
 from tonebench.run.narrowing import read_narrow
@@ -47,6 +44,7 @@ from tonebench.run.readings import (
     second_order_blocked,
 )
 from tonebench.run.rf_switches import RfSwitches
+from tonebench.run.stopped import RunStopped
 from tonebench.run.sweep_state import SweepState, sweep_states
 from tonebench.run.tone_leveling import ToneLeveling
 from tonebench.run.watchdog import Watchdog
@@ -55,14 +53,6 @@ from tonebench.store.records import RunRecorder
 from tonebench.units import format_freq
 
 ProgressCallback = Callable[[int, int], None]
-
-
-class RunStopped(Exception):
-    """The bench file's on_point_failure policy stopped the run: status 'paused' or 'aborted'."""
-
-    def __init__(self, status: str, reason: str):
-        super().__init__(reason)
-        self.status = status
 
 
 class Sequencer:
@@ -85,11 +75,6 @@ class Sequencer:
     ):
         self.bench = bench
         self.mixer = mixer  # a mixer plan: the LO, and the analyzer reading at the IF (run/mixer_run.py)
-        # The caller soaked the chamber here just before this run and left it there (the runs of
-        # one `bias search` study): held within tolerance, the dwell is not waited again.
-        self.held_at_c = held_at_c
-        self.drain_v = drain_v  # the plan's, else the bench file's [bias] drain_v
-        self.target_drain_a = target_drain_a  # the plan's drain-current target, instead of gate voltages
         self.offsets = offsets
         self.limits = limits
         self.analyzer_settings = analyzer_settings
@@ -101,6 +86,11 @@ class Sequencer:
         self.watchdog = watchdog
         self.drift = DriftTracker(self.unattended.drift_tolerance_db, self.log)
         self.rf = RfSwitches(bench)
+        # Bias and chamber temperature: drain_v the plan's (else the bench file's [bias]);
+        # target_drain_a a drain-current target instead of gate voltages; held_at_c where the
+        # caller just soaked (a `bias search` study), so the dwell is not waited again.
+        self.conditions = BenchConditions(bench, self.rf, self.log, self._kick, self._check_stop,
+                                          drain_v, target_drain_a, held_at_c)
         self.leveling = ToneLeveling(bench, offsets, leveler, self.rf, self.log) if leveler is not None else None
         self.attenuation = AttenuationChoice(bench.analyzer, analyzer_settings, self._say_once)
         self.setup = self.attenuation.setup  # the plan's analyzer setup
@@ -111,7 +101,6 @@ class Sequencer:
         self.sweeps: dict[SweepKey, SweepState] = {}
         self._rf_said = False
         self._said: set[str] = set()  # events said once per run
-        self._chamber_c: float | None = None  # the temperature soaked at, this run
         self._levels: dict[str, object] = {}  # point key -> its predicted levels (plan/limits.py)
         # Points are committed on a writer thread while the next one is measured; all are
         # committed (or their commit's error raised) before run() returns or raises.
@@ -138,12 +127,12 @@ class Sequencer:
                 if source.instrument.has("read_event_status"):
                     source.clear_status()  # the power-on bit of its last switch-on
             self.bench.analyzer.apply(self.setup)
-            self._bias_up(todo)
+            self.conditions.bias_up(todo)
             if self.leveling is not None:
                 self.bench.rf_off_all()  # known state: leveling switches the sources one at a time
             for point in todo:
                 self._check_stop()
-                self._set_temperature(point)
+                self.conditions.set_temperature(point)
                 try:
                     measured = guard.measure(point.key, lambda point=point: self._measure(point),
                                              lambda result, point=point: self._settled(point, result))
@@ -162,99 +151,11 @@ class Sequencer:
                     self._stop_recovery()
                     self.rf_report = self.bench.switch_rf_off()
                     self._say_rf_off(self.rf_report)
-                    self._bias_down()  # after RF, in its safe order
+                    self.conditions.bias_down()  # after RF, in its safe order
                 finally:
                     # Every point committed before the run's end is stored (after RF off: a
                     # commit may wait out a busy timeout); a commit's error is raised here.
                     self.points_out.close()
-
-    def _set_temperature(self, point: PlannedPoint) -> None:
-        """A new chamber temperature: RF off, then a soak (kicking the watchdog at every reading);
-        a soak that never settles ends the run (aborted), it is not waited out."""
-        chamber = self.bench.chamber
-        if point.temperature_c is None or chamber is None or self._chamber_c == point.temperature_c:
-            return
-        self.rf.set(False, False)
-        limits = chamber.limits
-        if point.temperature_c == self.held_at_c:
-            chamber.set_point(point.temperature_c)
-            read_c = chamber.temperature_c()
-            if abs(read_c - point.temperature_c) <= limits.tolerance_c:
-                self._chamber_c = point.temperature_c
-                self.log.event("info", "soak-held", f"{chamber.label}: held at {point.temperature_c:g} degC since the "
-                                                    f"last soak, reads {read_c:.2f} degC: no second dwell")
-                return
-        self.log.event("info", "soak-start", f"{chamber.label}: soaking at {point.temperature_c:g} degC "
-                                             f"(within {limits.tolerance_c:g} degC for {limits.dwell_s:g} s, RF off)")
-        try:
-            soaked = chamber.soak(point.temperature_c, lambda read_c, waited_s: (self._kick(), self._check_stop()))
-        except ChamberSoakTimeout as exc:
-            self.log.event("error", "soak-timeout", str(exc))
-            raise RunStopped("aborted", str(exc)) from None
-        self._chamber_c = point.temperature_c
-        self.log.event("info", "soak-done", f"{chamber.label}: {soaked.read_c:.2f} degC after {soaked.waited_s:.0f} s")
-
-    def _bias_up(self, todo: list[PlannedPoint]) -> None:
-        """Bias on at the first point's gate voltage (or, for a drain-current target, at the
-        gate that gives it), before RF ever goes on."""
-        bias = self.bench.bias
-        first_v = next((point.bias_v for point in todo if point.bias_v is not None), None)
-        if bias is None or (first_v is None and self.target_drain_a is None):
-            return
-        start_v = first_v if first_v is not None else bias.limits.gate_idle_v
-        with self._trips_stop_the_run("bias on"):
-            bias.bias_up(start_v, self.drain_v)
-        self.log.event("info", "bias-on", f"bias on: gate {start_v:g} V, drain {bias.drain_v:g} V "
-                                          f"(gate first, drain ramped at {bias.limits.ramp_v_per_s:g} V/s)")
-        if first_v is None:
-            self._find_target_gate(bias)
-
-    def _find_target_gate(self, bias) -> None:
-        target_a = self.target_drain_a
-        with self._trips_stop_the_run("bias target"):
-            try:
-                gate_v, drain_a, steps = bias.find_gate_for_current(target_a, lambda: (self._kick(), self._check_stop()))
-            except BiasTargetMissed as exc:
-                self.log.event("error", "bias-target-missed", str(exc))
-                raise RunStopped("aborted", str(exc)) from None
-        self.log.event("info", "bias-target", f"bias: gate {gate_v:.4f} V gives {drain_a * 1e3:.4g} mA "
-                                              f"(target {target_a * 1e3:g} mA, {steps} steps, RF off)")
-
-    def _bias_down(self) -> None:
-        bias = self.bench.bias
-        if bias is None or not bias.up:
-            return
-        failures = self.bench.switch_bias_off()
-        try:
-            if failures:
-                self.log.event("error", "bias-not-off", "bias off failed: " + "; ".join(failures))
-            else:
-                self.log.event("info", "bias-off", "bias off (gate to idle, drain down and off, gate off)")
-        except Exception:  # noqa: BLE001 - the run's end is still recorded by the runner
-            pass
-
-    def _set_bias(self, point: PlannedPoint) -> None:
-        bias = self.bench.bias
-        if bias is not None and point.bias_v is not None and bias.gate_v != point.bias_v:
-            with self._trips_stop_the_run(f"point {point.name}"):
-                bias.set_gate(point.bias_v)
-
-    def _read_bias(self, point: PlannedPoint):
-        bias = self.bench.bias
-        if bias is None or not bias.up:
-            return None
-        with self._trips_stop_the_run(f"point {point.name}"):
-            return bias.read()
-
-    @contextlib.contextmanager
-    def _trips_stop_the_run(self, where: str):
-        """A tripped bias supply is a fault that ends the run (aborted, RF and bias off), never a
-        reading of zero bias, and never retried (the device may be damaged)."""
-        try:
-            yield
-        except SupplyTripped as exc:
-            self.log.event("error", "bias-tripped", f"{where}: {exc}")
-            raise RunStopped("aborted", f"bias supply tripped at {where}: {exc}") from None
 
     def _accept(self, point: PlannedPoint, measured: Measured, elapsed_s: float) -> None:
         """Keep the point's tone readings for its sweep and store its record."""
@@ -300,7 +201,7 @@ class Sequencer:
                 if type(exc) is InstrumentError:
                     raise BenchFault(str(exc)) from None
                 raise
-        self._set_bias(point)
+        self.conditions.set_bias(point)
         if self.mixer is not None:
             self.mixer.set_lo(point)  # LO on before the tones
         self._set_tones(point)
@@ -339,7 +240,7 @@ class Sequencer:
             step = self.attenuation.step_check(read_at, point.tone_dbm in sweep.step_levels_dbm, setup, readings,
                                                noise_offsets_hz)
         chamber_c = None if point.temperature_c is None else self.bench.chamber.temperature_c()
-        return Measured(readings, setup, choice, step, second, self._read_bias(point), chamber_c, narrow,
+        return Measured(readings, setup, choice, step, second, self.conditions.read_bias(point), chamber_c, narrow,
                         None if tone_setup == setup else tone_setup.rbw_hz, target)
 
     def _settled(self, point: PlannedPoint, measured: Measured) -> str | None:
