@@ -16,7 +16,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from tonebench.config.bench_file import LoadedBench
-from tonebench.config.plan_file import DcSweepSettings
+from tonebench.config.bias_settings import DcSweepSettings
 from tonebench.errors import InputError, InstrumentError
 from tonebench.instruments.bias import BiasSupplies
 from tonebench.instruments.rf_guard import stop_signals
