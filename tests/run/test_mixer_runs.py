@@ -95,18 +95,40 @@ def test_high_side_injection_measures_the_same_device(tmp_path):
 
 
 def test_measured_iip3_follows_the_lo_drive(tmp_path):
-    lo_levels_dbm = (7.0, 5.0, 3.0, 1.0)
-    for lo_dbm in lo_levels_dbm:
-        run_plan(tmp_path, plan_text(lo_dbm=lo_dbm), f"plan-{lo_dbm}.toml")
-    rows = find_json(f"sqlite:///{tmp_path / 't.db'}")
-    engine = create_engine(f"sqlite:///{tmp_path / 't.db'}")
-    with Session(engine) as session:
-        lo_by_guid = {run.guid: run.metadata_json["mixer"]["lo_dbm"] for run in session.scalars(select(Run))}
-    engine.dispose()
-    measured = sorted((lo_by_guid[row["run_guid"]], row["iip3_dbm"]) for row in rows)
-    assert [lo for lo, _ in measured] == sorted(lo_levels_dbm)
-    for lo_dbm, iip3_dbm in measured:
+    """ONE run stepping the LO ([mixer] lo_levels_dbm, the "lo" plan axis): a result per LO level,
+    each within 0.5 dB of the simulated dependence (sim/mixer.py closed form). One tone range for
+    all levels: the analysis keeps the slope-3 region of each (noise-limited points at the high
+    IIP3, compressed ones at the starved LO left out); RBW 10 Hz lowers the floor for the first."""
+    lo_levels_dbm = [9.0, 7.0, 5.0, 3.0, 1.0]
+    text = (PLAN.read_text().replace("lo_dbm = 7.0 ", f"lo_levels_dbm = {lo_levels_dbm!r} ")
+            .replace("tone_start_dbm = -24.0", "tone_start_dbm = -39.0").replace("rbw_hz = 100.0", "rbw_hz = 10.0"))
+    db, _ = run_plan(tmp_path, text)
+    rows = find_json(db)
+    assert len({row["run_guid"] for row in rows}) == 1
+    measured = {row["lo_dbm"]: row["iip3_dbm"] for row in rows}
+    assert sorted(measured) == sorted(lo_levels_dbm)
+    for lo_dbm, iip3_dbm in measured.items():
         assert iip3_dbm == pytest.approx(true_iip3_dbm(lo_dbm), abs=IIP3_AGAINST_LO_TOLERANCE_DB), lo_dbm
+    engine = create_engine(db)
+    with Session(engine) as session:
+        points = session.scalars(select(Point).order_by(Point.seq)).all()
+    engine.dispose()
+    # Outside frequency and tone power: the LO levels in plan order, each a whole tone ramp.
+    assert list(dict.fromkeys(p.lo_dbm for p in points)) == lo_levels_dbm
+    assert points[0].point_key.startswith("lo+9.00dBm/c")
+
+
+def test_plans_without_a_stepped_lo_leave_no_trace_of_it(tmp_path):
+    """lo_dbm (one level): points and results keep lo_dbm None and keys without an LO part."""
+    db, _ = run_plan(tmp_path, PLAN.read_text())
+    [row] = find_json(db)
+    assert row["lo_dbm"] is None
+    engine = create_engine(db)
+    with Session(engine) as session:
+        points = session.scalars(select(Point)).all()
+    engine.dispose()
+    assert {p.lo_dbm for p in points} == {None}
+    assert not any("lo" in p.point_key for p in points)
 
 
 def test_a_spur_placed_on_an_im3_frequency_is_flagged(tmp_path):
@@ -222,6 +244,9 @@ def test_the_analyzer_input_is_predicted_at_the_if(tmp_path):
 @pytest.mark.parametrize("bench_file, plan_edit, line", [
     (SAMPLE_RUNS / "sim_bench.toml", ("", ""), "the plan has a [mixer] table but the bench has no lo source"),
     (BENCH, ("lo_dbm = 7.0 ", "lo_dbm = 14.0 "), "[mixer] lo_dbm 14.00 dBm is above the bench limit max_lo_dbm 13.00 dBm"),
+    (BENCH, ("lo_dbm = 7.0 ", "lo_levels_dbm = [7.0, 14.0, 1.0] "),
+     "[mixer] lo_levels_dbm level 14.00 dBm is above the bench limit max_lo_dbm 13.00 dBm"),
+    (BENCH, ("lo_dbm = 7.0 ", "lo_dbm = 7.0\nlo_levels_dbm = [7.0, 5.0] "), "give exactly one of lo_dbm"),
     (BENCH, ('injection = "low"', 'injection = "high"'), 'injection = "high" needs the LO above every RF product'),
 ])
 def test_a_mixer_plan_is_refused_in_one_line_before_anything_is_connected(tmp_path, bench_file, plan_edit, line):
