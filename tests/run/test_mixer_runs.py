@@ -294,3 +294,49 @@ def test_a_mixer_run_is_analyzed_again_but_not_re_referred_to_another_set(tmp_pa
     refused = invoke("analyze", guid, "--cal", "any-set", "--db", db)
     assert refused.exit_code != 0
     assert "a mixer run (read at the IF) cannot be re-referred to another calibration set yet" in refused.output
+
+
+def test_a_killed_lo_stepped_run_resumes_at_the_lo_level_it_was_on(tmp_path):
+    """SIGKILL once the second LO level has begun; resume measures every remaining point once, at
+    the LO level its key names, and the results per level still follow the model."""
+    from stored_rows import count_points
+
+    from tonebench.run.resume import resume_run
+
+    lo_levels_dbm = [9.0, 7.0, 5.0, 3.0, 1.0]
+    plan = tmp_path / "plan.toml"
+    plan.write_text(PLAN.read_text().replace("lo_dbm = 7.0 ", f"lo_levels_dbm = {lo_levels_dbm!r} ")
+                    .replace("tone_start_dbm = -24.0", "tone_start_dbm = -39.0")
+                    .replace("rbw_hz = 100.0", "rbw_hz = 10.0"))
+    db_path = tmp_path / "t.db"
+    process = subprocess.Popen([sys.executable, "-m", "tonebench", "run", str(plan), "--bench", str(BENCH),
+                                "--db", f"sqlite:///{db_path}", "--report", str(tmp_path / "first.html")],
+                               stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + WAIT_S
+    try:
+        while count_points(db_path) < 12:  # 10 points per LO level
+            assert process.poll() is None, "the run ended before it could be killed"
+            assert time.monotonic() < deadline, "the run did not get far enough"
+            time.sleep(0.005)
+        process.send_signal(signal.SIGKILL)
+    finally:
+        process.wait(30)
+    engine = create_engine(f"sqlite:///{db_path}")
+    with Session(engine) as session:
+        guid = session.scalars(select(Run.guid)).one()
+        stored_at_kill = session.scalars(select(Point.point_key)).all()
+    engine.dispose()
+    assert 12 <= len(stored_at_kill) < 50
+    outcome = resume_run(guid[:8], f"sqlite:///{db_path}", report_path=tmp_path / "r.html")
+    assert outcome.status == "complete"
+    engine = create_engine(f"sqlite:///{db_path}")
+    with Session(engine) as session:
+        points = session.scalars(select(Point)).all()
+    engine.dispose()
+    keys = [p.point_key for p in points]
+    assert len(keys) == len(set(keys)) == 50
+    assert all(p.point_key.startswith(f"lo{p.lo_dbm:+.2f}dBm/") for p in points)
+    measured = {row["lo_dbm"]: row["iip3_dbm"] for row in find_json(f"sqlite:///{db_path}")}
+    assert sorted(measured) == sorted(lo_levels_dbm)
+    for lo_dbm, iip3_dbm in measured.items():
+        assert iip3_dbm == pytest.approx(true_iip3_dbm(lo_dbm), abs=IIP3_AGAINST_LO_TOLERANCE_DB), lo_dbm
