@@ -208,3 +208,39 @@ def test_export_and_import_commands(tmp_path):
     assert "imported 0 runs" in second.output and "2 already present" in second.output
     missing = runner.invoke(app, ["import", str(tmp_path / "nope.gz"), "--db", lab])
     assert missing.exit_code == 2 and "no such file" in missing.output
+
+
+def _records(path) -> list[dict]:
+    """Every record of a transfer file, those nested in a run (points, results) included."""
+    records = [json.loads(line) for line in gzip.decompress(path.read_bytes()).decode().splitlines()]
+    nested = [item for record in records for name in ("points", "results") for item in record.get(name, [])]
+    return records + nested
+
+
+def test_the_lo_level_travels_and_runs_without_it_keep_their_records(tmp_path):
+    """lo_dbm (the stepped LO, migration 0007) is left out of a record when None, so a run without
+    it exports the records it did before the axis; set, it survives export, import, export."""
+    source = source_database(f"sqlite:///{tmp_path / 'bench.db'}", n_devices=2)
+    with session_factory(source)() as session:
+        export_runs(session, tmp_path / "old.jsonl.gz")
+    old = _records(tmp_path / "old.jsonl.gz")
+    assert any("temperature_c" in record for record in old)  # nested point and result records are read
+    assert not any("lo_dbm" in record for record in old)
+    with session_factory(source).begin() as session:
+        run = session.scalars(sa.select(Run).order_by(Run.id)).first()
+        for row in (*session.scalars(sa.select(Point).where(Point.run_id == run.id)),
+                    *session.scalars(sa.select(Result).where(Result.run_id == run.id))):
+            row.lo_dbm = 3.0
+    with session_factory(source)() as session:
+        export_runs(session, tmp_path / "first.jsonl.gz")
+    stepped = [r for r in _records(tmp_path / "first.jsonl.gz") if "lo_dbm" in r]
+    assert stepped and all(r["lo_dbm"] == 3.0 for r in stepped)
+    assert any(r.get("group_key", "").endswith(";lo_dbm=3.0") for r in stepped)
+    target = open_database(f"sqlite:///{tmp_path / 'lab.db'}")
+    import_runs(session_factory(target), tmp_path / "first.jsonl.gz")
+    with session_factory(target)() as session:
+        assert session.scalar(sa.select(sa.func.count()).where(Result.lo_dbm == 3.0)) > 0
+        export_runs(session, tmp_path / "second.jsonl.gz")
+    assert (tmp_path / "first.jsonl.gz").read_bytes() == (tmp_path / "second.jsonl.gz").read_bytes()
+    source.dispose()
+    target.dispose()

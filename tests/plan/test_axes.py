@@ -37,8 +37,8 @@ def test_the_key_is_one_part_per_axis_in_declared_order():
 
 
 def test_every_axis_says_its_unit_plan_field_and_bench_setting():
-    assert [axis.name for axis in AXES] == ["temperature", "center", "spacing", "tone", "bias"]
-    assert [axis.unit for axis in AXES] == ["degC", "Hz", "Hz", "dBm", "V"]
+    assert [axis.name for axis in AXES] == ["temperature", "lo", "center", "spacing", "tone", "bias"]
+    assert [axis.unit for axis in AXES] == ["degC", "dBm", "Hz", "Hz", "dBm", "V"]
     assert all(axis.bench_setting for axis in AXES)
     assert SWEEP_AXIS.point_field == "tone_dbm" and SWEEP_AXIS not in GROUP_AXES
 
@@ -56,7 +56,7 @@ def test_expansion_is_centre_then_spacing_then_rising_tone_power():
 def test_a_sweep_is_every_point_that_differs_only_in_tone_power():
     sweep = _sweep(center_freqs_hz=[1.0e9, 2.0e9], spacings_hz=[1.0e6], levels=[-20.0, -10.0])
     points = expand(SimpleNamespace(sweep=sweep))
-    assert points[0].sweep_key == points[1].sweep_key == (None, 1.0e9, 1.0e6, None)
+    assert points[0].sweep_key == points[1].sweep_key == (None, None, 1.0e9, 1.0e6, None)
     assert points[1].sweep_key != points[2].sweep_key
     # A stored point row carries the same fields; one function gives both the same key.
     row = SimpleNamespace(center_hz=2.0e9, spacing_hz=1.0e6, bias_v=None, tone_dbm=-10.0)
@@ -71,21 +71,21 @@ def test_an_axis_the_plan_names_is_iterated_outside_the_tone_ramp_and_joins_both
         "c1000000000/d1000000/p-20.00/b+0.3000V", "c1000000000/d1000000/p-10.00/b+0.3000V",
         "c1000000000/d1000000/p-20.00/b+0.5000V", "c1000000000/d1000000/p-10.00/b+0.5000V",
     ]
-    assert points[0].sweep_key == (None, 1.0e9, 1.0e6, 0.3) != points[2].sweep_key
+    assert points[0].sweep_key == (None, None, 1.0e9, 1.0e6, 0.3) != points[2].sweep_key
 
 
 def test_a_new_axis_is_one_declaration(monkeypatch):
-    lo = Axis("lo", "Hz", "lo_hz", lambda plan: getattr(plan.sweep, "lo_freqs_hz", None), "/lo{:.0f}", "lo_frequency",
+    lo = Axis("lo_freq", "Hz", "lo_hz", lambda plan: getattr(plan.sweep, "lo_freqs_hz", None), "/lo{:.0f}", "lo_frequency",
               lambda hz: f"LO {hz:g} Hz")
     monkeypatch.setattr(axes, "AXES", (*AXES, lo))
     monkeypatch.setattr(axes, "GROUP_AXES", (*GROUP_AXES, lo))
     sweep = _sweep(center_freqs_hz=[1.0e9], spacings_hz=[1.0e6], lo_freqs_hz=[0.9e9, 1.1e9], levels=[-20.0])
     pairs = axes.axis_values(SimpleNamespace(sweep=sweep))
-    assert [axis.name for axis, _ in pairs] == ["temperature", "center", "spacing", "bias", "lo", "tone"]
+    assert [axis.name for axis, _ in pairs] == ["temperature", "lo", "center", "spacing", "bias", "lo_freq", "tone"]
     assert axes.point_key_of({"center_hz": 1.0e9, "spacing_hz": 1.0e6, "tone_dbm": -20.0, "lo_hz": 0.9e9}) \
         == "c1000000000/d1000000/p-20.00/lo900000000"
     assert axes.sweep_key_of(SimpleNamespace(center_hz=1.0e9, spacing_hz=1.0e6, lo_hz=0.9e9)) \
-        == (None, 1.0e9, 1.0e6, None, 0.9e9)
+        == (None, None, 1.0e9, 1.0e6, None, 0.9e9)
 
 
 def test_temperature_is_the_outermost_axis_and_leads_the_key():
@@ -95,7 +95,21 @@ def test_temperature_is_the_outermost_axis_and_leads_the_key():
     assert [(p.temperature_c, p.center_hz) for p in points] == [(85.0, 1.0e9), (85.0, 2.0e9), (-20.0, 1.0e9),
                                                                 (-20.0, 2.0e9)]
     assert points[2].key == "t-20.0C/c1000000000/d1000000/p-20.00"
-    assert points[0].sweep_key == (85.0, 1.0e9, 1.0e6, None)
+    assert points[0].sweep_key == (85.0, None, 1.0e9, 1.0e6, None)
+
+
+def test_a_stepped_lo_is_iterated_outside_frequency_and_joins_both_keys():
+    # [mixer] lo_levels_dbm: every point at one LO level before the next (plan order kept).
+    sweep = _sweep(center_freqs_hz=[1.0e9, 2.0e9], spacings_hz=[1.0e6], levels=[-20.0, -10.0])
+    mixer = SimpleNamespace(lo_levels_dbm=[9.0, 1.0])
+    points = expand(SimpleNamespace(sweep=sweep, mixer=mixer))
+    assert [(p.lo_dbm, p.center_hz) for p in points[::2]] == [(9.0, 1.0e9), (9.0, 2.0e9), (1.0, 1.0e9), (1.0, 2.0e9)]
+    assert points[4].key == "lo+1.00dBm/c1000000000/d1000000/p-20.00"
+    assert points[0].sweep_key == (None, 9.0, 1.0e9, 1.0e6, None) != points[4].sweep_key
+    assert axes.point_name_of_key(points[4].key) == "LO +1.00 dBm, 1 GHz, spacing 1 MHz, -20.00 dBm per tone"
+    # A single lo_dbm is no axis: the points keep the keys they had.
+    single = expand(SimpleNamespace(sweep=sweep, mixer=SimpleNamespace(lo_dbm=7.0, lo_levels_dbm=None)))
+    assert single[0].lo_dbm is None and single[0].key == "c1000000000/d1000000/p-20.00"
 
 
 def test_an_axis_the_plan_does_not_name_leaves_no_trace():

@@ -85,6 +85,24 @@ def test_lo_power_is_checked_against_the_bench_limit():
         check_lo_power(mixer(lo_hz=2.3e9), None, "plan")
 
 
+def test_every_stepped_lo_level_is_checked_against_the_bench_limit():
+    stepped = MixerSettings.model_validate({"lo_hz": 2.3e9, "lo_levels_dbm": [9.0, 13.0, 1.0]})
+    check_lo_power(stepped, 13.0, "plan")
+    with pytest.raises(InputError, match="lo_levels_dbm level 13.00 dBm is above the bench limit max_lo_dbm 12.50"):
+        check_lo_power(stepped, 12.5, "plan")
+
+
+@pytest.mark.parametrize("fields, words", [
+    ({"lo_dbm": 7.0, "lo_levels_dbm": [7.0]}, "give exactly one of lo_dbm"),
+    ({}, "give exactly one of lo_dbm"),
+    ({"lo_levels_dbm": [7.0, 7.0]}, "lo_levels_dbm repeats a level"),
+    ({"lo_levels_dbm": [7.0, 31.0]}, "lo_levels_dbm values must lie within -150..30 dBm"),
+])
+def test_lo_power_is_one_level_or_a_list_of_distinct_levels(fields, words):
+    with pytest.raises(ValueError, match=words):
+        MixerSettings.model_validate({"lo_hz": 2.3e9, **fields})
+
+
 def test_a_spur_placed_on_an_im3_frequency_is_predicted_with_its_orders():
     # LO at f2/2: 2*f1 - 3*LO = 2f1 - f2 - LO, exactly the lower IM3 at the IF (worked by hand).
     lo_hz = F2_HZ / 2.0

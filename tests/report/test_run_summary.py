@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 
 from tonebench.analysis.sweep_fit import fit_sweep
@@ -45,6 +47,18 @@ def test_bias_alone_is_the_axis():
     assert fig.layout.xaxis.title.text == "gate bias (V)"
     assert [a.text for a in fig.layout.annotations] == ["IIP3", "OIP3"]  # one family: no line names
     assert list(_trace(fig, "upper")[0].x) == [0.50, 0.55, 0.60]
+
+
+def test_lo_power_alone_is_the_axis_in_rising_order():
+    # A mixer plan stepping [mixer] lo_levels_dbm (plan order 9 .. 1 dBm): IIP3 against LO power.
+    sweeps = [dataclasses.replace(_summary(2.45e9, iip3=12.0 - 3.0 * max(0.0, 7.0 - lo)), lo_dbm=lo)
+              for lo in (9.0, 7.0, 5.0, 3.0, 1.0)]
+    fig = summary_figure(sweeps)
+    assert fig.layout.xaxis.title.text == "LO power (dBm)"
+    mean = _trace(fig, "mean of lower and upper, ± bound")[0]
+    assert list(mean.x) == [1.0, 3.0, 5.0, 7.0, 9.0]
+    np.testing.assert_allclose(mean.y, [-6.0, 0.0, 6.0, 12.0, 12.0])
+    assert sweep_title(2.45e9, 2e6, lo_dbm=3.0) == "2.450 GHz, spacing 2 MHz, LO +3.00 dBm"
 
 
 def _plot(index: int) -> SweepPlotData:

@@ -95,18 +95,40 @@ def test_high_side_injection_measures_the_same_device(tmp_path):
 
 
 def test_measured_iip3_follows_the_lo_drive(tmp_path):
-    lo_levels_dbm = (7.0, 5.0, 3.0, 1.0)
-    for lo_dbm in lo_levels_dbm:
-        run_plan(tmp_path, plan_text(lo_dbm=lo_dbm), f"plan-{lo_dbm}.toml")
-    rows = find_json(f"sqlite:///{tmp_path / 't.db'}")
-    engine = create_engine(f"sqlite:///{tmp_path / 't.db'}")
-    with Session(engine) as session:
-        lo_by_guid = {run.guid: run.metadata_json["mixer"]["lo_dbm"] for run in session.scalars(select(Run))}
-    engine.dispose()
-    measured = sorted((lo_by_guid[row["run_guid"]], row["iip3_dbm"]) for row in rows)
-    assert [lo for lo, _ in measured] == sorted(lo_levels_dbm)
-    for lo_dbm, iip3_dbm in measured:
+    """ONE run stepping the LO ([mixer] lo_levels_dbm, the "lo" plan axis): a result per LO level,
+    each within 0.5 dB of the simulated dependence (sim/mixer.py closed form). One tone range for
+    all levels: the analysis keeps the slope-3 region of each (noise-limited points at the high
+    IIP3, compressed ones at the starved LO left out); RBW 10 Hz lowers the floor for the first."""
+    lo_levels_dbm = [9.0, 7.0, 5.0, 3.0, 1.0]
+    text = (PLAN.read_text().replace("lo_dbm = 7.0 ", f"lo_levels_dbm = {lo_levels_dbm!r} ")
+            .replace("tone_start_dbm = -24.0", "tone_start_dbm = -39.0").replace("rbw_hz = 100.0", "rbw_hz = 10.0"))
+    db, _ = run_plan(tmp_path, text)
+    rows = find_json(db)
+    assert len({row["run_guid"] for row in rows}) == 1
+    measured = {row["lo_dbm"]: row["iip3_dbm"] for row in rows}
+    assert sorted(measured) == sorted(lo_levels_dbm)
+    for lo_dbm, iip3_dbm in measured.items():
         assert iip3_dbm == pytest.approx(true_iip3_dbm(lo_dbm), abs=IIP3_AGAINST_LO_TOLERANCE_DB), lo_dbm
+    engine = create_engine(db)
+    with Session(engine) as session:
+        points = session.scalars(select(Point).order_by(Point.seq)).all()
+    engine.dispose()
+    # Outside frequency and tone power: the LO levels in plan order, each a whole tone ramp.
+    assert list(dict.fromkeys(p.lo_dbm for p in points)) == lo_levels_dbm
+    assert points[0].point_key.startswith("lo+9.00dBm/c")
+
+
+def test_plans_without_a_stepped_lo_leave_no_trace_of_it(tmp_path):
+    """lo_dbm (one level): points and results keep lo_dbm None and keys without an LO part."""
+    db, _ = run_plan(tmp_path, PLAN.read_text())
+    [row] = find_json(db)
+    assert row["lo_dbm"] is None
+    engine = create_engine(db)
+    with Session(engine) as session:
+        points = session.scalars(select(Point)).all()
+    engine.dispose()
+    assert {p.lo_dbm for p in points} == {None}
+    assert not any("lo" in p.point_key for p in points)
 
 
 def test_a_spur_placed_on_an_im3_frequency_is_flagged(tmp_path):
@@ -222,6 +244,9 @@ def test_the_analyzer_input_is_predicted_at_the_if(tmp_path):
 @pytest.mark.parametrize("bench_file, plan_edit, line", [
     (SAMPLE_RUNS / "sim_bench.toml", ("", ""), "the plan has a [mixer] table but the bench has no lo source"),
     (BENCH, ("lo_dbm = 7.0 ", "lo_dbm = 14.0 "), "[mixer] lo_dbm 14.00 dBm is above the bench limit max_lo_dbm 13.00 dBm"),
+    (BENCH, ("lo_dbm = 7.0 ", "lo_levels_dbm = [7.0, 14.0, 1.0] "),
+     "[mixer] lo_levels_dbm level 14.00 dBm is above the bench limit max_lo_dbm 13.00 dBm"),
+    (BENCH, ("lo_dbm = 7.0 ", "lo_dbm = 7.0\nlo_levels_dbm = [7.0, 5.0] "), "give exactly one of lo_dbm"),
     (BENCH, ('injection = "low"', 'injection = "high"'), 'injection = "high" needs the LO above every RF product'),
 ])
 def test_a_mixer_plan_is_refused_in_one_line_before_anything_is_connected(tmp_path, bench_file, plan_edit, line):
@@ -269,3 +294,49 @@ def test_a_mixer_run_is_analyzed_again_but_not_re_referred_to_another_set(tmp_pa
     refused = invoke("analyze", guid, "--cal", "any-set", "--db", db)
     assert refused.exit_code != 0
     assert "a mixer run (read at the IF) cannot be re-referred to another calibration set yet" in refused.output
+
+
+def test_a_killed_lo_stepped_run_resumes_at_the_lo_level_it_was_on(tmp_path):
+    """SIGKILL once the second LO level has begun; resume measures every remaining point once, at
+    the LO level its key names, and the results per level still follow the model."""
+    from stored_rows import count_points
+
+    from tonebench.run.resume import resume_run
+
+    lo_levels_dbm = [9.0, 7.0, 5.0, 3.0, 1.0]
+    plan = tmp_path / "plan.toml"
+    plan.write_text(PLAN.read_text().replace("lo_dbm = 7.0 ", f"lo_levels_dbm = {lo_levels_dbm!r} ")
+                    .replace("tone_start_dbm = -24.0", "tone_start_dbm = -39.0")
+                    .replace("rbw_hz = 100.0", "rbw_hz = 10.0"))
+    db_path = tmp_path / "t.db"
+    process = subprocess.Popen([sys.executable, "-m", "tonebench", "run", str(plan), "--bench", str(BENCH),
+                                "--db", f"sqlite:///{db_path}", "--report", str(tmp_path / "first.html")],
+                               stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + WAIT_S
+    try:
+        while count_points(db_path) < 12:  # 10 points per LO level
+            assert process.poll() is None, "the run ended before it could be killed"
+            assert time.monotonic() < deadline, "the run did not get far enough"
+            time.sleep(0.005)
+        process.send_signal(signal.SIGKILL)
+    finally:
+        process.wait(30)
+    engine = create_engine(f"sqlite:///{db_path}")
+    with Session(engine) as session:
+        guid = session.scalars(select(Run.guid)).one()
+        stored_at_kill = session.scalars(select(Point.point_key)).all()
+    engine.dispose()
+    assert 12 <= len(stored_at_kill) < 50
+    outcome = resume_run(guid[:8], f"sqlite:///{db_path}", report_path=tmp_path / "r.html")
+    assert outcome.status == "complete"
+    engine = create_engine(f"sqlite:///{db_path}")
+    with Session(engine) as session:
+        points = session.scalars(select(Point)).all()
+    engine.dispose()
+    keys = [p.point_key for p in points]
+    assert len(keys) == len(set(keys)) == 50
+    assert all(p.point_key.startswith(f"lo{p.lo_dbm:+.2f}dBm/") for p in points)
+    measured = {row["lo_dbm"]: row["iip3_dbm"] for row in find_json(f"sqlite:///{db_path}")}
+    assert sorted(measured) == sorted(lo_levels_dbm)
+    for lo_dbm, iip3_dbm in measured.items():
+        assert iip3_dbm == pytest.approx(true_iip3_dbm(lo_dbm), abs=IIP3_AGAINST_LO_TOLERANCE_DB), lo_dbm

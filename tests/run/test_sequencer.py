@@ -198,8 +198,8 @@ def test_rf_is_off_at_both_sources_at_the_end(outcome):
 
 def test_state_is_kept_per_sweep(outcome):
     sweeps = outcome.sequencer.sweeps
-    assert set(sweeps) == {(None, center_hz, 1.0e6, None) for center_hz in CENTERS_HZ}
-    for (_, center_hz, spacing_hz, _), state in sweeps.items():
+    assert set(sweeps) == {(None, None, center_hz, 1.0e6, None) for center_hz in CENTERS_HZ}
+    for (_, _, center_hz, spacing_hz, _), state in sweeps.items():
         assert state.top_dbm == -26.0 and state.step_levels_dbm == frozenset({-28.0, -26.0})
         records = sorted((r for r in outcome.records.values() if r.center_hz == center_hz), key=lambda r: r.tone_dbm)
         assert state.accepted == [(r.raw_f1_dbm, r.raw_f2_dbm, r.tone_dbm) for r in records]  # -30, -28, -26 dBm
@@ -209,10 +209,10 @@ def test_sweep_states_group_by_sweep_and_pick_the_top_levels():
     points = [PlannedPoint(i, center_hz, 1e6, tone_dbm) for i, (center_hz, tone_dbm) in
               enumerate([(1e9, -10.0), (1e9, -5.0), (1e9, 0.0), (2e9, -20.0)])]
     states = sweep_states(points, step_top_points=2)
-    assert states[(None, 1e9, 1e6, None)].top_dbm == 0.0
-    assert states[(None, 1e9, 1e6, None)].step_levels_dbm == frozenset({-5.0, 0.0})
-    assert states[(None, 2e9, 1e6, None)].step_levels_dbm == frozenset({-20.0})
-    assert sweep_states(points, step_top_points=0)[(None, 2e9, 1e6, None)].step_levels_dbm == frozenset()
+    assert states[(None, None, 1e9, 1e6, None)].top_dbm == 0.0
+    assert states[(None, None, 1e9, 1e6, None)].step_levels_dbm == frozenset({-5.0, 0.0})
+    assert states[(None, None, 2e9, 1e6, None)].step_levels_dbm == frozenset({-20.0})
+    assert sweep_states(points, step_top_points=0)[(None, None, 2e9, 1e6, None)].step_levels_dbm == frozenset()
 
 
 def test_a_sweep_predicts_its_next_tones_from_its_last_two_points():

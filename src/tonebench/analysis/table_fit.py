@@ -19,7 +19,7 @@ REQUIRED_COLUMNS = ("pin1_dbm", "pin2_dbm", "pout_f1_dbm", "pout_f2_dbm", "im3_l
                     "noise_lower_dbm", "noise_upper_dbm")
 OPTIONAL_COLUMNS = tuple(f.name for f in fields(SweepData) if f.name not in REQUIRED_COLUMNS)
 # Columns that tell sweeps apart in a table of a whole run.
-_SWEEP_COLUMNS = ("temperature_c", "center_hz", "spacing_hz", "bias_v")
+_SWEEP_COLUMNS = ("temperature_c", "lo_dbm", "center_hz", "spacing_hz", "bias_v")
 
 
 def fit(table, settings: AnalysisSettings | None = None) -> SweepAssessment:

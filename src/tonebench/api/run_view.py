@@ -18,7 +18,7 @@ from tonebench.store.point_record import RECORD_FIELDS, record_of
 
 # Result columns, in the order a reader compares them (units in the names).
 RESULT_COLUMNS = (
-    "temperature_c", "center_hz", "spacing_hz", "bias_v", "n_points", "n_valid", "gain_db", "iip3_dbm",
+    "temperature_c", "lo_dbm", "center_hz", "spacing_hz", "bias_v", "n_points", "n_valid", "gain_db", "iip3_dbm",
     "iip3_bound_db", "iip3_lower_dbm", "iip3_upper_dbm", "oip3_dbm", "oip3_lower_dbm", "oip3_upper_dbm",
     "slope_fundamental", "slope_im3_lower", "slope_im3_upper", "p1db_in_dbm", "p1db_out_dbm", "iip2_dbm",
     "oip2_dbm", "slope_im2", "valid_tone_min_dbm", "valid_tone_max_dbm", "verdict", "verdict_detail", "reason",
@@ -79,7 +79,7 @@ class RunView:
             rows = [{"run_guid": run.guid, **{name: getattr(r, name) for name in RESULT_COLUMNS},
                      "flags": sorted({flag_label(f) for f in r.flags})} for r in run.results]
         frame = pd.DataFrame(rows, columns=["run_guid", *RESULT_COLUMNS, "flags"])
-        order = [name for name in ("temperature_c", "center_hz", "spacing_hz", "bias_v")]
+        order = [name for name in ("temperature_c", "lo_dbm", "center_hz", "spacing_hz", "bias_v")]
         return frame.sort_values(order, na_position="first", kind="stable").reset_index(drop=True)
 
     def analysis_settings(self, center_hz: float, spacing_hz: float):
@@ -95,10 +95,11 @@ class RunView:
             return analysis_settings(run, cal, center_hz, spacing_hz)
 
     def figure(self, center_hz: float | None = None, spacing_hz: float | None = None, bias_v: float | None = None,
-               temperature_c: float | None = None) -> go.Figure:
+               temperature_c: float | None = None, lo_dbm: float | None = None) -> go.Figure:
         """The report's figure of one sweep (powers against drive, fits, intercepts). Name the
         sweep by its conditions; one left out may be omitted when the run has only one value."""
-        wanted = {"center_hz": center_hz, "spacing_hz": spacing_hz, "bias_v": bias_v, "temperature_c": temperature_c}
+        wanted = {"center_hz": center_hz, "spacing_hz": spacing_hz, "bias_v": bias_v, "temperature_c": temperature_c,
+                  "lo_dbm": lo_dbm}
         with self._database.session() as session:
             run = find_run(session, self.guid)
             sweeps = [(group, arrays, assessment) for group, _stored, arrays, assessment

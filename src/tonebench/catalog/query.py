@@ -129,11 +129,15 @@ class ResultRow:
     verdict_detail: str | None
     reason: str | None
     temperature_c: float | None = None  # chamber set point; None without a chamber
+    lo_dbm: float | None = None  # LO power stepped by a mixer plan; None when not stepped
     flags: tuple[str, ...] = ()
 
 
 # Exported columns (CSV, JSON): everything but the database's own row id.
-EXPORT_FIELDS = tuple(f.name for f in fields(ResultRow) if f.name != "result_id")
+# Axes added after the CSV layout was fixed (issue 15: the stepped LO): in JSON and frames always,
+# in CSV only when some row has a value, so a CSV of earlier data keeps its columns.
+LATER_AXIS_FIELDS = ("lo_dbm",)
+EXPORT_FIELDS = tuple(f.name for f in fields(ResultRow) if f.name not in ("result_id", *LATER_AXIS_FIELDS))
 
 _COLUMNS = (
     Result.id, Run.guid, Run.started_at, Device.part_number, Device.serial, Device.lot, Device.wafer,
@@ -141,7 +145,7 @@ _COLUMNS = (
     Result.iip3_dbm, Result.iip3_lower_dbm, Result.iip3_upper_dbm, Result.oip3_dbm,
     Result.oip3_lower_dbm, Result.oip3_upper_dbm, Result.p1db_in_dbm, Result.iip2_dbm,
     Result.iip3_bound_db, Result.n_valid, Result.n_points, Result.verdict, Result.verdict_detail,
-    Result.reason, Result.temperature_c,
+    Result.reason, Result.temperature_c, Result.lo_dbm,
 )
 
 
@@ -281,11 +285,11 @@ def count_results(session: Session, flt: ResultFilter) -> int:
 
 
 def latest_per_device(rows: list[ResultRow]) -> tuple[list[ResultRow], int]:
-    """One result per device and condition (centre, spacing, bias, temperature): the one from the
+    """One result per device and condition (centre, spacing, bias, temperature, LO power): the one from the
     device's latest run. Returns the kept rows, in their order, and how many older ones were left out."""
     latest: dict[tuple, ResultRow] = {}
     for row in rows:
-        key = (row.part_number, row.serial, row.center_hz, row.spacing_hz, row.bias_v, row.temperature_c)
+        key = (row.part_number, row.serial, row.center_hz, row.spacing_hz, row.bias_v, row.temperature_c, row.lo_dbm)
         kept = latest.get(key)
         if kept is None or (row.started_at, row.run_guid) > (kept.started_at, kept.run_guid):
             latest[key] = row

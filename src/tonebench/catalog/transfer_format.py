@@ -23,6 +23,8 @@ def dump_record(obj, model) -> dict:
     record = {}
     for column in travelling_columns(model):
         value = getattr(obj, column.key)
+        if value is None and column.info.get("transfer_omit_null"):
+            continue  # a later axis column: unset it is left out, so older runs keep their bytes
         record[column.name] = value.isoformat() if isinstance(value, dt.datetime) else value
     return record
 

@@ -89,17 +89,18 @@ def _export_value(value):
 
 
 def _print_rows(rows, as_csv: bool, as_json: bool, out_path: Path | None, extras: dict | None = None) -> None:
-    from tonebench.catalog.query import EXPORT_FIELDS
+    from tonebench.catalog.query import EXPORT_FIELDS, LATER_AXIS_FIELDS
 
     if not (as_csv or as_json):
         _print_table(rows)
         return
-    records = [{name: getattr(r, name) for name in EXPORT_FIELDS} for r in rows]
-    fields = EXPORT_FIELDS
+    later = tuple(name for name in LATER_AXIS_FIELDS if as_json or any(getattr(r, name) is not None for r in rows))
+    fields = (*EXPORT_FIELDS, *later)
+    records = [{name: getattr(r, name) for name in fields} for r in rows]
     if extras is not None:
         missing = {"im3_asymmetry_db": None, "intercept_convention": None, "levels": []}
         records = [{**record, **extras.get(r.result_id, missing)} for record, r in zip(records, rows)]
-        fields = (*EXPORT_FIELDS, "im3_asymmetry_db", "intercept_convention", "levels")
+        fields = (*fields, "im3_asymmetry_db", "intercept_convention", "levels")
     _write_export(records, fields, as_json, out_path)
 
 
@@ -126,7 +127,7 @@ def _f(value, spec: str = "+.2f") -> str:
 
 
 # Left out first when the terminal is narrow (lowest first); the IIP3 and the verdict stay.
-_FIND_PRIORITIES = {"Part": 9, "Serial": 9, "Lot": 6, "Wafer": 2, "Run": 7, "degC": 8, "Center": 10, "Spacing": 7,
+_FIND_PRIORITIES = {"Part": 9, "Serial": 9, "Lot": 6, "Wafer": 2, "Run": 7, "degC": 8, "LO dBm": 8, "Center": 10, "Spacing": 7,
                     "Bias V": 8, "Gain": 5, "IIP3": 10, "OIP3": 4, "Verdict": 10, "Flags": 1}
 
 
@@ -136,9 +137,11 @@ def _print_table(rows) -> None:
 
     # Bias, temperature and flag columns only when some row has one.
     shown = {"Bias V": any(r.bias_v is not None for r in rows), "Flags": any(r.flags for r in rows),
-             "degC": any(r.temperature_c is not None for r in rows)}
+             "degC": any(r.temperature_c is not None for r in rows),
+             "LO dBm": any(r.lo_dbm is not None for r in rows)}
     cells = [{"Part": r.part_number, "Serial": r.serial, "Lot": r.lot or "-", "Wafer": r.wafer or "-",
-              "Run": r.run_guid[:8], "degC": _f(r.temperature_c, ".1f"), "Center": format_freq(r.center_hz),
+              "Run": r.run_guid[:8], "degC": _f(r.temperature_c, ".1f"), "LO dBm": _f(r.lo_dbm, "+.2f"),
+              "Center": format_freq(r.center_hz),
               "Spacing": format_freq(r.spacing_hz), "Bias V": _f(r.bias_v, "g"), "Gain": _f(r.gain_db, ".2f"),
               "IIP3": _f(r.iip3_dbm), "OIP3": _f(r.oip3_dbm), "Verdict": styled(r.verdict), "Flags": ", ".join(r.flags)}
              for r in rows]

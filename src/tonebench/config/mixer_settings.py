@@ -5,6 +5,9 @@ frequency (`lo_hz`, one for the whole plan) or by the IF wanted (`if_hz`, the LO
 centre frequency). Injection says where the LO sits: "low" below every RF product, "high" above.
 Output: "difference" (IF = |f - f_LO|) or "sum" (IF = f + f_LO). Derivation and checks:
 plan/frequency_plan.py.
+
+LO power: `lo_dbm` (one level for the whole run) or `lo_levels_dbm` (a list: the "lo" plan axis,
+plan/axes.py, one set of sweeps per level), exactly one of them.
 """
 
 from __future__ import annotations
@@ -24,7 +27,9 @@ class MixerSettings(StrictModel):
     injection: Literal["low", "high"] = "low"
     output: Literal["difference", "sum"] = "difference"
     # LO power at the LO source's connector (checked against the bench's [limits] max_lo_dbm).
-    lo_dbm: float = Field(ge=LO_MIN_DBM, le=LO_MAX_DBM)
+    lo_dbm: float | None = Field(default=None, ge=LO_MIN_DBM, le=LO_MAX_DBM)
+    # LO power stepped as a plan axis (each level checked against max_lo_dbm like lo_dbm).
+    lo_levels_dbm: list[float] | None = Field(default=None, min_length=1)
     # Spurious products m*LO +/- n*RF with |m|, |n| up to this are predicted near each IM3 at the
     # IF, and flagged within spur_window_rbw RBWs of it.
     spur_max_order: int = Field(default=3, ge=1, le=7)
@@ -34,4 +39,16 @@ class MixerSettings(StrictModel):
     def _one_lo(self) -> MixerSettings:
         if (self.lo_hz is None) == (self.if_hz is None):
             raise ValueError("[mixer] give exactly one of lo_hz (the LO frequency) and if_hz (the IF wanted)")
+        if (self.lo_dbm is None) == (self.lo_levels_dbm is None):
+            raise ValueError("[mixer] give exactly one of lo_dbm (one LO power) and lo_levels_dbm (a list of LO "
+                             "powers, stepped as a plan axis)")
+        if self.lo_levels_dbm is not None:
+            if any(not LO_MIN_DBM <= level <= LO_MAX_DBM for level in self.lo_levels_dbm):
+                raise ValueError(f"[mixer] lo_levels_dbm values must lie within {LO_MIN_DBM:g}..{LO_MAX_DBM:g} dBm")
+            if len(set(self.lo_levels_dbm)) != len(self.lo_levels_dbm):
+                raise ValueError("[mixer] lo_levels_dbm repeats a level")
         return self
+
+    def lo_levels(self) -> list[float]:
+        """Every LO power the run sets (dBm at the LO source's connector)."""
+        return list(self.lo_levels_dbm) if self.lo_levels_dbm is not None else [self.lo_dbm]

@@ -265,11 +265,13 @@ def check_point_count(plan: PlanFile, origin: str) -> None:
     """Refuse (one line) a plan that would expand to more than MAX_PLAN_POINTS points."""
     sweep = plan.sweep
     biases = 1 if plan.bias is None else plan.bias.gate_count()
-    count = sweep.point_count() * biases
+    lo_levels = 1 if plan.mixer is None or plan.mixer.lo_levels_dbm is None else len(plan.mixer.lo_levels_dbm)
+    count = sweep.point_count() * biases * lo_levels
     if count <= MAX_PLAN_POINTS:
         return
     centers, spacings, levels = len(sweep.center_freqs_hz), len(sweep.spacings_hz), sweep.tone_level_count()
     gates = "" if plan.bias is None else f" x {biases:,} gate voltages"
+    gates += "" if lo_levels == 1 else f" x {lo_levels} LO levels"
     raise InputError(
         f"{origin}: {count:,} points ({centers} center_freqs_hz x {spacings} spacings_hz x {levels:,} tone levels{gates}) "
         f"exceed the cap of {MAX_PLAN_POINTS:,} points per plan; split it into several plans (fewer "

@@ -2,9 +2,11 @@
 its values come from, the point field that holds its value, its part of the point key, and how a
 run sets it on the bench.
 
-Today's axes: chamber temperature (outermost: a soak per change), centre frequency, tone spacing
-and tone power from the plan's [sweep], and gate bias from its [bias] table (None without one,
-leaving no trace in a key).
+Today's axes: chamber temperature (outermost: a soak per change), LO power from a mixer plan's
+[mixer] lo_levels_dbm (outside frequency: an LO level change settles slower than a frequency
+step, see DEVELOPERS.md "Mixers"), centre frequency, tone spacing and tone power from the plan's
+[sweep], and gate bias from its [bias] table (an axis the plan does not name is None, leaving no
+trace in a key).
 
 A sweep (what one fit runs over) is every point that differs only in the SWEEP_AXIS, tone power.
 `sweep_key_of` gives its key from a planned point or a stored point row, so the sequencer, the store and the results
@@ -14,8 +16,8 @@ Adding an axis (gate bias from a plan, temperature, LO frequency, device positio
 1. the plan field in config/plan_file.py (a table's model), e.g. `temperatures_c: list[float] | None`;
 2. a field with its unit on PlannedPoint (plan/points.py), defaulting to None so older callers and
    stored points without it keep their keys, and the column of the same name on the point record;
-3. one Axis in AXES below, e.g. `Axis("lo", "Hz", "lo_hz", _plan_field("mixer", "lo_freqs_hz"),
-   "/lo{:.0f}", "lo_frequency", lambda hz: f"LO {format_freq(hz)}")`. Its place in AXES is its place in the key; every axis other
+3. one Axis in AXES below, e.g. `Axis("lo_freq", "Hz", "lo_hz", _plan_field("mixer", "lo_freqs_hz"),
+   "/f{:.0f}", "lo_frequency", lambda hz: f"LO {format_freq(hz)}")`. Its place in AXES is its place in the key; every axis other
    than tone power is iterated outside the tone-power ramp in AXES order, and becomes part of the
    sweep key;
 4. the run dispatches on `bench_setting` ("lo_frequency") to whatever sets it.
@@ -78,8 +80,11 @@ SPACING = Axis("spacing", "Hz", "spacing_hz", _plan_field("sweep", "spacings_hz"
                lambda hz: f"spacing {format_freq(hz)}")
 TONE = Axis("tone", "dBm", "tone_dbm", _tone_levels, "/p{:+.2f}", "tone_power", lambda dbm: f"{dbm:+.2f} dBm per tone")
 BIAS = Axis("bias", "V", "bias_v", _gate_voltages, "/b{:+.4f}V", "gate_bias", lambda v: f"gate {v:.4f} V")
+# Only a stepped LO (lo_levels_dbm) is an axis; a plan's single lo_dbm leaves the point at None.
+LO = Axis("lo", "dBm", "lo_dbm", _plan_field("mixer", "lo_levels_dbm"), "lo{:+.2f}dBm/", "lo_power",
+          lambda dbm: f"LO {dbm:+.2f} dBm")
 
-AXES: tuple[Axis, ...] = (TEMPERATURE, CENTER, SPACING, TONE, BIAS)  # key order
+AXES: tuple[Axis, ...] = (TEMPERATURE, LO, CENTER, SPACING, TONE, BIAS)  # key order
 SWEEP_AXIS = TONE  # a fit runs over this axis; it is iterated innermost, rising
 GROUP_AXES: tuple[Axis, ...] = tuple(axis for axis in AXES if axis is not SWEEP_AXIS)
 GROUP_FIELDS: tuple[str, ...] = tuple(axis.point_field for axis in GROUP_AXES)

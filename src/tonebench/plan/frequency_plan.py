@@ -88,13 +88,16 @@ def check_frequency_plan(mixer: MixerSettings, pairs: Iterable[tuple[float, floa
 
 
 def check_lo_power(mixer: MixerSettings, max_lo_dbm: float | None, origin: str) -> None:
-    """The plan's LO power against the bench limit, before anything is switched on."""
+    """Every LO power of the plan (lo_dbm, or each of lo_levels_dbm) against the bench limit,
+    before anything is switched on."""
     if max_lo_dbm is None:
         raise InputError(f"{origin}: the plan has a [mixer] table but the bench has no lo source "
                          "(add [instruments.lo] and [limits] max_lo_dbm)")
-    if mixer.lo_dbm > max_lo_dbm + 1e-9:
-        raise InputError(f"{origin}: [mixer] lo_dbm {mixer.lo_dbm:.2f} dBm is above the bench limit "
-                         f"max_lo_dbm {max_lo_dbm:.2f} dBm")
+    name = "lo_dbm" if mixer.lo_levels_dbm is None else "lo_levels_dbm level"
+    for level_dbm in mixer.lo_levels():
+        if level_dbm > max_lo_dbm + 1e-9:
+            raise InputError(f"{origin}: [mixer] {name} {level_dbm:.2f} dBm is above the bench limit "
+                             f"max_lo_dbm {max_lo_dbm:.2f} dBm")
 
 
 # --- spurious products ---------------------------------------------------------------------------

@@ -23,6 +23,7 @@ class PlannedPoint:
     tone_dbm: float
     bias_v: float | None = None
     temperature_c: float | None = None  # chamber set point
+    lo_dbm: float | None = None  # LO power stepped by the plan ([mixer] lo_levels_dbm), at the LO connector
 
     @property
     def f1_hz(self) -> float:

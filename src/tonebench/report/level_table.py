@@ -40,7 +40,7 @@ def level_section(session: Session, run: Run) -> str:
     """HTML: one row per stored level of every sweep of the run, or "" when none were stored."""
     rows = session.execute(select(Result, LevelResult).join(LevelResult, LevelResult.result_id == Result.id)
                            .where(Result.run_id == run.id)
-                           .order_by(Result.temperature_c, Result.center_hz, Result.spacing_hz, Result.bias_v,
+                           .order_by(Result.temperature_c, Result.lo_dbm, Result.center_hz, Result.spacing_hz, Result.bias_v,
                                      LevelResult.tone_dbm)).all()
     if not rows:
         return ""
@@ -52,6 +52,8 @@ def level_section(session: Session, run: Run) -> str:
             sweep += f", gate {result.bias_v:.4f} V"
         if result.temperature_c is not None:
             sweep += f", {result.temperature_c:.1f} degC"
+        if result.lo_dbm is not None:
+            sweep += f", LO {result.lo_dbm:+.2f} dBm"
         body.append(f"<tr><td>{html.escape(sweep)}</td>" + "".join(_cell(getattr(level, f), f) for _, f in _COLUMNS) + "</tr>")
     note = ("IM3 re one tone: each product against its adjacent tone; re PEP: against the two tones' peak "
             "envelope power (4x one tone for equal tones, 6.02 dB). Single-point intercepts: IIP3 = Pin + delta/2.")

@@ -30,7 +30,8 @@ def sweep_plot(group: dict, arrays: dict, assessment) -> SweepPlotData:
     """What one sweep's figure shows, from its group axis values, arrays and assessment."""
     fit = assessment.fit
     return SweepPlotData(
-        title=sweep_title(group["center_hz"], group["spacing_hz"], group["bias_v"], group["temperature_c"]),
+        title=sweep_title(group["center_hz"], group["spacing_hz"], group["bias_v"], group["temperature_c"],
+                          group["lo_dbm"]),
         pin_dbm=(arrays["pin1_dbm"] + arrays["pin2_dbm"]) / 2.0,
         pout_dbm=(arrays["pout_f1_dbm"] + arrays["pout_f2_dbm"]) / 2.0,
         im3_lower_dbm=arrays["im3_lower_dbm"],
@@ -66,16 +67,19 @@ def write_run_report(sessions: sessionmaker, run_guid: str, path: Path) -> Path:
                                                      fit.oip3_upper_dbm, convention)
             fit = dataclasses.replace(fit, iip3_dbm=iip3_dbm, oip3_dbm=oip3_dbm)
             center_hz, spacing_hz, bias_v = group["center_hz"], group["spacing_hz"], group["bias_v"]
-            temperature_c = group["temperature_c"]
+            temperature_c, lo_dbm = group["temperature_c"], group["lo_dbm"]
             summaries.append(SweepSummary(center_hz, spacing_hz, bias_v, fit.iip3_lower_dbm, fit.iip3_upper_dbm,
                                           fit.iip3_dbm, fit.oip3_lower_dbm, fit.oip3_upper_dbm, fit.oip3_dbm,
-                                          assessment.iip3_bound_db, temperature_c, CONVENTION_WORDS[convention]))
+                                          assessment.iip3_bound_db, temperature_c, lo_dbm,
+                                          CONVENTION_WORDS[convention]))
             plot = sweep_plot(group, arrays, assessment)
             bounds.append((plot.title, assessment.iip3_bound_db, assessment.bound_terms_db))
             sweeps.append(plot)
             row = report_result_row(center_hz, spacing_hz, fit, assessment)
             if bias_v is not None:
                 row = {"bias (V)": f"{bias_v:.4f}", **row}
+            if lo_dbm is not None:
+                row = {"LO (dBm)": f"{lo_dbm:+.2f}", **row}
             if temperature_c is not None:
                 row = {"temperature (degC)": f"{temperature_c:.1f}", **row}
             rows.append(row)
@@ -104,5 +108,9 @@ def frequency_plan_text(mixer: dict) -> str:
     """A mixer run's frequency plan as stored in its metadata (config/mixer_settings.py), in words."""
     lo = f"LO {format_freq(mixer['lo_hz'])}" if mixer.get("lo_hz") else f"LO for an IF of {format_freq(mixer['if_hz'])}"
     output = "IF = |f - f_LO|" if mixer.get("output", "difference") == "difference" else "IF = f + f_LO"
-    return (f"{lo} at {mixer['lo_dbm']:.1f} dBm, {mixer.get('injection', 'low')}-side injection, {output}; "
+    if mixer.get("lo_levels_dbm"):
+        power = "LO power stepped over " + ", ".join(f"{level:+.1f}" for level in mixer["lo_levels_dbm"]) + " dBm"
+    else:
+        power = f"at {mixer['lo_dbm']:.1f} dBm"
+    return (f"{lo} {power}, {mixer.get('injection', 'low')}-side injection, {output}; "
             "IIP3 referred to the RF input, OIP3 to the IF output, gain is conversion gain")

@@ -73,12 +73,13 @@ class SweepPlotData:
 
 
 def sweep_title(center_freq_hz: float, spacing_hz: float, bias_v: float | None = None,
-                temperature_c: float | None = None) -> str:
+                temperature_c: float | None = None, lo_dbm: float | None = None) -> str:
     """Figure title for one sweep, e.g. '2.450 GHz, spacing 1 MHz' (', gate 0.5500 V' when biased,
-    ', 85.0 degC' in a chamber)."""
+    ', 85.0 degC' in a chamber, ', LO +7.00 dBm' when the plan steps the LO)."""
     bias = "" if bias_v is None else f", gate {bias_v:.4f} V"
     temperature = "" if temperature_c is None else f", {temperature_c:.1f} degC"
-    return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}{bias}{temperature}"
+    lo = "" if lo_dbm is None else f", LO {lo_dbm:+.2f} dBm"
+    return f"{format_freq(center_freq_hz, 3)}, spacing {format_freq(spacing_hz)}{bias}{temperature}{lo}"
 
 
 def flag_label(flag) -> str:

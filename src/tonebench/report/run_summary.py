@@ -1,6 +1,6 @@
 """The run report's summary figure: IIP3 and OIP3 of every sweep (lower, upper, and their mean
 with its bound) against the condition the plan steps: frequency, else tone spacing, else gate
-bias; one trace family per value of the other stepped conditions."""
+bias, else temperature, else LO power; one trace family per value of the other stepped conditions."""
 
 from __future__ import annotations
 
@@ -17,6 +17,7 @@ _CONDITIONS = (
     ("spacing_hz", "tone spacing (MHz)", 1e-6, lambda v: f"spacing {v / 1e6:.4g} MHz"),
     ("bias_v", "gate bias (V)", 1.0, lambda v: f"bias {v:.4f} V"),
     ("temperature_c", "temperature (degC)", 1.0, lambda v: f"{v:.1f} degC"),
+    ("lo_dbm", "LO power (dBm)", 1.0, lambda v: f"LO {v:+.1f} dBm"),
 )
 _LOWER, _UPPER, _MEAN = "#c0561b", "#2a8a4a", "#1f5fa8"
 
@@ -36,6 +37,7 @@ class SweepSummary:
     oip3_dbm: float | None
     bound_db: float | None  # +/- on the mean intercepts
     temperature_c: float | None = None
+    lo_dbm: float | None = None  # the stepped LO power of a mixer plan
     reported: str = "mean of lower and upper"  # what iip3_dbm and oip3_dbm are (the run's convention)
 
 

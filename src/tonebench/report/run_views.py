@@ -27,6 +27,7 @@ def results_table(results, console: Console) -> Table:
     rows = [terminal_row(r) for r in results]
     shown = {"Note": any(row["Note"] for row in rows), "Flags": any(row["Flags"] != "-" for row in rows),
              "Gate V": any(row["Gate V"] for row in rows), "degC": any(row["degC"] for row in rows),
+             "LO dBm": any(row["LO dBm"] for row in rows),
              "Verdict": any(r.verdict not in (None, "no-limit") for r in results)}
     rows = [{c: cell for c, cell in row.items() if shown.get(c, True)} for row in rows]
     return fitted_table(console, "Results (dB, dBm; IIP3 ± its bound; P1dB per tone)", rows, RESULT_PRIORITIES,
@@ -79,7 +80,7 @@ def describe_run(db_url: str, ident: str, console: Console) -> None:
         for inst in sorted(run.instruments, key=lambda i: i.role):
             console.print(f"  {inst.role:9} {inst.dialect:18} {inst.resource}  {inst.idn}", highlight=False)
         if run.results:
-            ordered = sorted(run.results, key=lambda r: (r.temperature_c or 0.0, r.center_hz, r.spacing_hz, r.bias_v or 0.0))
+            ordered = sorted(run.results, key=lambda r: (r.temperature_c or 0.0, r.lo_dbm or 0.0, r.center_hz, r.spacing_hz, r.bias_v or 0.0))
             console.print(results_table(ordered, console))
             print_flags(session, run, ordered, console)
         for point in failed[:MAX_FAILED_SHOWN]:

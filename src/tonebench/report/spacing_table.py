@@ -21,6 +21,8 @@ def _group_label(s: SweepSummary) -> str:
         label += f", gate {s.bias_v:.4f} V"
     if s.temperature_c is not None:
         label += f", {s.temperature_c:.1f} degC"
+    if s.lo_dbm is not None:
+        label += f", LO {s.lo_dbm:+.2f} dBm"
     return label
 
 

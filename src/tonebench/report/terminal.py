@@ -83,7 +83,7 @@ def flag_names(flags) -> str:
 
 # Which columns of a results table go first when the terminal is narrow (lowest first); the
 # frequency and the IIP3 with its bound are never left out.
-RESULT_PRIORITIES = {"degC": 8, "Center": 10, "Spacing": 7, "Gate V": 8, "Gain": 6, "IIP3": 10, "OIP3": 5,
+RESULT_PRIORITIES = {"degC": 8, "LO dBm": 8, "Center": 10, "Spacing": 7, "Gate V": 8, "Gain": 6, "IIP3": 10, "OIP3": 5,
                      "Slope": 3, "P1dB": 2, "Valid": 4, "Verdict": 9, "Flags": 1, "Note": 0}
 
 
@@ -91,6 +91,7 @@ def terminal_row(result: Result) -> dict[str, str | Text]:
     """A compact row for a terminal table (the HTML report has the full one); dB and dBm."""
     return {
         "degC": "" if result.temperature_c is None else f"{result.temperature_c:.1f}",
+        "LO dBm": "" if result.lo_dbm is None else f"{result.lo_dbm:+.2f}",
         "Center": format_freq(result.center_hz),
         "Spacing": format_freq(result.spacing_hz),
         "Gate V": "" if result.bias_v is None else f"{result.bias_v:.4f}",

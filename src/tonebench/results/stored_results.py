@@ -254,7 +254,7 @@ def _result_values(run_id: int, group: dict, a: SweepAssessment, set_id: int | N
         run_id=run_id,
         **group,
         # The insert is a bulk one: the ORM's before-insert hook does not fill the key.
-        group_key=result_group_key(group["center_hz"], group["spacing_hz"], group["bias_v"], group["temperature_c"]),
+        group_key=result_group_key(**group),  # group: every group axis by point field
         n_points=fit.n_points,
         n_valid=fit.n_valid,
         gain_db=_finite_or_none(fit.gain_db),

@@ -64,7 +64,7 @@ ANALYSIS_FIELDS = tuple(dict.fromkeys((
     *POINT_ARRAYS, *RAW_ARRAYS, *_REFERRAL_INPUTS)))
 
 # Sweep by sweep, tone power up.
-_SWEEP_ORDER = (Point.temperature_c, Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
+_SWEEP_ORDER = (Point.temperature_c, Point.lo_dbm, Point.center_hz, Point.spacing_hz, Point.bias_v, Point.tone_dbm)
 
 
 @dataclass(frozen=True)

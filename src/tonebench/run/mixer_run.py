@@ -121,8 +121,10 @@ class MixerDrive:
         self._spurs_said: set[tuple[float, float]] = set()
 
     def set_lo(self, point: PlannedPoint) -> None:
-        """LO at the point's frequency and the plan's power (only changes are sent), then on."""
-        self.lo.set_tone(lo_hz_for(self.mixer, point.center_hz), self.mixer.lo_dbm)
+        """LO at the point's frequency and power (the point's lo_dbm when the plan steps it, else
+        the plan's lo_dbm; only changes are sent), then on."""
+        lo_dbm = self.mixer.lo_dbm if point.lo_dbm is None else point.lo_dbm
+        self.lo.set_tone(lo_hz_for(self.mixer, point.center_hz), lo_dbm)
         if not self.lo.wanted.rf_on:
             self.lo.rf_on()
         self._say_spurs(point)

@@ -23,7 +23,7 @@ def planned_fields(point: PlannedPoint) -> dict:
     """The record fields a point has from its plan alone."""
     return dict(point_key=point.key, seq=point.seq, center_hz=point.center_hz, spacing_hz=point.spacing_hz,
                 f1_hz=point.f1_hz, f2_hz=point.f2_hz, tone_dbm=point.tone_dbm, bias_v=point.bias_v,
-                temperature_c=point.temperature_c)
+                temperature_c=point.temperature_c, lo_dbm=point.lo_dbm)
 
 
 def failed_record(point: PlannedPoint, reason: str, elapsed_s: float) -> PointRecord:

@@ -30,6 +30,7 @@ class PointRecord:
     tone_dbm: float
     bias_v: float | None = None
     temperature_c: float | None = None  # chamber set point (the axis value)
+    lo_dbm: float | None = None  # LO power stepped by the plan (the axis value)
     fail_reason: str | None = None
     # The gate and drain supplies' read-back at the point (bias benches only).
     gate_read_v: float | None = None

@@ -50,6 +50,9 @@ class Point(Base):
     tone_dbm: Mapped[float]
     bias_v: Mapped[float | None]
     temperature_c: Mapped[float | None]  # chamber set point (the axis value)
+    # LO power stepped by the plan (the axis value) (left out of transfer
+    # records when None: catalog/transfer_format.py)
+    lo_dbm: Mapped[float | None] = mapped_column(info={"transfer_omit_null": True})
     chamber_read_c: Mapped[float | None]  # the chamber's reading at the point
     # The gate and drain supplies' read-back at the point (bias benches only).
     gate_read_v: Mapped[float | None]

@@ -22,13 +22,15 @@ from tonebench.store.models.runs import Run
 
 
 def result_group_key(center_hz: float, spacing_hz: float, bias_v: float | None,
-                     temperature_c: float | None = None) -> str:
-    """Key of one (center, spacing, bias, temperature) group; a plain string so a missing bias
-    still compares equal (a UNIQUE over a NULL column would let duplicates in). A result without
-    a temperature keeps the key it had before the temperature axis."""
+                     temperature_c: float | None = None, lo_dbm: float | None = None) -> str:
+    """Key of one (center, spacing, bias, temperature, LO power) group; a plain string so a missing
+    bias still compares equal (a UNIQUE over a NULL column would let duplicates in). A result
+    without a temperature or an LO level keeps the key it had before those axes."""
     bias = "none" if bias_v is None else repr(float(bias_v))
     key = f"center_hz={float(center_hz)!r};spacing_hz={float(spacing_hz)!r};bias_v={bias}"
-    return key if temperature_c is None else f"{key};temperature_c={float(temperature_c)!r}"
+    if temperature_c is not None:
+        key += f";temperature_c={float(temperature_c)!r}"
+    return key if lo_dbm is None else f"{key};lo_dbm={float(lo_dbm)!r}"
 
 
 class Result(Base):
@@ -55,6 +57,9 @@ class Result(Base):
     spacing_hz: Mapped[float]
     bias_v: Mapped[float | None]
     temperature_c: Mapped[float | None]  # chamber set point
+    # LO power stepped by the plan; None when not stepped (left out of transfer
+    # records when None: catalog/transfer_format.py)
+    lo_dbm: Mapped[float | None] = mapped_column(info={"transfer_omit_null": True})
     n_points: Mapped[int]
     n_valid: Mapped[int]
     gain_db: Mapped[float | None]
@@ -114,5 +119,6 @@ class ResultFlag(Base):
 @event.listens_for(Result, "before_update")
 def _fill_group_key(mapper, connection, target: Result) -> None:
     # Derived, never typed by hand: it must always match the columns it stands for.
-    target.group_key = result_group_key(target.center_hz, target.spacing_hz, target.bias_v, target.temperature_c)
+    target.group_key = result_group_key(target.center_hz, target.spacing_hz, target.bias_v, target.temperature_c,
+                                        target.lo_dbm)
 
