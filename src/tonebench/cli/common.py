@@ -116,3 +116,22 @@ def configure_logging(verbose: bool, trace_path: Path | None) -> None:
         scpi.addHandler(handler)
         scpi.setLevel(logging.DEBUG)
         _installed.append((scpi, handler))
+
+
+@contextmanager
+def db_session(db: str | None, write: bool = False) -> Iterator:
+    """A session on the --db database: read-only unless write (reading never creates one)."""
+    from tonebench.store.database import open_database, session_factory
+
+    engine = open_database(database(db), read_only=not write)  # reading never creates one
+    try:
+        sessions = session_factory(engine)
+        with (sessions.begin() if write else sessions()) as session:
+            yield session
+    finally:
+        engine.dispose()
+
+
+def cell(value, spec: str = "+.2f") -> str:
+    """A table cell: the value in `spec`, "-" for none."""
+    return "-" if value is None else format(value, spec)
