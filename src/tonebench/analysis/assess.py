@@ -15,7 +15,7 @@ from dataclasses import dataclass, fields
 import numpy as np
 
 from tonebench.analysis.bound import bound_terms_db, iip3_at_least_dbm, iip3_bound_db
-from tonebench.analysis.detectors import detector_flags
+from tonebench.analysis.detectors import detector_flags, log_rms_notes
 from tonebench.analysis.flags import Flag, StepJudgement
 from tonebench.analysis.phase_noise import check_phase_noise, phase_noise_result
 from tonebench.analysis.point_checks import (
@@ -101,6 +101,7 @@ class SweepData:
     raw_diff_dbm: object = None  # the IM2 readings as read (analyzer input), for second_order_checks
     raw_sum_dbm: object = None
     noise_peak_detected: object = None  # 1.0 where the noise was read with a peak detector (analysis/detectors.py)
+    noise_log_rms: object = None  # 1.0 where it was read with an rms detector and log averaging
     rbw_hz: object = None  # the products' RBW (phase-noise check)
 
     def arrays(self) -> dict[str, np.ndarray]:
@@ -349,4 +350,5 @@ def _finish(a: dict[str, np.ndarray], settings: AnalysisSettings, steps: _PointS
         fit=fit, point_flags=point_flags, result_flags=result_flags, iip3_bound_db=iip3_bound_db(terms),
         bound_terms_db=terms, iip3_at_least_dbm=at_least, second_order=second,
         effective_mixer_toi_dbm=distortion.toi_dbm, step_change_db=distortion.step_change_db,
-        notes=[*distortion.notes, *source.notes, *im2_note_of(analyzer_im2, settings.mixer_shi_dbm)])
+        notes=[*distortion.notes, *source.notes, *im2_note_of(analyzer_im2, settings.mixer_shi_dbm),
+               *log_rms_notes(a)])

@@ -16,7 +16,8 @@ correction expects, before any analysis sees them:
     which is solved for K; the product becomes N (1 + K), what a power mean would have read.
   rms detector, log averaging: the dB mean of power means of k samples each reads
     10 log10(e) (psi(k) - ln k), under 0.22 dB low for k >= 10; k is the instrument's (samples per
-    display point) and not known here, so the readings are taken as power readings, uncorrected.
+    display point) and not known here, so the readings are taken as power readings, uncorrected,
+    and the result's notes say so (log_rms_notes).
   peak detector: noise reads high by an amount set by the samples per display point (+5.3 dB for
     16, sim/detector.py): no correction is claimed; points whose product lies within
     NOISE_CORRECT_MAX_DB of the noise marker are flagged (detector_flags).
@@ -97,6 +98,27 @@ def as_power_readings(values: dict[str, np.ndarray], detector, average_type) -> 
 def peak_mask(detector) -> np.ndarray:
     """1.0 where the point was read with a peak detector, else 0.0 (a SweepData float array)."""
     return (np.asarray(detector) == "peak").astype(float)
+
+
+def log_rms_mask(detector, average_type) -> np.ndarray:
+    """1.0 where the point was read with an rms detector and log averaging, else 0.0."""
+    return ((np.asarray(detector) == "rms") & (np.asarray(average_type) == "log")).astype(float)
+
+
+# rms detector, log averaging: 10 log10(e) (psi(k) - ln k) at k = 10 samples per display point.
+LOG_RMS_BIAS_AT_10_DB = -0.22
+
+
+def log_rms_notes(a: dict[str, np.ndarray]) -> list[str]:
+    """A note on the result when some of its points were read with an rms detector and log
+    averaging: their noise reads a little low by an amount the instrument's samples per point set,
+    so it is said, not corrected (see the module docstring)."""
+    n_points = int(np.count_nonzero(np.nan_to_num(a.get("noise_log_rms", np.zeros(0)), nan=0.0) > 0.0))
+    if n_points == 0:
+        return []
+    return [f"noise of {n_points} points read with an rms detector and log averaging: up to "
+            f"{-LOG_RMS_BIAS_AT_10_DB:.2f} dB low (10 or more samples per display point), not corrected; "
+            f"power averaging reads it without bias"]
 
 
 def detector_flags(a: dict[str, np.ndarray], noisy) -> PointFlags:

@@ -148,7 +148,8 @@ def batch_sweeps(session: Session, run_ids: list[int]) -> tuple[SweepData | None
     # The products' RBW: a read narrowed to reach its target keeps its own (point_build.py).
     rbw = np.array([extra.get("im3_rbw_hz", rbw_hz) for extra, rbw_hz in zip(extras, cols["rbw_hz"])], dtype=float)
     data = SweepData(**detectors.as_power_readings(values, detector, average_type), rbw_hz=rbw,
-                     noise_peak_detected=detectors.peak_mask(detector))
+                     noise_peak_detected=detectors.peak_mask(detector),
+                     noise_log_rms=detectors.log_rms_mask(detector, average_type))
     group_at = [first + _COLUMN[name] for name in GROUP_FIELDS]
     # A sweep starts where the run or any group axis changes from the point before (None, NaN
     # in the columns, equal to None), found over the columns instead of row by row.
@@ -215,7 +216,8 @@ def sweep_data(records: list[PointRecord], arrays: dict[str, np.ndarray]) -> Swe
     # The products' RBW: a read narrowed to reach its target keeps its own (point_build.py).
     rbw = _nan_array((record.extra_json or {}).get("im3_rbw_hz", record.rbw_hz) for record in records)
     return SweepData(**detectors.as_power_readings(values, detector, average_type), rbw_hz=rbw,
-                     noise_peak_detected=detectors.peak_mask(detector))
+                     noise_peak_detected=detectors.peak_mask(detector),
+                     noise_log_rms=detectors.log_rms_mask(detector, average_type))
 
 
 def _residual_shares(cal: CalibrationSet | None, center_hz: float, spacing_hz: float) -> tuple[dict, str | None]:
