@@ -209,8 +209,19 @@ def test_lo_off_after_an_error(tmp_path, mixer_sim):
     assert lo_state(mixer_sim) == (True, False)
 
 
-@pytest.mark.parametrize("signum, exit_code", [(signal.SIGTERM, 143), (signal.SIGINT, 130)])
-def test_lo_off_after_a_signal(tmp_path, mixer_sim, signum, exit_code):
+def tone_sources_on(sim) -> list[int]:
+    """The tone sources (1, 2) whose RF is on, commanded or in force, in the simulator's own state."""
+    with sim.bench.lock:
+        return [index for index in (1, 2)
+                if sim.bench.source(index).commanded.rf_on or sim.bench.source(index).effective.rf_on]
+
+
+@pytest.mark.parametrize("signum, count, exit_code", [
+    (signal.SIGTERM, 1, 143), (signal.SIGINT, 1, 130), (signal.SIGINT, 5, 130), (signal.SIGTERM, 3, 143),
+], ids=["sigterm", "ctrl-c", "ctrl-c-x5", "sigterm-x3"])
+def test_lo_off_after_a_signal(tmp_path, mixer_sim, signum, count, exit_code):
+    from test_rf_off_paths import send_burst
+
     bench = hardware_mixer_bench(tmp_path, mixer_sim)
     plan = tmp_path / "plan.toml"
     plan.write_text(PLAN.read_text().replace("tone_step_dbm = 3.0", "tone_step_dbm = 0.25"))  # a longer run
@@ -222,11 +233,12 @@ def test_lo_off_after_a_signal(tmp_path, mixer_sim, signum, exit_code):
         assert proc.poll() is None, proc.communicate()
         assert time.monotonic() < deadline, "LO never came on"
         threading.Event().wait(0.002)
-    proc.send_signal(signum)
+    send_burst(proc.pid, signum, count)  # repeated signals must not cut the cleanup short
     stdout, stderr = proc.communicate(timeout=WAIT_S)
-    assert proc.returncode == exit_code, stderr
+    assert proc.returncode == exit_code and "Traceback" not in stderr, stderr
     assert "RF off at source1, source2, lo (read back)" in stdout + stderr
     assert lo_state(mixer_sim) == (True, False)
+    assert tone_sources_on(mixer_sim) == []
 
 
 def test_the_analyzer_input_is_predicted_at_the_if(tmp_path):
