@@ -110,6 +110,8 @@ def test_the_run_report_shows_the_levels_and_the_convention(measured):
     page = report.read_text()
     assert "IMD at each drive level" in page and "IM3 lower re PEP (dBc)" in page
     assert "the worse (lower IIP3) of lower and upper" in page
+    # Two levels fit no intercept: the sweep plots do not call their points "in the fit".
+    assert "IM3 lower (2f1-f2), valid, no intercept fitted" in page and "(2f1-f2), in the fit" not in page
     level = find_json(measured)[0]["levels"][1]
     assert f"<td>{level['im3_lower_dbc']:+.2f}</td><td>{level['im3_upper_dbc']:+.2f}</td>" in page
 

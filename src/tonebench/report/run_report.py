@@ -47,6 +47,12 @@ class SweepPlotData:
     # Per point why it was left out of the fit (None: in it), from analysis.sweep_fit.exclusion_reasons.
     exclusions: list[str | None] | None = None
 
+    @property
+    def in_fit_words(self) -> str:
+        """What a point that meets the valid-region rules is: in the fit, or (a refused fit, e.g. a
+        plan at one or two levels) valid with no intercept fitted over it."""
+        return "in the fit" if self.result.iip3_dbm is not None else "valid, no intercept fitted"
+
     def left_out_reasons(self) -> list[str | None]:
         """Per point why it is not in the fit (None: in it); a point a later check left out is
         named by its first flag."""
@@ -58,7 +64,7 @@ class SweepPlotData:
 
     def hover_notes(self) -> list[str]:
         """Per point: 'in the fit' or why not, then each flag with its reason and IIP3 error."""
-        notes = ["in the fit" if why is None else f"left out: {html.escape(why)}" for why in self.left_out_reasons()]
+        notes = [self.in_fit_words if why is None else f"left out: {html.escape(why)}" for why in self.left_out_reasons()]
         if self.assessment is not None:
             for i, flags in enumerate(self.assessment.point_flags):
                 for f in flags:
@@ -152,7 +158,7 @@ def _point_traces(series: str, x, y, sweep: SweepPlotData) -> list[go.Scatter]:
     reasons = sweep.left_out_reasons()
     template = "%{x:.2f} dBm in, %{y:.2f} dBm out<br>%{hovertext}<extra>" + name + "</extra>"
     in_fit = np.array([r is None for r in reasons])
-    traces = [go.Scatter(x=x[in_fit], y=y[in_fit], name=f"{name}, in the fit", mode="markers", legendgroup=series,
+    traces = [go.Scatter(x=x[in_fit], y=y[in_fit], name=f"{name}, {sweep.in_fit_words}", mode="markers", legendgroup=series,
                          marker=dict(size=9, color=color, symbol=symbol), hovertext=notes[in_fit],
                          hovertemplate=template)]
     for reason in dict.fromkeys(r for r in reasons if r is not None):
@@ -230,7 +236,8 @@ def sweep_figure(sweep: SweepPlotData) -> go.Figure:
                                font=dict(color=color, size=11))
         if valid.any():
             fig.add_vrect(x0=float(pin[valid].min()), x1=float(pin[valid].max()), fillcolor="rgba(90, 90, 90, 0.07)",
-                          line_width=0, layer="below", annotation_text="fitted region",
+                          line_width=0, layer="below",
+                          annotation_text="fitted region" if r.iip3_dbm is not None else "valid region, no fit",
                           annotation_position="top left", annotation_font=dict(size=10, color="#666"))
     fig.update_layout(
         title=sweep.title, template="plotly_white", height=480,
