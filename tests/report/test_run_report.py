@@ -189,3 +189,16 @@ def test_results_table_has_bound_and_flags(tmp_path):
     assert html.escape(row["flags"]) in page
     # Truth (0 dBm) within the reported bound: the residual is what the bound is made of.
     assert abs(assessment.fit.iip3_dbm - 0.0) <= assessment.iip3_bound_db
+
+
+def test_diagnostics_rows_carry_the_lo_level_of_their_sweep():
+    """Sweeps that differ only in LO power must be told apart in the diagnostics table too."""
+    from tonebench.report.run_report import _results_table
+
+    rows = [{"LO (dBm)": lo, "center": "2.450 GHz", "spacing": "2 MHz", "IIP3 (dBm)": iip3, "reason": "-"}
+            for lo, iip3 in (("+9.00", 11.94), ("+5.00", 5.94))]
+    page = _results_table(rows)
+    diagnostics = page.split("<h2>Fit diagnostics</h2>")[1]
+    assert "<th>LO (dBm)</th>" in diagnostics and "+9.00" in diagnostics and "+5.00" in diagnostics
+    # Conditions alone are no diagnostics: no second table.
+    assert "Fit diagnostics" not in _results_table([{k: v for k, v in r.items() if k != "reason"} for r in rows])

@@ -282,12 +282,12 @@ def _table(rows: list[dict[str, object]], css_class: str) -> str:
 def _results_table(rows: list[dict[str, object]]) -> str:
     """The results, then (under its own heading) the fit diagnostics of the same sweeps, each
     diagnostics row led by the sweep's conditions so the two tables read side by side."""
-    conditions = ("temperature (degC)", "bias (V)", "center", "spacing")
+    conditions = ("LO (dBm)", "temperature (degC)", "bias (V)", "center", "spacing")
     main = [{k: v for k, v in row.items() if k not in _DIAGNOSTIC_COLUMNS} for row in rows]
     diagnostics = [{**{k: row[k] for k in conditions if k in row},
                     **{k: row[k] for k in _DIAGNOSTIC_COLUMNS if k in row}} for row in rows]
     html_text = _table(main, "results")
-    if any(len(d) > len(conditions) for d in diagnostics):
+    if any(key in _DIAGNOSTIC_COLUMNS for d in diagnostics for key in d):
         html_text += "\n<h2>Fit diagnostics</h2>\n" + _table(diagnostics, "diagnostics")
     return html_text
 
