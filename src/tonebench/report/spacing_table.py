@@ -32,12 +32,18 @@ def _cell(value: float | None, spec: str = "+.2f") -> str:
 
 def _figure(groups: dict[str, list[SweepSummary]]) -> str:
     fig = go.Figure()
+    shown_db = [0.0]
     for label, members in sorted(groups.items()):
         members = [s for s in members if im3_asymmetry_db(s.oip3_lower_dbm, s.oip3_upper_dbm) is not None]
-        fig.add_trace(go.Scatter(x=[s.spacing_hz for s in members], mode="lines+markers", name=label,
-                                 y=[im3_asymmetry_db(s.oip3_lower_dbm, s.oip3_upper_dbm) for s in members]))
+        y = [im3_asymmetry_db(s.oip3_lower_dbm, s.oip3_upper_dbm) for s in members]
+        shown_db += y
+        fig.add_trace(go.Scatter(x=[s.spacing_hz for s in members], mode="lines+markers", name=label, y=y))
+    # At least +/-0.5 dB (about an intercept's bound): a memoryless part's hundredths of a dB of
+    # scatter must not fill the axis and read as memory.
+    y_range = [min(-0.5, min(shown_db) - 0.1), max(0.5, max(shown_db) + 0.1)]
     fig.update_layout(template="plotly_white", height=380, title="IM3 asymmetry (upper minus lower) against spacing",
-                      xaxis={"type": "log", "title": "tone spacing (Hz)"}, yaxis={"title": "upper - lower IM3 (dB)"})
+                      xaxis={"type": "log", "title": "tone spacing (Hz)"},
+                      yaxis={"title": "upper - lower IM3 (dB)", "range": y_range, "zeroline": True})
     return ('<div class="figure">' + pio.to_html(fig, full_html=False, include_plotlyjs=False, div_id="spacing")
             + "</div>\n")
 
